@@ -1,26 +1,17 @@
-"""Exceptions raised by the model package.
-
-Every error raised on purpose by ``mixture`` derives from :class:`MixrouteError`, so callers
-(the worker, the HTTP layer) can catch one type. The concrete classes also derive from
-``ValueError`` because each one describes a bad value handed in from outside.
-"""
-
-from __future__ import annotations
-
-__all__ = ["ConfigError", "InputError", "MixrouteError", "StateFormatError"]
+"""Exceptions raised by the model core; every message names what to fix."""
 
 
 class MixrouteError(Exception):
-    """Base class of every error raised on purpose by mixroute."""
+    """Base class of every error raised by mixroute's own code."""
 
 
 class ConfigError(MixrouteError, ValueError):
-    """A configuration value is missing, unknown or out of range; the message names the field."""
+    """A configuration value is out of range or unknown; the message names the field."""
 
 
 class InputError(MixrouteError, ValueError):
-    """Documents or counts handed to the model are malformed (wrong type, negative, non-finite)."""
+    """Documents or counts that the model cannot use (empty, negative, non-finite, ...)."""
 
 
 class StateFormatError(MixrouteError, ValueError):
-    """Serialised model state is corrupt, truncated, foreign or of an unsupported version."""
+    """State bytes that are corrupt, truncated, tampered with or not ours."""
