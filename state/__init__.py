@@ -1,0 +1,59 @@
+"""Everything mixroute keeps in Redis: keys, connection, registry, stream, checkpoints,
+snapshots, rollback and drift history. See DEVELOPERS.md ("state/ API", "Redis protocol")."""
+
+from state.connection import EmbeddedRedis, connect, redis_from_url
+from state.errors import (
+    CorruptSnapshotError,
+    ModelExistsError,
+    ModelNotFoundError,
+    OptionsError,
+    SnapshotNotFoundError,
+    StateError,
+    VersionConflictError,
+)
+from state.keys import CONSUMER_GROUP, REGISTRY_KEY, ModelKeys, validate_model_name
+from state.options import ModelOptions
+from state.records import (
+    Alert,
+    CurrentState,
+    DriftReport,
+    EnqueueResult,
+    HistoryRow,
+    RollbackResult,
+    SnapshotInfo,
+    VersionRecord,
+    WorkerStatus,
+)
+from state.registry import ModelInfo, Registry
+from state.store import Checkpoint, ModelStore
+
+__all__ = [
+    "CONSUMER_GROUP",
+    "REGISTRY_KEY",
+    "Alert",
+    "Checkpoint",
+    "CorruptSnapshotError",
+    "CurrentState",
+    "DriftReport",
+    "EmbeddedRedis",
+    "EnqueueResult",
+    "HistoryRow",
+    "ModelExistsError",
+    "ModelInfo",
+    "ModelKeys",
+    "ModelNotFoundError",
+    "ModelOptions",
+    "ModelStore",
+    "OptionsError",
+    "Registry",
+    "RollbackResult",
+    "SnapshotInfo",
+    "SnapshotNotFoundError",
+    "StateError",
+    "VersionConflictError",
+    "VersionRecord",
+    "WorkerStatus",
+    "connect",
+    "redis_from_url",
+    "validate_model_name",
+]

@@ -1,0 +1,39 @@
+"""Exceptions of the state layer; every message names what went wrong and where."""
+
+from __future__ import annotations
+
+from mixture.errors import MixrouteError
+
+
+class StateError(MixrouteError):
+    """Base class of the errors raised by ``state/``."""
+
+
+class ModelExistsError(StateError):
+    """A model of that name is already registered."""
+
+
+class ModelNotFoundError(StateError, KeyError):
+    """No model of that name is registered."""
+
+    def __str__(self) -> str:  # KeyError would quote the message
+        return str(self.args[0]) if self.args else "model not found"
+
+
+class SnapshotNotFoundError(StateError, KeyError):
+    """No snapshot of that id exists for the model."""
+
+    def __str__(self) -> str:
+        return str(self.args[0]) if self.args else "snapshot not found"
+
+
+class CorruptSnapshotError(StateError):
+    """A snapshot's bytes do not match its recorded checksum or cannot be decoded."""
+
+
+class OptionsError(StateError, ValueError):
+    """A model option or name is out of range or unknown; the message names the field."""
+
+
+class VersionConflictError(StateError):
+    """A checkpoint lost its WATCH: the version (rollback) or the lease changed under it."""

@@ -1,0 +1,145 @@
+"""Every Redis key name used by mixroute, in one place.
+
+All keys of one model share the hash tag ``{<model>}``: ``mixroute:{<model>}:<what>``. Redis
+Cluster hashes only the text between the braces, so every key of one model lives in one slot
+and a MULTI/EXEC or a Lua script over them is legal on a cluster too. The only key outside a
+model's tag is the registry set :data:`REGISTRY_KEY`.
+
+Keys of model ``M`` (``mixroute:{M}:`` omitted):
+
+=================  ==========  ===========================================================
+key                type        what it holds
+=================  ==========  ===========================================================
+config             string      JSON: MixtureConfig, ModelOptions, creation time
+docs               stream      documents: id, text, metadata (JSON), received (unix s)
+dead               stream      entries that could not be decoded, with the reason
+id:<client id>     string      marks a client id as seen (TTL = idempotency window)
+state              string      current state bytes (mixture.serialize)
+state_meta         string      JSON summary of the current state (version, weights, checksum)
+version            string      current version number (int)
+watermark          string      last stream id applied to the current state
+history            list        JSON drift-history rows, one per checkpoint (capped)
+lineage            list        JSON version records (version, parent, kind, ...) (capped)
+snapshots          zset        snapshot ids scored by the version they copy
+snapshot:<id>      hash        ``meta`` (JSON) and ``state`` (bytes) of one snapshot
+snapshot_seq       string      counter for snapshot ids
+alerts             stream      drift alerts: kind, reason, value, threshold, version
+heartbeat          string      name of the worker holding the model (TTL = lease)
+worker_status      string      JSON status of that worker (same TTL)
+replay             string      JSON replay record of the last rollback (skip ranges)
+notify             channel     pub/sub: the new version after each checkpoint / rollback
+=================  ==========  ===========================================================
+"""
+
+from __future__ import annotations
+
+import re
+
+from state.errors import OptionsError
+
+PREFIX = "mixroute"
+REGISTRY_KEY = f"{PREFIX}:models"
+CONSUMER_GROUP = "learners"
+
+_MODEL_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}")
+
+
+def validate_model_name(name: str) -> str:
+    """Check a model name and return it.
+
+    Parameters
+    ----------
+    name : str
+        1 to 64 characters: letters, digits, ``_``, ``.``, ``-``, starting with a letter or
+        digit. Braces, colons and spaces are refused so the hash tag stays exact.
+
+    Returns
+    -------
+    str
+        The name, unchanged.
+
+    Raises
+    ------
+    OptionsError
+        When the name does not match.
+    """
+    if not isinstance(name, str) or not _MODEL_NAME.fullmatch(name):
+        raise OptionsError(
+            f"model name {name!r} is invalid: use 1-64 letters, digits, '_', '.' or '-', "
+            "starting with a letter or digit"
+        )
+    return name
+
+
+class ModelKeys:
+    """Key names of one model.
+
+    Parameters
+    ----------
+    model : str
+        A valid model name (see :func:`validate_model_name`).
+
+    Examples
+    --------
+    >>> ModelKeys("inbox").docs
+    'mixroute:{inbox}:docs'
+    """
+
+    __slots__ = (
+        "alerts",
+        "base",
+        "config",
+        "dead_letters",
+        "docs",
+        "heartbeat",
+        "history",
+        "lineage",
+        "model",
+        "notify",
+        "replay",
+        "snapshot_seq",
+        "snapshots",
+        "state",
+        "state_meta",
+        "version",
+        "watermark",
+        "worker_status",
+    )
+
+    def __init__(self, model: str) -> None:
+        self.model = validate_model_name(model)
+        self.base = f"{PREFIX}:{{{model}}}:"
+        b = self.base
+        self.config = b + "config"
+        self.docs = b + "docs"
+        self.dead_letters = b + "dead"
+        self.state = b + "state"
+        self.state_meta = b + "state_meta"
+        self.version = b + "version"
+        self.watermark = b + "watermark"
+        self.history = b + "history"
+        self.lineage = b + "lineage"
+        self.snapshots = b + "snapshots"
+        self.snapshot_seq = b + "snapshot_seq"
+        self.alerts = b + "alerts"
+        self.heartbeat = b + "heartbeat"
+        self.worker_status = b + "worker_status"
+        self.replay = b + "replay"
+        self.notify = b + "notify"
+
+    def snapshot(self, snapshot_id: str) -> str:
+        """Key of the hash holding one snapshot."""
+        return f"{self.base}snapshot:{snapshot_id}"
+
+    def client_id(self, client_id: str) -> str:
+        """Key marking one client-given document id as seen."""
+        return f"{self.base}id:{client_id}"
+
+    def pattern(self) -> str:
+        """SCAN pattern matching every key of this model and no other model's.
+
+        Glob metacharacters in the name are escaped (``[`` cannot occur; ``-`` and ``.`` are
+        literal in glob patterns), and the closing brace ends the tag, so ``{inbox}`` never
+        matches ``{inbox2}``.
+        """
+        return f"{self.base}*"

@@ -1,0 +1,147 @@
+"""Service-level options of one model, stored beside its :class:`~mixture.config.MixtureConfig`.
+
+Defaults are operating choices, not results: they are common practice for a stream service
+(checkpoint every second or so of traffic, keep a week of stream), no source.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, fields
+from typing import Any
+
+from state.errors import OptionsError
+
+
+@dataclass(frozen=True)
+class ModelOptions:
+    """How the state layer and the worker treat one model.
+
+    Parameters
+    ----------
+    checkpoint_documents : int
+        Checkpoint after this many documents read since the last checkpoint ...
+    checkpoint_seconds : float
+        ... or when this much time has passed since it (whichever comes first).
+    flush_partial_seconds : float or None
+        The worker learns in units of ``batch_size`` documents. A partial unit is learned when
+        no new entry has arrived for this long (bounds latency at low traffic); None learns
+        only full units, which makes the state a function of the stream alone (reproducible
+        whatever the read sizes, crashes and restarts).
+    read_count : int
+        XREADGROUP COUNT: entries per read.
+    read_block_ms : int
+        XREADGROUP BLOCK in milliseconds.
+    stream_max_length : int or None
+        Approximate cap on the stream length (XADD MAXLEN ~); None for no cap.
+    stream_max_age_seconds : float or None
+        Entries older than this are trimmed (XTRIM MINID ~), never past the watermark.
+    id_ttl_seconds : float
+        How long a client-given id stays known: the idempotency window.
+    snapshot_every_documents : int or None
+        Automatic snapshot after this many documents learned since the last one.
+    snapshot_every_seconds : float or None
+        Automatic snapshot after this much time since the last one.
+    snapshot_keep : int
+        Automatic snapshots kept (the newest); requested ones are never removed by retention.
+    history_limit : int
+        Drift-history rows kept.
+    lineage_limit : int
+        Version records kept.
+    drift_threshold : float
+        Alert when the Jensen-Shannon divergence (base 2) of the weights crosses this.
+    drift_window : int
+        Checkpoints back to the "window before" reference.
+    claim_idle_seconds : float
+        Pending entries idle this long are claimed from their consumer (XAUTOCLAIM).
+    lease_seconds : float
+        TTL of the heartbeat key: a worker silent this long loses the model.
+    seed : int
+        Seed of the learner's random initialisation.
+    """
+
+    checkpoint_documents: int = 1000
+    checkpoint_seconds: float = 5.0
+    flush_partial_seconds: float | None = 1.0
+    read_count: int = 500
+    read_block_ms: int = 1000
+    stream_max_length: int | None = 1_000_000
+    stream_max_age_seconds: float | None = 7 * 86400.0
+    id_ttl_seconds: float = 7 * 86400.0
+    snapshot_every_documents: int | None = 50_000
+    snapshot_every_seconds: float | None = 3600.0
+    snapshot_keep: int = 10
+    history_limit: int = 10_000
+    lineage_limit: int = 10_000
+    drift_threshold: float = 0.05
+    drift_window: int = 10
+    claim_idle_seconds: float = 30.0
+    lease_seconds: float = 15.0
+    seed: int = 0
+
+    def __post_init__(self) -> None:
+        positive_int = (
+            "checkpoint_documents",
+            "read_count",
+            "history_limit",
+            "lineage_limit",
+            "drift_window",
+        )
+        for name in positive_int:
+            _check_int(name, getattr(self, name), minimum=1)
+        _check_int("read_block_ms", self.read_block_ms, minimum=0)
+        _check_int("snapshot_keep", self.snapshot_keep, minimum=0)
+        _check_int("seed", self.seed, minimum=0)
+        for name in ("stream_max_length", "snapshot_every_documents"):
+            value = getattr(self, name)
+            if value is not None:
+                _check_int(name, value, minimum=1)
+        for name in ("checkpoint_seconds", "id_ttl_seconds", "lease_seconds"):
+            _check_float(name, getattr(self, name), minimum=0.0, strict=True)
+        _check_float("claim_idle_seconds", self.claim_idle_seconds, minimum=0.0, strict=False)
+        if self.flush_partial_seconds is not None:
+            _check_float(
+                "flush_partial_seconds", self.flush_partial_seconds, minimum=0.0, strict=False
+            )
+        for name in ("stream_max_age_seconds", "snapshot_every_seconds"):
+            value = getattr(self, name)
+            if value is not None:
+                _check_float(name, value, minimum=0.0, strict=True)
+        _check_float("drift_threshold", self.drift_threshold, minimum=0.0, strict=False)
+        if self.drift_threshold > 1.0:
+            raise OptionsError(
+                f"drift_threshold must be in [0, 1] (JS divergence, base 2), got "
+                f"{self.drift_threshold!r}"
+            )
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-able dict of every field."""
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict[str, Any]) -> ModelOptions:
+        """Build from a dict; unknown keys and bad values raise :class:`OptionsError`."""
+        if not isinstance(d, dict):
+            raise OptionsError(f"model options must be an object, got {type(d).__name__}")
+        known = {f.name for f in fields(cls)}
+        unknown = sorted(set(d) - known)
+        if unknown:
+            raise OptionsError(f"unknown model option(s): {', '.join(unknown)}")
+        return cls(**d)
+
+
+def _check_int(name: str, value: Any, *, minimum: int) -> None:
+    if isinstance(value, bool) or not isinstance(value, int):
+        raise OptionsError(f"{name} must be an integer, got {value!r}")
+    if value < minimum:
+        raise OptionsError(f"{name} must be >= {minimum}, got {value!r}")
+
+
+def _check_float(name: str, value: Any, *, minimum: float, strict: bool) -> None:
+    if isinstance(value, bool) or not isinstance(value, int | float):
+        raise OptionsError(f"{name} must be a number, got {value!r}")
+    if not math.isfinite(value):
+        raise OptionsError(f"{name} must be finite, got {value!r}")
+    if (strict and value <= minimum) or (not strict and value < minimum):
+        op = ">" if strict else ">="
+        raise OptionsError(f"{name} must be {op} {minimum}, got {value!r}")

@@ -1,0 +1,216 @@
+"""The document stream: entry fields, stream-id arithmetic, decoding and skip ranges.
+
+An entry of ``mixroute:{M}:docs`` has the fields
+
+``id``
+    the client's document id (or one we generated), unique within the idempotency window;
+``text``
+    UTF-8 text;
+``metadata``
+    a JSON object (``{}`` when none was given);
+``received``
+    unix time in seconds at which the service accepted it.
+
+An entry that cannot be decoded (no ``text``, text not UTF-8, metadata not a JSON object,
+received not a number) is not learned: the worker writes it to the dead-letter stream with the
+reason, in the same transaction that acknowledges it, and carries on.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+from state.errors import OptionsError
+
+ZERO_ID = "0-0"
+
+
+def parse_stream_id(stream_id: str | bytes) -> tuple[int, int]:
+    """Split a stream id ``"<ms>-<seq>"`` into integers (``"<ms>"`` means seq 0).
+
+    Raises
+    ------
+    OptionsError
+        When the text is not a stream id.
+    """
+    if isinstance(stream_id, bytes):
+        stream_id = stream_id.decode()
+    head, _, tail = stream_id.partition("-")
+    try:
+        ms = int(head)
+        seq = int(tail) if tail else 0
+    except ValueError:
+        raise OptionsError(f"{stream_id!r} is not a stream id ('<ms>-<seq>')") from None
+    if ms < 0 or seq < 0:
+        raise OptionsError(f"{stream_id!r} is not a stream id ('<ms>-<seq>')")
+    return ms, seq
+
+
+def format_stream_id(parts: tuple[int, int]) -> str:
+    """Inverse of :func:`parse_stream_id`."""
+    return f"{parts[0]}-{parts[1]}"
+
+
+def max_stream_id(a: str, b: str) -> str:
+    """The later of two stream ids."""
+    return a if parse_stream_id(a) >= parse_stream_id(b) else b
+
+
+@dataclass(frozen=True)
+class Document:
+    """A decoded stream entry."""
+
+    stream_id: str
+    client_id: str
+    text: str
+    metadata: dict[str, Any]
+    received: float
+
+
+@dataclass(frozen=True)
+class Undecodable:
+    """A stream entry that cannot be learned, with the reason."""
+
+    stream_id: str
+    reason: str
+    fields: dict[str, str]  # a printable, truncated copy of what was there
+
+    def dead_letter_fields(self) -> dict[str, str]:
+        """Fields of its dead-letter stream entry."""
+        return {
+            "source_id": self.stream_id,
+            "reason": self.reason,
+            "fields": json.dumps(self.fields),
+        }
+
+
+def decode_entry(stream_id: str, fields: Mapping[bytes, bytes]) -> Document | Undecodable:
+    """Decode one stream entry as read with ``decode_responses=False``."""
+    try:
+        raw_text = fields.get(b"text")
+        if raw_text is None:
+            return _bad(stream_id, "no 'text' field", fields)
+        try:
+            text = raw_text.decode("utf-8")
+        except UnicodeDecodeError as exc:
+            return _bad(stream_id, f"text is not UTF-8 ({exc.reason} at byte {exc.start})", fields)
+        raw_meta = fields.get(b"metadata")
+        metadata: dict[str, Any] = {}
+        if raw_meta:
+            try:
+                metadata = json.loads(raw_meta)
+            except (ValueError, UnicodeDecodeError) as exc:
+                return _bad(stream_id, f"metadata is not JSON ({exc})", fields)
+            if not isinstance(metadata, dict):
+                return _bad(stream_id, "metadata is not a JSON object", fields)
+        raw_received = fields.get(b"received")
+        received = 0.0
+        if raw_received is not None:
+            try:
+                received = float(raw_received)
+            except ValueError:
+                return _bad(stream_id, "received is not a number", fields)
+            if not math.isfinite(received):
+                return _bad(stream_id, "received is not finite", fields)
+        raw_id = fields.get(b"id")
+        client_id = raw_id.decode("utf-8", errors="replace") if raw_id else stream_id
+        return Document(stream_id, client_id, text, metadata, received)
+    except Exception as exc:  # never let one entry stop the loop
+        return _bad(stream_id, f"cannot decode entry: {type(exc).__name__}: {exc}", fields)
+
+
+def _bad(stream_id: str, reason: str, fields: Mapping[bytes, bytes]) -> Undecodable:
+    shown: dict[str, str] = {}
+    for key, value in list(fields.items())[:16]:
+        k = key.decode("utf-8", errors="replace") if isinstance(key, bytes) else str(key)
+        v = value.decode("utf-8", errors="replace") if isinstance(value, bytes) else str(value)
+        shown[k[:64]] = v[:512]
+    return Undecodable(stream_id, reason, shown)
+
+
+@dataclass(frozen=True)
+class SkipRanges:
+    """Stream entries a replay must not learn.
+
+    An entry is skipped when its stream id is at or below ``until`` and either its id lies in
+    one of ``ids`` (inclusive) or its received time lies in one of ``received`` (inclusive).
+    Bounding by ``until`` (the stream's last id when the rollback ran) keeps the ranges from
+    ever cutting out traffic that arrived after the rollback.
+    """
+
+    ids: tuple[tuple[tuple[int, int], tuple[int, int]], ...] = ()
+    received: tuple[tuple[float, float], ...] = ()
+    until: tuple[int, int] = (0, 0)
+    version: int = 0
+    raw_ids: tuple[tuple[str, str], ...] = field(default=(), compare=False)
+
+    @classmethod
+    def build(
+        cls,
+        ids: Iterable[Sequence[str]] = (),
+        received: Iterable[Sequence[float]] = (),
+        until: str = ZERO_ID,
+        version: int = 0,
+    ) -> SkipRanges:
+        """Validate and build; :class:`OptionsError` names a bad range."""
+        id_ranges = []
+        raw = []
+        for pair in ids:
+            if len(pair) != 2:
+                raise OptionsError(f"skip id range {pair!r} must be [first, last]")
+            first, last = parse_stream_id(str(pair[0])), parse_stream_id(str(pair[1]))
+            if first > last:
+                raise OptionsError(f"skip id range {list(pair)!r}: first is after last")
+            id_ranges.append((first, last))
+            raw.append((format_stream_id(first), format_stream_id(last)))
+        time_ranges = []
+        for pair in received:
+            if len(pair) != 2:
+                raise OptionsError(f"skip received range {pair!r} must be [start, end]")
+            start, end = float(pair[0]), float(pair[1])
+            if not (math.isfinite(start) and math.isfinite(end)) or start > end:
+                raise OptionsError(f"skip received range {list(pair)!r} is not a valid interval")
+            time_ranges.append((start, end))
+        return cls(
+            tuple(id_ranges), tuple(time_ranges), parse_stream_id(until), version, tuple(raw)
+        )
+
+    def __bool__(self) -> bool:
+        return bool(self.ids or self.received)
+
+    def skips(self, stream_id: str, received: float | None) -> bool:
+        """True when the entry must not be learned."""
+        if not self:
+            return False
+        sid = parse_stream_id(stream_id)
+        if sid > self.until:
+            return False
+        for first, last in self.ids:
+            if first <= sid <= last:
+                return True
+        if received is not None:
+            for start, end in self.received:
+                if start <= received <= end:
+                    return True
+        return False
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "ids": [[format_stream_id(a), format_stream_id(b)] for a, b in self.ids],
+            "received": [[a, b] for a, b in self.received],
+            "until": format_stream_id(self.until),
+            "version": self.version,
+        }
+
+    @classmethod
+    def from_dict(cls, d: Mapping[str, Any]) -> SkipRanges:
+        return cls.build(
+            d.get("ids", ()),
+            d.get("received", ()),
+            d.get("until", ZERO_ID),
+            int(d.get("version", 0)),
+        )

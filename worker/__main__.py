@@ -1,0 +1,57 @@
+"""``REDIS_URL=redis://... python -m worker --model NAME``: one learner process.
+
+SIGTERM and SIGINT finish the current batch, checkpoint, release the lease and exit 0.
+"""
+
+from __future__ import annotations
+
+import argparse
+import logging
+import os
+import signal
+import sys
+from types import FrameType
+
+from state.connection import redis_from_url
+from state.errors import ModelNotFoundError
+from worker.learner import Worker
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Run one worker until SIGTERM/SIGINT; returns the exit status."""
+    parser = argparse.ArgumentParser(prog="python -m worker", description=__doc__)
+    parser.add_argument("--model", required=True, help="registered model name")
+    parser.add_argument("--name", default=None, help="consumer / lease name")
+    parser.add_argument(
+        "--redis-url", default=os.environ.get("REDIS_URL"), help="Redis URL (default: $REDIS_URL)"
+    )
+    parser.add_argument("--log-level", default=os.environ.get("MIXROUTE_LOG_LEVEL", "INFO"))
+    args = parser.parse_args(argv)
+    logging.basicConfig(
+        level=args.log_level.upper(),
+        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
+    )
+    if not args.redis_url:
+        parser.error(
+            "no Redis: set REDIS_URL or pass --redis-url (a worker process needs the "
+            "shared Redis; the embedded server runs workers in-process)"
+        )
+    client = redis_from_url(args.redis_url)
+    try:
+        worker = Worker(client, args.model, name=args.name)
+    except ModelNotFoundError as exc:
+        print(f"error: {exc}", file=sys.stderr)
+        return 2
+
+    def _on_signal(signum: int, frame: FrameType | None) -> None:
+        logging.getLogger("worker").info("signal %d: finishing the batch", signum)
+        worker.stop()
+
+    signal.signal(signal.SIGTERM, _on_signal)
+    signal.signal(signal.SIGINT, _on_signal)
+    worker.run()
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
