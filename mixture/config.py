@@ -1,0 +1,160 @@
+"""Model configuration: one validated, serialisable record.
+
+Defaults and where they come from
+---------------------------------
+word_pseudocount = 0.1
+    Additive (Lidstone) smoothing of each group's word distribution. Add-one smoothing gives
+    every group V pseudo-tokens; with V in the tens of thousands that outweighs the real text of
+    a small group and flattens the distributions that tell groups apart. 0.1 keeps every
+    probability positive (no -inf for a word unseen in a group) while the pseudo-mass V * 0.1
+    stays below the text of a group that holds a few hundred messages. Common practice, no
+    single source; the corpus tests check it on two open corpora it was not tuned on.
+weight_pseudocount = 1.0
+    A symmetric Dirichlet(1 + 1) on the mixture weights, i.e. add-one on expected documents: a
+    group that loses all its documents keeps a small positive weight, so it can be re-seeded
+    rather than vanish with a log weight of -inf.
+step_exponent = 0.7
+    The stepwise EM step size is eta_k = (k + 2) ** -alpha. alpha must lie in (0.5, 1] for the
+    Robbins-Monro conditions (sum eta = inf, sum eta^2 < inf); Liang and Klein (2009) report
+    alpha in 0.5-0.7 with mini-batches in the hundreds as robust across their tasks.
+half_life_documents = None
+    With a floor eta_min on the step size the statistics forget exponentially: a document's
+    weight halves after h = batch_size * ln(0.5) / ln(1 - eta_min) documents. We let the user
+    state h (a number of documents, which people can reason about) and derive eta_min.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field, fields
+from typing import Any
+
+from mixture.errors import ConfigError
+from mixture.text import TokenizerConfig
+
+
+@dataclass(frozen=True)
+class MixtureConfig:
+    """Configuration of one mixture of unigram language models.
+
+    Parameters
+    ----------
+    n_groups : int
+        Number of mixture components K.
+    vocabulary_limit : int
+        Most active words kept; past it the rarest words (by expected count) are retired.
+    word_pseudocount : float
+        Additive smoothing of the word distributions (>= 0).
+    weight_pseudocount : float
+        Symmetric Dirichlet pseudo-count on the mixture weights (>= 0).
+    step_exponent : float
+        alpha of the stepwise EM step size eta_k = (k + 2) ** -alpha, in (0.5, 1].
+    batch_size : int
+        Mini-batch size of stepwise EM.
+    half_life_documents : float or None
+        When set, floors eta so that old documents' influence halves every this many documents.
+    warmup_documents : int
+        Documents buffered and fitted with batch EM before stepwise learning starts.
+    n_restarts, max_iter, tolerance
+        Batch EM: independent seeded runs (best MAP objective wins), iterations per run, and
+        the relative change of the objective below which a run has converged.
+    tokenizer : TokenizerConfig
+        How text becomes tokens.
+    """
+
+    n_groups: int = 8
+    vocabulary_limit: int = 100_000
+    word_pseudocount: float = 0.1
+    weight_pseudocount: float = 1.0
+    step_exponent: float = 0.7
+    batch_size: int = 256
+    half_life_documents: float | None = None
+    warmup_documents: int = 1000
+    n_restarts: int = 4
+    max_iter: int = 100
+    tolerance: float = 1e-6
+    tokenizer: TokenizerConfig = field(default_factory=TokenizerConfig)
+
+    def __post_init__(self) -> None:
+        _check_int(self, "n_groups", 1, 10_000)
+        _check_int(self, "vocabulary_limit", 1, 50_000_000)
+        _check_float(self, "word_pseudocount", 0.0, 1e6)
+        _check_float(self, "weight_pseudocount", 0.0, 1e9)
+        if not (
+            isinstance(self.step_exponent, int | float)
+            and math.isfinite(self.step_exponent)
+            and 0.5 < self.step_exponent <= 1.0
+        ):
+            raise ConfigError(
+                f"step_exponent must lie in (0.5, 1] so that stepwise EM converges "
+                f"(sum of steps infinite, sum of squares finite); got {self.step_exponent!r}"
+            )
+        _check_int(self, "batch_size", 1, 1_000_000)
+        if self.half_life_documents is not None:
+            _check_float(self, "half_life_documents", 1.0, 1e15)
+            if self.half_life_documents < self.batch_size:
+                raise ConfigError(
+                    f"half_life_documents ({self.half_life_documents}) must be at least "
+                    f"batch_size ({self.batch_size}): a shorter memory forgets within one batch"
+                )
+        _check_int(self, "warmup_documents", 0, 10_000_000)
+        _check_int(self, "n_restarts", 1, 1000)
+        _check_int(self, "max_iter", 1, 100_000)
+        _check_float(self, "tolerance", 0.0, 1.0)
+        if not isinstance(self.tokenizer, TokenizerConfig):
+            raise ConfigError("tokenizer must be a TokenizerConfig")
+
+    @property
+    def eta_floor(self) -> float:
+        """Smallest stepwise step size, from ``half_life_documents`` (0 when unset)."""
+        if self.half_life_documents is None:
+            return 0.0
+        batches = self.half_life_documents / self.batch_size
+        return 1.0 - 0.5 ** (1.0 / batches)
+
+    def step_size(self, step: int) -> float:
+        """Stepwise EM step size eta for update number ``step`` (0-based)."""
+        return max((step + 2.0) ** -self.step_exponent, self.eta_floor)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-able dict (the tokenizer config nested)."""
+        out = asdict(self)
+        out["tokenizer"] = self.tokenizer.to_dict()
+        return out
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> MixtureConfig:
+        """Build from a dict; unknown keys and bad values raise ConfigError naming the field."""
+        if not isinstance(data, dict):
+            raise ConfigError("configuration must be a JSON object")
+        known = {f.name for f in fields(cls)}
+        unknown = sorted(set(data) - known)
+        if unknown:
+            raise ConfigError(f"unknown configuration field(s): {', '.join(unknown)}")
+        values = dict(data)
+        if "tokenizer" in values and not isinstance(values["tokenizer"], TokenizerConfig):
+            values["tokenizer"] = TokenizerConfig.from_dict(values["tokenizer"] or {})
+        return cls(**values)
+
+    def replace(self, **changes: Any) -> MixtureConfig:
+        """A copy with some fields changed (validated)."""
+        values = {f.name: getattr(self, f.name) for f in fields(self)}
+        values.update(changes)
+        return MixtureConfig(**values)
+
+
+def _check_int(cfg: MixtureConfig, name: str, low: int, high: int) -> None:
+    value = getattr(cfg, name)
+    if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
+        raise ConfigError(f"{name} must be an integer in [{low}, {high}]; got {value!r}")
+
+
+def _check_float(cfg: MixtureConfig, name: str, low: float, high: float) -> None:
+    value = getattr(cfg, name)
+    if (
+        isinstance(value, bool)
+        or not isinstance(value, int | float)
+        or not math.isfinite(value)
+        or not low <= value <= high
+    ):
+        raise ConfigError(f"{name} must be a finite number in [{low}, {high}]; got {value!r}")

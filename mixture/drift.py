@@ -1,0 +1,83 @@
+"""Drift measures between distributions and between two model states."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from mixture.errors import InputError
+
+
+def _as_distribution(p: np.ndarray, name: str) -> np.ndarray:
+    arr = np.asarray(p, dtype=np.float64)
+    if arr.ndim != 1 or arr.size == 0:
+        raise InputError(f"{name} must be a non-empty 1-D distribution")
+    if not np.all(np.isfinite(arr)) or arr.min() < 0:
+        raise InputError(f"{name} must be finite and non-negative")
+    total = arr.sum()
+    if total <= 0:
+        raise InputError(f"{name} sums to zero")
+    return arr / total
+
+
+def js_divergence(p: np.ndarray, q: np.ndarray) -> float:
+    """Jensen-Shannon divergence in bits (base 2), in [0, 1].
+
+    Both inputs are normalised first. Equal to ``scipy.spatial.distance.jensenshannon(p, q,
+    base=2) ** 2``.
+    """
+    p = _as_distribution(p, "p")
+    q = _as_distribution(q, "q")
+    if p.shape != q.shape:
+        raise InputError(f"distributions differ in length: {p.size} and {q.size}")
+    m = 0.5 * (p + q)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        kl_p = np.where(p > 0, p * np.log2(p / m), 0.0).sum()
+        kl_q = np.where(q > 0, q * np.log2(q / m), 0.0).sum()
+    return float(min(max(0.5 * (kl_p + kl_q), 0.0), 1.0))
+
+
+def total_variation(p: np.ndarray, q: np.ndarray) -> float:
+    """Total variation distance, half the L1 distance, in [0, 1]."""
+    p = _as_distribution(p, "p")
+    q = _as_distribution(q, "q")
+    if p.shape != q.shape:
+        raise InputError(f"distributions differ in length: {p.size} and {q.size}")
+    return float(0.5 * np.abs(p - q).sum())
+
+
+def weight_drift(reference, other, aligned: bool = True) -> float:
+    """JS divergence between the mixture weights of two states (groups aligned first)."""
+    from mixture.describe import align_groups
+
+    w_ref = reference.weights()
+    w_other = other.weights()
+    if aligned:
+        perm = align_groups(reference, other)
+        w_other = _permute_to_reference(w_other, perm, w_ref.size)
+    return js_divergence(w_ref, w_other)
+
+
+def word_drift(reference, other, aligned: bool = True) -> np.ndarray:
+    """Per-group JS divergence between word distributions, over the words of both states.
+
+    Returns an array indexed by the reference's groups (nan for a group with no partner).
+    """
+    from mixture.describe import align_groups, word_distributions_on
+
+    words, p_ref, p_other = word_distributions_on(reference, other)
+    del words
+    k_ref = p_ref.shape[1]
+    perm = align_groups(reference, other) if aligned else np.arange(p_other.shape[1])
+    out = np.full(k_ref, np.nan)
+    for j, k in enumerate(perm):
+        if 0 <= k < k_ref:
+            out[k] = js_divergence(p_ref[:, k], p_other[:, j])
+    return out
+
+
+def _permute_to_reference(values: np.ndarray, perm: np.ndarray, size: int) -> np.ndarray:
+    out = np.zeros(size)
+    for j, k in enumerate(perm):
+        if 0 <= k < size:
+            out[k] = values[j]
+    return out

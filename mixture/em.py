@@ -1,0 +1,400 @@
+"""Batch MAP-EM for a mixture of unigram language models.
+
+E-step: responsibilities r_dk = p(k | d) from log pi_k + sum_w c_dw log theta_k(w), normalised
+with log-sum-exp so that documents of 100k tokens neither underflow nor overflow.
+M-step: expected counts N_k = sum_d r_dk and C_wk = sum_d r_dk c_dw, then MAP parameters by
+additive smoothing (mixture.stats.derive_parameters).
+
+The objective is the log posterior up to a constant: the log-likelihood (without the
+multinomial coefficients, which do not depend on the parameters) plus the log Dirichlet prior
+that the pseudo-counts stand for, ``a sum_k log pi_k + beta sum_kw log theta_k(w)``. EM never
+lowers it (Dempster, Laird and Rubin 1977), except at the iterations where an empty group is
+re-seeded, which the report lists.
+
+Seeding follows k-means++ (Arthur and Vassilvitskii 2007) with the model's own divergence in
+place of squared distance: a seed document s defines the distribution
+``0.5 * (its word frequencies) + 0.5 * background``, a document's gain under a seed is its
+per-token log-likelihood ratio against the background, and the next seed is drawn with
+probability proportional to the square of how much worse a document is explained by the
+chosen seeds than by its own seed distribution. This spreads the seeds over the distinct
+themes instead of starting several groups on one theme, the classic bad start of EM.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy.sparse as sp
+
+from mixture.config import MixtureConfig
+from mixture.errors import ConfigError, InputError
+from mixture.stats import MixtureState, Parameters, derive_parameters
+
+Progress = Callable[[int, int], None]
+
+# A group with fewer expected documents than this is empty and gets re-seeded.
+_EMPTY_GROUP = 0.5
+
+
+@dataclass
+class FitReport:
+    """What a batch EM fit did.
+
+    Attributes
+    ----------
+    objective_trace : list of float
+        MAP objective before each M-step of the best run (non-decreasing between re-seeds).
+    restart_objectives : list of float
+        Final objective of every restart.
+    best_restart : int
+    n_iter : int
+        Iterations of the best run.
+    converged : bool
+        Whether the best run met the tolerance before max_iter.
+    reseeded : list of int
+        Groups of the best run re-seeded because they became empty.
+    reseed_iterations : list of int
+        Iterations (indices into objective_trace) right after a re-seed.
+    documents : int
+        Documents with at least one token that took part in the fit.
+    """
+
+    objective_trace: list[float] = field(default_factory=list)
+    restart_objectives: list[float] = field(default_factory=list)
+    best_restart: int = 0
+    n_iter: int = 0
+    converged: bool = False
+    reseeded: list[int] = field(default_factory=list)
+    reseed_iterations: list[int] = field(default_factory=list)
+    documents: int = 0
+
+
+def validate_counts(counts: sp.spmatrix | np.ndarray) -> sp.csr_matrix:
+    """Check a document-term count matrix and return it as CSR float64.
+
+    Raises
+    ------
+    InputError
+        For a matrix that is not 2-D, is empty, or holds negative or non-finite counts.
+    """
+    if sp.issparse(counts):
+        matrix = sp.csr_matrix(counts, dtype=np.float64)
+    else:
+        array = np.asarray(counts, dtype=np.float64)
+        if array.ndim != 2:
+            raise InputError(f"counts must be a 2-D documents x words matrix; got {array.ndim}-D")
+        matrix = sp.csr_matrix(array)
+    if matrix.shape[0] == 0:
+        raise InputError("empty corpus: no documents to fit")
+    data = matrix.data
+    if data.size and not np.all(np.isfinite(data)):
+        raise InputError("counts contain non-finite values (nan or inf)")
+    if data.size and data.min() < 0:
+        raise InputError("counts contain negative values; word counts must be >= 0")
+    matrix.sum_duplicates()
+    return matrix
+
+
+def _log_joint(counts: sp.csr_matrix, params: Parameters) -> np.ndarray:
+    log_joint = counts @ params.log_word_prob
+    log_joint += params.log_weights
+    return np.asarray(log_joint)
+
+
+def normalise_log_rows(log_joint: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Row-wise softmax in log space: returns (probabilities, log-sum-exp per row)."""
+    row_max = log_joint.max(axis=1, keepdims=True)
+    row_max[~np.isfinite(row_max)] = 0.0
+    prob = np.exp(log_joint - row_max)
+    row_sum = prob.sum(axis=1, keepdims=True)
+    prob /= row_sum
+    log_norm = (np.log(row_sum) + row_max).ravel()
+    return prob, log_norm
+
+
+def e_step(counts: sp.csr_matrix, params: Parameters) -> tuple[np.ndarray, float]:
+    """Responsibilities and the log-likelihood (without multinomial coefficients).
+
+    Returns
+    -------
+    resp : ndarray of shape (n_docs, K)
+    log_likelihood : float
+    """
+    resp, log_norm = normalise_log_rows(_log_joint(counts, params))
+    return resp, float(log_norm.sum())
+
+
+def m_step(
+    counts: sp.csr_matrix, resp: np.ndarray, counts_t: sp.csr_matrix | None = None
+) -> tuple[np.ndarray, np.ndarray]:
+    """Expected counts from responsibilities.
+
+    Returns
+    -------
+    word_counts : ndarray of shape (V, K)
+    doc_counts : ndarray of shape (K,)
+    """
+    transposed = counts.T if counts_t is None else counts_t
+    word_counts = np.asarray(transposed @ resp)
+    return word_counts, resp.sum(axis=0)
+
+
+def log_prior(params: Parameters, config: MixtureConfig) -> float:
+    """Log Dirichlet prior density (up to a constant) that the pseudo-counts stand for."""
+    total = 0.0
+    a, beta = config.weight_pseudocount, config.word_pseudocount
+    if a > 0:
+        total += a * float(params.log_weights.sum())
+    if beta > 0:
+        rows = params.log_word_prob[params.active] if not params.active.all() else None
+        total += beta * float((params.log_word_prob if rows is None else rows).sum())
+    return total
+
+
+def map_objective(
+    counts: sp.spmatrix,
+    word_counts: np.ndarray,
+    doc_counts: np.ndarray,
+    config: MixtureConfig,
+    active: np.ndarray | None = None,
+) -> float:
+    """Log-likelihood plus log prior of the parameters derived from the given counts."""
+    params = derive_parameters(
+        word_counts, doc_counts, active, config.word_pseudocount, config.weight_pseudocount
+    )
+    _, log_lik = e_step(validate_counts(counts), params)
+    return log_lik + log_prior(params, config)
+
+
+# ---- seeding --------------------------------------------------------------------------------
+def seed_assignment(counts: sp.csr_matrix, n_groups: int, rng: np.random.Generator) -> np.ndarray:
+    """k-means++-style seeding with the model's divergence; returns a group per document."""
+    n_docs, n_words = counts.shape
+    lengths = np.asarray(counts.sum(axis=1)).ravel()
+    freq = sp.diags(1.0 / np.maximum(lengths, 1e-300)) @ counts  # per-token frequencies
+    freq = sp.csr_matrix(freq)
+    background = np.asarray(counts.sum(axis=0)).ravel() + 0.5
+    background /= background.sum()
+    log_half = np.log(0.5)
+
+    # Each document's gain under its own seed distribution: the best any seed can do for it.
+    ratio = freq.copy()
+    ratio.data = np.log1p(freq.data / background[freq.indices])
+    self_gain = log_half + np.asarray(freq.multiply(ratio).sum(axis=1)).ravel()
+
+    best_gain = np.full(n_docs, -np.inf)
+    best_seed = np.zeros(n_docs, dtype=np.int64)
+    chosen: list[int] = []
+    for k in range(n_groups):
+        if k == 0:
+            pick = int(rng.integers(n_docs))
+        else:
+            deficit = np.clip(self_gain - best_gain, 0.0, None) ** 2
+            deficit[chosen] = 0.0
+            total = deficit.sum()
+            if not np.isfinite(total) or total <= 0:
+                remaining = np.setdiff1d(np.arange(n_docs), chosen)
+                pick = int(rng.choice(remaining))
+            else:
+                pick = int(rng.choice(n_docs, p=deficit / total))
+        chosen.append(pick)
+        seed_row = ratio.getrow(pick)
+        seed_vector = np.zeros(n_words)
+        seed_vector[seed_row.indices] = seed_row.data
+        gain = log_half + freq @ seed_vector
+        better = gain > best_gain
+        best_gain[better] = gain[better]
+        best_seed[better] = k
+    best_seed[chosen] = np.arange(n_groups)
+    return best_seed
+
+
+# ---- the fit --------------------------------------------------------------------------------
+def _one_run(
+    counts: sp.csr_matrix,
+    counts_t: sp.csr_matrix,
+    lengths: np.ndarray,
+    config: MixtureConfig,
+    rng: np.random.Generator,
+    active: np.ndarray | None,
+    progress: Callable[[], None] | None,
+) -> tuple[float, np.ndarray, np.ndarray, FitReport]:
+    n_docs = counts.shape[0]
+    k = config.n_groups
+    assignment = seed_assignment(counts, k, rng)
+    resp = np.zeros((n_docs, k))
+    resp[np.arange(n_docs), assignment] = 1.0
+    word_counts, doc_counts = m_step(counts, resp, counts_t)
+
+    report = FitReport(documents=n_docs)
+    previous = -np.inf
+    objective = -np.inf
+    used_for_reseed: set[int] = set()
+    for iteration in range(config.max_iter):
+        params = derive_parameters(
+            word_counts,
+            doc_counts,
+            active,
+            config.word_pseudocount,
+            config.weight_pseudocount,
+        )
+        resp, log_norm = normalise_log_rows(_log_joint(counts, params))
+        objective = float(log_norm.sum()) + log_prior(params, config)
+        report.objective_trace.append(objective)
+        report.n_iter = iteration + 1
+        if progress is not None:
+            progress()
+        if np.isfinite(previous) and abs(objective - previous) <= config.tolerance * abs(objective):
+            report.converged = True
+            break
+        previous = objective
+        word_counts, doc_counts = m_step(counts, resp, counts_t)
+
+        empty = np.flatnonzero(doc_counts < _EMPTY_GROUP)
+        if empty.size and len(report.reseeded) < 3 * k:
+            # Re-seed each empty group with the document the model explains worst.
+            fit_per_token = log_norm / lengths
+            order = np.argsort(fit_per_token)
+            candidates = [int(d) for d in order if int(d) not in used_for_reseed]
+            for group, doc in zip(empty, candidates, strict=False):
+                used_for_reseed.add(doc)
+                resp[doc] = 0.0
+                resp[doc, group] = 1.0
+                report.reseeded.append(int(group))
+            word_counts, doc_counts = m_step(counts, resp, counts_t)
+            report.reseed_iterations.append(iteration + 1)
+            previous = -np.inf
+    return objective, word_counts, doc_counts, report
+
+
+def fit_batch_em(
+    counts: sp.spmatrix | np.ndarray,
+    config: MixtureConfig,
+    *,
+    seed: int = 0,
+    active: np.ndarray | None = None,
+    progress: Progress | None = None,
+) -> tuple[np.ndarray, np.ndarray, FitReport]:
+    """Fit the mixture by MAP-EM with seeded restarts; the best MAP objective wins.
+
+    Parameters
+    ----------
+    counts : sparse or dense matrix of shape (n_docs, V)
+        Word counts per document; rows without any token are left out of the fit.
+    config : MixtureConfig
+        Uses n_groups, pseudo-counts, n_restarts, max_iter and tolerance.
+    seed : int
+        Seed of the random generator; the same seed gives the same fit.
+    active : ndarray of shape (V,) of bool, optional
+        Words that count for smoothing (retired vocabulary ids are inactive).
+    progress : callable (done, total), optional
+        Called after every iteration; total is n_restarts * max_iter (an upper bound).
+
+    Returns
+    -------
+    word_counts : ndarray of shape (V, K)
+    doc_counts : ndarray of shape (K,)
+    report : FitReport
+    """
+    matrix = validate_counts(counts)
+    lengths = np.asarray(matrix.sum(axis=1)).ravel()
+    nonempty = lengths > 0
+    used = matrix[nonempty] if not nonempty.all() else matrix
+    n_docs = used.shape[0]
+    if n_docs == 0:
+        raise InputError("no document has a known token: nothing to fit")
+    if config.n_groups > n_docs:
+        raise ConfigError(
+            f"n_groups ({config.n_groups}) is larger than the number of documents with "
+            f"tokens ({n_docs}); use fewer groups or more documents"
+        )
+    if active is not None and active.shape != (matrix.shape[1],):
+        raise InputError(f"active mask has shape {active.shape}, expected ({matrix.shape[1]},)")
+    used_t = used.T.tocsr()
+    used_lengths = lengths[nonempty]
+    total = config.n_restarts * config.max_iter
+    done = 0
+
+    def tick() -> None:
+        nonlocal done
+        done += 1
+        if progress is not None:
+            progress(done, total)
+
+    root = np.random.default_rng(seed)
+    best: tuple[float, np.ndarray, np.ndarray, FitReport] | None = None
+    objectives: list[float] = []
+    for restart, child in enumerate(root.spawn(config.n_restarts)):
+        result = _one_run(used, used_t, used_lengths, config, child, active, tick)
+        objectives.append(result[0])
+        if best is None or result[0] > best[0]:
+            best = result
+            best[3].best_restart = restart
+    assert best is not None
+    _, word_counts, doc_counts, report = best
+    report.restart_objectives = objectives
+    return word_counts, doc_counts, report
+
+
+def fit_pending(state: MixtureState, progress: Progress | None = None) -> FitReport:
+    """Fit batch EM on the state's warm-up buffer and make it the state's statistics."""
+    if state.pending is None or state.pending.shape[0] == 0:
+        raise InputError("no buffered documents to fit")
+    state.ensure_capacity()
+    pending = state.pending
+    if pending.shape[1] < state.capacity:
+        pending = sp.csr_matrix(
+            (pending.data, pending.indices, pending.indptr),
+            shape=(pending.shape[0], state.capacity),
+        )
+    column_totals = np.asarray(pending.sum(axis=0)).ravel()
+    state.pending = pending
+    state.prune_vocabulary(keep=state.config.vocabulary_limit, word_totals=column_totals)
+    pending = state.pending
+    word_counts, doc_counts, report = fit_batch_em(
+        pending,
+        state.config,
+        seed=state.seed,
+        active=state.vocabulary.active_mask(),
+        progress=progress,
+    )
+    fitted = MixtureState.from_counts(
+        state.config, state.vocabulary, word_counts, doc_counts, state.documents_learned
+    )
+    state.unscaled_word = fitted.unscaled_word
+    state.unscaled_docs = fitted.unscaled_docs
+    state.unscaled_total = fitted.unscaled_total
+    state.running_scale = 1.0
+    state.weight_square_sum = fitted.weight_square_sum
+    state.step = fitted.step
+    state.warmed_up = True
+    state.pending = None
+    state.touch()
+    return report
+
+
+def fit_texts(
+    texts: list[str],
+    config: MixtureConfig,
+    *,
+    seed: int = 0,
+    progress: Progress | None = None,
+) -> tuple[MixtureState, FitReport]:
+    """Tokenise texts with a growing vocabulary, bound it, and fit batch EM.
+
+    Returns
+    -------
+    state : MixtureState
+        Warmed up; ready for routing or for stepwise learning.
+    report : FitReport
+    """
+    from mixture.text import count_texts
+
+    state = MixtureState.empty(config, seed)
+    batch = count_texts(texts, state.tokenizer, state.vocabulary, grow=True)
+    state.pending = batch.counts
+    state.documents_learned = len(texts)
+    report = fit_pending(state, progress)
+    return state, report

@@ -1,0 +1,240 @@
+"""Stepwise (online) EM, after Liang and Klein (2009), "Online EM for unsupervised models".
+
+For each mini-batch: an E-step with the current parameters gives the batch's average
+sufficient statistics s_batch, and the running statistics move towards them,
+
+    s <- (1 - eta_k) s + eta_k s_batch,    eta_k = (k + 2) ** -alpha,  0.5 < alpha <= 1,
+
+optionally with eta floored (exponential forgetting, so the model follows drift). The update
+touches only the rows of the words in the batch plus O(K) numbers: the uniform shrink by
+(1 - eta) is a change of the running scale factor (see mixture.stats).
+
+Cold start: stepwise EM from random parameters is fragile, so the first ``warmup_documents``
+are buffered and fitted by batch EM with seeded restarts; stepwise learning then continues from
+those statistics with a step counter chosen so the next batch weighs as in a running average.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse as sp
+
+from mixture.config import MixtureConfig
+from mixture.em import fit_pending, normalise_log_rows, validate_counts
+from mixture.errors import InputError
+from mixture.stats import MixtureState
+from mixture.text import count_texts
+
+
+@dataclass
+class BatchReport:
+    """What one call to learn or stepwise_update did."""
+
+    documents: int = 0
+    tokens: int = 0
+    no_evidence: int = 0
+    warmed_up: bool = False
+    log_likelihood_per_token: float = float("nan")
+    pruned_words: int = 0
+    new_words: int = 0
+    steps: int = 0
+
+    def merge(self, other: BatchReport) -> BatchReport:
+        tokens = self.tokens + other.tokens
+        if tokens and (self.tokens or other.tokens):
+            parts = [
+                (r.log_likelihood_per_token, r.tokens)
+                for r in (self, other)
+                if r.tokens and np.isfinite(r.log_likelihood_per_token)
+            ]
+            weight = sum(t for _, t in parts)
+            ll = sum(v * t for v, t in parts) / weight if weight else float("nan")
+        else:
+            ll = float("nan")
+        return BatchReport(
+            documents=self.documents + other.documents,
+            tokens=tokens,
+            no_evidence=self.no_evidence + other.no_evidence,
+            warmed_up=other.warmed_up,
+            log_likelihood_per_token=ll,
+            pruned_words=self.pruned_words + other.pruned_words,
+            new_words=self.new_words + other.new_words,
+            steps=self.steps + other.steps,
+        )
+
+
+def stepwise_update(state: MixtureState, counts: sp.spmatrix) -> BatchReport:
+    """Apply one stepwise EM update with a mini-batch of counts.
+
+    Parameters
+    ----------
+    state : MixtureState
+        Warmed up; changed in place.
+    counts : sparse matrix of shape (m, capacity)
+        Word counts of the batch over the state's vocabulary ids.
+
+    Returns
+    -------
+    BatchReport
+        Documents (all rows), tokens, rows without any token (they carry no evidence and are
+        left out of the update), and the batch log-likelihood per token under the parameters
+        before the update.
+    """
+    if not state.warmed_up:
+        raise InputError("stepwise_update needs a warmed-up state (fit the warm-up first)")
+    matrix = validate_counts(counts)
+    if matrix.shape[1] > state.capacity:
+        raise InputError(
+            f"counts have {matrix.shape[1]} columns but the vocabulary has {state.capacity} ids"
+        )
+    lengths = np.asarray(matrix.sum(axis=1)).ravel()
+    evidence = lengths > 0
+    report = BatchReport(
+        documents=matrix.shape[0],
+        tokens=int(lengths.sum()),
+        no_evidence=int((~evidence).sum()),
+        warmed_up=True,
+    )
+    if not evidence.any():
+        return report
+    if not evidence.all():
+        matrix = matrix[evidence]
+    m = matrix.shape[0]
+
+    # Restrict to the words in the batch: O(nnz log nnz + unique words x K).
+    rows, local = np.unique(matrix.indices, return_inverse=True)
+    local_counts = sp.csr_matrix(
+        (matrix.data, local.astype(np.int32), matrix.indptr), shape=(m, rows.size)
+    )
+    log_word_prob = state.log_word_prob_rows(rows)
+    log_joint = np.asarray(local_counts @ log_word_prob)
+    log_joint += state.log_weights()
+    resp, log_norm = normalise_log_rows(log_joint)
+    report.log_likelihood_per_token = float(log_norm.sum() / lengths.sum())
+
+    batch_word = np.asarray(local_counts.T @ resp) / m  # average per document
+    batch_docs = resp.sum(axis=0) / m
+
+    eta = state.config.step_size(state.step)
+    state.running_scale *= 1.0 - eta
+    gain = eta / state.running_scale
+    state.unscaled_word[rows] += gain * batch_word
+    state.unscaled_total += gain * batch_word.sum(axis=0)
+    state.unscaled_docs += gain * batch_docs
+    state.weight_square_sum = (1.0 - eta) ** 2 * state.weight_square_sum + eta**2 / m
+    state.step += 1
+    report.steps = 1
+    state.maybe_fold_scale()
+    state.touch()
+    return report
+
+
+class OnlineLearner:
+    """Turns texts into learning: warm-up buffer, batch EM, then stepwise EM.
+
+    Parameters
+    ----------
+    config : MixtureConfig
+    seed : int
+        Seed of the warm-up fit.
+    """
+
+    def __init__(self, config: MixtureConfig, seed: int = 0) -> None:
+        self.state = MixtureState.empty(config, seed)
+
+    @classmethod
+    def from_state(cls, state: MixtureState, seed: int | None = None) -> OnlineLearner:
+        """Continue learning from an existing state (e.g. loaded from a checkpoint)."""
+        learner = cls.__new__(cls)
+        learner.state = state
+        if seed is not None:
+            state.seed = seed
+        return learner
+
+    @property
+    def config(self) -> MixtureConfig:
+        return self.state.config
+
+    def learn(self, texts: Sequence[str]) -> BatchReport:
+        """Learn from texts in order; returns what was done.
+
+        While warming up the documents are buffered (their counts, in the state, so that a
+        checkpoint keeps them); the buffer is fitted with batch EM once it holds
+        ``max(warmup_documents, n_groups)`` documents with tokens.
+        """
+        state = self.state
+        batch = count_texts(texts, state.tokenizer, state.vocabulary, grow=True)
+        state.ensure_capacity()
+        report = BatchReport(new_words=batch.new_words, warmed_up=state.warmed_up)
+        counts = batch.counts
+        if not state.warmed_up:
+            cut = self._buffer(counts, report)
+            if cut is None or cut == len(texts):
+                return report
+            # Warm-up pruning may have retired or renumbered words: count the rest anew.
+            rest = count_texts(texts[cut:], state.tokenizer, state.vocabulary, grow=True)
+            state.ensure_capacity()
+            report.new_words += rest.new_words
+            counts = rest.counts
+        size = self.config.batch_size
+        for start in range(0, counts.shape[0], size):
+            part = stepwise_update(state, counts[start : start + size])
+            state.documents_learned += part.documents
+            report = report.merge(part)
+        if state.vocabulary.n_active > self.config.vocabulary_limit:
+            report.pruned_words += state.prune_vocabulary()
+        return report
+
+    def _buffer(self, counts: sp.csr_matrix, report: BatchReport) -> int | None:
+        """Add rows to the warm-up buffer and fit it when full.
+
+        Returns the number of rows consumed when the fit happened, else None.
+        """
+        state = self.state
+        capacity = state.capacity
+        need = max(self.config.warmup_documents, self.config.n_groups)
+        pending = _widen(
+            state.pending if state.pending is not None else sp.csr_matrix((0, capacity)), capacity
+        )
+        counts = _widen(counts, capacity)
+        have = int(np.count_nonzero(np.diff(pending.indptr)))
+        filled = np.cumsum(np.diff(counts.indptr) > 0) + have
+        if filled.size and filled[-1] >= need:
+            cut = int(np.searchsorted(filled, need)) + 1
+        else:
+            cut = counts.shape[0]
+        taken = counts[:cut]
+        state.pending = sp.vstack([pending, taken], format="csr")
+        state.documents_learned += taken.shape[0]
+        lengths = np.asarray(taken.sum(axis=1)).ravel()
+        report.documents += taken.shape[0]
+        report.tokens += int(lengths.sum())
+        report.no_evidence += int((lengths == 0).sum())
+        state.touch()
+        if have + int((lengths > 0).sum()) < need:
+            return None
+        fit_pending(state)
+        report.warmed_up = True
+        return cut
+
+
+def _widen(matrix: sp.csr_matrix, columns: int) -> sp.csr_matrix:
+    if matrix.shape[1] == columns:
+        return matrix
+    return sp.csr_matrix(
+        (matrix.data, matrix.indices, matrix.indptr), shape=(matrix.shape[0], columns)
+    )
+
+
+def learn_counts(state: MixtureState, counts: sp.spmatrix, config: MixtureConfig) -> BatchReport:
+    """Stepwise-learn already counted documents in mini-batches (helper for tests/benches)."""
+    matrix = validate_counts(counts)
+    report = BatchReport()
+    for start in range(0, matrix.shape[0], config.batch_size):
+        part = stepwise_update(state, matrix[start : start + config.batch_size])
+        state.documents_learned += part.documents
+        report = report.merge(part)
+    return report

@@ -1,0 +1,116 @@
+"""Routing: the MAP group and the full posterior for new documents.
+
+p(k | d) is proportional to pi_k * prod_w theta_k(w) ** c(w, d), computed in log space and
+normalised with log-sum-exp. Words the model does not know are ignored (and counted). A
+document with no known word has no evidence: its posterior is the prior and it is flagged,
+never routed as if the text had spoken.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.sparse as sp
+
+from mixture.em import normalise_log_rows
+from mixture.errors import InputError
+from mixture.stats import MixtureState, Parameters
+from mixture.text import count_texts
+
+
+@dataclass
+class Routing:
+    """Routing answer for a batch of n documents.
+
+    Attributes
+    ----------
+    group : ndarray (n,) int64
+        MAP group (argmax of the posterior; a tie goes to the lower id).
+    posterior : ndarray (n, K)
+    margin : ndarray (n,)
+        Posterior of the best group minus that of the second best (1.0 when K = 1).
+    log_likelihood_per_token : ndarray (n,)
+        log p(d | MAP group) over known tokens, per known token: how typical the document is
+        for its group (nan without known tokens).
+    known_tokens, unknown_tokens : ndarray (n,) int64
+    no_evidence : ndarray (n,) bool
+        No known token: the posterior is the prior.
+    """
+
+    group: np.ndarray
+    posterior: np.ndarray
+    margin: np.ndarray
+    log_likelihood_per_token: np.ndarray
+    known_tokens: np.ndarray
+    unknown_tokens: np.ndarray
+    no_evidence: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.group.shape[0])
+
+
+def route_counts(
+    params: Parameters,
+    counts: sp.spmatrix,
+    unknown_tokens: np.ndarray | None = None,
+) -> Routing:
+    """Route documents given as counts over the model's vocabulary ids.
+
+    Parameters
+    ----------
+    params : Parameters
+    counts : sparse matrix (n, V') with V' <= the parameters' vocabulary size
+    unknown_tokens : ndarray (n,), optional
+        Tokens that were left out because the vocabulary does not know them.
+
+    Returns
+    -------
+    Routing
+    """
+    matrix = sp.csr_matrix(counts, dtype=np.float64)
+    n_words = params.log_word_prob.shape[0]
+    if matrix.shape[1] > n_words:
+        raise InputError(
+            f"counts have {matrix.shape[1]} columns but the model knows {n_words} word ids"
+        )
+    if matrix.data.size and (not np.all(np.isfinite(matrix.data)) or matrix.data.min() < 0):
+        raise InputError("counts must be finite and >= 0")
+    log_word_prob = params.log_word_prob
+    if matrix.shape[1] < n_words:
+        log_word_prob = log_word_prob[: matrix.shape[1]]
+    log_lik = np.asarray(matrix @ log_word_prob)
+    posterior, _ = normalise_log_rows(log_lik + params.log_weights)
+    n_docs, k = posterior.shape
+    group = posterior.argmax(axis=1)
+    rows = np.arange(n_docs)
+    if k > 1:
+        top_two = np.partition(posterior, k - 2, axis=1)[:, k - 2 :]
+        margin = top_two[:, 1] - top_two[:, 0]
+    else:
+        margin = np.ones(n_docs)
+    known = np.asarray(matrix.sum(axis=1)).ravel()
+    no_evidence = known == 0
+    with np.errstate(invalid="ignore", divide="ignore"):
+        per_token = np.where(no_evidence, np.nan, log_lik[rows, group] / known)
+    unknown = (
+        np.zeros(n_docs, dtype=np.int64)
+        if unknown_tokens is None
+        else np.asarray(unknown_tokens, dtype=np.int64)
+    )
+    return Routing(
+        group=group.astype(np.int64),
+        posterior=posterior,
+        margin=margin,
+        log_likelihood_per_token=per_token,
+        known_tokens=known.astype(np.int64),
+        unknown_tokens=unknown,
+        no_evidence=no_evidence,
+    )
+
+
+def route_texts(state: MixtureState, texts: Sequence[str]) -> Routing:
+    """Tokenise texts with the state's tokenizer (no vocabulary growth) and route them."""
+    batch = count_texts(texts, state.tokenizer, state.vocabulary, grow=False)
+    return route_counts(state.parameters(), batch.counts, batch.unknown_tokens)

@@ -1,0 +1,161 @@
+"""Model state to bytes and back, never with pickle.
+
+Layout::
+
+    b"MXRSTATE"            8 bytes, magic
+    format version         2 bytes, little-endian unsigned
+    sha256 of the payload  32 bytes
+    payload                an uncompressed .npz archive: a JSON header (as uint8) plus arrays
+
+Loading checks the magic, the version and the checksum before it parses anything, and parses
+with ``np.load(..., allow_pickle=False)``, so bytes from a tampered store cannot run code. Any
+defect is a StateFormatError that says what is wrong.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import struct
+import zipfile
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from mixture.config import MixtureConfig
+from mixture.errors import ConfigError, StateFormatError
+from mixture.stats import MixtureState
+from mixture.text import Vocabulary
+
+MAGIC = b"MXRSTATE"
+FORMAT_VERSION = 1
+_PREFIX = struct.Struct("<8sH32s")
+
+
+def checksum(data: bytes) -> str:
+    """Hex SHA-256 of bytes (used for snapshots' metadata)."""
+    return hashlib.sha256(data).hexdigest()
+
+
+def state_to_bytes(state: MixtureState) -> bytes:
+    """Serialise a state: header, arrays, checksum.
+
+    Only the rows in use are written (not the growth reserve).
+    """
+    header: dict[str, Any] = {
+        "format": "mixroute-state",
+        "config": state.config.to_dict(),
+        "running_scale": state.running_scale,
+        "weight_square_sum": state.weight_square_sum,
+        "step": state.step,
+        "documents_learned": state.documents_learned,
+        "warmed_up": state.warmed_up,
+        "seed": state.seed,
+        "watermark": state.watermark,
+        "metadata": state.metadata,
+    }
+    arrays: dict[str, np.ndarray] = {
+        "unscaled_word": np.ascontiguousarray(state.unscaled_word[: state.capacity]),
+        "unscaled_docs": state.unscaled_docs,
+        "unscaled_total": state.unscaled_total,
+    }
+    for name, value in state.vocabulary.to_arrays().items():
+        arrays[f"vocab.{name}"] = value
+    if state.pending is not None:
+        pending = sp.csr_matrix(state.pending)
+        arrays["pending.data"] = pending.data
+        arrays["pending.indices"] = pending.indices.astype(np.int64)
+        arrays["pending.indptr"] = pending.indptr.astype(np.int64)
+        arrays["pending.shape"] = np.asarray(pending.shape, dtype=np.int64)
+    arrays["header"] = np.frombuffer(json.dumps(header).encode("utf-8"), dtype=np.uint8)
+    buffer = io.BytesIO()
+    np.savez(buffer, allow_pickle=False, **arrays)
+    payload = buffer.getvalue()
+    digest = hashlib.sha256(payload).digest()
+    return _PREFIX.pack(MAGIC, FORMAT_VERSION, digest) + payload
+
+
+def state_from_bytes(data: bytes) -> MixtureState:
+    """Load a state written by :func:`state_to_bytes`.
+
+    Raises
+    ------
+    StateFormatError
+        On foreign bytes, an unsupported version, a checksum mismatch or a malformed archive.
+    """
+    if not isinstance(data, bytes | bytearray | memoryview):
+        raise StateFormatError(f"state must be bytes, got {type(data).__name__}")
+    data = bytes(data)
+    if len(data) < _PREFIX.size:
+        raise StateFormatError(f"state is truncated: {len(data)} bytes is shorter than a header")
+    magic, version, digest = _PREFIX.unpack_from(data)
+    if magic != MAGIC:
+        raise StateFormatError("not a mixroute state (wrong magic bytes)")
+    if version != FORMAT_VERSION:
+        raise StateFormatError(
+            f"state format version {version} is not supported (this build reads {FORMAT_VERSION})"
+        )
+    payload = data[_PREFIX.size :]
+    if hashlib.sha256(payload).digest() != digest:
+        raise StateFormatError("state checksum mismatch: the bytes are corrupt or were altered")
+    try:
+        with np.load(io.BytesIO(payload), allow_pickle=False) as archive:
+            arrays = {name: archive[name] for name in archive.files}
+        header = json.loads(arrays.pop("header").tobytes().decode("utf-8"))
+    except (ValueError, OSError, KeyError, zipfile.BadZipFile, UnicodeDecodeError) as exc:
+        raise StateFormatError(f"state archive is malformed: {exc}") from exc
+    try:
+        return _build(header, arrays)
+    except (KeyError, TypeError, ValueError, ConfigError) as exc:
+        if isinstance(exc, StateFormatError):
+            raise
+        raise StateFormatError(f"state content is inconsistent: {exc}") from exc
+
+
+def _build(header: dict[str, Any], arrays: dict[str, np.ndarray]) -> MixtureState:
+    if header.get("format") != "mixroute-state":
+        raise StateFormatError("state header does not describe a mixroute state")
+    config = MixtureConfig.from_dict(header["config"])
+    vocab_arrays = {k[len("vocab.") :]: v for k, v in arrays.items() if k.startswith("vocab.")}
+    vocabulary = Vocabulary.from_arrays(vocab_arrays)
+    word = np.array(arrays["unscaled_word"], dtype=np.float64)
+    k = config.n_groups
+    if word.shape != (vocabulary.capacity, k):
+        raise StateFormatError(
+            f"word statistics have shape {word.shape}, expected ({vocabulary.capacity}, {k})"
+        )
+    docs = np.array(arrays["unscaled_docs"], dtype=np.float64)
+    total = np.array(arrays["unscaled_total"], dtype=np.float64)
+    if docs.shape != (k,) or total.shape != (k,):
+        raise StateFormatError("document statistics do not match the number of groups")
+    for name, arr in (("word", word), ("docs", docs), ("total", total)):
+        if not np.all(np.isfinite(arr)):
+            raise StateFormatError(f"{name} statistics hold non-finite values")
+    pending = None
+    if "pending.data" in arrays:
+        shape = tuple(int(x) for x in arrays["pending.shape"])
+        pending = sp.csr_matrix(
+            (arrays["pending.data"], arrays["pending.indices"], arrays["pending.indptr"]),
+            shape=shape,
+        )
+    state = MixtureState(
+        config=config,
+        vocabulary=vocabulary,
+        unscaled_word=word,
+        unscaled_docs=docs,
+        unscaled_total=total,
+        running_scale=float(header["running_scale"]),
+        weight_square_sum=float(header["weight_square_sum"]),
+        step=int(header["step"]),
+        documents_learned=int(header["documents_learned"]),
+        warmed_up=bool(header["warmed_up"]),
+        seed=int(header["seed"]),
+        watermark=str(header["watermark"]),
+        metadata=dict(header["metadata"]),
+        pending=pending,
+    )
+    if not (state.running_scale > 0 and state.weight_square_sum > 0):
+        raise StateFormatError("state scale factors must be positive")
+    return state
