@@ -1,0 +1,103 @@
+"""Groups: weights, top and distinctive terms, and the operator's label and destination."""
+
+from __future__ import annotations
+
+from typing import Annotated, Any
+
+from fastapi import APIRouter, Query
+
+from mixture.describe import describe_groups
+from service.routers import Runtime
+from service.runtime import LoadedModel
+from service.schemas import GroupList, GroupOut, LabelIn, Problem
+
+router = APIRouter(tags=["groups"])
+
+NOT_FOUND = {404: {"model": Problem, "description": "Unknown model or group"}}
+
+
+def group_dicts(loaded: LoadedModel, top: int, min_count: float) -> list[dict[str, Any]]:
+    """Every group of a loaded model as JSON-able dicts."""
+    k = loaded.n_groups
+    typicality = loaded.typicality.to_dict()
+    if loaded.state is None:
+        summaries: list[Any] = []
+    else:
+        summaries = describe_groups(loaded.state, top_n=top, min_count=min_count)
+    by_group = {int(s.group): s for s in summaries}
+    out = []
+    for g in range(k):
+        summary = by_group.get(g)
+        label = loaded.labels.get(g) or {}
+        out.append(
+            {
+                "group": g,
+                "weight": float(summary.weight) if summary else 1.0 / k,
+                "expected_documents": float(summary.expected_documents) if summary else 0.0,
+                "label": label.get("label"),
+                "destination": label.get("destination"),
+                "top_terms": [
+                    {"term": t, "score": float(s)}
+                    for t, s in (summary.top_terms if summary else [])
+                ],
+                "distinctive_terms": [
+                    {"term": t, "score": float(s)}
+                    for t, s in (summary.distinctive_terms if summary else [])
+                ],
+                "typicality": {
+                    "effective_documents": typicality["effective_documents"][g],
+                    "mean": typicality["mean"][g],
+                    "std": typicality["std"][g],
+                },
+            }
+        )
+    return out
+
+
+@router.get(
+    "/models/{model}/groups", response_model=GroupList, responses=NOT_FOUND, summary="All groups"
+)
+def list_groups(
+    model: str,
+    runtime: Runtime,
+    top: Annotated[int, Query(ge=1, le=200, description="Terms per list")] = 10,
+    min_count: Annotated[float, Query(ge=0.0, le=1e9, description="Distinctive-term floor")] = 3.0,
+) -> dict[str, Any]:
+    """Weights, top terms p(w | k), distinctive terms (lift) and labels of every group."""
+    loaded = runtime.model(model)
+    return {
+        "model": model,
+        "version": loaded.version,
+        "groups": group_dicts(loaded, top, min_count),
+    }
+
+
+@router.get(
+    "/models/{model}/groups/{group}",
+    response_model=GroupOut,
+    responses=NOT_FOUND,
+    summary="One group",
+)
+def get_group(
+    model: str,
+    runtime: Runtime,
+    group: int,
+    top: Annotated[int, Query(ge=1, le=200)] = 10,
+    min_count: Annotated[float, Query(ge=0.0, le=1e9)] = 3.0,
+) -> dict[str, Any]:
+    loaded = runtime.model(model)
+    loaded.check_group(group)
+    return group_dicts(loaded, top, min_count)[group]
+
+
+@router.put(
+    "/models/{model}/groups/{group}/label",
+    response_model=GroupOut,
+    responses=NOT_FOUND,
+    summary="Set a group's label and destination",
+)
+def set_label(model: str, group: int, body: LabelIn, runtime: Runtime) -> dict[str, Any]:
+    """Name a group and say where its messages go; routing answers carry both from now on."""
+    runtime.set_label(model, group, body.label, body.destination)
+    loaded = runtime.model(model)
+    return group_dicts(loaded, 10, 3.0)[group]

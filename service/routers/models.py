@@ -1,0 +1,110 @@
+"""Models: create with a configuration, list, get, delete."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from fastapi import APIRouter, Response, status
+
+from mixture.config import MixtureConfig
+from service.routers import Runtime
+from service.runtime import LoadedModel, RedisUnavailableError, ServiceRuntime
+from service.schemas import ModelIn, ModelList, ModelOut, Problem
+from state.errors import OptionsError
+from state.keys import validate_model_name
+from state.options import ModelOptions
+
+router = APIRouter(tags=["models"])
+
+NOT_FOUND = {404: {"model": Problem, "description": "Unknown model"}}
+
+
+def model_out(runtime: ServiceRuntime, loaded: LoadedModel, with_stream: bool) -> dict[str, Any]:
+    """The JSON description of one loaded model."""
+    state = loaded.state
+    k = loaded.n_groups
+    stream: dict[str, Any] | None = None
+    if with_stream:
+        try:
+            stream = runtime.call(loaded.store.stream_info)
+        except RedisUnavailableError:
+            stream = None
+    return {
+        "name": loaded.name,
+        "n_groups": k,
+        "version": loaded.version,
+        "documents_learned": int(state.documents_learned) if state is not None else 0,
+        "warmed_up": bool(state is not None and state.warmed_up),
+        "weights": [float(w) for w in state.weights()] if state is not None else [1.0 / k] * k,
+        "review_threshold": loaded.review_threshold,
+        "created": loaded.info.created,
+        "config": loaded.info.config.to_dict(),
+        "options": loaded.info.options.to_dict(),
+        "stream": _jsonable(stream),
+    }
+
+
+def _jsonable(value: Any) -> Any:
+    if isinstance(value, dict):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_jsonable(v) for v in value]
+    if isinstance(value, bytes):
+        return value.decode("utf-8", "replace")
+    if isinstance(value, float) and value != value:
+        return None
+    return value
+
+
+@router.post(
+    "/models",
+    status_code=status.HTTP_201_CREATED,
+    response_model=ModelOut,
+    summary="Create a model",
+    responses={
+        409: {"model": Problem, "description": "Name taken"},
+        422: {"model": Problem, "description": "Configuration out of range (names the field)"},
+    },
+)
+def create_model(body: ModelIn, runtime: Runtime) -> dict[str, Any]:
+    """Register a model; its worker starts learning from its stream."""
+    try:
+        validate_model_name(body.name)
+    except OptionsError as exc:
+        raise OptionsError(f"name {exc}") from None
+    config = MixtureConfig.from_dict(body.config.to_config_dict())
+    options = ModelOptions.from_dict(body.options)
+    runtime.call(lambda: runtime.registry.create(body.name, config, options))
+    loaded = runtime.reload(body.name)
+    return model_out(runtime, loaded, with_stream=False)
+
+
+@router.get("/models", response_model=ModelList, summary="List models")
+def list_models(runtime: Runtime) -> dict[str, Any]:
+    """Every registered model (from memory when Redis is unreachable)."""
+    try:
+        runtime.load_all()
+    except RedisUnavailableError:
+        if not runtime.models:
+            raise
+    return {"models": [model_out(runtime, m, False) for _, m in sorted(runtime.models.items())]}
+
+
+@router.get("/models/{model}", response_model=ModelOut, responses=NOT_FOUND, summary="Get one")
+def get_model(model: str, runtime: Runtime) -> dict[str, Any]:
+    """Version, documents learned, weights, configuration and stream figures."""
+    return model_out(runtime, runtime.model(model), with_stream=True)
+
+
+@router.delete(
+    "/models/{model}",
+    status_code=status.HTTP_204_NO_CONTENT,
+    responses=NOT_FOUND,
+    summary="Delete a model and all its data",
+)
+def delete_model(model: str, runtime: Runtime) -> Response:
+    """Remove every Redis key of the model: stream (message texts), state, snapshots, history."""
+    validate_model_name(model)
+    runtime.call(lambda: runtime.registry.delete(model))
+    runtime.forget(model)
+    return Response(status_code=status.HTTP_204_NO_CONTENT)

