@@ -49,7 +49,9 @@ def _sample(
     rng = np.random.default_rng(seed)
     groups = rng.choice(weights.size, size=n_docs, p=weights)
     lengths = rng.integers(40, 120, size=n_docs)
-    dense = np.vstack([rng.multinomial(n, theta[:, g]) for g, n in zip(groups, lengths)])
+    dense = np.vstack(
+        [rng.multinomial(n, theta[:, g]) for g, n in zip(groups, lengths, strict=True)]
+    )
     return sp.csr_matrix(dense.astype(np.float64)), groups
 
 
