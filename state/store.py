@@ -759,6 +759,18 @@ class ModelStore:
                     )
                     pipe.rpush(self.keys.lineage, dumps(record.to_dict()))
                     pipe.ltrim(self.keys.lineage, -self.options.lineage_limit, -1)
+                    # the drift history shows the jump back to the snapshot's weights
+                    row = HistoryRow(
+                        time=now,
+                        version=new_version,
+                        documents_learned=summary["documents_learned"],
+                        weights=summary["weights"],
+                        log_likelihood_per_token=float("nan"),
+                        no_evidence=0,
+                        batch_documents=0,
+                    )
+                    pipe.rpush(self.keys.history, dumps(row.to_dict()))
+                    pipe.ltrim(self.keys.history, -self.options.history_limit, -1)
                     pipe.publish(self.keys.notify, str(new_version))
                     pipe.execute()
                     return result

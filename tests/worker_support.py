@@ -1,0 +1,164 @@
+"""Helpers for the state/worker tests: invented documents, small models, waiting, references.
+
+The documents are invented (an island ferry cooperative's passenger inbox, generated here):
+three groups of short messages over disjoint small vocabularies, so models stay tiny and fast.
+"""
+
+from __future__ import annotations
+
+import random
+import threading
+import time
+from collections.abc import Callable, Sequence
+
+import numpy as np
+import redis
+
+from mixture.config import MixtureConfig
+from mixture.online import OnlineLearner
+from mixture.stats import MixtureState
+from state.options import ModelOptions
+from state.registry import Registry
+from state.store import ModelStore
+from worker.learner import Worker
+
+# Invented passenger-inbox vocabulary (not from any real operator).
+GROUP_WORDS = [
+    "ticket refund booking cancel fare voucher receipt payment seat online".split(),
+    "luggage bag lost cabin found bicycle trolley deck locker pushchair".split(),
+    "delay storm weather harbour late swell crossing wind timetable fog".split(),
+]
+SPAM_WORDS = "winner prize casino bonus jackpot lottery claim crypto offer free".split()
+
+
+def ferry_texts(n: int, seed: int = 0, weights: Sequence[float] = (0.5, 0.3, 0.2),
+                words: Sequence[Sequence[str]] | None = None) -> list[str]:
+    """``n`` invented short messages (5-8 tokens) drawn from the groups with ``weights``."""
+    rng = random.Random(seed)
+    groups = words or GROUP_WORDS
+    out = []
+    for _ in range(n):
+        g = rng.choices(range(len(groups)), weights=weights)[0]
+        out.append(" ".join(rng.choice(groups[g]) for _ in range(rng.randint(5, 8))))
+    return out
+
+
+def small_config(**changes: object) -> MixtureConfig:
+    """K=3, tiny warm-up and vocabulary: fast tests."""
+    base = {
+        "n_groups": 3,
+        "vocabulary_limit": 500,
+        "warmup_documents": 200,
+        "batch_size": 50,
+        "n_restarts": 1,
+        "max_iter": 30,
+    }
+    base.update(changes)
+    return MixtureConfig(**base)  # type: ignore[arg-type]
+
+
+def fast_options(**changes: object) -> ModelOptions:
+    """Quick checkpoints, short leases, reproducible learning units."""
+    base = {
+        "checkpoint_documents": 200,
+        "checkpoint_seconds": 0.2,
+        "flush_partial_seconds": None,
+        "read_count": 100,
+        "read_block_ms": 50,
+        "lease_seconds": 1.0,
+        "claim_idle_seconds": 0.5,
+        "snapshot_every_documents": None,
+        "snapshot_every_seconds": None,
+    }
+    base.update(changes)
+    return ModelOptions(**base)  # type: ignore[arg-type]
+
+
+def create_model(client: redis.Redis, name: str, config: MixtureConfig | None = None,
+                 options: ModelOptions | None = None) -> ModelStore:
+    """Register a model and return its store."""
+    Registry(client).create(name, config or small_config(), options or fast_options())
+    return ModelStore(client, name)
+
+
+def wait_for(predicate: Callable[[], bool], timeout: float = 30.0, what: str = "") -> None:
+    """Poll until ``predicate()``; fail the test with ``what`` after ``timeout`` seconds.
+
+    The timeout only guards against a hang; no test asserts on how long anything took.
+    """
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        if predicate():
+            return
+        time.sleep(0.02)
+    raise AssertionError(f"timed out waiting for {what or predicate}")
+
+
+def learned_all(store: ModelStore, documents: int) -> Callable[[], bool]:
+    """Predicate: the checkpoint holds ``documents`` and its watermark is the stream's end."""
+
+    def check() -> bool:
+        summary = store.summary()
+        return (
+            summary is not None
+            and summary["documents_learned"] == documents
+            and summary["watermark"] == store.last_stream_id()
+        )
+
+    return check
+
+
+class WorkerThread:
+    """A Worker running in a thread; ``with`` stops and joins it."""
+
+    def __init__(self, worker: Worker) -> None:
+        self.worker = worker
+        self.error: BaseException | None = None
+        self.thread = threading.Thread(target=self._run, daemon=True)
+
+    def _run(self) -> None:
+        try:
+            self.worker.run()
+        except BaseException as exc:  # surfaced by stop()
+            self.error = exc
+
+    def __enter__(self) -> WorkerThread:
+        self.thread.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.stop()
+
+    def stop(self) -> None:
+        self.worker.stop()
+        self.thread.join(30)
+        assert not self.thread.is_alive(), "worker thread did not stop"
+        if self.error is not None:
+            raise self.error
+
+
+def reference_state(texts: Sequence[str], config: MixtureConfig, seed: int = 0,
+                    start: MixtureState | None = None) -> MixtureState:
+    """mixture/ fed directly: the documents in order, in units of ``config.batch_size``."""
+    learner = OnlineLearner.from_state(start.copy()) if start is not None else OnlineLearner(
+        config, seed=seed)
+    unit = config.batch_size
+    for i in range(0, len(texts), unit):
+        learner.learn(list(texts[i : i + unit]))
+    return learner.state
+
+
+def assert_same_state(actual: MixtureState, expected: MixtureState, rtol: float = 1e-9) -> None:
+    """Equal counters, vocabulary and statistics (float tolerance ``rtol``)."""
+    assert actual.documents_learned == expected.documents_learned
+    assert actual.step == expected.step
+    assert actual.warmed_up == expected.warmed_up
+    assert actual.capacity == expected.capacity
+    assert [actual.vocabulary.word(i) for i in range(actual.capacity)] == [
+        expected.vocabulary.word(i) for i in range(expected.capacity)
+    ]
+    np.testing.assert_allclose(actual.expected_documents(), expected.expected_documents(),
+                               rtol=rtol, atol=1e-12)
+    np.testing.assert_allclose(actual.expected_word_counts(), expected.expected_word_counts(),
+                               rtol=rtol, atol=1e-12)
+    np.testing.assert_allclose(actual.weights(), expected.weights(), rtol=rtol, atol=1e-12)
