@@ -93,8 +93,9 @@ def test_stream_ids_and_skip_ranges() -> None:
 
 
 def test_decode_entry_reasons() -> None:
-    good = decode_entry("1-0", {b"id": b"a", b"text": b"hello", b"metadata": b'{"k": 1}',
-                                b"received": b"5.5"})
+    good = decode_entry(
+        "1-0", {b"id": b"a", b"text": b"hello", b"metadata": b'{"k": 1}', b"received": b"5.5"}
+    )
     assert good.text == "hello" and good.metadata == {"k": 1} and good.received == 5.5
     assert "no 'text'" in decode_entry("1-1", {b"id": b"a"}).reason
     assert "UTF-8" in decode_entry("1-2", {b"text": b"\xff\xfe"}).reason

@@ -37,8 +37,9 @@ def test_transport_changes_nothing(redis_client: redis.Redis, model_name: str) -
     # Reference: the same documents fed to mixture/ directly in the same units. Read sizes
     # (37, deliberately not a divisor of the unit of 50) and checkpoints must not matter.
     config = small_config()
-    store = create_model(redis_client, model_name, config,
-                         fast_options(read_count=37, checkpoint_documents=120))
+    store = create_model(
+        redis_client, model_name, config, fast_options(read_count=37, checkpoint_documents=120)
+    )
     texts = ferry_texts(1500, seed=1)
     for i in range(0, len(texts), 300):
         store.enqueue(texts[i : i + 300])
@@ -83,8 +84,7 @@ def test_bad_input_is_refused_whole(redis_client: redis.Redis, model_name: str) 
     assert redis_client.xlen(store.keys.docs) == 0
 
 
-def test_undecodable_entries_go_to_dead_letters(redis_client: redis.Redis,
-                                                model_name: str) -> None:
+def test_undecodable_entries_go_to_dead_letters(redis_client: redis.Redis, model_name: str) -> None:
     store = create_model(redis_client, model_name)
     texts = ferry_texts(300, seed=3)
     store.enqueue(texts[:150])
@@ -104,8 +104,9 @@ def test_undecodable_entries_go_to_dead_letters(redis_client: redis.Redis,
     assert_same_state(store.load_state(), reference_state(texts, store.info.config))
 
 
-def test_redelivered_entries_are_acked_not_relearned(redis_client: redis.Redis,
-                                                     model_name: str) -> None:
+def test_redelivered_entries_are_acked_not_relearned(
+    redis_client: redis.Redis, model_name: str
+) -> None:
     store = create_model(redis_client, model_name)
     texts = ferry_texts(600, seed=4)
     store.enqueue(texts[:400])
@@ -124,8 +125,9 @@ def test_redelivered_entries_are_acked_not_relearned(redis_client: redis.Redis,
     assert_same_state(state, reference_state(texts, store.info.config))
 
 
-def test_delete_model_touches_no_other_models_keys(redis_client: redis.Redis,
-                                                   model_name: str) -> None:
+def test_delete_model_touches_no_other_models_keys(
+    redis_client: redis.Redis, model_name: str
+) -> None:
     other = model_name + "-2"
     try:
         kept = create_model(redis_client, other)
@@ -136,18 +138,23 @@ def test_delete_model_touches_no_other_models_keys(redis_client: redis.Redis,
                 wait_for(learned_all(store, 300), what="300 learned")
             store.create_snapshot("before delete test")
         redis_client.set("unrelated:key", b"1")
-        before = {k: redis_client.dump(k) for k in redis_client.scan_iter(
-            match=ModelKeys(other).pattern())}
+        before = {
+            k: redis_client.dump(k)
+            for k in redis_client.scan_iter(match=ModelKeys(other).pattern())
+        }
         assert len(before) > 300  # config, stream, state, ..., 300 client-id keys
         removed = Registry(redis_client).delete(model_name)
         assert removed > 300
         assert list(redis_client.scan_iter(match=ModelKeys(model_name).pattern())) == []
-        after = {k: redis_client.dump(k) for k in redis_client.scan_iter(
-            match=ModelKeys(other).pattern())}
+        after = {
+            k: redis_client.dump(k)
+            for k in redis_client.scan_iter(match=ModelKeys(other).pattern())
+        }
         assert after == before
         assert redis_client.get("unrelated:key") == b"1"
         assert Registry(redis_client).exists(other) and not Registry(redis_client).exists(
-            model_name)
+            model_name
+        )
         assert redis_client.sismember(REGISTRY_KEY, other)
     finally:
         for key in redis_client.scan_iter(match=ModelKeys(other).pattern()):
@@ -156,8 +163,9 @@ def test_delete_model_touches_no_other_models_keys(redis_client: redis.Redis,
         redis_client.delete("unrelated:key")
 
 
-def test_heartbeat_names_the_worker_and_a_second_worker_waits(redis_client: redis.Redis,
-                                                              model_name: str) -> None:
+def test_heartbeat_names_the_worker_and_a_second_worker_waits(
+    redis_client: redis.Redis, model_name: str
+) -> None:
     store = create_model(redis_client, model_name)
     store.enqueue(ferry_texts(300, seed=6))
     first = Worker(redis_client, model_name, name="first")

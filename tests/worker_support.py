@@ -24,15 +24,63 @@ from worker.learner import Worker
 
 # Invented passenger-inbox vocabulary (not from any real operator).
 GROUP_WORDS = [
-    "ticket refund booking cancel fare voucher receipt payment seat online".split(),
-    "luggage bag lost cabin found bicycle trolley deck locker pushchair".split(),
-    "delay storm weather harbour late swell crossing wind timetable fog".split(),
+    [
+        "ticket",
+        "refund",
+        "booking",
+        "cancel",
+        "fare",
+        "voucher",
+        "receipt",
+        "payment",
+        "seat",
+        "online",
+    ],
+    [
+        "luggage",
+        "bag",
+        "lost",
+        "cabin",
+        "found",
+        "bicycle",
+        "trolley",
+        "deck",
+        "locker",
+        "pushchair",
+    ],
+    [
+        "delay",
+        "storm",
+        "weather",
+        "harbour",
+        "late",
+        "swell",
+        "crossing",
+        "wind",
+        "timetable",
+        "fog",
+    ],
 ]
-SPAM_WORDS = "winner prize casino bonus jackpot lottery claim crypto offer free".split()
+SPAM_WORDS = [
+    "winner",
+    "prize",
+    "casino",
+    "bonus",
+    "jackpot",
+    "lottery",
+    "claim",
+    "crypto",
+    "offer",
+    "free",
+]
 
 
-def ferry_texts(n: int, seed: int = 0, weights: Sequence[float] = (0.5, 0.3, 0.2),
-                words: Sequence[Sequence[str]] | None = None) -> list[str]:
+def ferry_texts(
+    n: int,
+    seed: int = 0,
+    weights: Sequence[float] = (0.5, 0.3, 0.2),
+    words: Sequence[Sequence[str]] | None = None,
+) -> list[str]:
     """``n`` invented short messages (5-8 tokens) drawn from the groups with ``weights``."""
     rng = random.Random(seed)
     groups = words or GROUP_WORDS
@@ -74,8 +122,12 @@ def fast_options(**changes: object) -> ModelOptions:
     return ModelOptions(**base)  # type: ignore[arg-type]
 
 
-def create_model(client: redis.Redis, name: str, config: MixtureConfig | None = None,
-                 options: ModelOptions | None = None) -> ModelStore:
+def create_model(
+    client: redis.Redis,
+    name: str,
+    config: MixtureConfig | None = None,
+    options: ModelOptions | None = None,
+) -> ModelStore:
     """Register a model and return its store."""
     Registry(client).create(name, config or small_config(), options or fast_options())
     return ModelStore(client, name)
@@ -137,11 +189,15 @@ class WorkerThread:
             raise self.error
 
 
-def reference_state(texts: Sequence[str], config: MixtureConfig, seed: int = 0,
-                    start: MixtureState | None = None) -> MixtureState:
+def reference_state(
+    texts: Sequence[str], config: MixtureConfig, seed: int = 0, start: MixtureState | None = None
+) -> MixtureState:
     """mixture/ fed directly: the documents in order, in units of ``config.batch_size``."""
-    learner = OnlineLearner.from_state(start.copy()) if start is not None else OnlineLearner(
-        config, seed=seed)
+    learner = (
+        OnlineLearner.from_state(start.copy())
+        if start is not None
+        else OnlineLearner(config, seed=seed)
+    )
     unit = config.batch_size
     for i in range(0, len(texts), unit):
         learner.learn(list(texts[i : i + unit]))
@@ -157,8 +213,10 @@ def assert_same_state(actual: MixtureState, expected: MixtureState, rtol: float 
     assert [actual.vocabulary.word(i) for i in range(actual.capacity)] == [
         expected.vocabulary.word(i) for i in range(expected.capacity)
     ]
-    np.testing.assert_allclose(actual.expected_documents(), expected.expected_documents(),
-                               rtol=rtol, atol=1e-12)
-    np.testing.assert_allclose(actual.expected_word_counts(), expected.expected_word_counts(),
-                               rtol=rtol, atol=1e-12)
+    np.testing.assert_allclose(
+        actual.expected_documents(), expected.expected_documents(), rtol=rtol, atol=1e-12
+    )
+    np.testing.assert_allclose(
+        actual.expected_word_counts(), expected.expected_word_counts(), rtol=rtol, atol=1e-12
+    )
     np.testing.assert_allclose(actual.weights(), expected.weights(), rtol=rtol, atol=1e-12)

@@ -126,6 +126,7 @@ class Worker:
         self.checkpoints = 0
         self.conflicts = 0
         self.reconnects = 0
+        self.errors = 0
 
     # -- public ------------------------------------------------------------------------------
     def stop(self) -> None:
@@ -153,6 +154,14 @@ class Worker:
                     exc,
                     backoff,
                 )
+                self._drop_work()
+                self._stop.wait(backoff)
+                backoff = min(backoff * 2, 5.0)
+            except Exception:
+                # a bug or a Redis-side surprise must not kill the loop silently: log it,
+                # drop the uncommitted work (nothing was acknowledged) and start over
+                self.errors += 1
+                log.exception("worker %s: unexpected error; reloading in %.1fs", self.name, backoff)
                 self._drop_work()
                 self._stop.wait(backoff)
                 backoff = min(backoff * 2, 5.0)
@@ -492,11 +501,10 @@ class Worker:
                 min_idle_time=int(idle * 1000),
                 start_id=start,
                 count=1000,
-                justid=True,
             )
-            # redis-py returns [next_start, [ids...]] (Redis 6.2) or with a third element (7+)
+            # [next start, [(id, fields), ...]] (+ deleted ids on Redis 7)
             next_start, claimed = reply[0], reply[1]
-            covered = [c for c in claimed if parse_stream_id(c) <= watermark]
+            covered = [entry[0] for entry in claimed if parse_stream_id(entry[0]) <= watermark]
             if covered:
                 self.redis.xack(keys.docs, CONSUMER_GROUP, *covered)
             start = next_start.decode() if isinstance(next_start, bytes) else str(next_start)
