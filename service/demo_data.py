@@ -428,6 +428,8 @@ THEMES: tuple[Theme, ...] = (
     ),
 )
 
+CROSS_THEME_RATE = 0.15
+
 THEME_NAMES: tuple[str, ...] = tuple(theme.name for theme in THEMES)
 
 JUNK_WORDS = (
@@ -551,13 +553,21 @@ def compose_message(theme: Theme, rng: random.Random) -> str:
     """Write one invented message of ``theme``.
 
     A message is one or two of the theme's templates, a few extra theme words woven into a
-    short sentence, shared words and a filler sentence, so that themes overlap.
+    short sentence, shared words and a filler sentence; about one message in seven also carries a
+    sentence or words of another theme, so that themes overlap.
     """
     parts: list[str] = []
     if rng.random() < 0.5:
         parts.append(_fill(rng.choice(FILLER_SENTENCES), theme.words, rng))
     for template in rng.sample(theme.templates, k=rng.choice((1, 1, 2))):
         parts.append(_fill(template, theme.words, rng))
+    if rng.random() < CROSS_THEME_RATE:
+        # real mail wanders: a sentence or a few words from another theme
+        other = rng.choice([t for t in THEMES if t.name != theme.name])
+        if rng.random() < 0.5:
+            parts.append(_fill(rng.choice(other.templates), other.words, rng))
+        else:
+            parts.append(" ".join(rng.sample(other.words, k=2)) + "?")
     extra = rng.sample(theme.words, k=rng.randrange(1, 4))
     shared = rng.sample(SHARED_WORDS, k=rng.randrange(1, 4))
     mixed = extra + shared

@@ -69,7 +69,7 @@ class WorkerPool:
             except ModelNotFoundError:
                 continue
             thread = threading.Thread(
-                target=worker.run, name=f"mixroute-worker-{name}", daemon=True
+                target=_run_logged, args=(worker, name), name=f"mixroute-worker-{name}", daemon=True
             )
             thread.start()
             self.workers[name] = (worker, thread)
@@ -101,6 +101,15 @@ class WorkerPool:
         for _, thread in self.workers.values():
             thread.join(timeout=30)
         self.workers.clear()
+
+
+def _run_logged(worker: Any, name: str) -> None:
+    """Run a worker; a crash is logged (the pool restarts it at its next registry poll)."""
+    try:
+        worker.run()
+    except Exception as exc:
+        log.error("worker of model %s stopped on %s: %s", name, exc.__class__.__name__, exc)
+        log.debug("worker crash", exc_info=True)
 
 
 def _configure_logging(settings: Settings) -> None:

@@ -3,14 +3,22 @@
 from __future__ import annotations
 
 from collections.abc import Sequence
-from typing import Annotated
+from typing import Annotated, Any
 
 from fastapi import Depends, Request
 
 from service.errors import PayloadTooLargeError
 from service.runtime import ServiceRuntime
-from service.schemas import DocumentIn
+from service.schemas import DocumentIn, Problem
 from service.settings import Settings
+
+# Statuses any operation may answer besides its own: body checks (413, 422) and an
+# unreachable Redis (503). Documented on every router so clients and schema checks know them.
+COMMON_RESPONSES: dict[int | str, dict[str, Any]] = {
+    413: {"model": Problem, "description": "Request body, text or document count over a limit"},
+    422: {"model": Problem, "description": "Invalid input (names the field when one is)"},
+    503: {"model": Problem, "description": "Redis unreachable; nothing was changed"},
+}
 
 
 def get_runtime(request: Request) -> ServiceRuntime:

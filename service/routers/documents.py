@@ -6,10 +6,10 @@ from typing import Any
 
 from fastapi import APIRouter, status
 
-from service.routers import Runtime, check_documents
+from service.routers import COMMON_RESPONSES, Runtime, check_documents
 from service.schemas import DocumentsIn, Problem, QueuedOut
 
-router = APIRouter(tags=["documents"])
+router = APIRouter(tags=["documents"], responses=COMMON_RESPONSES)
 
 
 @router.post(

@@ -6,10 +6,10 @@ from typing import Annotated, Any
 
 from fastapi import APIRouter, Query
 
-from service.routers import Runtime
+from service.routers import COMMON_RESPONSES, Runtime
 from service.schemas import AlertList, DriftOut, HistoryOut, Problem
 
-router = APIRouter(tags=["drift"])
+router = APIRouter(tags=["drift"], responses=COMMON_RESPONSES)
 
 NOT_FOUND = {404: {"model": Problem, "description": "Unknown model or snapshot"}}
 

@@ -7,11 +7,11 @@ import time
 from fastapi import APIRouter
 from fastapi.responses import JSONResponse
 
-from service.routers import Runtime
+from service.routers import COMMON_RESPONSES, Runtime
 from service.runtime import RedisUnavailableError
 from service.schemas import HealthOut, ReadinessOut
 
-router = APIRouter(tags=["health"])
+router = APIRouter(tags=["health"], responses=COMMON_RESPONSES)
 
 
 @router.get("/health", response_model=HealthOut, summary="Liveness: the process answers")

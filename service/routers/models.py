@@ -7,14 +7,14 @@ from typing import Any
 from fastapi import APIRouter, Response, status
 
 from mixture.config import MixtureConfig
-from service.routers import Runtime
+from service.routers import COMMON_RESPONSES, Runtime
 from service.runtime import LoadedModel, RedisUnavailableError, ServiceRuntime
 from service.schemas import ModelIn, ModelList, ModelOut, Problem
 from state.errors import OptionsError
 from state.keys import validate_model_name
 from state.options import ModelOptions
 
-router = APIRouter(tags=["models"])
+router = APIRouter(tags=["models"], responses=COMMON_RESPONSES)
 
 NOT_FOUND = {404: {"model": Problem, "description": "Unknown model"}}
 

@@ -12,11 +12,11 @@ from fastapi.responses import JSONResponse
 from starlette.concurrency import run_in_threadpool
 
 from service.app import DEGRADED_HEADER
-from service.routers import check_documents, get_runtime
+from service.routers import COMMON_RESPONSES, check_documents, get_runtime
 from service.runtime import LoadedModel, RedisUnavailableError, ServiceRuntime
 from service.schemas import DocumentIn, Problem, RouteIn, RouteOut
 
-router = APIRouter(tags=["routing"])
+router = APIRouter(tags=["routing"], responses=COMMON_RESPONSES)
 
 # Above this many documents (or when queueing) the work moves off the event loop.
 INLINE_DOCUMENTS = 16

@@ -6,10 +6,10 @@ from typing import Any
 
 from fastapi import APIRouter, Response, status
 
-from service.routers import Runtime
+from service.routers import COMMON_RESPONSES, Runtime
 from service.schemas import Problem, RestoreIn, RestoreOut, SnapshotIn, SnapshotList, SnapshotOut
 
-router = APIRouter(tags=["snapshots"])
+router = APIRouter(tags=["snapshots"], responses=COMMON_RESPONSES)
 
 NOT_FOUND = {404: {"model": Problem, "description": "Unknown model or snapshot"}}
 
