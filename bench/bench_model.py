@@ -1,0 +1,239 @@
+"""Model speed as ratios against references measured in the same run.
+
+1. Routing a batch: ``route_counts`` / scikit-learn ``MultinomialNB.predict_proba`` with the
+   same parameters copied into the classifier (target <= 1.0). Ours also computes the margin,
+   the per-token log-likelihood and the evidence flags.
+2. One batch EM iteration / the two sparse products no EM iteration can avoid,
+   ``X @ log_word_prob`` and ``X.T @ resp`` (target <= 1.5). The iteration is measured inside
+   ``fit_batch_em`` (a fit of 1 + n iterations minus a fit of 1, divided by n, so seeding and
+   set-up cancel) and also as the public building blocks ``derive_parameters`` + ``e_step`` +
+   ``m_step``.
+3. One stepwise update at V = 1,000,000 / the same at V = 10,000, same mini-batch (target <= 1.5):
+   the update must cost O(nonzeros + K), not O(K x V).
+
+The data is synthetic (Zipf-like word frequencies, generated here). Run
+``python -m bench.bench_model [--quick]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import gc
+import statistics
+import time
+from collections.abc import Callable
+
+import numpy as np
+import scipy.sparse as sp
+from sklearn.naive_bayes import MultinomialNB
+
+from mixture.config import MixtureConfig
+from mixture.em import e_step, fit_batch_em, m_step
+from mixture.online import stepwise_update
+from mixture.routing import route_counts
+from mixture.stats import MixtureState, derive_parameters
+from mixture.text import Vocabulary
+
+
+def timed(call: Callable[[], object], repeats: int) -> float:
+    """Median wall time of ``repeats`` calls (one untimed warm-up call first)."""
+    call()
+    times = []
+    for _ in range(repeats):
+        gc.collect()
+        start = time.perf_counter()
+        call()
+        times.append(time.perf_counter() - start)
+    return statistics.median(times)
+
+
+def zipf_counts(
+    n_docs: int, n_words: int, tokens_per_doc: int, seed: int, word_offset: int = 0
+) -> sp.csr_matrix:
+    """Documents with Zipf-distributed words (exponent 1.1), as a CSR count matrix."""
+    rng = np.random.default_rng(seed)
+    ranks = np.arange(1, n_words + 1, dtype=np.float64)
+    prob = ranks**-1.1
+    prob /= prob.sum()
+    lengths = rng.poisson(tokens_per_doc, size=n_docs) + 1
+    words = rng.choice(n_words, size=int(lengths.sum()), p=prob) + word_offset
+    rows = np.repeat(np.arange(n_docs), lengths)
+    width = n_words + word_offset
+    matrix = sp.csr_matrix((np.ones(words.size), (rows, words)), shape=(n_docs, width))
+    matrix.sum_duplicates()
+    return matrix
+
+
+def mixture_counts(
+    n_docs: int, n_words: int, n_groups: int, tokens_per_doc: int, seed: int
+) -> sp.csr_matrix:
+    """Documents from a K-group mixture: each group has its own Zipf ranking of the words,
+    mixed half-and-half with a shared Zipf background (so groups overlap, as real topics do).
+    Structured data matters: on structureless text EM empties groups and re-seeds them, which
+    would time the re-seeding instead of the iteration."""
+    rng = np.random.default_rng(seed)
+    ranks = np.arange(1, n_words + 1, dtype=np.float64)
+    zipf = ranks**-1.1
+    zipf /= zipf.sum()
+    groups = rng.integers(0, n_groups, size=n_docs)
+    lengths = rng.poisson(tokens_per_doc, size=n_docs) + 1
+    rows_all, words_all = [], []
+    for k in range(n_groups):
+        members = np.flatnonzero(groups == k)
+        total = int(lengths[members].sum())
+        own = rng.permutation(n_words)[rng.choice(n_words, size=total, p=zipf)]
+        shared = rng.choice(n_words, size=total, p=zipf)
+        words_all.append(np.where(rng.random(total) < 0.5, own, shared))
+        rows_all.append(np.repeat(members, lengths[members]))
+    rows = np.concatenate(rows_all)
+    words = np.concatenate(words_all)
+    matrix = sp.csr_matrix((np.ones(words.size), (rows, words)), shape=(n_docs, n_words))
+    matrix.sum_duplicates()
+    return matrix
+
+
+def random_parameters(n_words: int, n_groups: int, seed: int):
+    rng = np.random.default_rng(seed)
+    word_counts = rng.gamma(0.3, 10.0, size=(n_words, n_groups))
+    doc_counts = rng.uniform(50.0, 500.0, size=n_groups)
+    return word_counts, doc_counts
+
+
+def bench_routing(n_docs: int, n_words: int, n_groups: int, repeats: int) -> dict[str, float]:
+    counts = zipf_counts(n_docs, n_words, 120, seed=1)
+    word_counts, doc_counts = random_parameters(n_words, n_groups, seed=2)
+    params = derive_parameters(word_counts, doc_counts, None, 0.1, 1.0)
+    # The classifier gets exactly our parameters (fit once for its attributes, then replaced).
+    nb = MultinomialNB(alpha=0.1).fit(counts[:n_groups], np.arange(n_groups))
+    nb.feature_log_prob_ = np.ascontiguousarray(params.log_word_prob.T)
+    nb.class_log_prior_ = params.log_weights.copy()
+    assert np.allclose(nb.predict_proba(counts[:50]), route_counts(params, counts[:50]).posterior)
+    ours = timed(lambda: route_counts(params, counts), repeats)
+    reference = timed(lambda: nb.predict_proba(counts), repeats)
+    return {"ours": ours, "reference": reference}
+
+
+def bench_em_iteration(
+    n_docs: int, n_words: int, n_groups: int, repeats: int, iterations: int
+) -> dict[str, float]:
+    # Short message-like documents: EM then needs tens of iterations (long ones converge in a
+    # handful), so the per-iteration figure is measured over many iterations.
+    counts = mixture_counts(n_docs, n_words, n_groups, 20, seed=3)
+    counts_t = counts.T.tocsr()
+    word_counts, doc_counts = random_parameters(n_words, n_groups, seed=4)
+    params = derive_parameters(word_counts, doc_counts, None, 0.1, 1.0)
+    resp, _ = e_step(counts, params)
+    log_word_prob = params.log_word_prob
+
+    def products() -> None:
+        _ = counts @ log_word_prob
+        _ = counts_t @ resp
+
+    def building_blocks() -> None:
+        p = derive_parameters(word_counts, doc_counts, None, 0.1, 1.0)
+        r, _ = e_step(counts, p)
+        m_step(counts, r, counts_t)
+
+    def fit(n_iter: int) -> Callable[[], object]:
+        config = MixtureConfig(n_groups=n_groups, n_restarts=1, max_iter=n_iter, tolerance=0.0)
+        return lambda: fit_batch_em(counts, config, seed=0)
+
+    reference = timed(products, repeats)
+    blocks = timed(building_blocks, repeats)
+    short = timed(fit(1), max(1, repeats // 2))
+    long = timed(fit(1 + iterations), max(1, repeats // 2))
+    config = MixtureConfig(n_groups=n_groups, n_restarts=1, max_iter=1 + iterations, tolerance=0.0)
+    report = fit_batch_em(counts, config, seed=0)[2]
+    return {
+        "reference": reference,
+        "blocks": blocks,
+        "in_fit": max(long - short, 0.0) / max(report.n_iter - 1, 1),
+        "reseeds": float(len(report.reseeded)),
+        "n_iter": float(report.n_iter),
+    }
+
+
+def stepwise_state(n_words: int, n_groups: int, seed: int) -> MixtureState:
+    """A warmed-up state over ``n_words`` vocabulary ids with random statistics."""
+    config = MixtureConfig(n_groups=n_groups, vocabulary_limit=max(n_words, 1), batch_size=256)
+    vocabulary = Vocabulary(f"w{i}" for i in range(n_words))
+    rng = np.random.default_rng(seed)
+    word_counts = rng.gamma(0.3, 1.0, size=(n_words, n_groups))
+    doc_counts = rng.uniform(50.0, 500.0, size=n_groups)
+    return MixtureState.from_counts(
+        config, vocabulary, word_counts, doc_counts, documents_learned=1000, seed=seed
+    )
+
+
+def bench_stepwise(
+    small: int, large: int, n_groups: int, repeats: int, updates: int
+) -> dict[str, float]:
+    # The same mini-batch (words among the first 10,000 ids) for both vocabulary sizes.
+    batch = zipf_counts(256, min(small, 10_000), 60, seed=5)
+    runs: dict[str, Callable[[], None]] = {}
+    for name, n_words in (("small", small), ("large", large)):
+        state = stepwise_state(n_words, n_groups, seed=6)
+        wide = sp.csr_matrix(
+            (batch.data, batch.indices, batch.indptr), shape=(batch.shape[0], n_words)
+        )
+
+        def run(state: MixtureState = state, wide: sp.csr_matrix = wide) -> None:
+            for _ in range(updates):
+                stepwise_update(state, wide)
+
+        run()  # warm-up
+        runs[name] = run
+    # Interleaved, so a change in machine load hits both sizes alike.
+    times: dict[str, list[float]] = {name: [] for name in runs}
+    for _ in range(repeats):
+        for name, run in runs.items():
+            gc.collect()
+            start = time.perf_counter()
+            run()
+            times[name].append((time.perf_counter() - start) / updates)
+    return {name: statistics.median(values) for name, values in times.items()}
+
+
+def main(argv: list[str] | None = None) -> None:
+    """Print the three speed ratios with their absolute times."""
+    parser = argparse.ArgumentParser(prog="python -m bench.bench_model", description=__doc__)
+    parser.add_argument("--quick", action="store_true", help="smaller sizes (a smoke run)")
+    args = parser.parse_args(argv)
+    scale = 0.2 if args.quick else 1.0
+    repeats = 3 if args.quick else 7
+    k = 20
+
+    n_route = int(20_000 * scale)
+    route = bench_routing(n_route, 50_000, k, repeats)
+    print(f"routing {n_route} docs, V=50,000, K={k}")
+    print(
+        f"  route_counts {route['ours'] * 1e3:8.1f} ms   MultinomialNB.predict_proba "
+        f"{route['reference'] * 1e3:8.1f} ms   ratio {route['ours'] / route['reference']:.2f}"
+        "  (target <= 1.0)"
+    )
+
+    n_em = int(20_000 * scale)
+    em = bench_em_iteration(n_em, 50_000, k, repeats, iterations=15 if not args.quick else 8)
+    print(f"batch EM iteration, {n_em} docs, V=50,000, K={k}")
+    print(
+        f"  X @ log_word_prob + X.T @ resp {em['reference'] * 1e3:8.1f} ms   "
+        f"iteration in fit_batch_em {em['in_fit'] * 1e3:8.1f} ms   "
+        f"ratio {em['in_fit'] / em['reference']:.2f}  (target <= 1.5; "
+        f"{em['n_iter']:.0f} iterations, {em['reseeds']:.0f} re-seeds)"
+    )
+    print(
+        f"  derive_parameters + e_step + m_step {em['blocks'] * 1e3:8.1f} ms   "
+        f"ratio {em['blocks'] / em['reference']:.2f}"
+    )
+
+    large = 1_000_000 if not args.quick else 200_000
+    step = bench_stepwise(10_000, large, k, repeats, updates=20)
+    print(f"stepwise update, batch of 256 docs, K={k}")
+    print(
+        f"  V=10,000 {step['small'] * 1e3:8.3f} ms   V={large:,} {step['large'] * 1e3:8.3f} ms"
+        f"   ratio {step['large'] / step['small']:.2f}  (target <= 1.5)"
+    )
+
+
+if __name__ == "__main__":
+    main()
