@@ -17,6 +17,12 @@ step_exponent = 0.7
     The stepwise EM step size is eta_k = (k + 2) ** -alpha. alpha must lie in (0.5, 1] for the
     Robbins-Monro conditions (sum eta = inf, sum eta^2 < inf); Liang and Klein (2009) report
     alpha in 0.5-0.7 with mini-batches in the hundreds as robust across their tasks.
+annealing_steps = 60
+    Deterministic annealing (Ueda and Nakano 1998) before plain EM: the likelihood is raised
+    to a power that climbs geometrically from 1 / (mean document length) to 1 in this many
+    steps. On long documents plain EM posteriors are hard from the first step and EM stays in
+    the seeds' local optimum; on both open corpora of the tests, annealing raised the MAP
+    objective reached from the same seeds (and the agreement with the reference labels).
 half_life_documents = None
     With a floor eta_min on the step size the statistics forget exponentially: a document's
     weight halves after h = batch_size * ln(0.5) / ln(1 - eta_min) documents. We let the user
@@ -58,6 +64,8 @@ class MixtureConfig:
     n_restarts, max_iter, tolerance
         Batch EM: independent seeded runs (best MAP objective wins), iterations per run, and
         the relative change of the objective below which a run has converged.
+    annealing_steps : int
+        Tempered E-steps at the start of each batch EM run (0 switches annealing off).
     tokenizer : TokenizerConfig
         How text becomes tokens.
     """
@@ -73,6 +81,7 @@ class MixtureConfig:
     n_restarts: int = 4
     max_iter: int = 100
     tolerance: float = 1e-6
+    annealing_steps: int = 60
     tokenizer: TokenizerConfig = field(default_factory=TokenizerConfig)
 
     def __post_init__(self) -> None:
@@ -101,6 +110,7 @@ class MixtureConfig:
         _check_int(self, "n_restarts", 1, 1000)
         _check_int(self, "max_iter", 1, 100_000)
         _check_float(self, "tolerance", 0.0, 1.0)
+        _check_int(self, "annealing_steps", 0, 10_000)
         if not isinstance(self.tokenizer, TokenizerConfig):
             raise ConfigError("tokenizer must be a TokenizerConfig")
 

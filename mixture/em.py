@@ -17,7 +17,9 @@ place of squared distance: a seed document s defines the distribution
 per-token log-likelihood ratio against the background, and the next seed is drawn with
 probability proportional to the square of how much worse a document is explained by the
 chosen seeds than by its own seed distribution. This spreads the seeds over the distinct
-themes instead of starting several groups on one theme, the classic bad start of EM.
+themes instead of starting several groups on one theme, the classic bad start of EM. The first
+``annealing_steps`` iterations then temper the likelihood (deterministic annealing, Ueda and
+Nakano 1998), and the objective trace starts once the temperature has reached 1.
 """
 
 from __future__ import annotations
@@ -45,12 +47,13 @@ class FitReport:
     Attributes
     ----------
     objective_trace : list of float
-        MAP objective before each M-step of the best run (non-decreasing between re-seeds).
+        MAP objective before each M-step of the best run once annealing is over
+        (non-decreasing between re-seeds).
     restart_objectives : list of float
         Final objective of every restart.
     best_restart : int
     n_iter : int
-        Iterations of the best run.
+        Iterations of the best run after annealing.
     converged : bool
         Whether the best run met the tolerance before max_iter.
     reseeded : list of int
@@ -229,10 +232,21 @@ def _one_run(
     word_counts, doc_counts = m_step(counts, resp, counts_t)
 
     report = FitReport(documents=n_docs)
+    # Deterministic annealing (Ueda and Nakano 1998): the E-step raises the likelihood to a
+    # power tau that climbs geometrically from 1 / (mean document length) to 1. At the start
+    # a document's tempered evidence is about one token's worth, so responsibilities are soft
+    # and groups can trade documents; hard, length-driven posteriors would freeze the seeds'
+    # first guess (the local optimum plain EM falls into on long documents).
+    n_anneal = config.annealing_steps
+    if n_anneal > 0:
+        start = 1.0 / max(float(lengths.mean()), 1.0)
+        temperatures = np.geomspace(start, 1.0, n_anneal + 1)[:-1]
+    else:
+        temperatures = np.empty(0)
     previous = -np.inf
     objective = -np.inf
     used_for_reseed: set[int] = set()
-    for iteration in range(config.max_iter):
+    for iteration in range(n_anneal + config.max_iter):
         params = derive_parameters(
             word_counts,
             doc_counts,
@@ -240,21 +254,31 @@ def _one_run(
             config.word_pseudocount,
             config.weight_pseudocount,
         )
-        resp, log_norm = normalise_log_rows(_log_joint(counts, params))
-        objective = float(log_norm.sum()) + log_prior(params, config)
-        report.objective_trace.append(objective)
-        report.n_iter = iteration + 1
+        log_joint = _log_joint(counts, params)
+        if iteration < n_anneal:
+            resp, _ = normalise_log_rows(log_joint * temperatures[iteration])
+            log_norm = None
+        else:
+            resp, log_norm = normalise_log_rows(log_joint)
+            objective = float(log_norm.sum()) + log_prior(params, config)
+            report.objective_trace.append(objective)
+            report.n_iter = iteration + 1 - n_anneal
         if progress is not None:
             progress()
-        if np.isfinite(previous) and abs(objective - previous) <= config.tolerance * abs(objective):
-            report.converged = True
-            break
-        previous = objective
+        if log_norm is not None:
+            if np.isfinite(previous) and abs(objective - previous) <= config.tolerance * abs(
+                objective
+            ):
+                report.converged = True
+                break
+            previous = objective
         word_counts, doc_counts = m_step(counts, resp, counts_t)
 
         empty = np.flatnonzero(doc_counts < _EMPTY_GROUP)
         if empty.size and len(report.reseeded) < 3 * k:
             # Re-seed each empty group with the document the model explains worst.
+            if log_norm is None:
+                _, log_norm = normalise_log_rows(log_joint)
             fit_per_token = log_norm / lengths
             order = np.argsort(fit_per_token)
             candidates = [int(d) for d in order if int(d) not in used_for_reseed]
@@ -264,7 +288,8 @@ def _one_run(
                 resp[doc, group] = 1.0
                 report.reseeded.append(int(group))
             word_counts, doc_counts = m_step(counts, resp, counts_t)
-            report.reseed_iterations.append(iteration + 1)
+            if iteration + 1 >= n_anneal:
+                report.reseed_iterations.append(len(report.objective_trace))
             previous = -np.inf
     return objective, word_counts, doc_counts, report
 
@@ -290,7 +315,8 @@ def fit_batch_em(
     active : ndarray of shape (V,) of bool, optional
         Words that count for smoothing (retired vocabulary ids are inactive).
     progress : callable (done, total), optional
-        Called after every iteration; total is n_restarts * max_iter (an upper bound).
+        Called after every iteration; total is n_restarts * (annealing_steps + max_iter),
+        an upper bound.
 
     Returns
     -------
@@ -314,7 +340,7 @@ def fit_batch_em(
         raise InputError(f"active mask has shape {active.shape}, expected ({matrix.shape[1]},)")
     used_t = used.T.tocsr()
     used_lengths = lengths[nonempty]
-    total = config.n_restarts * config.max_iter
+    total = config.n_restarts * (config.annealing_steps + config.max_iter)
     done = 0
 
     def tick() -> None:
