@@ -94,15 +94,18 @@ def derive_parameters(
     if active is None:
         active = np.ones(n_words, dtype=bool)
     n_active = int(np.count_nonzero(active))
+    all_active = n_active == n_words
     with np.errstate(divide="ignore"):
         log_weights = np.log(doc_counts + weight_pseudocount) - np.log(
             doc_counts.sum() + n_groups * weight_pseudocount
         )
-        totals = word_counts[active].sum(axis=0) if n_active < n_words else word_counts.sum(0)
+        totals = word_counts.sum(axis=0) if all_active else word_counts[active].sum(axis=0)
         log_norm = np.log(totals + n_active * word_pseudocount)
-        log_word_prob = np.log(word_counts + word_pseudocount)
+        # In place: this V x K logarithm is the one dense cost of an EM iteration.
+        log_word_prob = np.add(word_counts, word_pseudocount)
+        np.log(log_word_prob, out=log_word_prob)
     log_word_prob -= log_norm
-    if n_active < n_words:
+    if not all_active:
         log_word_prob[~active] = -np.inf
     return Parameters(log_weights=log_weights, log_word_prob=log_word_prob, active=active)
 
