@@ -22,7 +22,7 @@ from fastapi.responses import JSONResponse
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from mixture.errors import ConfigError, InputError
-from service.errors import PayloadTooLargeError
+from service.errors import InvalidFieldError, PayloadTooLargeError
 from service.runtime import (
     GroupNotFoundError,
     ModelNotReadyError,
@@ -142,7 +142,7 @@ def _validation_message(exc: RequestValidationError) -> tuple[str, str | None]:
             return f"request body is not valid JSON: {reason}", None
         if first_field is None and where:
             first_field = where
-        message = str(error.get("msg", "invalid"))
+        message = str(error.get("msg", "invalid")).removeprefix("Value error, ")
         parts.append(f"{where}: {message}" if where else message)
     return "; ".join(parts) or "invalid request", first_field
 
@@ -164,6 +164,9 @@ def install_error_handlers(app: FastAPI) -> None:
     async def too_large(_: Request, exc: PayloadTooLargeError) -> JSONResponse:
         return _json_problem(413, str(exc), exc.field)
 
+    async def invalid_field(_: Request, exc: InvalidFieldError) -> JSONResponse:
+        return _json_problem(422, str(exc), exc.field)
+
     async def unavailable(_: Request, exc: RedisUnavailableError) -> JSONResponse:
         response = _json_problem(503, str(exc))
         response.headers[DEGRADED_HEADER] = "redis-unreachable"
@@ -173,6 +176,7 @@ def install_error_handlers(app: FastAPI) -> None:
     app.add_exception_handler(RequestValidationError, validation)  # type: ignore[arg-type]
     app.add_exception_handler(PayloadTooLargeError, too_large)  # type: ignore[arg-type]
     app.add_exception_handler(RedisUnavailableError, unavailable)  # type: ignore[arg-type]
+    app.add_exception_handler(InvalidFieldError, invalid_field)  # type: ignore[arg-type]
     app.add_exception_handler(ConfigError, simple(422, with_field=True))
     app.add_exception_handler(OptionsError, simple(422, with_field=True))
     app.add_exception_handler(InputError, simple(422))

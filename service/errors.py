@@ -9,3 +9,11 @@ class PayloadTooLargeError(Exception):
     def __init__(self, detail: str, field: str | None = None) -> None:
         super().__init__(detail)
         self.field = field
+
+
+class InvalidFieldError(ValueError):
+    """A request field with a value the service refuses (answered with 422 naming it)."""
+
+    def __init__(self, detail: str, field: str) -> None:
+        super().__init__(detail)
+        self.field = field

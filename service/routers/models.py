@@ -7,6 +7,7 @@ from typing import Any
 from fastapi import APIRouter, Response, status
 
 from mixture.config import MixtureConfig
+from service.errors import InvalidFieldError
 from service.routers import COMMON_RESPONSES, Runtime
 from service.runtime import LoadedModel, RedisUnavailableError, ServiceRuntime
 from service.schemas import ModelIn, ModelList, ModelOut, Problem
@@ -71,7 +72,7 @@ def create_model(body: ModelIn, runtime: Runtime) -> dict[str, Any]:
     try:
         validate_model_name(body.name)
     except OptionsError as exc:
-        raise OptionsError(f"name {exc}") from None
+        raise InvalidFieldError(str(exc), "name") from None
     config = MixtureConfig.from_dict(body.config.to_config_dict())
     options = ModelOptions.from_dict(body.options)
     runtime.call(lambda: runtime.registry.create(body.name, config, options))
