@@ -344,7 +344,7 @@ def cluster_lda(corpus: LabelledCorpus, seed: int = 0) -> np.ndarray:
     lda = LatentDirichletAllocation(
         n_components=len(corpus.label_names),
         learning_method="batch",
-        max_iter=30,
+        max_iter=20,
         random_state=seed,
     )
     return lda.fit_transform(counts).argmax(axis=1)
