@@ -81,7 +81,17 @@ def _load_documents(path: str, strict: bool, max_text_bytes: int | None = None) 
 def _progress_bar(total: int, desc: str, unit: str) -> Any:
     from tqdm import tqdm
 
-    return tqdm(total=total, desc=desc, unit=unit, file=sys.stderr, leave=False, dynamic_ncols=True)
+    # disable=None: no bar when standard error is not a terminal (logs, CI, pipes)
+    return tqdm(
+        total=total,
+        desc=desc,
+        unit=unit,
+        file=sys.stderr,
+        leave=False,
+        dynamic_ncols=True,
+        disable=None,
+        mininterval=0.2,
+    )
 
 
 def _write_atomic(path: Path, data: bytes) -> None:
@@ -138,8 +148,7 @@ def cmd_fit(args: argparse.Namespace) -> int:
 
     def progress(done: int, total: int) -> None:
         bar.total = total
-        bar.n = done
-        bar.refresh()
+        bar.update(done - bar.n)
 
     try:
         state, report = fit_texts(batch.texts, config, seed=args.seed, progress=progress)
@@ -385,11 +394,16 @@ def cmd_models(args: argparse.Namespace) -> int:
                 f"{model['documents_learned']} documents learned\t{model['n_groups']} groups"
             )
     elif args.action == "create":
-        config: dict[str, Any] = json.loads(args.config) if args.config else {}
+        try:
+            config: dict[str, Any] = json.loads(args.config) if args.config else {}
+            if args.options:
+                json.loads(args.options)
+        except json.JSONDecodeError as exc:
+            raise CommandError(f"--config/--options is not valid JSON: {exc.msg}", 2) from None
         config["n_groups"] = args.groups
         body: dict[str, Any] = {"name": args.name, "config": config}
-        if args.review_threshold is not None:
-            body["review_threshold"] = args.review_threshold
+        if args.options:
+            body["options"] = json.loads(args.options)
         created = client.post("/models", json=body)
         print(f"created model {created['name']} with {created['n_groups']} groups")
     elif args.action == "delete":
@@ -640,7 +654,7 @@ def build_parser() -> argparse.ArgumentParser:
     mp.add_argument("name")
     mp.add_argument("--groups", "-k", type=int, required=True)
     mp.add_argument("--config", help="further MixtureConfig fields as a JSON object")
-    mp.add_argument("--review-threshold", dest="review_threshold", type=float)
+    mp.add_argument("--options", help="model options (checkpointing, retention...) as JSON")
     api_options(mp, model=False)
     mp = msub.add_parser("delete")
     mp.add_argument("name")

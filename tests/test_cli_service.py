@@ -1,0 +1,113 @@
+"""The service commands of the command line against a live API (uvicorn on loopback) and a
+worker on a real Redis: models create, feed, route, describe, snapshot, rollback, drift."""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterator
+from pathlib import Path
+
+import httpx
+import pytest
+
+from service.app import create_app
+from service.cli import main
+from service.demo_data import default_days, generate_day
+from service.runner import WorkerPool
+from service.settings import Settings
+from service.testing import QUICK_OPTIONS, learned, uvicorn_thread, wait_until
+
+pytestmark = pytest.mark.redis
+
+
+@pytest.fixture
+def live(redis_url: str, model_name: str) -> Iterator[str]:
+    settings = Settings(redis_url=redis_url, reload_poll_interval=0.05)
+    pool = lambda _runtime: WorkerPool(redis_url, 0.1, models=[model_name])  # noqa: E731
+    with uvicorn_thread(create_app(settings, background_factories=[pool])) as url:
+        yield url
+
+
+def write_jsonl(path: Path, records: list[dict]) -> Path:
+    path.write_text("".join(json.dumps(r) + "\n" for r in records))
+    return path
+
+
+def test_service_commands(live: str, model_name: str, tmp_path: Path, capsys) -> None:
+    api = ["--api", live]
+    config = json.dumps({"warmup_documents": 120, "n_restarts": 1, "batch_size": 60})
+    options = json.dumps(QUICK_OPTIONS)
+    create = ["models", "create", model_name, "--groups", "4", "--config", config]
+    assert main([*create, "--options", options, *api]) == 0
+    assert f"created model {model_name}" in capsys.readouterr().out
+
+    plans = default_days(0.2)
+    day1 = [m.to_json() for m in generate_day(plans[0], 6)]
+    feed_file = write_jsonl(tmp_path / "day1.jsonl", day1)
+    with feed_file.open("a") as handle:
+        handle.write("{broken\n")
+    assert main(["feed", str(feed_file), "--model", model_name, "--batch", "50", *api]) == 0
+    captured = capsys.readouterr()
+    assert f"queued {len(day1)} documents" in captured.out
+    assert f"line {len(day1) + 1}: not valid JSON" in captured.err
+    # feeding the same ids again queues nothing twice (idempotent client ids)
+    assert main(["feed", str(feed_file), "--model", model_name, *api]) == 0
+    assert (
+        f"queued 0 documents to {model_name} ({len(day1)} already seen" in capsys.readouterr().out
+    )
+
+    http = httpx.Client(base_url=live)
+    wait_until(lambda: learned(http, model_name, len(day1)), what="day 1", timeout=90)
+
+    probe = write_jsonl(tmp_path / "probe.jsonl", day1[:5])
+    assert main(["route", str(probe), "--model", model_name, "--top", "2", *api]) == 0
+    rows = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
+    assert [r["id"] for r in rows] == [r["id"] for r in day1[:5]]
+    assert all(len(r["posterior"]) == 2 and "version" in r for r in rows)
+
+    assert main(["describe", "--model", model_name, *api]) == 0
+    assert capsys.readouterr().out.count("group ") >= 4
+
+    assert main(["snapshot", "create", "--model", model_name, "--reason", "cli test", *api]) == 0
+    created = capsys.readouterr().out
+    snap_id = created.split()[1]
+    assert "cli test" in created
+    assert main(["snapshot", "list", "--model", model_name, *api]) == 0
+    assert snap_id in capsys.readouterr().out
+
+    assert main(["rollback", snap_id, "--model", model_name, *api]) == 0
+    assert f"restored snapshot {snap_id}" in capsys.readouterr().out
+    assert main(["rollback", snap_id, "--skip", "nonsense", "--model", model_name, *api]) == 2
+    assert "FIRST..LAST" in capsys.readouterr().err
+
+    png = tmp_path / "weights.png"
+    assert main(["drift", "--model", model_name, "--plot", str(png), *api]) == 0
+    out = capsys.readouterr().out
+    assert "version" in out and "divergence now" in out
+    # the plot is a real PNG image: read back by matplotlib's own reader
+    import matplotlib.image
+
+    image = matplotlib.image.imread(png)
+    assert image.ndim == 3 and image.shape[0] > 100
+
+    assert main(["models", "list", *api]) == 0
+    assert model_name in capsys.readouterr().out
+    http.close()
+
+
+def test_unreachable_api_and_unknown_model_are_one_line_errors(
+    live: str, tmp_path: Path, capsys
+) -> None:
+    docs = write_jsonl(tmp_path / "d.jsonl", [{"id": "1", "text": "ferry"}])
+    assert main(["feed", str(docs), "--model", "no-such-model", "--api", live]) == 1
+    err = capsys.readouterr().err
+    assert "404" in err and "no-such-model" in err and "Traceback" not in err
+    assert main(["feed", str(docs), "--api", "http://127.0.0.1:9"]) == 1
+    assert "cannot reach the mixroute API" in capsys.readouterr().err
+
+
+def test_work_without_redis_url_explains(monkeypatch, capsys) -> None:
+    monkeypatch.delenv("REDIS_URL", raising=False)
+    monkeypatch.delenv("MIXROUTE_REDIS_URL", raising=False)
+    assert main(["work"]) == 2
+    assert "needs a shared Redis" in capsys.readouterr().err
