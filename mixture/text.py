@@ -333,14 +333,22 @@ class Tokenizer:
         if placeholder is not None:
             return placeholder
         term = raw
-        ascii_only = raw.isascii()
+        if "'" in term or "\u2019" in term:
+            if term.endswith(("'s", "\u2019s")):
+                term = term[:-2]
+            term = term.replace("'", "").replace("\u2019", "")
+            if not term:
+                return None
+        ascii_only = term.isascii()
         if not ascii_only:
-            # NFKC can re-introduce upper case (Roman numerals) and punctuation (the fraction
-            # slash of "½", the full stops of "㏂"), hence the second fold and the filter.
-            # "İ" case-folds to "i" plus a combining dot; dropping the dot lets "İstanbul"
-            # meet "istanbul".
-            term = unicodedata.normalize("NFKC", term).casefold().replace("i\u0307", "i")
-            term = "".join(c for c in term if c.isalnum() or c in self._marks or c in "'\u2019.,:")
+            # NFKC, fold, NFKC again: folding can undo a composition and NFKC can bring back
+            # capitals (Roman numerals). "İ" folds to "i" plus a combining dot; dropping the
+            # dot lets "İstanbul" meet "istanbul".
+            normal = unicodedata.normalize("NFKC", term).casefold().replace("i\u0307", "i")
+            normal = unicodedata.normalize("NFKC", normal)
+            # NFKC can also produce punctuation (the fraction slash of "½", the full stops
+            # of "㏂"), and the class lets a few non-letters in beyond the BMP.
+            term = "".join(c for c in normal if c.isalnum() or c in self._marks or c in ".,:")
             if not any(c.isalnum() for c in term):
                 return None
         config = self.config
@@ -349,12 +357,12 @@ class Tokenizer:
                 return NUMBER_TOKEN
             term = term.strip(".,:")
             return term if config.min_length <= len(term) <= config.max_length else None
-        if "'" in term or "\u2019" in term:
-            if term.endswith(("'s", "\u2019s")):
-                term = term[:-2]
-            term = term.replace("'", "").replace("\u2019", "")
         if not ascii_only:
-            term = term.translate(_NUMBER_SEPARATORS)
+            stripped = term.translate(_NUMBER_SEPARATORS)
+            if stripped != normal:
+                # Removing characters may leave a base letter next to a mark: recompose.
+                stripped = unicodedata.normalize("NFKC", stripped)
+            term = stripped
         if not config.min_length <= len(term) <= config.max_length:
             return None
         if term in self._stop_words:
