@@ -76,13 +76,20 @@ def _overlapping_corpus(seed: int) -> sp.csr_matrix:
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2, 3, 4])
-def test_fit_objective_trace_never_decreases(seed: int) -> None:
-    # Source: Dempster, Laird and Rubin (1977), monotonicity of EM.
+@pytest.mark.parametrize("annealing_steps", [0, None])
+def test_fit_objective_trace_never_decreases(seed: int, annealing_steps: int | None) -> None:
+    # Source: Dempster, Laird and Rubin (1977), monotonicity of EM. The trace starts after
+    # deterministic annealing (tempered E-steps are not EM steps of the MAP objective), so
+    # plain EM from the seeds (annealing_steps=0) gives the long traces; the default shows
+    # the same holds for the EM iterations that follow annealing.
     counts = _overlapping_corpus(seed)
     config = MixtureConfig(n_groups=3, n_restarts=2, max_iter=60, tolerance=0.0)
+    if annealing_steps is not None:
+        config = config.replace(annealing_steps=annealing_steps)
     word_counts, doc_counts, report = fit_batch_em(counts, config, seed=seed)
     trace = np.asarray(report.objective_trace)
-    assert trace.size >= 10, "too few iterations to say anything about ascent"
+    minimum = 10 if annealing_steps == 0 else 2
+    assert trace.size >= minimum, "too few iterations to say anything about ascent"
     assert np.all(np.isfinite(trace))
     restarts_after = set(report.reseed_iterations)  # a re-seed may legitimately lower it
     for i in range(1, trace.size):
