@@ -3,23 +3,23 @@
 Tokenizer rules (deterministic; the same text always gives the same tokens):
 
 - The text is case-folded (``str.casefold``: "Straße" -> "strasse", "ΣΟΦΊΑ" -> "σοφία").
-- URLs (``scheme://...`` or ``www....``) become ``_url_`` and e-mail addresses become
-  ``_email_`` before splitting, when folding is enabled.
-- A token is a run of Unicode letters and digits (``\\w`` without the underscore). Combining
-  marks and the zero-width (non-)joiner continue a run, so Devanagari vowel signs or a decomposed
-  accent stay inside their word. A non-ASCII token is then brought to NFKC form (fullwidth
-  letters, ligatures and decomposed accents meet their usual spelling).
+- URLs (``scheme://...`` or ``www....``) become ``_url_`` and e-mail addresses
+  (``local@domain.tld``) become ``_email_`` before splitting, when folding is enabled.
+- A token is a run of Unicode letters and digits (``str.isalnum``; no underscore). Combining
+  marks and the zero-width (non-)joiner continue a run, so Devanagari or Thai vowel signs and
+  decomposed accents stay inside their word. A non-ASCII token is brought to NFKC form, so
+  fullwidth letters, ligatures and decomposed accents meet their usual spelling; "İ" meets "i".
 - Apostrophes (' and U+2019) between letters join: a final possessive "'s" is dropped and the
-  remaining apostrophes removed ("passenger's" -> "passenger", "don't" -> "dont"). Hyphens
-  split ("check-in" -> "check", "in"): writers spell compounds with a hyphen, a space or
-  neither, and splitting makes the first two agree.
-- A run of digits, optionally with inner ``.``, ``,`` or ``:`` ("12.50", "1,000", "10:30"),
-  is a number and becomes ``_num_``. Tokens mixing letters and digits ("3pm", "a320") are
-  ordinary words.
-- Tokens shorter than ``min_length`` or longer than ``max_length`` characters are dropped, as
-  are the built-in English stop words. Placeholders are exempt from both. The literal strings
-  ``_url_``, ``_email_`` and ``_num_`` in a text are read as the placeholder when that folding
-  is enabled.
+  remaining apostrophes removed ("passenger's" -> "passenger", "don't" -> "dont", then a stop
+  word). Hyphens split ("check-in" -> "check", "in"): writers spell compounds with a hyphen, a
+  space or neither, and splitting makes the first two agree. Every other character (symbols,
+  emoji, punctuation, the underscore) separates tokens.
+- A run of digits, optionally with inner ``.``, ``,`` or ``:`` between ASCII digits ("12.50",
+  "1,000", "10:30", "٤٢"), is a number and becomes ``_num_``. Tokens mixing letters and digits
+  ("3pm", "a320", "v1.2") are ordinary words.
+- Tokens shorter than ``min_length`` or longer than ``max_length`` characters are dropped (not
+  cut), as are the built-in English stop words. Placeholders are exempt from both. A text
+  cannot forge a placeholder: the literal string ``_url_`` in a message is the word "url".
 
 Vocabulary ids are issued in order of first arrival and never change except through an explicit
 :meth:`Vocabulary.compact`. A retired id is never issued again; if its word comes back later,
@@ -93,9 +93,9 @@ ENGLISH_STOP_WORDS: Final[frozenset[str]] = frozenset(_ENGLISH_STOP_TEXT.split()
 # the vocabulary (only in caches used with grow=False).
 _SKIP: Final = -1
 _UNKNOWN: Final = -2
-# A cache larger than this is dropped and rebuilt, so a stream of one-off tokens (hashes,
-# ticket numbers) cannot grow memory without bound.
-_CACHE_LIMIT: Final = 1 << 20
+# A lookup cache larger than this (or than twice the vocabulary) is dropped and refilled, so a
+# stream of one-off tokens (hashes, ticket numbers, typos) cannot grow memory without bound.
+_CACHE_LIMIT: Final = 1 << 18
 
 _STOP_LISTS: Final[dict[str, frozenset[str]]] = {
     "english": ENGLISH_STOP_WORDS,
@@ -390,7 +390,7 @@ class Tokenizer:
         if not isinstance(text, str):
             raise InputError(f"text must be a str, got {type(text).__name__}")
         terms = self._terms
-        if len(terms) > _CACHE_LIMIT:
+        if len(terms) > 4 * _CACHE_LIMIT:
             terms.clear()
         return [t for t in map(terms.__getitem__, self._raw_tokens(text)) if t is not None]
 
@@ -462,6 +462,7 @@ class Vocabulary:
         self._n_active = 0
         self._generation = 0
         self._caches: dict[tuple[TokenizerConfig, bool], _IdCache] = {}
+        self._mask: np.ndarray | None = None  # read-only snapshot handed out by active_mask()
         for word in words:
             self.add(word)
 
@@ -532,6 +533,7 @@ class Vocabulary:
             self._active = grown
         self._active[word_id] = True
         self._n_active += 1
+        self._mask = None
         # Caches that answered "unknown" for this word must ask again.
         for (_, grow), cache in self._caches.items():
             if not grow:
@@ -557,8 +559,17 @@ class Vocabulary:
         return list(self._words)
 
     def active_mask(self) -> np.ndarray:
-        """Return a ``(capacity,)`` bool array, True where the id is in use (a copy)."""
-        return self._active[: len(self._words)].copy()
+        """Return a ``(capacity,)`` bool array, True where the id is in use.
+
+        The array is read-only and shared between calls until the vocabulary next changes
+        (then a new one is made), so calling this per batch costs O(1), and an array kept by
+        a caller never changes under it.
+        """
+        if self._mask is None:
+            mask = self._active[: len(self._words)].copy()
+            mask.flags.writeable = False
+            self._mask = mask
+        return self._mask
 
     def active_ids(self) -> np.ndarray:
         """Return the ids in use, ascending, as int64."""
@@ -597,6 +608,7 @@ class Vocabulary:
             return
         self._active[ids] = False
         self._n_active -= int(ids.size)
+        self._mask = None
         words = self._words
         for word_id in ids.tolist():
             word = words[word_id]
@@ -624,6 +636,7 @@ class Vocabulary:
         self._active = np.ones(len(self._words), dtype=bool)
         self._n_active = len(self._words)
         self._generation += 1
+        self._mask = None
         for cache in self._caches.values():
             cache.reset()
         return old_to_new
@@ -645,7 +658,7 @@ class Vocabulary:
         return {
             "word_bytes": np.frombuffer(b"".join(encoded), dtype=np.uint8).copy(),
             "word_offsets": offsets,
-            "active": self.active_mask(),
+            "active": self.active_mask().copy(),
             "generation": np.array(self._generation, dtype=np.int64),
         }
 
@@ -724,7 +737,7 @@ class Vocabulary:
         cache = self._caches.get(key)
         if cache is None:
             cache = self._caches[key] = _IdCache(self, tokenizer._resolve, grow)
-        elif len(cache) > _CACHE_LIMIT:
+        elif len(cache) > max(_CACHE_LIMIT, 2 * len(self._words)):
             cache.reset()
         return cache
 

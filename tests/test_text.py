@@ -515,3 +515,17 @@ def test_counts_match_token_tallies(texts: list[str], min_length: int) -> None:
     fresh = count_texts(texts, tokenizer, Vocabulary(), grow=False)
     assert fresh.known_tokens.sum() == 0
     assert fresh.unknown_tokens.tolist() == batch.known_tokens.tolist()
+
+
+def test_active_mask_is_a_stable_read_only_snapshot() -> None:
+    vocabulary = Vocabulary(["ferry", "dog", "harbour"])
+    mask = vocabulary.active_mask()
+    assert vocabulary.active_mask() is mask  # shared until the vocabulary changes
+    with pytest.raises(ValueError):
+        mask[0] = False
+    vocabulary.retire([0])
+    assert mask.tolist() == [True, True, True]  # a kept snapshot does not change under you
+    assert vocabulary.active_mask().tolist() == [False, True, True]
+    vocabulary.add("storm")
+    assert vocabulary.active_mask().shape == (4,)
+    assert vocabulary.to_arrays()["active"].flags.writeable
