@@ -8,6 +8,17 @@ routing keeps answering from the parameters in memory and says so, while every c
 reach Redis (queueing, snapshots, labels, ...) fails fast with :class:`RedisUnavailableError`, which
 the app turns into a 503.
 
+When routing answers ``review: true``
+------------------------------------
+``review_reasons`` lists every rule that fired:
+
+* ``low_posterior``: the MAP posterior is under the model's threshold (0.6 by default);
+* ``no_known_words``: no token of the document is in the vocabulary; the posterior is the prior;
+* ``mostly_unknown_words``: more than ``review_unknown_share`` (half) of its tokens are unknown,
+  so the answer rests on a few words (typical of spam and of a new topic);
+* ``atypical``: the document is far less typical of its group than the group's recent
+  documents, by the rule below.
+
 The "far less typical" review rule
 ----------------------------------
 Each group keeps an exponentially weighted mean m_k and variance s_k^2 of the log-likelihood per
@@ -155,6 +166,7 @@ class LoadedModel:
     labels: dict[int, dict[str, Any]]
     typicality: Typicality
     review_threshold: float
+    review_unknown_share: float = 0.5
     loaded_at: float = field(default_factory=time.time)
 
     @property
@@ -292,6 +304,7 @@ class ServiceRuntime:
             review_threshold=float(
                 threshold if threshold is not None else self.settings.review_posterior_threshold
             ),
+            review_unknown_share=self.settings.review_unknown_share,
         )
 
     def reload(self, name: str) -> LoadedModel:

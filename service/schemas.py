@@ -100,7 +100,9 @@ class RouteResult(BaseModel):
     known_tokens: int
     unknown_tokens: int
     review: bool = Field(description="A person should look at this routing decision.")
-    review_reasons: list[Literal["low_posterior", "no_known_words", "atypical"]]
+    review_reasons: list[
+        Literal["low_posterior", "no_known_words", "mostly_unknown_words", "atypical"]
+    ]
     stream_id: str | None = Field(
         default=None, description="Stream id when the document was queued for learning."
     )

@@ -53,6 +53,13 @@ class Settings(BaseSettings):
         description="review=true when log-likelihood per token is more than this many standard "
         "deviations below the group's recent mean.",
     )
+    review_unknown_share: float = Field(
+        default=0.5,
+        gt=0.0,
+        le=1.0,
+        description="review=true when more than this share of a document's tokens are words "
+        "the model has never seen.",
+    )
     typicality_half_life: float = Field(
         default=500.0,
         ge=1.0,

@@ -45,6 +45,7 @@ def build_results(
     no_evidence = routing.no_evidence.tolist()
     flagged = atypical.tolist()
     threshold = loaded.review_threshold
+    unknown_share = getattr(loaded, "review_unknown_share", 0.5)
     labels = loaded.labels
     results = []
     for i, doc in enumerate(documents):
@@ -55,6 +56,8 @@ def build_results(
             reasons.append("low_posterior")
         if no_evidence[i]:
             reasons.append("no_known_words")
+        elif unknown[i] > unknown_share * (known[i] + unknown[i]):
+            reasons.append("mostly_unknown_words")
         if flagged[i]:
             reasons.append("atypical")
         label = labels.get(g)
