@@ -284,4 +284,21 @@ def create_app(
     for cls, options in middleware:
         app.add_middleware(cls, **options)
     app.add_middleware(BodyGuard, max_bytes=settings.max_request_bytes)
+    install_operations(app, settings)
     return app
+
+
+def install_operations(app: FastAPI, settings: Settings) -> None:
+    """Metrics, the dashboard, access control and request ids (issue 5's modules).
+
+    Added last so that, outermost first, a request meets: request id and access line
+    (service.logs), the key check (service.auth, before any body is read), the routing meter
+    (service.metrics), then the body guard and the routes.
+    """
+    from service import auth, logs, metrics
+    from service.routers import dashboard
+
+    metrics.install(app, settings)
+    dashboard.install(app, settings)
+    auth.install(app, settings)
+    app.add_middleware(logs.RequestContext)

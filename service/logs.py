@@ -1,0 +1,257 @@
+"""Structured logs: one JSON object a line, and a request id that follows each request.
+
+Every log record becomes one line of JSON on standard error with ``time`` (UTC, ISO 8601),
+``level``, ``logger``, ``message`` and, where known, ``request_id``, ``model``, ``version`` and
+``worker``. Those four come from the record's ``extra`` (``log.info("...", extra={"model": m})``)
+or, inside an HTTP request, from the request context that :class:`RequestContext` sets.
+
+The request id: a client may send ``X-Request-ID`` (at most 128 characters of letters, digits
+and ``._:-``); otherwise one is generated. It is echoed in the response header, written on the
+request's access line, and :func:`request_metadata` gives the ``metadata`` objects that carry it
+into the stream entries a request queues (``{"request_id": ...}``), so a document can be traced
+from the intake system's call to the worker that learned it.
+
+Keys never reach a log line: the access line holds method, path (without the query string),
+status, duration and ids only, and :class:`SecretRedactor` replaces any configured API key that
+somehow appears in a message (common practice, no source: defence in depth).
+"""
+
+from __future__ import annotations
+
+import contextvars
+import json
+import logging
+import re
+import sys
+import time
+import uuid
+from collections.abc import Iterable, Mapping
+from datetime import UTC, datetime
+from typing import IO, Any
+
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+REQUEST_ID_HEADER = "X-Request-ID"
+_REQUEST_ID_OK = re.compile(r"^[A-Za-z0-9._:-]{1,128}$")
+_MODEL_IN_PATH = re.compile(r"^/models/([A-Za-z0-9][A-Za-z0-9_.-]{0,63})(?:/|$)")
+
+request_id_var: contextvars.ContextVar[str | None] = contextvars.ContextVar(
+    "mixroute_request_id", default=None
+)
+model_var: contextvars.ContextVar[str | None] = contextvars.ContextVar(
+    "mixroute_model", default=None
+)
+
+# Attributes every LogRecord has; anything else on a record came from ``extra``.
+_STANDARD_ATTRS = frozenset(
+    vars(logging.LogRecord("", logging.INFO, "", 0, "", None, None)).keys()
+    | {"message", "asctime", "taskName"}
+)
+CONTEXT_FIELDS = ("request_id", "model", "version", "worker")
+
+access_log = logging.getLogger("mixroute.access")
+
+
+def current_request_id() -> str | None:
+    """The id of the HTTP request being handled in this context, or None."""
+    return request_id_var.get()
+
+
+def request_metadata(n: int) -> list[dict[str, Any]] | None:
+    """Stream metadata for ``n`` documents queued by the current request.
+
+    Parameters
+    ----------
+    n : int
+        Number of documents.
+
+    Returns
+    -------
+    list of dict or None
+        ``[{"request_id": id}] * n`` inside a request, None outside one (no metadata then).
+    """
+    request_id = request_id_var.get()
+    if request_id is None:
+        return None
+    return [{"request_id": request_id} for _ in range(n)]
+
+
+def valid_request_id(value: str | None) -> str:
+    """The client's request id when acceptable, else a new random one (32 hex digits)."""
+    if value and _REQUEST_ID_OK.match(value):
+        return value
+    return uuid.uuid4().hex
+
+
+class JsonFormatter(logging.Formatter):
+    """Format a record as one line of JSON (see the module docstring for the fields)."""
+
+    def format(self, record: logging.LogRecord) -> str:
+        data: dict[str, Any] = {
+            "time": datetime.fromtimestamp(record.created, UTC).isoformat(timespec="milliseconds"),
+            "level": record.levelname.lower(),
+            "logger": record.name,
+            "message": record.getMessage(),
+        }
+        context = {"request_id": request_id_var.get(), "model": model_var.get()}
+        for name in CONTEXT_FIELDS:
+            value = getattr(record, name, None)
+            if value is None:
+                value = context.get(name)
+            if value is not None:
+                data[name] = value
+        for name, value in vars(record).items():
+            if name not in _STANDARD_ATTRS and name not in data and not name.startswith("_"):
+                data[name] = _jsonable(value)
+        if record.exc_info:
+            data["exception"] = self.formatException(record.exc_info)
+        if record.stack_info:
+            data["stack"] = self.formatStack(record.stack_info)
+        return json.dumps(data, ensure_ascii=False, default=str)
+
+
+def _jsonable(value: Any) -> Any:
+    if value is None or isinstance(value, str | int | float | bool):
+        return value
+    if isinstance(value, Mapping):
+        return {str(k): _jsonable(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_jsonable(v) for v in value]
+    return str(value)
+
+
+class SecretRedactor(logging.Filter):
+    """Replace every configured secret in a record's message and arguments by ``[redacted]``.
+
+    Parameters
+    ----------
+    secrets : iterable of str
+        The API keys. Empty strings are ignored.
+    """
+
+    def __init__(self, secrets: Iterable[str]) -> None:
+        super().__init__()
+        self.secrets = sorted({s for s in secrets if s}, key=len, reverse=True)
+
+    def _clean(self, text: str) -> str:
+        for secret in self.secrets:
+            if secret in text:
+                text = text.replace(secret, "[redacted]")
+        return text
+
+    def filter(self, record: logging.LogRecord) -> bool:
+        if not self.secrets:
+            return True
+        message = record.getMessage()
+        cleaned = self._clean(message)
+        if cleaned != message:
+            record.msg, record.args = cleaned, None
+        return True
+
+
+def configure_logging(
+    level: str = "info",
+    fmt: str = "json",
+    secrets: Iterable[str] = (),
+    stream: IO[str] | None = None,
+) -> logging.Handler:
+    """Send every log record of the process to ``stream`` as JSON lines (or plain text).
+
+    Replaces the root logger's console handlers (those writing to standard output or error)
+    and leaves any other handler alone (a test's log capture, a file handler). Uvicorn's own
+    loggers are made to propagate to the root, so their lines come out in the same format.
+
+    Parameters
+    ----------
+    level : str
+        Level name (``info``, ``debug``, ...).
+    fmt : {"json", "text"}
+    secrets : iterable of str
+        Strings never to print (the API keys).
+    stream : file, optional
+        Default standard error.
+
+    Returns
+    -------
+    logging.Handler
+        The handler installed.
+    """
+    root = logging.getLogger()
+    for handler in list(root.handlers):
+        if isinstance(handler, logging.StreamHandler) and getattr(handler, "stream", None) in (
+            sys.stderr,
+            sys.stdout,
+        ):
+            root.removeHandler(handler)
+    handler = logging.StreamHandler(stream or sys.stderr)
+    if fmt == "json":
+        handler.setFormatter(JsonFormatter())
+    else:
+        handler.setFormatter(logging.Formatter("%(asctime)s %(levelname)s %(name)s: %(message)s"))
+    handler.addFilter(SecretRedactor(secrets))
+    root.addHandler(handler)
+    root.setLevel(level.upper())
+    for name in ("uvicorn", "uvicorn.error", "uvicorn.access"):
+        logger = logging.getLogger(name)
+        logger.handlers.clear()
+        logger.propagate = True
+    # our access line replaces uvicorn's (which would print the query string)
+    logging.getLogger("uvicorn.access").setLevel(logging.WARNING)
+    return handler
+
+
+class RequestContext:
+    """Pure ASGI middleware: request id in and out, request context, one access line each.
+
+    Parameters
+    ----------
+    app : ASGI app
+    """
+
+    def __init__(self, app: ASGIApp) -> None:
+        self.app = app
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        given = None
+        for name, value in scope.get("headers", ()):
+            if name == b"x-request-id":
+                given = value.decode("latin-1")
+                break
+        request_id = valid_request_id(given)
+        path: str = scope.get("path", "")
+        match = _MODEL_IN_PATH.match(path)
+        model = match.group(1) if match else None
+        id_token = request_id_var.set(request_id)
+        model_token = model_var.set(model)
+        started = time.perf_counter()
+        status = 500
+        header = (REQUEST_ID_HEADER.lower().encode(), request_id.encode())
+
+        async def send_with_id(message: Message) -> None:
+            nonlocal status
+            if message["type"] == "http.response.start":
+                status = int(message["status"])
+                message["headers"] = [*message.get("headers", []), header]
+            await send(message)
+
+        try:
+            await self.app(scope, receive, send_with_id)
+        finally:
+            access_log.info(
+                "%s %s %d",
+                scope.get("method", ""),
+                path,
+                status,
+                extra={
+                    "event": "request",
+                    "method": scope.get("method", ""),
+                    "path": path,
+                    "status": status,
+                    "duration_ms": round((time.perf_counter() - started) * 1000.0, 3),
+                },
+            )
+            request_id_var.reset(id_token)
+            model_var.reset(model_token)

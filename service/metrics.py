@@ -1,0 +1,444 @@
+"""Prometheus metrics at ``/metrics`` (text format), one registry per app.
+
+Two kinds of figures:
+
+* counted by this API process as it answers (``mixroute_route_requests_total``, the latency
+  histogram, documents routed, queued, and review flags by reason), taken from the very
+  answers the clients get, so they match what the API said;
+* read at scrape time from the sources the API answers from: the in-memory model
+  (version, documents learned, group weights: what ``GET /models/{model}`` says) and Redis
+  through ``state/`` (stream length, pending and lag, last checkpoint time and age, drift
+  divergence as ``GET /models/{model}/drift`` computes it, alerts raised, worker heartbeat).
+
+The review-flag counting also keeps the most recent flagged documents of each model in memory
+(:class:`FlaggedDocuments`, ``flagged_documents_kept`` per model, text cut to 200 characters)
+for the dashboard; they are lost when the process restarts.
+"""
+
+from __future__ import annotations
+
+import collections
+import contextlib
+import json
+import logging
+import re
+import threading
+import time
+from collections.abc import Iterator
+from typing import Any
+
+from fastapi import APIRouter, FastAPI, Request
+from fastapi.responses import Response
+from prometheus_client import CollectorRegistry, Counter, Histogram
+from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
+from prometheus_client.exposition import CONTENT_TYPE_LATEST, generate_latest
+from prometheus_client.registry import Collector
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+from service.settings import Settings
+
+log = logging.getLogger(__name__)
+
+_ROUTE_PATH = re.compile(r"^/models/([A-Za-z0-9][A-Za-z0-9_.-]{0,63})/(route|documents)$")
+SNIPPET_CHARACTERS = 200
+# Routing latency buckets, seconds: single documents take well under a millisecond of model
+# time, batches of thousands take tens of milliseconds (common practice, no source).
+LATENCY_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0)
+
+
+class FlaggedDocuments:
+    """The most recent documents flagged for review, per model, in this process's memory.
+
+    Parameters
+    ----------
+    keep : int
+        Documents kept per model (0 keeps none).
+    """
+
+    def __init__(self, keep: int) -> None:
+        self.keep = keep
+        self._by_model: dict[str, collections.deque[dict[str, Any]]] = {}
+        self._lock = threading.Lock()
+
+    def add(self, model: str, records: list[dict[str, Any]]) -> None:
+        if self.keep <= 0 or not records:
+            return
+        with self._lock:
+            queue = self._by_model.setdefault(model, collections.deque(maxlen=self.keep))
+            queue.extend(records)
+
+    def recent(self, model: str, count: int | None = None) -> list[dict[str, Any]]:
+        """Newest first."""
+        with self._lock:
+            items = list(self._by_model.get(model, ()))
+        items.reverse()
+        return items if count is None else items[:count]
+
+    def forget(self, model: str) -> None:
+        with self._lock:
+            self._by_model.pop(model, None)
+
+
+class ServiceMetrics:
+    """The counters this process keeps, registered in its own registry."""
+
+    def __init__(self, registry: CollectorRegistry) -> None:
+        self.route_requests = Counter(
+            "mixroute_route_requests",
+            "Routing requests answered, by model and HTTP status.",
+            ["model", "status"],
+            registry=registry,
+        )
+        self.route_latency = Histogram(
+            "mixroute_route_latency_seconds",
+            "Time to answer a routing request (whole request, in this process).",
+            ["model"],
+            buckets=LATENCY_BUCKETS,
+            registry=registry,
+        )
+        self.documents_routed = Counter(
+            "mixroute_documents_routed",
+            "Documents routed (answered with a group).",
+            ["model"],
+            registry=registry,
+        )
+        self.documents_queued = Counter(
+            "mixroute_documents_queued",
+            "Documents this process added to a model's stream (duplicates not counted).",
+            ["model"],
+            registry=registry,
+        )
+        self.review_flags = Counter(
+            "mixroute_review_flags",
+            "Routed documents answered with review=true, by reason (one document may have "
+            "several reasons; reason=any counts each flagged document once).",
+            ["model", "reason"],
+            registry=registry,
+        )
+
+
+def _known_model(app: Any, model: str) -> bool:
+    runtime = getattr(app.state, "runtime", None)
+    return runtime is not None and model in runtime.models
+
+
+class RoutingMeter:
+    """Pure ASGI middleware: counts routing and queueing answers from their own bodies.
+
+    Only ``POST /models/{model}/route`` and ``POST /models/{model}/documents`` are looked at;
+    every other request passes straight through. A model label is only used for models this
+    process has loaded (a typo in a URL must not create a new time series).
+    """
+
+    def __init__(
+        self, app: ASGIApp, metrics: ServiceMetrics, flagged: FlaggedDocuments, owner: Any
+    ) -> None:
+        self.app = app
+        self.metrics = metrics
+        self.flagged = flagged
+        self.owner = owner
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        match = _ROUTE_PATH.match(scope.get("path", "")) if scope["type"] == "http" else None
+        if match is None or scope["method"] != "POST":
+            await self.app(scope, receive, send)
+            return
+        model, kind = match.group(1), match.group(2)
+        request_chunks: list[bytes] = []
+        response_chunks: list[bytes] = []
+        status = 500
+
+        async def receive_copy() -> Message:
+            message = await receive()
+            if message["type"] == "http.request" and kind == "route":
+                request_chunks.append(message.get("body", b""))
+            return message
+
+        async def send_copy(message: Message) -> None:
+            nonlocal status
+            if message["type"] == "http.response.start":
+                status = int(message["status"])
+            elif message["type"] == "http.response.body":
+                response_chunks.append(message.get("body", b""))
+            await send(message)
+
+        started = time.perf_counter()
+        try:
+            await self.app(scope, receive_copy, send_copy)
+        finally:
+            elapsed = time.perf_counter() - started
+            try:
+                self._count(model, kind, status, elapsed, request_chunks, response_chunks)
+            except Exception:  # a metric must never break an answer
+                log.exception("counting a %s answer failed", kind)
+
+    def _count(
+        self,
+        model: str,
+        kind: str,
+        status: int,
+        elapsed: float,
+        request_chunks: list[bytes],
+        response_chunks: list[bytes],
+    ) -> None:
+        if not _known_model(self.owner, model):
+            model = "_unknown"
+        body = b"".join(response_chunks)
+        if kind == "documents":
+            if status == 202:
+                self.metrics.documents_queued.labels(model).inc(json.loads(body)["queued"])
+            return
+        self.metrics.route_requests.labels(model, str(status)).inc()
+        self.metrics.route_latency.labels(model).observe(elapsed)
+        if status != 200:
+            return
+        # compact JSON (Starlette's JSONResponse): one '"review":' per document answered
+        n_documents = body.count(b'"review":')
+        self.metrics.documents_routed.labels(model).inc(n_documents)
+        flagged = b'"review":true' in body
+        queued = b'"queued":true' in body
+        if not flagged and not queued:
+            return
+        answer = json.loads(body)
+        results = answer["results"]
+        if queued:
+            self.metrics.documents_queued.labels(model).inc(
+                sum(1 for r in results if r.get("stream_id") is not None)
+            )
+        if not flagged:
+            return
+        texts = _request_texts(b"".join(request_chunks))
+        records = []
+        now = time.time()
+        for i, result in enumerate(results):
+            if not result.get("review"):
+                continue
+            self.metrics.review_flags.labels(model, "any").inc()
+            for reason in result.get("review_reasons", ()):
+                self.metrics.review_flags.labels(model, str(reason)).inc()
+            posterior = result.get("posterior") or []
+            best = max((p["probability"] for p in posterior), default=None)
+            text = texts[i] if i < len(texts) else ""
+            records.append(
+                {
+                    "time": now,
+                    "id": result.get("id"),
+                    "group": result.get("group"),
+                    "label": result.get("label"),
+                    "reasons": list(result.get("review_reasons", ())),
+                    "probability": best,
+                    "version": answer.get("version"),
+                    "text": text[:SNIPPET_CHARACTERS],
+                    "truncated": len(text) > SNIPPET_CHARACTERS,
+                }
+            )
+        if model != "_unknown":
+            self.flagged.add(model, records)
+
+
+def _request_texts(body: bytes) -> list[str]:
+    try:
+        data = json.loads(body)
+    except ValueError:
+        return []
+    if not isinstance(data, dict):
+        return []
+    if isinstance(data.get("documents"), list):
+        return [str(d.get("text", "")) if isinstance(d, dict) else "" for d in data["documents"]]
+    return [str(data.get("text", ""))]
+
+
+class ModelCollector(Collector):
+    """Gauges read at scrape time from the app's runtime (memory first, then Redis)."""
+
+    def __init__(self, app: Any) -> None:
+        self.app = app
+
+    def collect(self) -> Iterator[Metric]:
+        runtime = getattr(self.app.state, "runtime", None)
+        if runtime is None:
+            return
+        from service.runtime import REDIS_DOWN_ERRORS
+
+        version = GaugeMetricFamily(
+            "mixroute_model_version", "Checkpoint version this process serves.", labels=["model"]
+        )
+        learned = GaugeMetricFamily(
+            "mixroute_documents_learned",
+            "Documents learned by the state this process serves (falls after a rollback).",
+            labels=["model"],
+        )
+        weight = GaugeMetricFamily(
+            "mixroute_group_weight", "Mixture weight of each group.", labels=["model", "group"]
+        )
+        length = GaugeMetricFamily(
+            "mixroute_stream_length_entries", "Entries in the model's stream.", labels=["model"]
+        )
+        pending = GaugeMetricFamily(
+            "mixroute_stream_pending_entries",
+            "Stream entries delivered to a worker and not yet checkpointed.",
+            labels=["model"],
+        )
+        lag = GaugeMetricFamily(
+            "mixroute_stream_lag_entries",
+            "Stream entries not yet delivered to any worker (consumer-group lag; only where "
+            "Redis reports it, version 7 and later).",
+            labels=["model"],
+        )
+        lag_age = GaugeMetricFamily(
+            "mixroute_stream_lag_seconds",
+            "Age of the oldest stream entry not yet learned (after the watermark); 0 when "
+            "the model has caught up with its stream.",
+            labels=["model"],
+        )
+        checkpoint_time = GaugeMetricFamily(
+            "mixroute_last_checkpoint_timestamp_seconds",
+            "Unix time of the newest checkpoint (its drift-history row).",
+            labels=["model"],
+        )
+        checkpoint_age = GaugeMetricFamily(
+            "mixroute_checkpoint_age_seconds",
+            "Seconds since the newest checkpoint at scrape time.",
+            labels=["model"],
+        )
+        divergence = GaugeMetricFamily(
+            "mixroute_drift_divergence",
+            "Jensen-Shannon divergence (base 2) of the weights now against the drift window "
+            "(as GET /models/{model}/drift answers).",
+            labels=["model"],
+        )
+        threshold = GaugeMetricFamily(
+            "mixroute_drift_threshold",
+            "Divergence above which an alert is raised.",
+            labels=["model"],
+        )
+        alerts = CounterMetricFamily(
+            "mixroute_drift_alerts",
+            "Drift alerts raised by checkpoints (entries of the model's alerts stream).",
+            labels=["model"],
+        )
+        heartbeat = GaugeMetricFamily(
+            "mixroute_worker_heartbeat_age_seconds",
+            "Seconds since the learning worker last reported.",
+            labels=["model"],
+        )
+        redis_up = GaugeMetricFamily(
+            "mixroute_redis_up", "1 when Redis answered this scrape, else 0 (degraded)."
+        )
+        reachable = True
+        now = time.time()
+        for name, loaded in sorted(runtime.models.items()):
+            version.add_metric([name], loaded.version)
+            state = loaded.state
+            learned.add_metric([name], state.documents_learned if state is not None else 0)
+            k = loaded.n_groups
+            weights = state.weights().tolist() if state is not None else [1.0 / k] * k
+            for group, value in enumerate(weights):
+                weight.add_metric([name, str(group)], value)
+            if not reachable:
+                continue
+            try:
+                self._from_redis(
+                    runtime, name, loaded, now,
+                    length, pending, lag, lag_age, checkpoint_time, checkpoint_age,
+                    divergence, threshold, alerts, heartbeat,
+                )  # fmt: skip
+            except REDIS_DOWN_ERRORS:
+                reachable = False
+        if reachable and not runtime.models:
+            try:
+                runtime.redis.ping()
+            except REDIS_DOWN_ERRORS:
+                reachable = False
+        redis_up.add_metric([], 1.0 if reachable else 0.0)
+        yield from (version, learned, weight, length, pending, lag, lag_age, checkpoint_time)
+        yield from (checkpoint_age, divergence, threshold, alerts, heartbeat, redis_up)
+
+    @staticmethod
+    def _from_redis(runtime: Any, name: str, loaded: Any, now: float, *families: Any) -> None:
+        from state.errors import StateError
+
+        (length, pending, lag, lag_age, checkpoint_time, checkpoint_age) = families[:6]
+        (divergence, threshold, alerts, heartbeat) = families[6:]
+        store = loaded.store
+        info = store.stream_info()
+        length.add_metric([name], info["length"])
+        pending.add_metric([name], info["pending"])
+        group_lag = info.get("lag")
+        if group_lag is None:  # state/ does not report it yet: Redis 7's XINFO GROUPS does
+            group_lag = _consumer_group_lag(runtime.redis, store.keys.docs)
+        if group_lag is not None:
+            lag.add_metric([name], group_lag)
+        lag_age.add_metric([name], _unlearned_age(runtime.redis, store.keys.docs, info, now))
+        rows = store.history(limit=1)
+        if rows:
+            checkpoint_time.add_metric([name], rows[-1].time)
+            checkpoint_age.add_metric([name], max(0.0, now - rows[-1].time))
+        threshold.add_metric([name], store.options.drift_threshold)
+        with contextlib.suppress(StateError):  # no checkpoint yet: no divergence to report
+            divergence.add_metric([name], store.drift().js_divergence)
+        alerts.add_metric([name], runtime.redis.xlen(store.keys.alerts))
+        status = store.worker_status()
+        if status is not None:
+            heartbeat.add_metric([name], max(0.0, now - status.time))
+
+
+def _unlearned_age(client: Any, stream_key: str, info: dict[str, Any], now: float) -> float:
+    """Seconds since the first entry after the watermark was added (stream ids start with
+    their time in milliseconds); 0 when nothing is left to learn."""
+    from state.stream import parse_stream_id
+
+    last, watermark = info.get("last_id"), info.get("watermark") or "0-0"
+    if last is None or parse_stream_id(last) <= parse_stream_id(watermark):
+        return 0.0
+    entries = client.xrange(stream_key, min=f"({watermark}", count=1)
+    if not entries:
+        return 0.0
+    first_ms = parse_stream_id(entries[0][0])[0]
+    return max(0.0, now - first_ms / 1000.0)
+
+
+def _consumer_group_lag(client: Any, stream_key: str) -> int | None:
+    import redis
+
+    from state.keys import CONSUMER_GROUP
+
+    try:
+        groups = client.xinfo_groups(stream_key)
+    except redis.ResponseError:
+        return None
+    for group in groups:
+        name = group.get("name")
+        if name in (CONSUMER_GROUP, CONSUMER_GROUP.encode()):
+            value = group.get("lag")
+            return None if value is None else int(value)
+    return None
+
+
+router = APIRouter(tags=["metrics"])
+
+
+@router.get(
+    "/metrics",
+    summary="Prometheus metrics (text format)",
+    response_class=Response,
+    responses={200: {"content": {CONTENT_TYPE_LATEST: {}}, "description": "Metrics"}},
+)
+def metrics(request: Request) -> Response:
+    """Every metric of this process in the Prometheus text exposition format."""
+    registry: CollectorRegistry = request.app.state.metrics_registry
+    return Response(generate_latest(registry), media_type=CONTENT_TYPE_LATEST)
+
+
+def install(app: FastAPI, settings: Settings) -> ServiceMetrics:
+    """Give the app its own registry, the ``/metrics`` route and the counting middleware."""
+    registry = CollectorRegistry(auto_describe=True)
+    service_metrics = ServiceMetrics(registry)
+    registry.register(ModelCollector(app))
+    flagged = FlaggedDocuments(settings.flagged_documents_kept)
+    app.state.metrics_registry = registry
+    app.state.metrics = service_metrics
+    app.state.flagged = flagged
+    app.include_router(router)
+    app.add_middleware(RoutingMeter, metrics=service_metrics, flagged=flagged, owner=app)
+    return service_metrics

@@ -1,0 +1,67 @@
+"""The operators' dashboard: one page, its static files, and the flagged-documents resource.
+
+The page (``GET /dashboard``) and its files under ``/dashboard/static/`` are plain HTML, CSS,
+SVG and one small script from ``service/static/``: no CDN, nothing fetched from elsewhere, so it
+works offline. The script reads the same JSON API everything else uses (models, drift history
+and alerts, groups, snapshots, restore) with the key the operator typed in (kept in the tab's
+session storage only).
+
+``GET /models/{model}/flagged`` lists the most recent documents this process answered with
+``review: true`` (see :class:`service.metrics.FlaggedDocuments`).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated, Any
+
+from fastapi import APIRouter, FastAPI, Query, Request
+from fastapi.responses import FileResponse
+from fastapi.staticfiles import StaticFiles
+
+from service.routers import COMMON_RESPONSES, Runtime
+from service.schemas import Problem
+from service.settings import Settings
+
+STATIC_DIR = Path(__file__).resolve().parent.parent / "static"
+
+router = APIRouter(tags=["dashboard"], responses=COMMON_RESPONSES)
+
+
+@router.get("/dashboard", include_in_schema=False)
+def dashboard_page() -> FileResponse:
+    """The dashboard page."""
+    return FileResponse(
+        STATIC_DIR / "dashboard.html",
+        media_type="text/html",
+        headers={"Cache-Control": "no-cache"},
+    )
+
+
+@router.get(
+    "/models/{model}/flagged",
+    summary="Documents recently flagged for review (this process)",
+    responses={404: {"model": Problem, "description": "Unknown model"}},
+)
+def flagged_documents(
+    model: str,
+    request: Request,
+    runtime: Runtime,
+    count: Annotated[int, Query(ge=1, le=10_000)] = 20,
+) -> dict[str, Any]:
+    """Newest first: id, time, group, label, reasons, MAP posterior, version and the text's
+    first 200 characters. Held in this API process's memory only, lost at restart."""
+    runtime.model(model)  # 404 for an unknown model
+    flagged = request.app.state.flagged
+    return {
+        "model": model,
+        "kept": flagged.keep,
+        "documents": flagged.recent(model, count),
+    }
+
+
+def install(app: FastAPI, settings: Settings) -> None:
+    """Add the page, its static files and the flagged-documents route to the app."""
+    del settings
+    app.include_router(router)
+    app.mount("/dashboard/static", StaticFiles(directory=STATIC_DIR), name="dashboard-static")

@@ -1,0 +1,327 @@
+// mixroute dashboard: reads the JSON API of the app that served this page, draws inline SVG.
+// No libraries, nothing fetched from anywhere but this origin.
+"use strict";
+
+const COLOURS = ["#2a7f78", "#c8641b", "#6a4c93", "#3f7d20", "#b8860b", "#b03a6f",
+                 "#2f5d9b", "#7a6a1f", "#8c2f39", "#16697a", "#8a5a44", "#4a5a6a"];
+const REFRESH_MS = 5000;
+const SVG_NS = "http://www.w3.org/2000/svg";
+
+const view = { model: null, role: null, keysRequired: false, snapshots: [], busy: false, again: false };
+
+function $(id) { return document.getElementById(id); }
+function colour(group) { return COLOURS[group % COLOURS.length]; }
+
+function el(tag, attrs, children) {
+  const node = document.createElement(tag);
+  for (const [k, v] of Object.entries(attrs || {})) {
+    if (k === "text") node.textContent = v; else node.setAttribute(k, v);
+  }
+  for (const child of children || []) node.appendChild(child);
+  return node;
+}
+
+function svg(tag, attrs, text) {
+  const node = document.createElementNS(SVG_NS, tag);
+  for (const [k, v] of Object.entries(attrs || {})) node.setAttribute(k, v);
+  if (text !== undefined) node.textContent = text;
+  return node;
+}
+
+function apiKey() { return sessionStorage.getItem("mixroute-key") || ""; }
+
+async function api(method, path, body) {
+  const headers = { "Accept": "application/json" };
+  const key = apiKey();
+  if (key) headers["Authorization"] = "Bearer " + key;
+  if (body !== undefined) headers["Content-Type"] = "application/json";
+  const response = await fetch(path, {
+    method, headers, body: body === undefined ? undefined : JSON.stringify(body),
+  });
+  const data = response.status === 204 ? null : await response.json().catch(() => null);
+  if (!response.ok) {
+    const detail = data && data.detail ? data.detail : response.statusText;
+    const error = new Error(`${response.status}: ${detail}`);
+    error.status = response.status;
+    throw error;
+  }
+  return data;
+}
+
+function toast(message, isError) {
+  const box = $("toast");
+  box.textContent = message;
+  box.className = isError ? "toast error" : "toast";
+  box.hidden = false;
+  clearTimeout(toast.timer);
+  toast.timer = setTimeout(() => { box.hidden = true; }, 6000);
+}
+
+function notice(message) {
+  const box = $("notice");
+  box.textContent = message || "";
+  box.hidden = !message;
+}
+
+function groupName(group, labels) {
+  const label = labels[group];
+  return label ? `${group} · ${label}` : `group ${group}`;
+}
+
+function timeText(seconds, span) {
+  const d = new Date(seconds * 1000);
+  if (span > 2 * 86400) return d.toISOString().slice(5, 10) + " " + d.toTimeString().slice(0, 5);
+  return d.toTimeString().slice(0, 8);
+}
+
+// -- chart ------------------------------------------------------------------------------------
+
+function drawChart(rows, alerts, labels) {
+  const box = $("chart");
+  box.textContent = "";
+  const W = 960, H = 300, left = 46, right = 14, top = 12, bottom = 30;
+  const root = svg("svg", { viewBox: `0 0 ${W} ${H}`, id: "weights-chart" });
+  box.appendChild(root);
+  if (!rows.length) {
+    root.appendChild(svg("text", { x: W / 2, y: H / 2, "text-anchor": "middle", class: "empty" },
+      "no checkpoints yet: the model is still learning its warm-up documents"));
+    $("legend").textContent = "";
+    return;
+  }
+  const k = rows[0].weights.length;
+  const t0 = rows[0].time, t1 = rows[rows.length - 1].time;
+  const span = Math.max(t1 - t0, 1e-6);
+  let ymax = 0;
+  for (const row of rows) for (const w of row.weights) ymax = Math.max(ymax, w);
+  ymax = Math.min(1, Math.ceil((ymax * 1.1) * 20) / 20 || 0.05);
+  const x = (t) => left + (rows.length === 1 ? 0.5 : (t - t0) / span) * (W - left - right);
+  const y = (w) => top + (1 - w / ymax) * (H - top - bottom);
+
+  const grid = svg("g", { class: "grid" });
+  for (let i = 0; i <= 4; i++) {
+    const w = (ymax * i) / 4;
+    grid.appendChild(svg("line", { x1: left, x2: W - right, y1: y(w), y2: y(w), class: "gridline" }));
+    grid.appendChild(svg("text", { x: left - 6, y: y(w) + 4, "text-anchor": "end", class: "tick" },
+      w.toFixed(2)));
+  }
+  for (let i = 0; i <= 4; i++) {
+    const t = t0 + (span * i) / 4;
+    grid.appendChild(svg("text", { x: x(t), y: H - 10, "text-anchor": "middle", class: "tick" },
+      timeText(t, span)));
+  }
+  grid.appendChild(svg("line", { x1: left, x2: W - right, y1: y(0), y2: y(0), class: "axis" }));
+  root.appendChild(grid);
+
+  const marks = svg("g", { class: "alerts" });
+  for (const alert of alerts) {
+    if (alert.time < t0 - span * 0.02 || alert.time > t1 + span * 0.02) continue;
+    const ax = x(Math.min(Math.max(alert.time, t0), t1));
+    const mark = svg("g", { class: "alert", "data-version": alert.version });
+    mark.appendChild(svg("line", { x1: ax, x2: ax, y1: top, y2: y(0), class: "alert-line" }));
+    mark.appendChild(svg("rect", { x: ax - 4, y: top - 4, width: 8, height: 8, class: "alert-mark",
+      transform: `rotate(45 ${ax} ${top})` }));
+    mark.appendChild(svg("title", {},
+      `drift alert at version ${alert.version}: ${alert.reason}`));
+    marks.appendChild(mark);
+  }
+  root.appendChild(marks);
+
+  const lines = svg("g", { class: "lines" });
+  for (let g = 0; g < k; g++) {
+    const points = rows.map((row) => `${x(row.time).toFixed(1)},${y(row.weights[g]).toFixed(1)}`);
+    const path = svg("polyline", { points: points.join(" "), class: "series", "data-group": g,
+      stroke: colour(g) });
+    path.appendChild(svg("title", {}, groupName(g, labels)));
+    lines.appendChild(path);
+  }
+  root.appendChild(lines);
+
+  const legend = $("legend");
+  legend.textContent = "";
+  const last = rows[rows.length - 1].weights;
+  for (let g = 0; g < k; g++) {
+    const swatch = el("span", { class: "swatch", style: `background:${colour(g)}` });
+    legend.appendChild(el("li", {}, [swatch,
+      el("span", { text: `${groupName(g, labels)} (${last[g].toFixed(3)})` })]));
+  }
+}
+
+// -- groups, flagged documents, snapshots -------------------------------------------------------
+
+function drawGroups(groups) {
+  const box = $("groups");
+  box.textContent = "";
+  const maxWeight = Math.max(...groups.map((g) => g.weight), 1e-9);
+  for (const group of groups) {
+    const title = el("h3", {}, [
+      group.label ? el("span", { text: `${group.group} · ${group.label}` })
+                  : el("span", { class: "unlabelled", text: `group ${group.group} (no label)` }),
+      el("span", { text: group.weight.toFixed(3) }),
+    ]);
+    const bar = el("div", { class: "meter" }, [el("span", {
+      style: `width:${(100 * group.weight / maxWeight).toFixed(1)}%;background:${colour(group.group)}`,
+    })]);
+    const size = el("div", { class: "size",
+      text: `${Math.round(group.expected_documents)} expected documents` +
+            (group.destination ? ` · goes to ${group.destination}` : "") });
+    const top = el("div", { class: "terms" }, [el("b", { text: "top" }),
+      document.createTextNode(group.top_terms.map((t) => t.term).join(", ") || "–")]);
+    const distinct = el("div", { class: "terms" }, [el("b", { text: "distinctive" }),
+      document.createTextNode(group.distinctive_terms.map((t) => t.term).join(", ") || "–")]);
+    const card = el("article", { class: "group", "data-group": group.group,
+      style: `border-top-color:${colour(group.group)}` }, [title, size, bar, top, distinct]);
+    box.appendChild(card);
+  }
+}
+
+function emptyRow(body, columns, text) {
+  body.appendChild(el("tr", { class: "empty-row" }, [el("td", { colspan: columns, text })]));
+}
+
+function drawFlagged(documents, labels) {
+  const body = $("flagged");
+  body.textContent = "";
+  if (!documents.length) { emptyRow(body, 5, "nothing flagged since this API process started"); return; }
+  for (const doc of documents) {
+    const reasons = el("td", {}, doc.reasons.map((r) => el("span", { class: "reason", text: r })));
+    body.appendChild(el("tr", {}, [
+      el("td", { text: new Date(doc.time * 1000).toTimeString().slice(0, 8) }),
+      el("td", { text: doc.id || "–" }),
+      el("td", { text: `${groupName(doc.group, labels)}` +
+        (doc.probability != null ? ` (${doc.probability.toFixed(2)})` : "") }),
+      reasons,
+      el("td", { class: "text", text: doc.text + (doc.truncated ? " …" : "") }),
+    ]));
+  }
+}
+
+function drawSnapshots(snapshots) {
+  view.snapshots = snapshots;
+  const body = $("snapshots");
+  body.textContent = "";
+  const admin = view.role === "admin";
+  $("snapshot-hint").textContent = admin ? "restore asks first" : "restoring needs the admin role";
+  if (!snapshots.length) { emptyRow(body, 6, "no snapshots yet"); return; }
+  for (const snap of [...snapshots].reverse()) {
+    const button = el("button", { class: "restore", type: "button", "data-snapshot": snap.id,
+      text: "Restore" });
+    button.disabled = !admin;
+    button.addEventListener("click", () => askRestore(snap));
+    body.appendChild(el("tr", { "data-snapshot": snap.id }, [
+      el("td", { text: snap.id }),
+      el("td", { class: "num", text: String(snap.version) }),
+      el("td", { class: "num", text: String(snap.documents_learned) }),
+      el("td", { text: snap.kind }),
+      el("td", { text: snap.reason }),
+      el("td", {}, admin ? [button] : []),
+    ]));
+  }
+}
+
+function askRestore(snap) {
+  $("confirm-text").textContent =
+    `Snapshot ${snap.id} holds version ${snap.version} (${snap.documents_learned} documents ` +
+    `learned, reason: ${snap.reason}). Restoring makes it the state every router answers from.`;
+  $("confirm-replay").checked = false;
+  const dialog = $("confirm-dialog");
+  dialog.dataset.snapshot = snap.id;
+  dialog.showModal();
+}
+
+async function onConfirmClose() {
+  const dialog = $("confirm-dialog");
+  if (dialog.returnValue !== "restore") return;
+  const id = dialog.dataset.snapshot;
+  try {
+    const result = await api("POST",
+      `/models/${encodeURIComponent(view.model)}/snapshots/${encodeURIComponent(id)}/restore`,
+      { replay: $("confirm-replay").checked });
+    toast(`Restored snapshot ${result.snapshot_id}: now version ${result.version} ` +
+          `(the replaced version ${result.replaced_version} is kept as ${result.safety_snapshot_id}).`);
+    await refresh();
+  } catch (error) {
+    toast(`Restore failed: ${error.message}`, true);
+  }
+}
+
+// -- loading ------------------------------------------------------------------------------------
+
+async function loadRole() {
+  const info = await api("GET", "/auth");
+  view.keysRequired = info.keys_required;
+  view.role = info.role;
+  $("role").textContent = info.keys_required ? `role ${info.role || "none"}` : "open (loopback)";
+  $("key-form").hidden = !info.keys_required;
+}
+
+async function loadModels() {
+  const select = $("model-select");
+  const data = await api("GET", "/models");
+  const names = data.models.map((m) => m.name);
+  const wanted = new URLSearchParams(location.search).get("model");
+  if (!view.model || !names.includes(view.model)) {
+    view.model = names.includes(wanted) ? wanted : names[0] || null;
+  }
+  select.textContent = "";
+  for (const name of names) {
+    const option = el("option", { value: name, text: name });
+    if (name === view.model) option.selected = true;
+    select.appendChild(option);
+  }
+  return data.models.find((m) => m.name === view.model) || null;
+}
+
+async function refresh() {
+  if (view.busy) { view.again = true; return; }
+  view.busy = true;
+  try {
+    await loadRole();
+    if (view.keysRequired && !view.role) {
+      notice("Type an API key (read or admin role) to see the models.");
+      return;
+    }
+    const model = await loadModels();
+    if (!model) { notice("No model yet: create one with POST /models or `mixroute models create`."); return; }
+    const base = `/models/${encodeURIComponent(model.name)}`;
+    const [history, alerts, groups, flagged, snapshots] = await Promise.all([
+      api("GET", `${base}/drift/history?limit=2000`),
+      api("GET", `${base}/drift/alerts?count=500`),
+      api("GET", `${base}/groups?top=8`),
+      api("GET", `${base}/flagged?count=15`),
+      api("GET", `${base}/snapshots`),
+    ]);
+    const labels = {};
+    for (const g of groups.groups) if (g.label) labels[g.group] = g.label;
+    $("version").textContent = `version ${model.version}`;
+    $("version").dataset.version = String(model.version);
+    $("learned").textContent = `${model.documents_learned} documents learned`;
+    notice(model.warmed_up ? "" : `Model ${model.name} is still in warm-up: no checkpoint yet.`);
+    drawChart(history.rows, alerts.alerts, labels);
+    drawGroups(groups.groups);
+    drawFlagged(flagged.documents, labels);
+    drawSnapshots(snapshots.snapshots);
+    document.body.dataset.loaded = "true";
+  } catch (error) {
+    notice(error.status === 401 || error.status === 403
+      ? `The API refused the key (${error.message}).` : `Cannot load: ${error.message}`);
+  } finally {
+    view.busy = false;
+    if (view.again) { view.again = false; refresh(); }
+  }
+}
+
+document.addEventListener("DOMContentLoaded", () => {
+  $("key-form").addEventListener("submit", (event) => {
+    event.preventDefault();
+    sessionStorage.setItem("mixroute-key", $("key-input").value.trim());
+    $("key-input").value = "";
+    refresh();
+  });
+  $("model-select").addEventListener("change", (event) => {
+    view.model = event.target.value;
+    refresh();
+  });
+  $("confirm-dialog").addEventListener("close", onConfirmClose);
+  refresh();
+  setInterval(refresh, REFRESH_MS);
+});
