@@ -119,7 +119,9 @@ class Demo:
         print(text, file=self.out, flush=True)
 
     def rule(self, title: str) -> None:
+        """A section header; every one says the data are invented."""
         self.say()
+        title = f"{title} [invented data]"
         self.say(f"== {title} " + "=" * max(0, 76 - len(title)))
 
     # -- API helpers -------------------------------------------------------------------------

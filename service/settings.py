@@ -87,14 +87,10 @@ class Settings(BaseSettings):
         gt=0.0,
         description="Readiness reports degraded when no worker heartbeat is younger than this.",
     )
-    worker_batch_size: int = Field(
-        default=256, ge=1, le=100_000, description="Most stream entries a worker reads at once."
-    )
-    worker_block_ms: int = Field(
-        default=200, ge=1, le=60_000, description="How long a worker blocks on an empty stream."
-    )
     embedded_worker: bool = Field(
-        default=True, description="`mixroute serve` also runs one worker in the same process."
+        default=False,
+        description="With a Redis URL, `mixroute serve` also runs the workers in its own "
+        "process (with the embedded Redis it always does, unless --no-worker).",
     )
     log_level: str = Field(default="info", description="Log level of the command line and API.")
     log_format: Literal["json", "text"] = Field(
