@@ -29,11 +29,12 @@ import hmac
 import ipaddress
 import json
 import logging
+import re
 from collections.abc import Iterable
 from typing import Any
 
 from fastapi import APIRouter, FastAPI, Request
-from starlette.routing import Match, Mount
+from starlette.routing import Mount, compile_path
 from starlette.types import ASGIApp, Receive, Scope, Send
 
 from mixture.errors import ConfigError
@@ -201,19 +202,49 @@ def required_role(method: str, path: str) -> Role:
     return Role.ADMIN
 
 
-def route_template(app: Any, scope: Scope) -> str:
-    """The path template of the route that will answer ``scope`` (the raw path if none)."""
-    partial: str | None = None
+def app_routes(app: Any) -> list[tuple[str, frozenset[str] | None]]:
+    """Every route of the app as ``(path template, methods)``; methods None for a mount.
+
+    Walks included routers too (FastAPI keeps them as nested objects rather than copying their
+    routes into the app), so the list is the one requests are dispatched over.
+    """
+    found: list[tuple[str, frozenset[str] | None]] = []
     for route in app.router.routes:
-        match, _ = route.matches(scope)
-        path = getattr(route, "path", None)
-        if path is None:
-            continue
-        if match == Match.FULL:
-            return str(path)
-        if match == Match.PARTIAL and partial is None and not isinstance(route, Mount):
-            partial = str(path)  # the path exists with another method: 405 follows
-    return partial or str(scope.get("path", ""))
+        if hasattr(route, "effective_route_contexts"):  # an included router
+            for context in route.effective_route_contexts():
+                inner = context.original_route
+                path = getattr(context, "path_format", None) or getattr(inner, "path", "")
+                found.append((str(path), frozenset(getattr(inner, "methods", None) or ())))
+        elif isinstance(route, Mount):
+            found.append((str(route.path), None))
+        elif hasattr(route, "path"):
+            found.append((str(route.path), frozenset(getattr(route, "methods", None) or ())))
+    return found
+
+
+class RouteTable:
+    """Resolves a request to the path template of the route that will answer it."""
+
+    def __init__(self, routes: list[tuple[str, frozenset[str] | None]]) -> None:
+        self.entries = []
+        for path, methods in routes:
+            if methods is None:
+                regex = re.compile("^" + re.escape(path) + "(/.*)?$")
+            else:
+                regex = compile_path(path)[0]
+            self.entries.append((regex, path, methods))
+
+    def template(self, method: str, path: str) -> str:
+        """The matching template (with the method if possible), else the raw path."""
+        partial: str | None = None
+        for regex, template, methods in self.entries:
+            if not regex.match(path):
+                continue
+            if methods is None or method in methods or (method == "HEAD" and "GET" in methods):
+                return template
+            if partial is None:
+                partial = template  # the path exists with another method: 405 follows
+        return partial or path
 
 
 def presented_key(scope: Scope) -> str | None:
@@ -240,13 +271,16 @@ class AccessControl:
     def __init__(self, app: ASGIApp, keys: KeyRing) -> None:
         self.app = app
         self.keys = keys
+        self._table: RouteTable | None = None
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http" or not self.keys.enabled:
             await self.app(scope, receive, send)
             return
         method = scope["method"]
-        template = route_template(scope["app"], scope)
+        if self._table is None:  # built at the first request, when every route is in place
+            self._table = RouteTable(app_routes(scope["app"]))
+        template = self._table.template(method, scope.get("path", ""))
         needed = required_role(method, template)
         if needed is Role.PUBLIC:
             await self.app(scope, receive, send)

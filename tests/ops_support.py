@@ -89,6 +89,27 @@ def route_examples(client: Any, model: str) -> dict[str, Any]:
     return answer.json()  # type: ignore[no-any-return]
 
 
+class WithKey:
+    """A client wrapper that sends one key with every call (for helpers that take a client)."""
+
+    def __init__(self, client: Any, headers: dict[str, str]) -> None:
+        self.client = client
+        self.headers = headers
+
+    def request(self, method: str, url: str, **kwargs: Any) -> Any:
+        kwargs["headers"] = {**self.headers, **(kwargs.get("headers") or {})}
+        return self.client.request(method, url, **kwargs)
+
+    def get(self, url: str, **kwargs: Any) -> Any:
+        return self.request("GET", url, **kwargs)
+
+    def post(self, url: str, **kwargs: Any) -> Any:
+        return self.request("POST", url, **kwargs)
+
+    def delete(self, url: str, **kwargs: Any) -> Any:
+        return self.request("DELETE", url, **kwargs)
+
+
 @contextmanager
 def trained_client(redis_url: str, model: str, **overrides: Any) -> Iterator[TestClient]:
     """A TestClient (admin key by default) on a freshly trained model."""
