@@ -184,7 +184,7 @@ def check_bind(settings: Settings, keys: KeyRing) -> None:
     )
 
 
-def required_role(method: str, path: str) -> Role:
+def required_role(method: str, path: str, public: frozenset[str] = PUBLIC_PATHS) -> Role:
     """The role a request needs, from its method and the route's path template.
 
     Parameters
@@ -194,8 +194,10 @@ def required_role(method: str, path: str) -> Role:
     path : str
         The matched route's path template (``/models/{model}/route``), or the raw path when
         no route matched.
+    public : frozenset of str
+        Templates open to everyone (``PUBLIC_PATHS``, plus ``/metrics`` when configured so).
     """
-    if path in PUBLIC_PATHS:
+    if path in public:
         return Role.PUBLIC
     if method in SAFE_METHODS or (method, path) in READ_WRITES:
         return Role.READ
@@ -268,9 +270,10 @@ class AccessControl:
     keys : KeyRing
     """
 
-    def __init__(self, app: ASGIApp, keys: KeyRing) -> None:
+    def __init__(self, app: ASGIApp, keys: KeyRing, public: frozenset[str] = PUBLIC_PATHS) -> None:
         self.app = app
         self.keys = keys
+        self.public = public
         self._table: RouteTable | None = None
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
@@ -281,7 +284,7 @@ class AccessControl:
         if self._table is None:  # built at the first request, when every route is in place
             self._table = RouteTable(app_routes(scope["app"]))
         template = self._table.template(method, scope.get("path", ""))
-        needed = required_role(method, template)
+        needed = required_role(method, template, self.public)
         if needed is Role.PUBLIC:
             await self.app(scope, receive, send)
             return
@@ -361,5 +364,6 @@ def install(app: FastAPI, settings: Settings) -> KeyRing:
     check_bind(settings, keys)
     app.state.keys = keys
     app.include_router(router)
-    app.add_middleware(AccessControl, keys=keys)
+    public = PUBLIC_PATHS | ({"/metrics"} if settings.metrics_public else set())
+    app.add_middleware(AccessControl, keys=keys, public=frozenset(public))
     return keys

@@ -119,6 +119,11 @@ class Settings(BaseSettings):
         default=SecretStr(""),
         description="Key the command line sends to the API (client side; read or admin role).",
     )
+    metrics_public: bool = Field(
+        default=False,
+        description="Serve /metrics without a key (for a scraper that cannot send one; the "
+        "metrics hold model names, versions and weights, never message text).",
+    )
 
 
 def load_settings(**overrides: object) -> Settings:
