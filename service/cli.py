@@ -712,6 +712,10 @@ def main(argv: Sequence[str] | None = None) -> int:
     except KeyboardInterrupt:
         _err("interrupted")
         return 130
+    except BrokenPipeError:  # output piped into `head` and friends: stop quietly
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_OK
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -27,17 +27,17 @@ token (log p(d | k) divided by the known tokens) of the documents recently route
 document routed to k is flagged ``atypical`` when k already has at least
 ``typicality_min_documents`` effective documents and its value is below m_k - z * s_k with
 z = ``review_typicality_z`` (3 by default: common practice for a one-sided outlier screen, no
-source). The check uses the statistics *before* the document is added, and every document with
-evidence is added afterwards, so a lasting shift is absorbed after about one half-life instead
-of being flagged for ever. The statistics live in this process (each API replica keeps its own)
-and restart empty, so the rule is silent for a group's first documents after a restart.
+source). The check uses the statistics as they were before the request (a batch does not judge
+itself), and every document with evidence is added afterwards, so a lasting shift is absorbed
+after about one half-life instead of being flagged for ever. The statistics live in this
+process (each API replica keeps its own) and restart empty, so the rule is silent for a group's
+first documents after a restart.
 """
 
 from __future__ import annotations
 
 import contextlib
 import logging
-import math
 import threading
 import time
 from collections.abc import Callable
@@ -126,22 +126,35 @@ class Typicality:
         -------
         ndarray of bool, shape (n,)
         """
+        groups = np.asarray(groups, dtype=np.int64)
+        values = np.asarray(values, dtype=np.float64)
+        with np.errstate(invalid="ignore"):
+            usable = np.asarray(evidence, dtype=bool) & np.isfinite(values)
         flagged = np.zeros(groups.shape[0], dtype=bool)
         with self._lock:
-            for i in range(groups.shape[0]):
-                x = float(values[i])
-                if not evidence[i] or not math.isfinite(x):
-                    continue
-                k = int(groups[i])
-                w = self.weight[k]
-                if w >= self.min_documents:
-                    spread = math.sqrt(self.square_sum[k] / w)
-                    flagged[i] = x < self.mean[k] - z * max(spread, 1e-6)
-                new_weight = self.decay * w + 1.0
-                delta = x - self.mean[k]
-                self.mean[k] += delta / new_weight
-                self.square_sum[k] = self.decay * self.square_sum[k] + delta * (x - self.mean[k])
-                self.weight[k] = new_weight
+            # check every document against the statistics as they were before this batch
+            weight = self.weight[groups]
+            ready = usable & (weight >= self.min_documents)
+            if ready.any():
+                spread = np.sqrt(self.square_sum[groups[ready]] / weight[ready])
+                limit = self.mean[groups[ready]] - z * np.maximum(spread, 1e-6)
+                flagged[ready] = values[ready] < limit
+            # then add them, group by group, in arrival order: the closed form of West's
+            # update applied once per document (same numbers, no Python loop over documents)
+            for k in np.unique(groups[usable]):
+                x = values[usable & (groups == k)]
+                n = x.size
+                new_weights = self.decay ** np.arange(n - 1, -1, -1, dtype=np.float64)
+                kept = self.decay**n
+                old_weight, old_mean = self.weight[k], self.mean[k]
+                total = kept * old_weight + new_weights.sum()
+                mean = (kept * old_weight * old_mean + new_weights @ x) / total
+                deviation = x - mean
+                self.square_sum[k] = kept * (
+                    self.square_sum[k] + old_weight * (old_mean - mean) ** 2
+                ) + new_weights @ (deviation * deviation)
+                self.mean[k] = mean
+                self.weight[k] = total
         return flagged
 
     def to_dict(self) -> dict[str, list[float]]:

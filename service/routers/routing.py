@@ -7,8 +7,9 @@ import time
 from typing import Any
 
 import numpy as np
+import orjson
 from fastapi import APIRouter, Request
-from fastapi.responses import JSONResponse
+from fastapi.responses import Response
 from starlette.concurrency import run_in_threadpool
 
 from service.app import DEGRADED_HEADER
@@ -127,7 +128,7 @@ def route_now(runtime: ServiceRuntime, model: str, body: RouteIn) -> tuple[dict[
         503: {"model": Problem, "description": "Redis unreachable and model not in memory"},
     },
 )
-async def route_documents(model: str, body: RouteIn, request: Request) -> JSONResponse:
+async def route_documents(model: str, body: RouteIn, request: Request) -> Response:
     """MAP group, posterior, margin, typicality and ``review`` for each document.
 
     Answers from the parameters in memory; with ``learn: true`` the documents are also queued.
@@ -141,7 +142,8 @@ async def route_documents(model: str, body: RouteIn, request: Request) -> JSONRe
         content, degraded = route_now(runtime, model, body)
     else:
         content, degraded = await run_in_threadpool(route_now, runtime, model, body)
-    response = JSONResponse(content=content)
+    # orjson: the shortest repr that reads back to the same float, about 10x faster than json
+    response = Response(orjson.dumps(content), media_type="application/json")
     if degraded:
         response.headers[DEGRADED_HEADER] = f"redis-unreachable; version={content['version']}"
     return response
