@@ -71,7 +71,17 @@ function groupName(group, labels) {
 function timeText(seconds, span) {
   const d = new Date(seconds * 1000);
   if (span > 2 * 86400) return d.toISOString().slice(5, 10) + " " + d.toTimeString().slice(0, 5);
-  return d.toTimeString().slice(0, 8);
+  if (span > 600) return d.toTimeString().slice(0, 5);
+  if (span > 20) return d.toTimeString().slice(0, 8);
+  return d.toTimeString().slice(0, 8) + "." + String(d.getMilliseconds()).padStart(3, "0").slice(0, 1);
+}
+
+// A tick step of 1, 2 or 5 times a power of ten giving about four intervals up to `top`.
+function niceStep(top) {
+  const raw = top / 4;
+  const power = Math.pow(10, Math.floor(Math.log10(raw)));
+  for (const m of [1, 2, 5, 10]) if (m * power >= raw) return m * power;
+  return 10 * power;
 }
 
 // -- chart ------------------------------------------------------------------------------------
@@ -93,21 +103,25 @@ function drawChart(rows, alerts, labels) {
   const span = Math.max(t1 - t0, 1e-6);
   let ymax = 0;
   for (const row of rows) for (const w of row.weights) ymax = Math.max(ymax, w);
-  ymax = Math.min(1, Math.ceil((ymax * 1.1) * 20) / 20 || 0.05);
+  const step = niceStep(Math.max(ymax * 1.05, 0.01));
+  ymax = Math.min(1, Math.ceil((ymax * 1.05) / step) * step);
   const x = (t) => left + (rows.length === 1 ? 0.5 : (t - t0) / span) * (W - left - right);
   const y = (w) => top + (1 - w / ymax) * (H - top - bottom);
 
   const grid = svg("g", { class: "grid" });
-  for (let i = 0; i <= 4; i++) {
-    const w = (ymax * i) / 4;
+  const digits = step >= 0.1 ? 1 : step >= 0.01 ? 2 : 3;
+  for (let w = 0; w <= ymax + step / 2; w += step) {
     grid.appendChild(svg("line", { x1: left, x2: W - right, y1: y(w), y2: y(w), class: "gridline" }));
     grid.appendChild(svg("text", { x: left - 6, y: y(w) + 4, "text-anchor": "end", class: "tick" },
-      w.toFixed(2)));
+      w.toFixed(digits)));
   }
-  for (let i = 0; i <= 4; i++) {
-    const t = t0 + (span * i) / 4;
-    grid.appendChild(svg("text", { x: x(t), y: H - 10, "text-anchor": "middle", class: "tick" },
-      timeText(t, span)));
+  if (rows.length > 1) {
+    for (let i = 0; i <= 4; i++) {
+      const t = t0 + (span * i) / 4;
+      const anchor = i === 0 ? "start" : i === 4 ? "end" : "middle";
+      grid.appendChild(svg("text", { x: x(t), y: H - 10, "text-anchor": anchor, class: "tick" },
+        timeText(t, span)));
+    }
   }
   grid.appendChild(svg("line", { x1: left, x2: W - right, y1: y(0), y2: y(0), class: "axis" }));
   root.appendChild(grid);

@@ -1,0 +1,201 @@
+"""The dashboard in headless Chromium against a live app (uvicorn on loopback, private Redis)
+with a trained model: one chart series per group, alerts marked, labels, flagged documents,
+and a restore that asks first and then shows the new version. Screenshots go to artefacts/."""
+
+from __future__ import annotations
+
+import shutil
+import tempfile
+import uuid
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pytest
+
+from service.testing import uvicorn_thread, wait_until
+from state.connection import redis_from_url
+from state.keys import REGISTRY_KEY, ModelKeys
+from tests.ops_support import ADMIN, ADMIN_KEY, READ_KEY, K, make_app, route_examples, train
+
+pytestmark = [pytest.mark.browser, pytest.mark.redis]
+
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
+CHROMEDRIVER = shutil.which("chromedriver")
+ARTEFACTS = Path(__file__).resolve().parent.parent / "artefacts"
+
+if not (CHROMIUM and CHROMEDRIVER):
+    pytest.skip(
+        "Debian's chromium and chromium-driver are not installed (`make browser` installs them)",
+        allow_module_level=True,
+    )
+
+
+@pytest.fixture(scope="module")
+def live(redis_url: str) -> Iterator[tuple[str, str, httpx.Client]]:
+    model = f"t-dash-{uuid.uuid4().hex[:10]}"
+    app = make_app(redis_url, model)
+    try:
+        with uvicorn_thread(app) as base, httpx.Client(base_url=base, headers=ADMIN) as api:
+            train(api, model, days=4, snapshot_after=2)
+            route_examples(api, model)
+            labelled = api.put(
+                f"/models/{model}/groups/0/label",
+                json={"label": "Harbour desk", "destination": "harbour@example.invalid"},
+            )
+            assert labelled.status_code == 200, labelled.text
+            yield base, model, api
+    finally:
+        client = redis_from_url(redis_url)
+        keys = list(client.scan_iter(match=ModelKeys(model).pattern(), count=1000))
+        if keys:
+            client.delete(*keys)
+        client.srem(REGISTRY_KEY, model)
+        client.close()
+
+
+@pytest.fixture(scope="module")
+def browser() -> Iterator[Any]:
+    from selenium import webdriver
+    from selenium.webdriver.chrome.service import Service
+
+    profile = tempfile.mkdtemp(prefix="mixroute-chromium-")
+    options = webdriver.ChromeOptions()
+    options.binary_location = CHROMIUM  # type: ignore[assignment]
+    for flag in (
+        "--headless",
+        "--no-sandbox",
+        "--disable-gpu",
+        "--disable-background-networking",
+        "--disable-component-update",
+        "--disable-sync",
+        "--no-first-run",
+        "--disable-dev-shm-usage",
+        "--window-size=1400,1900",
+        f"--user-data-dir={profile}",
+    ):
+        options.add_argument(flag)
+    driver = webdriver.Chrome(service=Service(executable_path=CHROMEDRIVER), options=options)
+    driver.set_page_load_timeout(30)
+    try:
+        yield driver
+    finally:
+        driver.quit()
+        shutil.rmtree(profile, ignore_errors=True)
+
+
+def use_key(driver: Any, key: str) -> None:
+    from selenium.webdriver.common.by import By
+
+    field = driver.find_element(By.ID, "key-input")
+    field.clear()
+    field.send_keys(key)
+    driver.find_element(By.CSS_SELECTOR, "#key-form button").click()
+
+
+def shown_version(driver: Any) -> int | None:
+    from selenium.webdriver.common.by import By
+
+    value = driver.find_element(By.ID, "version").get_attribute("data-version")
+    return int(value) if value else None
+
+
+def test_dashboard_shows_the_model_and_restores_after_confirmation(
+    live: tuple[str, str, httpx.Client], browser: Any
+) -> None:
+    from selenium.webdriver.common.by import By
+
+    base, model, api = live
+    ARTEFACTS.mkdir(exist_ok=True)
+    browser.get(f"{base}/dashboard?model={model}")
+    # access control is on: nothing is shown until a key is given
+    wait_until(lambda: browser.find_element(By.ID, "notice").is_displayed(), 20, what="notice")
+    assert "API key" in browser.find_element(By.ID, "notice").text
+    use_key(browser, ADMIN_KEY)
+    wait_until(lambda: browser.execute_script("return document.body.dataset.loaded"), 20)
+
+    before = api.get(f"/models/{model}").json()
+    wait_until(lambda: shown_version(browser) == before["version"], 20, what="version shown")
+    assert browser.find_element(By.ID, "role").text == "role admin"
+
+    # the chart: one series per group, each with as many points as checkpoints
+    history = api.get(f"/models/{model}/drift/history", params={"limit": 2000}).json()["rows"]
+    series = browser.find_elements(By.CSS_SELECTOR, "#weights-chart polyline.series")
+    assert sorted(int(s.get_attribute("data-group")) for s in series) == list(range(K))
+    for line in series:
+        assert len(line.get_attribute("points").split()) == len(history)
+    alerts = api.get(f"/models/{model}/drift/alerts").json()["alerts"]
+    assert alerts, "the invented storm day must raise a drift alert at this threshold"
+    marked = browser.find_elements(By.CSS_SELECTOR, "#weights-chart g.alert")
+    assert len(marked) == len(alerts)
+    assert "Harbour desk" in browser.find_element(By.ID, "legend").text
+
+    # groups with label, size and terms
+    cards = browser.find_elements(By.CSS_SELECTOR, "#groups article.group")
+    assert len(cards) == K
+    groups = api.get(f"/models/{model}/groups", params={"top": 8}).json()["groups"]
+    first = cards[0].text
+    assert "Harbour desk" in first and "expected documents" in first
+    assert groups[0]["top_terms"][0]["term"] in first
+    assert groups[0]["distinctive_terms"][0]["term"] in first
+
+    # flagged documents: the junk the helper routed
+    flagged_text = browser.find_element(By.ID, "flagged").text
+    assert "junk-2" in flagged_text and "no_known_words" in flagged_text
+    browser.save_screenshot(str(ARTEFACTS / "dashboard.png"))
+
+    # restore: the dialog asks; "keep" changes nothing
+    snapshot = api.get(f"/models/{model}/snapshots").json()["snapshots"][0]
+    button = f"button.restore[data-snapshot='{snapshot['id']}']"
+    browser.find_element(By.CSS_SELECTOR, button).click()
+    dialog = browser.find_element(By.ID, "confirm-dialog")
+    wait_until(dialog.is_displayed, 10, what="confirmation dialog")
+    assert snapshot["id"] in browser.find_element(By.ID, "confirm-text").text
+    browser.save_screenshot(str(ARTEFACTS / "dashboard-confirm.png"))
+    browser.find_element(By.ID, "confirm-cancel").click()
+    wait_until(lambda: not dialog.is_displayed(), 10, what="dialog closed")
+    assert api.get(f"/models/{model}").json()["version"] == before["version"]
+
+    # ... "restore" rolls back, and the page shows the new version
+    browser.find_element(By.CSS_SELECTOR, button).click()
+    wait_until(dialog.is_displayed, 10, what="confirmation dialog")
+    browser.find_element(By.ID, "confirm-restore").click()
+    after = wait_until(
+        lambda: (
+            (body := api.get(f"/models/{model}").json())["version"] > before["version"] and body
+        ),
+        20,
+        what="the rollback",
+    )
+    assert after["documents_learned"] == snapshot["documents_learned"]
+    wait_until(lambda: shown_version(browser) == after["version"], 20, what="new version shown")
+    assert "Restored snapshot" in browser.find_element(By.ID, "toast").text
+    browser.save_screenshot(str(ARTEFACTS / "dashboard-restored.png"))
+
+    # a read key sees everything but cannot restore
+    use_key(browser, READ_KEY)
+    wait_until(lambda: browser.find_element(By.ID, "role").text == "role read", 20)
+    # the role is shown first, the snapshot table is redrawn by the same refresh just after
+    wait_until(
+        lambda: not browser.find_elements(By.CSS_SELECTOR, "button.restore"),
+        20,
+        what="restore buttons gone for the read role",
+    )
+    assert browser.find_elements(By.CSS_SELECTOR, "#snapshots tr[data-snapshot]")
+
+
+def test_dashboard_files_are_served_from_the_app_only(live: tuple[str, str, httpx.Client]) -> None:
+    """No CDN: every script, style and image the page names is on this origin and served."""
+    import re
+
+    base, _, _ = live
+    page = httpx.get(f"{base}/dashboard").text
+    references = re.findall(r'(?:src|href)="([^"]+)"', page)
+    assert references
+    for ref in references:
+        assert ref.startswith("/dashboard/static/"), ref
+        assert httpx.get(f"{base}{ref}").status_code == 200
+    script = httpx.get(f"{base}/dashboard/static/dashboard.js").text
+    assert "http://" not in script.replace("http://www.w3.org/2000/svg", "")
+    assert "https://" not in script
