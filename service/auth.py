@@ -354,6 +354,44 @@ def whoami(request: Request) -> dict[str, Any]:
     return {"keys_required": True, "role": None if role is None else role.name.lower()}
 
 
+def document_security(app: FastAPI, public: frozenset[str]) -> None:
+    """Describe the keys in the OpenAPI document: the two header schemes, which operations
+    need one, and their 401/403 answers (added when access control is on)."""
+    build = app.openapi
+
+    def openapi() -> dict[str, Any]:
+        if app.openapi_schema is not None:
+            return app.openapi_schema
+        schema = build()
+        components = schema.setdefault("components", {})
+        components.setdefault("securitySchemes", {}).update(
+            {
+                "bearerKey": {"type": "http", "scheme": "bearer", "description": "API key"},
+                "headerKey": {"type": "apiKey", "in": "header", "name": "X-API-Key"},
+            }
+        )
+        problem = {"$ref": "#/components/schemas/Problem"}
+        for path, item in schema.get("paths", {}).items():
+            for method, operation in item.items():
+                needed = required_role(method.upper(), path, public)
+                if needed is Role.PUBLIC or not isinstance(operation, dict):
+                    continue
+                operation["security"] = [{"bearerKey": []}, {"headerKey": []}]
+                responses = operation.setdefault("responses", {})
+                content = {"application/json": {"schema": problem}}
+                responses.setdefault("401", {"description": "No key or a wrong key"})
+                responses["401"].setdefault("content", content)
+                if needed is Role.ADMIN:
+                    responses.setdefault("403", {"description": "Needs the admin role"})
+                    responses["403"].setdefault("content", content)
+                description = operation.get("description", "")
+                operation["description"] = f"{description}\n\nRole: {needed.name.lower()}."
+        app.openapi_schema = schema
+        return schema
+
+    app.openapi = openapi  # type: ignore[method-assign]
+
+
 def install(app: FastAPI, settings: Settings) -> KeyRing:
     """Check the keys and the address, add ``GET /auth`` and the access-control middleware.
 
@@ -364,6 +402,8 @@ def install(app: FastAPI, settings: Settings) -> KeyRing:
     check_bind(settings, keys)
     app.state.keys = keys
     app.include_router(router)
-    public = PUBLIC_PATHS | ({"/metrics"} if settings.metrics_public else set())
-    app.add_middleware(AccessControl, keys=keys, public=frozenset(public))
+    public = frozenset(PUBLIC_PATHS | ({"/metrics"} if settings.metrics_public else set()))
+    app.add_middleware(AccessControl, keys=keys, public=public)
+    if keys.enabled:
+        document_security(app, public)
     return keys

@@ -131,6 +131,14 @@ def test_every_admin_route_refuses_read_wrong_and_no_key(live: Live) -> None:
         needed = auth.required_role(method, table.template(method, live.url(path)))
         assert needed.name.lower() == expected_role(method, path), (method, path)
 
+    # the OpenAPI document tells clients the same: a key scheme, 401 and (admin) 403
+    paths = live.client.get("/openapi.json").json()["paths"]
+    for method, path in operations:
+        operation = paths[path][method.lower()]
+        role = expected_role(method, path)
+        assert ("security" in operation) == (role != "public"), (method, path)
+        assert ("403" in operation["responses"]) == (role == "admin"), (method, path)
+
     before = state_of(live)
     for method, path in admin_ops:
         url = live.url(path)
