@@ -38,6 +38,7 @@ from __future__ import annotations
 
 import contextlib
 import logging
+import math
 import threading
 import time
 from collections.abc import Callable
@@ -47,9 +48,10 @@ from typing import Any, TypeVar
 import numpy as np
 import redis
 
-from mixture.routing import Routing, route_texts
+from mixture.routing import Routing
 from mixture.serialize import state_from_bytes
 from mixture.stats import MixtureState
+from service.fastroute import route_small
 from service.settings import Settings
 from state.errors import ModelNotFoundError
 from state.registry import ModelInfo, Registry
@@ -126,6 +128,10 @@ class Typicality:
         -------
         ndarray of bool, shape (n,)
         """
+        if groups.shape[0] == 1:
+            return self._check_and_update_one(
+                int(groups[0]), float(values[0]), bool(evidence[0]), z
+            )
         groups = np.asarray(groups, dtype=np.int64)
         values = np.asarray(values, dtype=np.float64)
         with np.errstate(invalid="ignore"):
@@ -156,6 +162,23 @@ class Typicality:
                 self.mean[k] = mean
                 self.weight[k] = total
         return flagged
+
+    def _check_and_update_one(self, k: int, x: float, evidence: bool, z: float) -> np.ndarray:
+        """The same rule for a single document, without array overhead."""
+        flagged = False
+        if evidence and math.isfinite(x):
+            with self._lock:
+                w = float(self.weight[k])
+                if w >= self.min_documents:
+                    spread = math.sqrt(float(self.square_sum[k]) / w)
+                    flagged = x < float(self.mean[k]) - z * max(spread, 1e-6)
+                new_weight = self.decay * w + 1.0
+                old_mean = float(self.mean[k])
+                mean = old_mean + (x - old_mean) / new_weight
+                self.square_sum[k] = self.decay * self.square_sum[k] + (x - old_mean) * (x - mean)
+                self.mean[k] = mean
+                self.weight[k] = new_weight
+        return np.array([flagged])
 
     def to_dict(self) -> dict[str, list[float]]:
         with self._lock:
@@ -421,7 +444,7 @@ class ServiceRuntime:
     def route(self, loaded: LoadedModel, texts: list[str]) -> tuple[Routing, np.ndarray]:
         """Route with the model's in-memory state; also return the atypical flags."""
         state = loaded.require_state()
-        routing = route_texts(state, texts)
+        routing = route_small(state, texts)
         atypical = loaded.typicality.check_and_update(
             routing.group,
             routing.log_likelihood_per_token,
