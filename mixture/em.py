@@ -106,14 +106,21 @@ def _log_joint(counts: sp.csr_matrix, params: Parameters) -> np.ndarray:
     return np.asarray(log_joint)
 
 
-def normalise_log_rows(log_joint: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Row-wise softmax in log space: returns (probabilities, log-sum-exp per row)."""
+def normalise_log_rows(
+    log_joint: np.ndarray, overwrite: bool = False
+) -> tuple[np.ndarray, np.ndarray]:
+    """Row-wise softmax in log space: returns (probabilities, log-sum-exp per row).
+
+    With ``overwrite`` the probabilities are computed in the input's memory (no temporaries).
+    """
     row_max = log_joint.max(axis=1, keepdims=True)
     row_max[~np.isfinite(row_max)] = 0.0
-    prob = np.exp(log_joint - row_max)
+    prob = np.subtract(log_joint, row_max, out=log_joint if overwrite else None)
+    np.exp(prob, out=prob)
     row_sum = prob.sum(axis=1, keepdims=True)
     prob /= row_sum
-    log_norm = (np.log(row_sum) + row_max).ravel()
+    log_norm = np.log(row_sum, out=row_sum).ravel()
+    log_norm += row_max.ravel()
     return prob, log_norm
 
 
@@ -125,7 +132,7 @@ def e_step(counts: sp.csr_matrix, params: Parameters) -> tuple[np.ndarray, float
     resp : ndarray of shape (n_docs, K)
     log_likelihood : float
     """
-    resp, log_norm = normalise_log_rows(_log_joint(counts, params))
+    resp, log_norm = normalise_log_rows(_log_joint(counts, params), overwrite=True)
     return resp, float(log_norm.sum())
 
 
@@ -256,10 +263,11 @@ def _one_run(
         )
         log_joint = _log_joint(counts, params)
         if iteration < n_anneal:
-            resp, _ = normalise_log_rows(log_joint * temperatures[iteration])
+            log_joint *= temperatures[iteration]
+            resp, _ = normalise_log_rows(log_joint, overwrite=True)
             log_norm = None
         else:
-            resp, log_norm = normalise_log_rows(log_joint)
+            resp, log_norm = normalise_log_rows(log_joint, overwrite=True)
             objective = float(log_norm.sum()) + log_prior(params, config)
             report.objective_trace.append(objective)
             report.n_iter = iteration + 1 - n_anneal
@@ -278,7 +286,7 @@ def _one_run(
         if empty.size and len(report.reseeded) < 3 * k:
             # Re-seed each empty group with the document the model explains worst.
             if log_norm is None:
-                _, log_norm = normalise_log_rows(log_joint)
+                _, log_norm = normalise_log_rows(_log_joint(counts, params), overwrite=True)
             fit_per_token = log_norm / lengths
             order = np.argsort(fit_per_token)
             candidates = [int(d) for d in order if int(d) not in used_for_reseed]

@@ -112,7 +112,7 @@ def stepwise_update(state: MixtureState, counts: sp.spmatrix) -> BatchReport:
     log_word_prob = state.log_word_prob_rows(rows)
     log_joint = np.asarray(local_counts @ log_word_prob)
     log_joint += state.log_weights()
-    resp, log_norm = normalise_log_rows(log_joint)
+    resp, log_norm = normalise_log_rows(log_joint, overwrite=True)
     report.log_likelihood_per_token = float(log_norm.sum() / lengths.sum())
 
     batch_word = np.asarray(local_counts.T @ resp) / m  # average per document

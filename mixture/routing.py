@@ -81,7 +81,7 @@ def route_counts(
     if matrix.shape[1] < n_words:
         log_word_prob = log_word_prob[: matrix.shape[1]]
     log_lik = np.asarray(matrix @ log_word_prob)
-    posterior, _ = normalise_log_rows(log_lik + params.log_weights)
+    posterior, _ = normalise_log_rows(log_lik + params.log_weights, overwrite=True)
     n_docs, k = posterior.shape
     group = posterior.argmax(axis=1)
     rows = np.arange(n_docs)
