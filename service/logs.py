@@ -240,18 +240,26 @@ class RequestContext:
         try:
             await self.app(scope, receive, send_with_id)
         finally:
-            access_log.info(
-                "%s %s %d",
-                scope.get("method", ""),
-                path,
-                status,
-                extra={
+            if access_log.isEnabledFor(logging.INFO):
+                extra: dict[str, Any] = {
                     "event": "request",
                     "method": scope.get("method", ""),
                     "path": path,
                     "status": status,
                     "duration_ms": round((time.perf_counter() - started) * 1000.0, 3),
-                },
-            )
+                }
+                version = _served_version(scope, model)
+                if version is not None:
+                    extra["version"] = version
+                access_log.info("%s %s %d", extra["method"], path, status, extra=extra)
             request_id_var.reset(id_token)
             model_var.reset(model_token)
+
+
+def _served_version(scope: Scope, model: str | None) -> int | None:
+    """The version of ``model`` this process serves now (None when it is not loaded)."""
+    if model is None:
+        return None
+    runtime = getattr(getattr(scope.get("app"), "state", None), "runtime", None)
+    loaded = getattr(runtime, "models", {}).get(model) if runtime is not None else None
+    return None if loaded is None else int(loaded.version)

@@ -206,6 +206,11 @@ def test_request_ids_in_and_out(live: Live) -> None:
     lines = [json.loads(line) for line in live.log.getvalue().splitlines() if line.strip()]
     access = [r for r in lines if r.get("event") == "request" and r["request_id"] == "intake-7:42"]
     assert access and access[0]["path"] == "/health" and access[0]["status"] == 200
+    # a request about a model names the model and the version this process serves
+    version = live.client.get(f"/models/{live.model}", headers=READ).json()["version"]
+    lines = [json.loads(line) for line in live.log.getvalue().splitlines() if line.strip()]
+    last = [r for r in lines if r.get("event") == "request" and r.get("model") == live.model][-1]
+    assert last["version"] == version and last["path"] == f"/models/{live.model}"
 
 
 @pytest.mark.xfail(
