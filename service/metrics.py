@@ -39,6 +39,7 @@ from service.settings import Settings
 
 log = logging.getLogger(__name__)
 
+_MODEL_PATH = re.compile(r"^/models/([A-Za-z0-9][A-Za-z0-9_.-]{0,63})$")
 _ROUTE_PATH = re.compile(r"^/models/([A-Za-z0-9][A-Za-z0-9_.-]{0,63})/(route|documents)$")
 SNIPPET_CHARACTERS = 200
 # Routing latency buckets, seconds: single documents take well under a millisecond of model
@@ -139,6 +140,9 @@ class RoutingMeter:
         self.owner = owner
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] == "http" and scope["method"] == "DELETE":
+            await self._deleting(scope, receive, send)
+            return
         match = _ROUTE_PATH.match(scope.get("path", "")) if scope["type"] == "http" else None
         if match is None or scope["method"] != "POST":
             await self.app(scope, receive, send)
@@ -171,6 +175,21 @@ class RoutingMeter:
                 self._count(model, kind, status, elapsed, request_chunks, response_chunks)
             except Exception:  # a metric must never break an answer
                 log.exception("counting a %s answer failed", kind)
+
+    async def _deleting(self, scope: Scope, receive: Receive, send: Send) -> None:
+        """A deleted model's flagged documents (message text) leave memory with it."""
+        match = _MODEL_PATH.match(scope.get("path", ""))
+        status = 500
+
+        async def send_seen(message: Message) -> None:
+            nonlocal status
+            if message["type"] == "http.response.start":
+                status = int(message["status"])
+            await send(message)
+
+        await self.app(scope, receive, send_seen)
+        if match is not None and status == 204:
+            self.flagged.forget(match.group(1))
 
     def _count(
         self,

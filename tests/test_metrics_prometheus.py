@@ -130,5 +130,15 @@ def test_a_model_nobody_learns_shows_its_lag(client, model_name: str) -> None:  
         assert values[("mixroute_model_version", m)] == 0
         assert values[("mixroute_stream_lag_seconds", m)] > 0.0
         assert ("mixroute_last_checkpoint_timestamp_seconds", m) not in values
+        flagged = client.post(f"/models/{idle}/route", json={"text": "qwxz vbnmk"})
+        assert flagged.status_code == 409  # no checkpoint yet: nothing routed, nothing kept
     finally:
         assert client.delete(f"/models/{idle}").status_code == 204
+
+
+def test_deleting_a_model_forgets_its_flagged_documents(client, model_name: str) -> None:  # type: ignore[no-untyped-def]
+    route_examples(client, model_name)
+    flagged = client.app.state.flagged
+    assert flagged.recent(model_name)
+    assert client.delete(f"/models/{model_name}").status_code == 204
+    assert flagged.recent(model_name) == []
