@@ -128,6 +128,16 @@ def test_create_learn_route_label_snapshot_rollback(
     junk = results[-1]
     assert junk["unknown_tokens"] > 0
 
+    # routing can also queue the documents for learning, answering with their stream ids
+    before = store.stream_info()["length"]
+    learn = api.post(
+        f"/models/{model_name}/route", json={"text": texts[1], "id": "learn-1", "learn": True}
+    ).json()
+    assert learn["queued"] is True and learn["results"][0]["stream_id"]
+    assert store.stream_info()["length"] == before + 1
+    fed += 1
+    model = wait_until(lambda: learned(api, model_name, fed), what="the queued document")
+
     # top n on request
     top = api.post(f"/models/{model_name}/route", json={"text": texts[0], "top": 2}).json()
     assert len(top["results"][0]["posterior"]) == 2
