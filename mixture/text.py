@@ -340,7 +340,14 @@ class Tokenizer:
             if not term:
                 return None
         ascii_only = term.isascii()
-        if not ascii_only:
+        if not ascii_only and self._is_plain(term):
+            # Already NFKC, inside the BMP class (letters, digits, marks) and, being cut from
+            # case-folded text, already folded (folding is idempotent): the slow path below
+            # would return it unchanged.
+            if not term.isalnum() and not any(c.isalnum() for c in term):
+                return None
+            normal = term
+        elif not ascii_only:
             # NFKC, fold, NFKC again: folding can undo a composition and NFKC can bring back
             # capitals (Roman numerals). "İ" folds to "i" plus a combining dot; dropping the
             # dot lets "İstanbul" meet "istanbul".
@@ -368,6 +375,14 @@ class Tokenizer:
         if term in self._stop_words:
             return None
         return term
+
+    @staticmethod
+    def _is_plain(term: str) -> bool:
+        return (
+            "\u0307" not in term
+            and max(term) < "\U00010000"
+            and unicodedata.is_normalized("NFKC", term)
+        )
 
     def tokenize(self, text: str) -> list[str]:
         """Return the tokens of one text, in order.
