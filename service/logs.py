@@ -48,6 +48,7 @@ _STANDARD_ATTRS = frozenset(
     | {"message", "asctime", "taskName"}
 )
 CONTEXT_FIELDS = ("request_id", "model", "version", "worker")
+WORKER_THREAD_PREFIX = "mixroute-worker-"
 
 access_log = logging.getLogger("mixroute.access")
 
@@ -94,6 +95,9 @@ class JsonFormatter(logging.Formatter):
             "message": record.getMessage(),
         }
         context = {"request_id": request_id_var.get(), "model": model_var.get()}
+        if context["model"] is None and record.threadName.startswith(WORKER_THREAD_PREFIX):
+            # service.runner names each worker thread after its model
+            context["model"] = record.threadName.removeprefix(WORKER_THREAD_PREFIX)
         for name in CONTEXT_FIELDS:
             value = getattr(record, name, None)
             if value is None:

@@ -380,3 +380,16 @@ def test_manifest_environment_is_read_by_settings() -> None:
                 if ref:  # keys come from a secret, never from the manifest itself
                     assert ref["name"] == "mixroute-keys"
                     assert "value" not in entry
+
+
+def test_dashboard_files_ship_in_the_package() -> None:
+    """The image installs mixroute with pip: the page's files must be package data."""
+    from fnmatch import fnmatch
+
+    pyproject = tomllib.loads((ROOT / "pyproject.toml").read_text())
+    patterns = pyproject["tool"]["setuptools"]["package-data"]["service"]
+    files = list((ROOT / "service" / "static").iterdir())
+    assert {f.name for f in files} >= {"dashboard.html", "dashboard.js", "dashboard.css"}
+    for path in files:
+        assert path.is_file(), f"{path} (subfolders are not matched by the package data)"
+        assert any(fnmatch(f"static/{path.name}", p) for p in patterns), path.name
