@@ -339,8 +339,12 @@ class ApiClient:
     def __init__(self, base_url: str, timeout: float = 60.0) -> None:
         import httpx
 
+        from service.settings import load_settings
+
         self.base_url = base_url.rstrip("/")
-        self._client = httpx.Client(base_url=self.base_url, timeout=timeout)
+        key = load_settings().api_key.get_secret_value()
+        headers = {"Authorization": f"Bearer {key}"} if key else {}
+        self._client = httpx.Client(base_url=self.base_url, timeout=timeout, headers=headers)
 
     def request(self, method: str, path: str, **kwargs: Any) -> Any:
         import httpx
@@ -352,6 +356,11 @@ class ApiClient:
                 f"cannot reach the mixroute API at {self.base_url} ({exc.__class__.__name__}); "
                 "start it with `mixroute serve` or pass --api URL"
             ) from None
+        if response.status_code in (401, 403):
+            raise CommandError(
+                f"{method} {path}: {response.status_code}: the API wants a key with the right "
+                "role; set MIXROUTE_API_KEY"
+            )
         if response.status_code >= 400:
             try:
                 detail = response.json().get("detail", response.text)

@@ -111,3 +111,16 @@ def test_work_without_redis_url_explains(monkeypatch, capsys) -> None:
     monkeypatch.delenv("MIXROUTE_REDIS_URL", raising=False)
     assert main(["work"]) == 2
     assert "needs a shared Redis" in capsys.readouterr().err
+
+
+def test_command_line_sends_the_configured_key(redis_url: str, monkeypatch, capsys) -> None:
+    admin_key = "cli-test-admin-key-0123456789"
+    settings = Settings(redis_url=redis_url, api_keys_admin=admin_key)
+    with uvicorn_thread(create_app(settings)) as url:
+        monkeypatch.delenv("MIXROUTE_API_KEY", raising=False)
+        assert main(["models", "list", "--api", url]) == 1
+        assert "set MIXROUTE_API_KEY" in capsys.readouterr().err
+        monkeypatch.setenv("MIXROUTE_API_KEY", admin_key)
+        assert main(["models", "list", "--api", url]) == 0
+        err = capsys.readouterr().err
+        assert admin_key not in err
