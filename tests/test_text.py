@@ -146,6 +146,8 @@ def test_urls_and_emails_fold_to_placeholders(tokenizer: Tokenizer) -> None:
     # An address without a dotted domain is not an e-mail address; the literal placeholder
     # text in a message is ordinary text, not a placeholder.
     assert tokenizer.tokenize("ab@cd _url_ _num_") == ["ab", "cd", "url", "num"]
+    # Nor can the internal sentinels (ASCII capitals, which case folding removes).
+    assert tokenizer.tokenize("URL EMAIL Url") == ["url", "email", "url"]
 
 
 def test_url_inside_punctuation_and_multiple_lines(tokenizer: Tokenizer) -> None:
