@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import warnings
 from collections.abc import Iterator
 
 import pytest
@@ -142,3 +143,32 @@ def test_deleting_a_model_forgets_its_flagged_documents(client, model_name: str)
     assert flagged.recent(model_name)
     assert client.delete(f"/models/{model_name}").status_code == 204
     assert flagged.recent(model_name) == []
+
+
+def test_metrics_answer_from_memory_when_redis_is_gone(tmp_path) -> None:  # type: ignore[no-untyped-def]
+    from state.connection import EmbeddedRedis
+    from tests.ops_support import ADMIN, WithKey, make_app, train
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        from fastapi.testclient import TestClient
+
+    server = EmbeddedRedis(tmp_path / "redis", appendfsync="no").start()
+    try:
+        app = make_app(server.url, "gone", redis_timeout=0.5)
+        with TestClient(app) as raw:
+            client = WithKey(raw, ADMIN)
+            model = train(client, "gone", days=1, snapshot_after=0)
+            up = samples(client.get("/metrics").text)
+            assert up[("mixroute_redis_up", ())] == 1.0
+            server.stop()
+            answer = client.get("/metrics")
+            assert answer.status_code == 200
+            down = samples(answer.text)
+            m = (("model", "gone"),)
+            assert down[("mixroute_redis_up", ())] == 0.0
+            assert down[("mixroute_model_version", m)] == model["version"]
+            assert down[("mixroute_documents_learned", m)] == model["documents_learned"]
+            assert ("mixroute_stream_length_entries", m) not in down
+    finally:
+        server.stop()
