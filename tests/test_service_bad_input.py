@@ -29,6 +29,20 @@ MAX_TEXT_BYTES = 2_000
 MAX_DOCUMENTS = 5
 
 
+class ScopeRecorder:
+    """Outer ASGI middleware keeping the last HTTP scope it passed on (after the answer)."""
+
+    last: dict[str, Any] | None = None
+
+    def __init__(self, app: Any) -> None:
+        self.app = app
+
+    async def __call__(self, scope: dict, receive: Any, send: Any) -> None:
+        await self.app(scope, receive, send)
+        if scope["type"] == "http":
+            ScopeRecorder.last = scope
+
+
 @pytest.fixture
 def warm(redis_url: str, redis_client: redis.Redis, model_name: str) -> Iterator[TestClient]:
     """A client of an app whose model has one checkpoint (learned by a worker, then idle)."""
@@ -38,7 +52,7 @@ def warm(redis_url: str, redis_client: redis.Redis, model_name: str) -> Iterator
         max_documents_per_request=MAX_DOCUMENTS,
         reload_poll_interval=0.05,
     )
-    app = create_app(settings)
+    app = create_app(settings, middleware=[(ScopeRecorder, {})])
     with TestClient(app) as client:
         config = {"n_groups": 3, "warmup_documents": 60, "n_restarts": 1}
         made = client.post(
@@ -159,3 +173,17 @@ def test_body_over_request_limit_is_413(redis_url: str) -> None:
         )
         assert response.status_code == 413
         assert "10000 bytes" in response.json()["detail"]
+
+
+def test_answer_is_handed_to_outer_middleware(warm: TestClient, model_name: str) -> None:
+    texts = ["is the ferry late", "I left my bag on the deck"]
+    answer = warm.post(
+        f"/models/{model_name}/route", json={"documents": [{"text": t} for t in texts]}
+    ).json()
+    assert ScopeRecorder.last is not None
+    assert ScopeRecorder.last["mixroute.answer"] == answer
+    assert ScopeRecorder.last["mixroute.texts"] == texts
+    queued = warm.post(
+        f"/models/{model_name}/documents", json={"documents": [{"text": "a ferry question"}]}
+    )
+    assert queued.status_code == 202 and ScopeRecorder.last["mixroute.queued"] == 1

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from fastapi import APIRouter, status
+from fastapi import APIRouter, Request, status
 
 from service.routers import COMMON_RESPONSES, Runtime, check_documents
 from service.schemas import DocumentsIn, Problem, QueuedOut
@@ -23,7 +23,9 @@ router = APIRouter(tags=["documents"], responses=COMMON_RESPONSES)
         503: {"model": Problem, "description": "Redis unreachable: nothing was queued"},
     },
 )
-def queue_documents(model: str, body: DocumentsIn, runtime: Runtime) -> dict[str, Any]:
+def queue_documents(
+    model: str, body: DocumentsIn, runtime: Runtime, request: Request
+) -> dict[str, Any]:
     """Append the documents to the model's stream; the worker learns them.
 
     A document whose ``id`` was queued within the model's idempotency window is not added again
@@ -36,6 +38,7 @@ def queue_documents(model: str, body: DocumentsIn, runtime: Runtime) -> dict[str
     ids = [doc.id for doc in body.documents]
     result = runtime.call(lambda: loaded.store.enqueue(texts, ids=ids))
     stream_ids = list(result.stream_ids)
+    request.scope["mixroute.queued"] = sum(1 for s in stream_ids if s is not None)
     return {
         "model": model,
         "queued": sum(1 for s in stream_ids if s is not None),

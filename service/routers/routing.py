@@ -142,6 +142,9 @@ async def route_documents(model: str, body: RouteIn, request: Request) -> Respon
         content, degraded = route_now(runtime, model, body)
     else:
         content, degraded = await run_in_threadpool(route_now, runtime, model, body)
+    # hand the answer to outer middleware (metrics, dashboard) so they need not parse JSON
+    request.scope["mixroute.answer"] = content
+    request.scope["mixroute.texts"] = [d.text for d in body.as_documents()]
     # orjson: the shortest repr that reads back to the same float, about 10x faster than json
     response = Response(orjson.dumps(content), media_type="application/json")
     if degraded:
