@@ -76,6 +76,7 @@ def browser() -> Iterator[Any]:
         f"--user-data-dir={profile}",
     ):
         options.add_argument(flag)
+    options.set_capability("goog:loggingPrefs", {"browser": "ALL"})
     driver = webdriver.Chrome(service=Service(executable_path=CHROMEDRIVER), options=options)
     driver.set_page_load_timeout(30)
     try:
@@ -184,13 +185,26 @@ def test_dashboard_shows_the_model_and_restores_after_confirmation(
     )
     assert browser.find_elements(By.CSS_SELECTOR, "#snapshots tr[data-snapshot]")
 
+    # no script error and nothing the page's security policy had to block; the only errors
+    # allowed are the 401s of the first load, before a key was typed in
+    entries = browser.get_log("browser")
+    errors = [
+        entry["message"]
+        for entry in entries
+        if entry["level"] == "SEVERE" and "401" not in entry["message"]
+    ]
+    assert not errors, errors
+
 
 def test_dashboard_files_are_served_from_the_app_only(live: tuple[str, str, httpx.Client]) -> None:
     """No CDN: every script, style and image the page names is on this origin and served."""
     import re
 
     base, _, _ = live
-    page = httpx.get(f"{base}/dashboard").text
+    answer = httpx.get(f"{base}/dashboard")
+    policy = answer.headers["Content-Security-Policy"]
+    assert "default-src 'none'" in policy and "script-src 'self';" in policy
+    page = answer.text
     references = re.findall(r'(?:src|href)="([^"]+)"', page)
     assert references
     for ref in references:
