@@ -374,6 +374,9 @@ class ServiceRuntime:
                 if loaded is None:
                     continue
                 try:
+                    if not self.registry.exists(name):  # deleted, maybe by another replica
+                        self.forget(name)
+                        continue
                     version = loaded.store.version()
                     labels = self._read_labels(name, loaded.store)
                 except ModelNotFoundError:

@@ -187,3 +187,15 @@ def test_answer_is_handed_to_outer_middleware(warm: TestClient, model_name: str)
         f"/models/{model_name}/documents", json={"documents": [{"text": "a ferry question"}]}
     )
     assert queued.status_code == 202 and ScopeRecorder.last["mixroute.queued"] == 1
+
+
+def test_model_deleted_elsewhere_is_forgotten(
+    warm: TestClient, redis_client: redis.Redis, model_name: str
+) -> None:
+    from state.registry import Registry
+
+    assert warm.get(f"/models/{model_name}").status_code == 200
+    Registry(redis_client).delete(model_name)  # as another API replica would
+    warm.app.state.runtime.poll_once()
+    gone = warm.post(f"/models/{model_name}/route", json={"text": "ferry"})
+    assert gone.status_code == 404 and model_name in gone.json()["detail"]
