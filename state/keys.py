@@ -28,6 +28,8 @@ heartbeat          string      name of the worker holding the model (TTL = lease
 worker_status      string      JSON status of that worker (same TTL)
 replay             string      JSON replay record of the last rollback (skip ranges)
 notify             channel     pub/sub: the new version after each checkpoint / rollback
+labels             hash        operator labels per group: field = group id, value = JSON
+labels_version     string      counter bumped by every label change (cheap change check)
 =================  ==========  ===========================================================
 """
 
@@ -93,6 +95,8 @@ class ModelKeys:
         "docs",
         "heartbeat",
         "history",
+        "labels",
+        "labels_version",
         "lineage",
         "model",
         "notify",
@@ -126,6 +130,8 @@ class ModelKeys:
         self.worker_status = b + "worker_status"
         self.replay = b + "replay"
         self.notify = b + "notify"
+        self.labels = b + "labels"
+        self.labels_version = b + "labels_version"
 
     def snapshot(self, snapshot_id: str) -> str:
         """Key of the hash holding one snapshot."""

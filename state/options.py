@@ -58,6 +58,8 @@ class ModelOptions:
         TTL of the heartbeat key: a worker silent this long loses the model.
     seed : int
         Seed of the learner's random initialisation.
+    review_threshold : float
+        Routing answers ask for human review when the MAP posterior is below this (0, 1].
     """
 
     checkpoint_documents: int = 1000
@@ -78,6 +80,7 @@ class ModelOptions:
     claim_idle_seconds: float = 30.0
     lease_seconds: float = 15.0
     seed: int = 0
+    review_threshold: float = 0.6
 
     def __post_init__(self) -> None:
         positive_int = (
@@ -108,6 +111,9 @@ class ModelOptions:
             if value is not None:
                 _check_float(name, value, minimum=0.0, strict=True)
         _check_float("drift_threshold", self.drift_threshold, minimum=0.0, strict=False)
+        _check_float("review_threshold", self.review_threshold, minimum=0.0, strict=True)
+        if self.review_threshold > 1.0:
+            raise OptionsError(f"review_threshold must be in (0, 1], got {self.review_threshold!r}")
         if self.drift_threshold > 1.0:
             raise OptionsError(
                 f"drift_threshold must be in [0, 1] (JS divergence, base 2), got "

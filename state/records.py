@@ -216,3 +216,16 @@ class WorkerStatus:
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> WorkerStatus:
         return cls(**d)
+
+
+@dataclass(frozen=True)
+class GroupLabel:
+    """An operator's label and destination for one group."""
+
+    group: int
+    label: str | None
+    destination: str | None
+    updated: float
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)

@@ -55,6 +55,7 @@ from state.records import (
     CurrentState,
     DriftReport,
     EnqueueResult,
+    GroupLabel,
     HistoryRow,
     RollbackResult,
     SnapshotInfo,
@@ -263,11 +264,15 @@ class ModelStore:
         length, first, last, watermark = pipe.execute()
         pending = 0
         consumers = 0
+        lag: int | None = None
         try:
             for group in self.redis.xinfo_groups(self.keys.docs):
-                if group["name"] in (CONSUMER_GROUP, CONSUMER_GROUP.encode()):
+                name = group.get("name", group.get(b"name"))
+                if name in (CONSUMER_GROUP, CONSUMER_GROUP.encode()):
                     pending = int(group["pending"])
                     consumers = int(group["consumers"])
+                    raw_lag = group.get("lag")  # Redis >= 7 only
+                    lag = int(raw_lag) if raw_lag is not None else None
         except redis.ResponseError:
             pass
         return {
@@ -276,6 +281,7 @@ class ModelStore:
             "last_id": last[0][0].decode() if last else None,
             "pending": pending,
             "consumers": consumers,
+            "lag": lag,  # entries not yet delivered to the group (None before Redis 7)
             "watermark": watermark.decode() if watermark else ZERO_ID,
         }
 
@@ -388,6 +394,8 @@ class ModelStore:
         ------
         VersionConflictError
             When the version moved (a rollback) or the lease is no longer ``cp.worker``'s.
+        ModelNotFoundError
+            When the model was deleted meanwhile (nothing is written).
         """
         keys = self.keys
         options = self.options
@@ -399,8 +407,10 @@ class ModelStore:
         snapshot_id = self._next_snapshot_id() if cp.snapshot_reason else None
         with self.redis.pipeline(transaction=True) as pipe:
             try:
-                pipe.watch(keys.version, keys.heartbeat)
+                pipe.watch(keys.version, keys.heartbeat, keys.config)
                 raw_version, holder = pipe.get(keys.version), pipe.get(keys.heartbeat)
+                if not pipe.exists(keys.config):
+                    raise ModelNotFoundError(f"model {self.model!r} was deleted")
                 current_version = int(raw_version or 0)
                 if current_version != cp.expected_version:
                     raise VersionConflictError(
@@ -835,6 +845,53 @@ class ModelStore:
             alert=value > threshold,
             series=series,
         )
+
+    def alert_count(self) -> int:
+        """Number of alerts kept in the alerts stream."""
+        return int(self.redis.xlen(self.keys.alerts))
+
+    # -- group labels ------------------------------------------------------------------------
+    def group_labels(self) -> dict[int, GroupLabel]:
+        """Operator labels by group id (groups without one are absent)."""
+        out: dict[int, GroupLabel] = {}
+        for field_name, raw in self.redis.hgetall(self.keys.labels).items():
+            d = json.loads(raw)
+            group = int(field_name)
+            out[group] = GroupLabel(
+                group, d.get("label"), d.get("destination"), float(d.get("updated", 0.0))
+            )
+        return dict(sorted(out.items()))
+
+    def labels_version(self) -> int:
+        """Counter bumped by every label change (compare it to skip re-reading the labels)."""
+        raw = self.redis.get(self.keys.labels_version)
+        return int(raw) if raw else 0
+
+    def set_group_label(self, group: int, label: str | None, destination: str | None) -> GroupLabel:
+        """Set (or, with both None, clear) the label and destination of one group.
+
+        Raises
+        ------
+        OptionsError
+            When ``group`` is outside [0, K) or a text is empty or longer than 200 characters.
+        """
+        k = self.info.config.n_groups
+        if isinstance(group, bool) or not isinstance(group, int) or not 0 <= group < k:
+            raise OptionsError(f"group must be an integer in [0, {k}), got {group!r}")
+        for name, value in (("label", label), ("destination", destination)):
+            if value is not None and (
+                not isinstance(value, str) or not value.strip() or len(value) > 200
+            ):
+                raise OptionsError(f"{name} must be 1-200 characters or null")
+        record = GroupLabel(group, label, destination, time.time())
+        pipe = self.redis.pipeline(transaction=True)
+        if label is None and destination is None:
+            pipe.hdel(self.keys.labels, str(group))
+        else:
+            pipe.hset(self.keys.labels, str(group), dumps(record.to_dict()))
+        pipe.incr(self.keys.labels_version)
+        pipe.execute()
+        return record
 
     def alerts(self, count: int = 100) -> list[Alert]:
         """The newest ``count`` alerts, oldest first."""

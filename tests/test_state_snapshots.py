@@ -202,3 +202,64 @@ def test_drift_history_query_and_alerts(redis_client: redis.Redis, model_name: s
     assert alerts and alerts[0].kind == "weight_drift"
     assert alerts[0].value > alerts[0].threshold == 0.02
     assert "JS divergence" in alerts[0].reason
+
+
+def test_idle_worker_replays_after_rollback_without_new_traffic(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    config = small_config()
+    store = create_model(redis_client, model_name, config)
+    first, second = ferry_texts(600, seed=71), _spam(200, seed=72)
+    with WorkerThread(Worker(redis_client, model_name)):
+        store.enqueue(first)
+        wait_for(learned_all(store, 600), what="600 learned")
+        snap = store.create_snapshot("before the spam")
+        ids = store.enqueue(second).stream_ids
+        wait_for(learned_all(store, 800), what="spam learned")
+        store.rollback(snap.id, replay=True, skip_ids=[[ids[100], ids[-1]]])
+        # no new traffic: the worker must notice the version and replay on its own
+        wait_for(learned_all(store, 700), what="replay of the 100 entries before the range")
+    expected = reference_state(second[:100], config, start=store.snapshot_state(snap.id))
+    assert_same_state(store.load_state(), expected)
+
+
+def test_no_drift_alert_against_the_spoiled_weights_after_a_rollback(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    store = create_model(
+        redis_client,
+        model_name,
+        options=fast_options(checkpoint_documents=100, drift_threshold=0.02, drift_window=3),
+    )
+    calm = ferry_texts(1200, seed=81, weights=(0.4, 0.3, 0.3))
+    with WorkerThread(Worker(redis_client, model_name)):
+        store.enqueue(calm[:600])
+        wait_for(learned_all(store, 600), what="calm learned")
+        snap = store.create_snapshot("calm")
+        store.enqueue(ferry_texts(1500, seed=82, weights=(0.02, 0.02, 0.96)))
+        wait_for(learned_all(store, 2100), what="shift learned")
+        alerts_before = store.alert_count()
+        assert alerts_before >= 1
+        store.rollback(snap.id)
+        store.enqueue(calm[600:])
+        wait_for(learned_all(store, 1200), what="calm again after the rollback")
+    assert store.alert_count() == alerts_before
+
+
+def test_group_labels_and_review_threshold(redis_client: redis.Redis, model_name: str) -> None:
+    from state.errors import OptionsError
+    from state.options import ModelOptions
+
+    store = create_model(redis_client, model_name, options=fast_options(review_threshold=0.8))
+    assert store.options.review_threshold == 0.8
+    with pytest.raises(OptionsError, match="review_threshold"):
+        ModelOptions(review_threshold=0.0)
+    assert store.group_labels() == {} and store.labels_version() == 0
+    record = store.set_group_label(1, "lost property", "desk-b")
+    assert store.group_labels() == {1: record} and store.labels_version() == 1
+    store.set_group_label(1, None, None)
+    assert store.group_labels() == {} and store.labels_version() == 2
+    with pytest.raises(OptionsError, match=r"\[0, 3\)"):
+        store.set_group_label(3, "x", None)
+    with pytest.raises(OptionsError, match="label"):
+        store.set_group_label(0, "", None)

@@ -180,3 +180,18 @@ def test_heartbeat_names_the_worker_and_a_second_worker_waits(
         assert standby.checkpoints == 0
     assert store.lease_holder() is None  # released on stop
     assert json.loads(redis_client.get(store.keys.state_meta))["documents_learned"] == 300
+
+
+def test_deleting_a_model_stops_its_worker_and_leaves_no_key(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    store = create_model(redis_client, model_name)
+    store.enqueue(ferry_texts(300, seed=8))
+    worker = Worker(redis_client, model_name)
+    runner = WorkerThread(worker)
+    with runner:
+        wait_for(learned_all(store, 300), what="300 learned")
+        Registry(redis_client).delete(model_name)
+        wait_for(lambda: not runner.thread.is_alive(), what="the worker stops by itself")
+    assert worker.deleted
+    assert list(redis_client.scan_iter(match=ModelKeys(model_name).pattern())) == []

@@ -28,6 +28,7 @@ it tidy, the XRANGE from the watermark is what guarantees that nothing is lost.
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import os
 import socket
@@ -43,7 +44,7 @@ from mixture.drift import js_divergence
 from mixture.online import BatchReport, OnlineLearner
 from mixture.serialize import state_from_bytes
 from state.connection import redis_from_url
-from state.errors import VersionConflictError
+from state.errors import ModelNotFoundError, VersionConflictError
 from state.keys import CONSUMER_GROUP
 from state.options import ModelOptions
 from state.records import WorkerStatus
@@ -128,8 +129,13 @@ class Worker:
         self.conflicts = 0
         self.reconnects = 0
         self.errors = 0
+        self.deleted = False
 
     # -- public ------------------------------------------------------------------------------
+    def _log_fields(self) -> dict[str, object]:
+        """Structured fields for JSON log lines (service.logs prints them)."""
+        return {"model": self.model, "worker": self.name, "version": self.version}
+
     def stop(self) -> None:
         """Ask the loop to finish its batch, checkpoint and return (thread-safe)."""
         self._stop.set()
@@ -141,7 +147,7 @@ class Worker:
     def run(self) -> None:
         """Learn until :meth:`stop`; survives lost connections (retry with backoff)."""
         backoff = 0.1
-        log.info("worker %s starting on model %r", self.name, self.model)
+        log.info("worker %s starting on model %r", self.name, self.model, extra=self._log_fields())
         while not self._stop.is_set():
             try:
                 self.run_once()
@@ -154,6 +160,7 @@ class Worker:
                     type(exc).__name__,
                     exc,
                     backoff,
+                    extra=self._log_fields(),
                 )
                 self._drop_work()
                 self._stop.wait(backoff)
@@ -162,7 +169,12 @@ class Worker:
                 # a bug or a Redis-side surprise must not kill the loop silently: log it,
                 # drop the uncommitted work (nothing was acknowledged) and start over
                 self.errors += 1
-                log.exception("worker %s: unexpected error; reloading in %.1fs", self.name, backoff)
+                log.exception(
+                    "worker %s: unexpected error; reloading in %.1fs",
+                    self.name,
+                    backoff,
+                    extra=self._log_fields(),
+                )
                 self._drop_work()
                 self._stop.wait(backoff)
                 backoff = min(backoff * 2, 5.0)
@@ -175,6 +187,11 @@ class Worker:
             return 0
         if not self._loaded:
             self._load()
+        elif not self._same_version():
+            self._drop_work()
+            self._load()
+        if self.deleted:
+            return 0
         learned = self._read_and_learn()
         if self._checkpoint_due():
             self.checkpoint()
@@ -210,9 +227,20 @@ class Worker:
         )
         try:
             self.version = self.store.commit_checkpoint(cp)
+        except ModelNotFoundError:
+            log.warning(
+                "worker %s: model %r was deleted; stopping",
+                self.name,
+                self.model,
+                extra=self._log_fields(),
+            )
+            self.deleted = True
+            self._stop.set()
+            self._drop_work()
+            return False
         except VersionConflictError as exc:
             self.conflicts += 1
-            log.info("worker %s: %s; reloading", self.name, exc)
+            log.info("worker %s: %s; reloading", self.name, exc, extra=self._log_fields())
             self._drop_work()
             return False
         self.checkpoints += 1
@@ -227,6 +255,35 @@ class Worker:
         self._report = BatchReport()
         self._documents_since_checkpoint = 0
         self._last_checkpoint = time.monotonic()
+        return True
+
+    def _same_version(self) -> bool:
+        """True while the model's version is the one loaded (a rollback moves it)."""
+        pipe = self.redis.pipeline(transaction=False)
+        pipe.get(self.store.keys.version)
+        pipe.exists(self.store.keys.config)
+        raw_version, exists = pipe.execute()
+        if not exists:
+            log.warning(
+                "worker %s: model %r was deleted; stopping",
+                self.name,
+                self.model,
+                extra=self._log_fields(),
+            )
+            self.deleted = True
+            self._stop.set()
+            return True
+        version = int(raw_version or 0)
+        if version != self.version:
+            log.info(
+                "worker %s: model %r moved to version %d (loaded %d); reloading",
+                self.name,
+                self.model,
+                version,
+                self.version,
+                extra=self._log_fields(),
+            )
+            return False
         return True
 
     # -- lease -------------------------------------------------------------------------------
@@ -251,10 +308,15 @@ class Worker:
             phase = "warming-up"
         held = self.store.hold_lease(self._status(phase))
         if held and not self.holding:
-            log.info("worker %s holds model %r", self.name, self.model)
+            log.info("worker %s holds model %r", self.name, self.model, extra=self._log_fields())
             self._loaded = False  # (re)load: another worker may have written meanwhile
         elif not held and self.holding:
-            log.warning("worker %s lost the lease of model %r", self.name, self.model)
+            log.warning(
+                "worker %s lost the lease of model %r",
+                self.name,
+                self.model,
+                extra=self._log_fields(),
+            )
             self._drop_work()
         self.holding = held
         self._last_lease = now
@@ -262,6 +324,16 @@ class Worker:
 
     # -- loading -----------------------------------------------------------------------------
     def _load(self) -> None:
+        if not self.redis.exists(self.store.keys.config):
+            log.warning(
+                "worker %s: model %r does not exist (deleted); stopping",
+                self.name,
+                self.model,
+                extra=self._log_fields(),
+            )
+            self.deleted = True
+            self._stop.set()
+            return
         self.store.ensure_group()
         current = self.store.current()
         if current is None:
@@ -283,8 +355,12 @@ class Worker:
         self._report = BatchReport()
         self._documents_since_checkpoint = 0
         self._recent_weights.clear()
+        # the drift window never reaches back across a rollback (the spoiled state's weights)
+        rollbacks = [r.version for r in self.store.lineage(1000) if r.kind == "rollback"]
+        since = max(rollbacks, default=0)
         for row in self.store.history(self.options.drift_window):
-            self._recent_weights.append(row.weights)
+            if row.version >= since:
+                self._recent_weights.append(row.weights)
         autos = [s for s in self.store.list_snapshots() if s.automatic]
         if autos:
             last = max(autos, key=lambda s: s.created)
@@ -303,6 +379,7 @@ class Worker:
             self.model,
             self.version,
             self.cursor,
+            extra=self._log_fields(),
         )
 
     def _drop_work(self) -> None:
@@ -435,7 +512,11 @@ class Worker:
         for stream_id, item in entries:
             if isinstance(item, Undecodable):
                 log.warning(
-                    "model %r: entry %s to dead letters: %s", self.model, stream_id, item.reason
+                    "model %r: entry %s to dead letters: %s",
+                    self.model,
+                    stream_id,
+                    item.reason,
+                    extra=self._log_fields(),
                 )
                 self._dead.append(item)
         if entries:
@@ -542,6 +623,12 @@ class Worker:
 
     def _shutdown(self) -> None:
         """Finish: learn a partial unit when latency mode is on, checkpoint, release the lease."""
+        if self.deleted:
+            with contextlib.suppress(*_RETRYABLE):
+                self.store.release_lease(self.name)  # leave no key of a deleted model behind
+            self.holding = False
+            log.info("worker %s stopped: model deleted", self.name, extra=self._log_fields())
+            return
         try:
             if self.holding and self.learner is not None:
                 if self.options.flush_partial_seconds is not None and self._pending.documents:
@@ -556,8 +643,14 @@ class Worker:
                 "unacknowledged and will be learned by the next worker",
                 self.name,
                 exc,
+                extra=self._log_fields(),
             )
-        log.info("worker %s stopped (%d checkpoints)", self.name, self.checkpoints)
+        log.info(
+            "worker %s stopped (%d checkpoints)",
+            self.name,
+            self.checkpoints,
+            extra=self._log_fields(),
+        )
 
 
 __all__ = ["Worker"]
