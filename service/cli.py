@@ -157,12 +157,15 @@ def cmd_fit(args: argparse.Namespace) -> int:
     out = Path(args.out)
     _write_atomic(out, state_to_bytes(state))
     weights = ", ".join(f"{w:.3f}" for w in state.weights())
+    convergence = "converged" if report.converged else "stopped at max_iter"
     print(
         f"fitted {len(batch.documents)} documents into {config.n_groups} groups "
-        f"(vocabulary {state.vocabulary.n_active} words); weights [{weights}]; wrote {out}",
+        f"(vocabulary {state.vocabulary.n_active} words; best of {config.n_restarts} restarts, "
+        f"{report.n_iter} iterations, {convergence}); weights [{weights}]; wrote {out}",
         file=sys.stderr,
     )
-    del report
+    if report.reseeded:
+        print(f"re-seeded empty groups: {report.reseeded}", file=sys.stderr)
     return EXIT_OK
 
 

@@ -29,10 +29,6 @@ def get_runtime(request: Request) -> ServiceRuntime:
 Runtime = Annotated[ServiceRuntime, Depends(get_runtime)]
 
 
-def get_settings(request: Request) -> Settings:
-    return request.app.state.settings  # type: ignore[no-any-return]
-
-
 def check_documents(documents: Sequence[DocumentIn], settings: Settings) -> None:
     """Refuse the whole request before anything happens when one document is unusable.
 
