@@ -5,6 +5,8 @@
    entries of the same stream, in the same run (target >= 0.5), with the absolute figure
    (target >= 20,000 documents per second). The worker's figure includes decoding, the
    tokenizer, stepwise EM and its checkpoints (state bytes, history row, XACK in one MULTI).
+   For scale, mixture/ alone (``OnlineLearner.learn`` in the same units, no Redis) is timed
+   on the same texts too: the worker can be no faster than that.
 2. One checkpoint for K = 50 groups and V = 100,000 words: seconds for ``state_to_bytes`` +
    ``ModelStore.commit_checkpoint`` (one MULTI), seconds to load it back (GET +
    ``state_from_bytes``), and its size.
@@ -24,6 +26,7 @@ import time
 import numpy as np
 
 from mixture.config import MixtureConfig
+from mixture.online import OnlineLearner
 from mixture.serialize import state_from_bytes, state_to_bytes
 from mixture.stats import MixtureState
 from mixture.text import Vocabulary
@@ -95,6 +98,22 @@ def worker_run(store: ModelStore, options: ModelOptions, expect: int) -> float:
     return elapsed
 
 
+def model_alone(store: ModelStore, texts: list[str]) -> float:
+    """Seconds for mixture/ alone to learn ``texts`` in units of batch_size (no Redis).
+
+    It starts from the current checkpoint (which already holds these texts): the cost of a
+    unit does not depend on which documents came before it.
+    """
+    state = store.load_state()
+    assert state is not None
+    learner = OnlineLearner.from_state(state)
+    unit = state.config.batch_size
+    began = time.perf_counter()
+    for i in range(0, len(texts), unit):
+        learner.learn(texts[i : i + unit])
+    return time.perf_counter() - began
+
+
 def throughput(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
     client = server.client()
     config = MixtureConfig(
@@ -122,7 +141,7 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
     store.enqueue(warm)
     worker_run(store, options, len(warm))  # cold start done outside the measurement
     learned = len(warm)
-    worker_rates, bare_rates, ratios = [], [], []
+    worker_rates, bare_rates, alone_rates, ratios = [], [], [], []
     for rep in range(repeats):
         texts = short_messages(n_docs, seed=10 + rep)
         start_id = store.last_stream_id()
@@ -131,7 +150,9 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
         bare = bare_loop(store, start_id, n_docs, options.read_count)
         learned += n_docs
         model = worker_run(store, options, learned)
+        alone = model_alone(store, texts)
         worker_rates.append(n_docs / model)
+        alone_rates.append(n_docs / alone)
         bare_rates.append(n_docs / bare)
         ratios.append(bare / model)
     pending = client.xpending(store.keys.docs, CONSUMER_GROUP)["pending"]
@@ -143,6 +164,10 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
     print(
         f"  worker (learn+checkpoint) : {statistics.median(worker_rates):12,.0f} documents/s"
         "   (target >= 20,000)"
+    )
+    print(
+        f"  model alone (no Redis)    : {statistics.median(alone_rates):12,.0f} documents/s"
+        "   (OnlineLearner.learn, same units and texts)"
     )
     print(f"  ratio worker / bare loop  : {statistics.median(ratios):12.3f}   (target >= 0.5)")
     print(f"  pending after the runs    : {pending}")
