@@ -68,17 +68,21 @@ from state.stream import ZERO_ID, SkipRanges, Undecodable, max_stream_id, parse_
 
 MAX_CLIENT_ID_LENGTH = 256
 
-# KEYS: docs, id key. ARGV: id ttl ms, maxlen ("" = none), client id, text, metadata, received.
+# KEYS: docs, id key (or docs again when the id was generated), config.
+# ARGV: id ttl ms, maxlen ("" = none), client id, text, metadata, received, "1" = check the id.
 _ENQUEUE_LUA = """
-if redis.call('SET', KEYS[2], '1', 'NX', 'PX', ARGV[1]) then
-  if ARGV[2] ~= '' then
-    return redis.call('XADD', KEYS[1], 'MAXLEN', '~', ARGV[2], '*',
-                      'id', ARGV[3], 'text', ARGV[4], 'metadata', ARGV[5], 'received', ARGV[6])
-  end
-  return redis.call('XADD', KEYS[1], '*',
+if redis.call('EXISTS', KEYS[3]) == 0 then
+  return redis.error_reply('NOMODEL the model does not exist')
+end
+if ARGV[7] == '1' and not redis.call('SET', KEYS[2], '1', 'NX', 'PX', ARGV[1]) then
+  return false
+end
+if ARGV[2] ~= '' then
+  return redis.call('XADD', KEYS[1], 'MAXLEN', '~', ARGV[2], '*',
                     'id', ARGV[3], 'text', ARGV[4], 'metadata', ARGV[5], 'received', ARGV[6])
 end
-return false
+return redis.call('XADD', KEYS[1], '*',
+                  'id', ARGV[3], 'text', ARGV[4], 'metadata', ARGV[5], 'received', ARGV[6])
 """
 
 # KEYS: heartbeat, worker_status. ARGV: worker, ttl ms, status JSON. 1 = holds the lease.
@@ -233,24 +237,20 @@ class ModelStore:
         ttl_ms = str(int(self.options.id_ttl_seconds * 1000))
         maxlen = self.options.stream_max_length
         pipe = self.redis.pipeline(transaction=False)
+        limit = "" if maxlen is None else str(maxlen)
         for client_id, text, meta_json, given in encoded:
-            if given:
-                self._enqueue_script(
-                    keys=[self.keys.docs, self.keys.client_id(client_id)],
-                    args=[
-                        ttl_ms,
-                        "" if maxlen is None else str(maxlen),
-                        client_id,
-                        text,
-                        meta_json,
-                        now,
-                    ],
-                    client=pipe,
-                )
-            else:
-                fields = {"id": client_id, "text": text, "metadata": meta_json, "received": now}
-                pipe.xadd(self.keys.docs, fields, maxlen=maxlen, approximate=True)
-        results = pipe.execute() if encoded else []
+            id_key = self.keys.client_id(client_id) if given else self.keys.docs
+            self._enqueue_script(
+                keys=[self.keys.docs, id_key, self.keys.config],
+                args=[ttl_ms, limit, client_id, text, meta_json, now, "1" if given else "0"],
+                client=pipe,
+            )
+        try:
+            results = pipe.execute() if encoded else []
+        except redis.ResponseError as exc:
+            if "NOMODEL" in str(exc):
+                raise ModelNotFoundError(f"model {self.model!r} does not exist") from exc
+            raise
         stream_ids = [None if r is None else r.decode() for r in results]
         return EnqueueResult(stream_ids, sum(1 for r in stream_ids if r is None))
 

@@ -198,6 +198,11 @@ def test_deleting_a_model_stops_its_worker_and_leaves_no_key(
         wait_for(lambda: not runner.thread.is_alive(), what="the worker stops by itself")
     assert worker.deleted
     assert list(redis_client.scan_iter(match=ModelKeys(model_name).pattern())) == []
+    from state.errors import ModelNotFoundError
+
+    with pytest.raises(ModelNotFoundError, match=model_name):
+        store.enqueue(["a late message"], ids=["late-1"])  # a stale store writes nothing
+    assert list(redis_client.scan_iter(match=ModelKeys(model_name).pattern())) == []
 
 
 def test_retention_by_length_and_by_age_never_past_the_watermark(

@@ -240,6 +240,7 @@ class Worker:
             return False
         except VersionConflictError as exc:
             self.conflicts += 1
+            self._last_lease = 0.0  # re-check the lease at the next step (it may have moved)
             log.info("worker %s: %s; reloading", self.name, exc, extra=self._log_fields())
             self._drop_work()
             return False
