@@ -383,11 +383,8 @@ class ModelCollector(Collector):
         info = store.stream_info()
         length.add_metric([name], info["length"])
         pending.add_metric([name], info["pending"])
-        group_lag = info.get("lag")
-        if group_lag is None:  # state/ does not report it yet: Redis 7's XINFO GROUPS does
-            group_lag = _consumer_group_lag(runtime.redis, store.keys.docs)
-        if group_lag is not None:
-            lag.add_metric([name], group_lag)
+        if info.get("lag") is not None:  # Redis 7 and later report it
+            lag.add_metric([name], info["lag"])
         lag_age.add_metric([name], _unlearned_age(runtime.redis, store.keys.docs, info, now))
         rows = store.history(limit=1)
         if rows:
@@ -396,7 +393,7 @@ class ModelCollector(Collector):
         threshold.add_metric([name], store.options.drift_threshold)
         with contextlib.suppress(StateError):  # no checkpoint yet: no divergence to report
             divergence.add_metric([name], store.drift().js_divergence)
-        alerts.add_metric([name], runtime.redis.xlen(store.keys.alerts))
+        alerts.add_metric([name], store.alert_count())
         status = store.worker_status()
         if status is not None:
             heartbeat.add_metric([name], max(0.0, now - status.time))
@@ -415,23 +412,6 @@ def _unlearned_age(client: Any, stream_key: str, info: dict[str, Any], now: floa
         return 0.0
     first_ms = parse_stream_id(entries[0][0])[0]
     return max(0.0, now - first_ms / 1000.0)
-
-
-def _consumer_group_lag(client: Any, stream_key: str) -> int | None:
-    import redis
-
-    from state.keys import CONSUMER_GROUP
-
-    try:
-        groups = client.xinfo_groups(stream_key)
-    except redis.ResponseError:
-        return None
-    for group in groups:
-        name = group.get("name")
-        if name in (CONSUMER_GROUP, CONSUMER_GROUP.encode()):
-            value = group.get("lag")
-            return None if value is None else int(value)
-    return None
 
 
 router = APIRouter(tags=["metrics"])
