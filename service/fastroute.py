@@ -4,7 +4,7 @@
 for a batch of a thousand documents, most of the work for one. Serving routes one document per
 request, so for small batches the service computes the same quantities directly from the
 model's parameters: tokens -> vocabulary ids -> the sum of their ``log_word_prob`` rows, then
-the same log-space normalisation (``mixture.em.normalise_log_rows``), margin and per-token
+the same log-space normalisation as ``mixture.em.normalise_log_rows``, margin and per-token
 log-likelihood as ``mixture.routing.route_counts``. The result equals ``route_texts`` to
 rounding (the tests check 1e-12); it is a stop-gap until the model core has such a path itself
 (requested as R3 in the service's requests to the lead).
@@ -12,11 +12,11 @@ rounding (the tests check 1e-12); it is a stop-gap until the model core has such
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 
 import numpy as np
 
-from mixture.em import normalise_log_rows
 from mixture.routing import Routing, route_texts
 from mixture.stats import MixtureState
 
@@ -41,39 +41,44 @@ def route_small(state: MixtureState, texts: Sequence[str]) -> Routing:
         return route_texts(state, texts)
     params = state.parameters()
     log_word_prob = params.log_word_prob
+    log_weights = params.log_weights
     tokenize = state.tokenizer.tokenize
-    lookup_many = state.vocabulary.lookup_many
+    lookup = state.vocabulary.lookup
     n_docs = len(texts)
-    k = params.log_weights.shape[0]
-    log_lik = np.zeros((n_docs, k))
+    k = log_weights.shape[0]
+    posterior = np.empty((n_docs, k))
+    group = np.empty(n_docs, dtype=np.int64)
+    margin = np.ones(n_docs)
+    per_token = np.full(n_docs, np.nan)
     known = np.zeros(n_docs, dtype=np.int64)
     unknown = np.zeros(n_docs, dtype=np.int64)
+    # one document at a time with scalar bookkeeping: at this size numpy's per-call overhead,
+    # not arithmetic, is the cost
     for i, text in enumerate(texts):
-        ids = lookup_many(tokenize(text))
-        found = ids[ids >= 0]
-        unknown[i] = ids.size - found.size
-        if found.size:
-            # a repeated word adds its row again: the same sum as counts @ rows
-            log_lik[i] = log_word_prob[found].sum(axis=0)
-            known[i] = found.size
-    posterior, _ = normalise_log_rows(log_lik + params.log_weights)
-    group = posterior.argmax(axis=1)
-    if k > 1:
-        top_two = np.partition(posterior, k - 2, axis=1)[:, k - 2 :]
-        margin = top_two[:, 1] - top_two[:, 0]
-    else:
-        margin = np.ones(n_docs)
-    no_evidence = known == 0
-    with np.errstate(invalid="ignore", divide="ignore"):
-        per_token = np.where(
-            no_evidence, np.nan, log_lik[np.arange(n_docs), group] / np.maximum(known, 1)
-        )
+        tokens = tokenize(text)
+        ids = [word_id for word_id in map(lookup, tokens) if word_id >= 0]
+        unknown[i] = len(tokens) - len(ids)
+        known[i] = len(ids)
+        # a repeated word adds its row again: the same sum as counts @ rows
+        log_lik = log_word_prob[ids].sum(axis=0) if ids else np.zeros(k)
+        joint = log_lik + log_weights
+        top = float(joint.max())
+        probability = np.exp(joint - (top if math.isfinite(top) else 0.0))
+        probability /= probability.sum()
+        posterior[i] = probability
+        best = int(probability.argmax())
+        group[i] = best
+        if k > 1:
+            ordered = sorted(probability.tolist())
+            margin[i] = ordered[-1] - ordered[-2]
+        if ids:
+            per_token[i] = log_lik[best] / len(ids)
     return Routing(
-        group=group.astype(np.int64),
+        group=group,
         posterior=posterior,
         margin=margin,
         log_likelihood_per_token=per_token,
         known_tokens=known,
         unknown_tokens=unknown,
-        no_evidence=no_evidence,
+        no_evidence=known == 0,
     )
