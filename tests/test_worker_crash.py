@@ -6,6 +6,7 @@ order, in units of batch_size (``reference_state``). Exactly-once effect means e
 
 from __future__ import annotations
 
+import logging
 import os
 import random
 import signal
@@ -127,8 +128,9 @@ def test_sigkill_at_random_points_loses_nothing_and_learns_nothing_twice(
 
 
 def test_redis_restart_with_append_only_file_keeps_everything_acknowledged(
-    tmp_path: Path,
+    tmp_path: Path, caplog: pytest.LogCaptureFixture
 ) -> None:
+    caplog.set_level(logging.WARNING, logger="worker.learner")
     config = small_config()
     server = EmbeddedRedis(tmp_path / "data", appendonly=True, appendfsync="everysec").start()
     try:
@@ -155,6 +157,7 @@ def test_redis_restart_with_append_only_file_keeps_everything_acknowledged(
             store.enqueue(texts[1500:], ids=[f"r{i}" for i in range(1500, 3000)])
             wait_for(learned_all(store, 3000), what="3000 learned after the restart")
         assert worker.reconnects >= 1
+        assert any("lost Redis" in r.getMessage() for r in caplog.records)  # and it says so
         assert_same_state(store.load_state(), reference_state(texts, config))
     finally:
         server.stop()

@@ -179,6 +179,8 @@ def test_heartbeat_names_the_worker_and_a_second_worker_waits(
         holder = store.lease_holder()
         status = store.worker_status()
         assert status is not None and status.worker == holder
+        ttl_ms = redis_client.pttl(store.keys.heartbeat)
+        assert 0 < ttl_ms <= store.options.lease_seconds * 1000
         standby = second if holder == "first" else first
         assert standby.checkpoints == 0
     assert store.lease_holder() is None  # released on stop
