@@ -58,15 +58,23 @@ _RETRYABLE = (redis.ConnectionError, redis.TimeoutError, redis.BusyLoadingError,
 
 @dataclass
 class _Pending:
-    """Entries read after the watermark and not yet handled, in stream order."""
+    """Entries read after the watermark and not yet handled, in stream order.
 
-    # (stream id as read, text | Undecodable | None for a skipped entry)
-    entries: list[tuple[bytes, str | Undecodable | None]] = field(default_factory=list)
+    Two parallel lists: the stream ids as read, and per entry its text, an Undecodable, or None
+    (skipped by a replay). ``others`` counts the entries that are not texts, so the common case
+    (texts only) cuts units by slicing.
+    """
+
+    ids: list[bytes] = field(default_factory=list)
+    items: list[str | Undecodable | None] = field(default_factory=list)
     documents: int = 0
+    others: int = 0
 
     def clear(self) -> None:
-        self.entries.clear()
+        self.ids.clear()
+        self.items.clear()
         self.documents = 0
+        self.others = 0
 
 
 class Worker:
@@ -448,29 +456,36 @@ class Worker:
             start += 1
         fresh = start < len(entries)
         skip = self.skip
-        append = self._pending.entries.append
-        documents = 0
+        skipping = bool(skip)
+        pending = self._pending
+        add_id, add_item = pending.ids.append, pending.items.append
+        documents = others = 0
         for raw_id, fields in entries[start:]:
             raw_text = fields.get(b"text")
             raw_meta = fields.get(b"metadata")
-            if raw_text is not None and not skip and (not raw_meta or raw_meta == b"{}"):
+            if raw_text is not None and not skipping and (not raw_meta or raw_meta == b"{}"):
                 try:  # fast path: plain text, no metadata to check, no replay filter
-                    append((raw_id, raw_text.decode("utf-8")))
-                    documents += 1
-                    continue
+                    text = raw_text.decode("utf-8")
                 except UnicodeDecodeError:
                     pass
+                else:
+                    add_id(raw_id)
+                    add_item(text)
+                    documents += 1
+                    continue
             stream_id = raw_id.decode()
             item = decode_entry(stream_id, fields)
-            if isinstance(item, Document):
-                if skip and skip.skips(stream_id, item.received):
-                    append((raw_id, None))
-                    continue
+            add_id(raw_id)
+            if isinstance(item, Document) and not (
+                skipping and skip.skips(stream_id, item.received)
+            ):
+                add_item(item.text)
                 documents += 1
-                append((raw_id, item.text))
             else:
-                append((raw_id, item))
-        self._pending.documents += documents
+                add_item(item if isinstance(item, Undecodable) else None)
+                others += 1
+        pending.documents += documents
+        pending.others += others
         if fresh:
             self.cursor = entries[-1][0].decode()
         if fresh:
@@ -485,43 +500,53 @@ class Worker:
         learned = 0
         while pending.documents >= unit or (flush and pending.documents):
             take = min(unit, pending.documents)
-            texts: list[str] = []
-            cut = 0
-            for cut, (_, item) in enumerate(pending.entries):  # noqa: B007
-                if isinstance(item, str):
-                    texts.append(item)
-                    if len(texts) == take:
-                        break
-            cut += 1
-            # entries that carry no learning right after the unit are handled with it
-            while cut < len(pending.entries) and not isinstance(pending.entries[cut][1], str):
+            if pending.others == 0:  # texts only: the unit is a slice
+                cut = take
+                texts = pending.items[:take]
+            else:
+                texts = []
+                cut = 0
+                for cut, item in enumerate(pending.items):  # noqa: B007
+                    if isinstance(item, str):
+                        texts.append(item)
+                        if len(texts) == take:
+                            break
                 cut += 1
-            report = self.learner.learn(texts)
+                # entries that carry no learning right after the unit are handled with it
+                while cut < len(pending.items) and not isinstance(pending.items[cut], str):
+                    cut += 1
+            report = self.learner.learn(texts)  # type: ignore[arg-type]
             self._report = self._report.merge(report)
             self._documents_since_checkpoint += len(texts)
             learned += len(texts)
-            self._handle(pending.entries[:cut])
-            del pending.entries[:cut]
+            self._handle(cut)
             pending.documents -= len(texts)
-        if not pending.documents and pending.entries:
-            self._handle(pending.entries)
-            pending.entries.clear()
+        if not pending.documents and pending.ids:
+            self._handle(len(pending.ids))
         return learned
 
-    def _handle(self, entries: list[tuple[bytes, str | Undecodable | None]]) -> None:
-        self._ack_ids.extend(entry[0] for entry in entries)
-        for stream_id, item in entries:
-            if isinstance(item, Undecodable):
-                log.warning(
-                    "model %r: entry %s to dead letters: %s",
-                    self.model,
-                    stream_id,
-                    item.reason,
-                    extra=self._log_fields(),
-                )
-                self._dead.append(item)
-        if entries:
-            self.handled = entries[-1][0].decode()
+    def _handle(self, cut: int) -> None:
+        """Mark the first ``cut`` pending entries handled: to acknowledge, dead letters out."""
+        pending = self._pending
+        self._ack_ids.extend(pending.ids[:cut])
+        if pending.others:
+            for stream_id, item in zip(pending.ids[:cut], pending.items[:cut], strict=True):
+                if isinstance(item, str):
+                    continue
+                pending.others -= 1
+                if isinstance(item, Undecodable):
+                    log.warning(
+                        "model %r: entry %s to dead letters: %s",
+                        self.model,
+                        stream_id.decode(),
+                        item.reason,
+                        extra=self._log_fields(),
+                    )
+                    self._dead.append(item)
+        if cut:
+            self.handled = pending.ids[cut - 1].decode()
+            del pending.ids[:cut]
+            del pending.items[:cut]
 
     # -- checkpoint policy -------------------------------------------------------------------
     def _checkpoint_due(self) -> bool:
