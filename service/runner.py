@@ -11,7 +11,6 @@ from __future__ import annotations
 import contextlib
 import logging
 import signal
-import sys
 import threading
 from pathlib import Path
 from types import FrameType
@@ -113,11 +112,11 @@ def _run_logged(worker: Any, name: str) -> None:
 
 
 def _configure_logging(settings: Settings) -> None:
-    logging.basicConfig(
-        level=settings.log_level.upper(),
-        format="%(asctime)s %(levelname)s %(name)s: %(message)s",
-        stream=sys.stderr,
-    )
+    """JSON (or text) log lines with request ids; configured keys are redacted (service.logs)."""
+    from service.auth import secrets_of
+    from service.logs import configure_logging
+
+    configure_logging(settings.log_level, settings.log_format, secrets=secrets_of(settings))
 
 
 def serve(
@@ -146,7 +145,15 @@ def serve(
         factories.append(lambda _runtime: WorkerPool(url))
     app = create_app(settings, background_factories=factories)
     try:
-        uvicorn.run(app, host=settings.host, port=settings.port, log_level=settings.log_level)
+        # log_config=None keeps our handlers; RequestContext writes the access lines
+        uvicorn.run(
+            app,
+            host=settings.host,
+            port=settings.port,
+            log_level=settings.log_level,
+            log_config=None,
+            access_log=False,
+        )
     finally:
         if embedded is not None:
             embedded.stop()

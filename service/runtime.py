@@ -200,6 +200,7 @@ class LoadedModel:
     state: MixtureState | None
     checksum: str | None
     labels: dict[int, dict[str, Any]]
+    labels_version: int | None
     typicality: Typicality
     review_threshold: float
     review_unknown_share: float = 0.5
@@ -335,6 +336,7 @@ class ServiceRuntime:
             version=version,
             state=state,
             checksum=digest,
+            labels_version=_labels_version(store),
             labels=self._read_labels(name, store),
             typicality=typicality,
             review_threshold=float(
@@ -378,7 +380,11 @@ class ServiceRuntime:
                         self.forget(name)
                         continue
                     version = loaded.store.version()
-                    labels = self._read_labels(name, loaded.store)
+                    labels_version = _labels_version(loaded.store)
+                    if labels_version is None or labels_version != loaded.labels_version:
+                        labels = self._read_labels(name, loaded.store)
+                    else:
+                        labels = loaded.labels
                 except ModelNotFoundError:
                     self.forget(name)
                     continue
@@ -388,8 +394,9 @@ class ServiceRuntime:
                             self.models[name] = self._load(name, loaded)
                         except ModelNotFoundError:
                             self.forget(name)
-                elif labels != loaded.labels:
+                elif labels != loaded.labels or labels_version != loaded.labels_version:
                     loaded.labels = labels
+                    loaded.labels_version = labels_version
         except REDIS_DOWN_ERRORS as exc:
             self._mark_down(exc)
         else:
@@ -455,6 +462,12 @@ class ServiceRuntime:
             self.settings.review_typicality_z,
         )
         return routing, atypical
+
+
+def _labels_version(store: ModelStore) -> int | None:
+    """The store's label-change counter (None when state/ has none: read labels every poll)."""
+    reader = getattr(store, "labels_version", None)
+    return int(reader()) if reader is not None else None
 
 
 def _label_dict(value: Any) -> dict[str, Any]:

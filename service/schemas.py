@@ -221,8 +221,8 @@ class LabelIn(BaseModel):
 
     model_config = ConfigDict(extra="forbid")
 
-    label: str | None = Field(default=None, max_length=200)
-    destination: str | None = Field(default=None, max_length=500)
+    label: str | None = Field(default=None, min_length=1, max_length=200)
+    destination: str | None = Field(default=None, min_length=1, max_length=200)
 
 
 # -- snapshots ------------------------------------------------------------------------------

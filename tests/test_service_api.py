@@ -14,6 +14,7 @@ from mixture.text import count_texts
 from service.app import create_app
 from service.demo_data import default_days, fresh_examples, generate_day
 from service.runner import WorkerPool
+from service.runtime import ServiceRuntime
 from service.settings import Settings
 from service.testing import QUICK_OPTIONS, learned, wait_until
 from state.connection import redis_from_url
@@ -153,6 +154,9 @@ def test_create_learn_route_label_snapshot_rollback(
     again = api.post(f"/models/{model_name}/route", json={"text": examples[2].text}).json()
     assert again["results"][0]["group"] == group
     assert again["results"][0]["label"] == "Lost property"
+    # the label lives in Redis: another API replica serves it too
+    replica = ServiceRuntime(Settings(redis_url=redis_url), redis_from_url(redis_url))
+    assert replica.model(model_name).labels[group]["label"] == "Lost property"
     groups = api.get(f"/models/{model_name}/groups", params={"top": 5}).json()["groups"]
     assert len(groups) == k and groups[group]["label"] == "Lost property"
     assert sum(g["weight"] for g in groups) == pytest.approx(1.0, abs=1e-9)

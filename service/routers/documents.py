@@ -6,6 +6,7 @@ from typing import Any
 
 from fastapi import APIRouter, Request, status
 
+from service.logs import request_metadata
 from service.routers import COMMON_RESPONSES, Runtime, check_documents
 from service.schemas import DocumentsIn, Problem, QueuedOut
 
@@ -36,7 +37,8 @@ def queue_documents(
     loaded = runtime.model(model)
     texts = [doc.text for doc in body.documents]
     ids = [doc.id for doc in body.documents]
-    result = runtime.call(lambda: loaded.store.enqueue(texts, ids=ids))
+    metadata = request_metadata(len(texts))  # the request id travels with each entry
+    result = runtime.call(lambda: loaded.store.enqueue(texts, ids=ids, metadata=metadata))
     stream_ids = list(result.stream_ids)
     request.scope["mixroute.queued"] = sum(1 for s in stream_ids if s is not None)
     return {

@@ -15,6 +15,7 @@ from pydantic import ValidationError
 from starlette.concurrency import run_in_threadpool
 
 from service.app import DEGRADED_HEADER
+from service.logs import request_metadata
 from service.routers import COMMON_RESPONSES, check_documents, get_runtime
 from service.runtime import LoadedModel, RedisUnavailableError, ServiceRuntime
 from service.schemas import DocumentIn, Problem, RouteIn, RouteOut
@@ -96,7 +97,8 @@ def route_now(runtime: ServiceRuntime, model: str, body: RouteIn) -> tuple[dict[
     if body.learn:
         ids = [doc.id for doc in documents]
         try:
-            result = runtime.call(lambda: loaded.store.enqueue(texts, ids=ids))
+            metadata = request_metadata(len(texts))
+            result = runtime.call(lambda: loaded.store.enqueue(texts, ids=ids, metadata=metadata))
             stream_ids = list(result.stream_ids)
         except RedisUnavailableError:
             notice = "Redis is unreachable: the documents were routed but NOT queued for learning"
