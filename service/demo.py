@@ -322,21 +322,31 @@ class Demo:
     def agreement(self) -> None:
         """Route the last day again and compare with the invented ground truth (purity)."""
         messages = generate_day(self.plans[-1], self.seed + 99)
-        answer = self.call(
-            "POST",
-            f"/models/{MODEL}/route",
-            json={"documents": [{"id": m.id, "text": m.text} for m in messages]},
-        )
+        results: list[dict[str, Any]] = []
+        for start in range(0, len(messages), 50):  # as an intake system would: small batches
+            part = messages[start : start + 50]
+            answer = self.call(
+                "POST",
+                f"/models/{MODEL}/route",
+                json={"documents": [{"id": m.id, "text": m.text} for m in part]},
+            )
+            results.extend(answer["results"])
         by_group: dict[int, Counter[str]] = {}
-        for message, result in zip(messages, answer["results"], strict=True):
+        for message, result in zip(messages, results, strict=True):
             by_group.setdefault(result["group"], Counter())[message.theme] += 1
         purity = sum(c.most_common(1)[0][1] for c in by_group.values()) / len(messages)
-        reviewed = sum(r["review"] for r in answer["results"])
+        reviewed = sum(r["review"] for r in results)
+        reasons = Counter(reason for r in results for reason in r["review_reasons"])
         self.rule("4. routing a new day of mail")
         self.say(
             f"{len(messages)} new messages routed: purity {purity:.3f} against the invented "
             f"themes (share of messages in their group's majority theme); {reviewed} flagged "
             "for review"
+            + (
+                f" ({', '.join(f'{k}: {v}' for k, v in sorted(reasons.items()))})"
+                if reasons
+                else ""
+            )
         )
 
     def describe(self) -> None:
