@@ -213,11 +213,6 @@ def test_request_ids_in_and_out(live: Live) -> None:
     assert last["version"] == version and last["path"] == f"/models/{live.model}"
 
 
-@pytest.mark.xfail(
-    reason="needs the enqueue calls to pass service.logs.request_metadata (request O1 in "
-    "/tmp/brief/service-requests.md)",
-    strict=False,
-)
 def test_request_id_travels_into_the_stream_entry(live: Live, redis_url: str) -> None:
     answer = live.client.post(
         f"/models/{live.model}/documents",
@@ -231,6 +226,18 @@ def test_request_id_travels_into_the_stream_entry(live: Live, redis_url: str) ->
     client.close()
     metadata = json.loads(entry[0][1][b"metadata"])
     assert metadata.get("request_id") == "trace-stream-1"
+    # ... and from a routing call that also queues
+    routed = live.client.post(
+        f"/models/{live.model}/route",
+        json={"documents": [{"text": "two bikes and a trailer"}], "learn": True},
+        headers={**READ, "X-Request-ID": "trace-route-2"},
+    )
+    assert routed.status_code == 200, routed.text
+    stream_id = routed.json()["results"][0]["stream_id"]
+    client = redis_from_url(redis_url)
+    entry = client.xrange(ModelKeys(live.model).docs, min=stream_id, max=stream_id)
+    client.close()
+    assert json.loads(entry[0][1][b"metadata"])["request_id"] == "trace-route-2"
 
 
 def test_keys_never_reach_the_logs(live: Live) -> None:
