@@ -45,7 +45,7 @@ model_var: contextvars.ContextVar[str | None] = contextvars.ContextVar(
 # Attributes every LogRecord has; anything else on a record came from ``extra``.
 _STANDARD_ATTRS = frozenset(
     vars(logging.LogRecord("", logging.INFO, "", 0, "", None, None)).keys()
-    | {"message", "asctime", "taskName"}
+    | {"message", "asctime", "taskName", "color_message"}  # uvicorn's terminal copy
 )
 CONTEXT_FIELDS = ("request_id", "model", "version", "worker")
 WORKER_THREAD_PREFIX = "mixroute-worker-"

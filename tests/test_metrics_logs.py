@@ -40,7 +40,11 @@ def lines(stream: io.StringIO) -> list[dict]:
 
 def test_one_json_line_per_event_with_extra_fields(capture) -> None:  # type: ignore[no-untyped-def]
     logger, stream = capture
-    logger.info("checkpoint %d", 7, extra={"model": "inbox", "version": 7, "worker": "w1"})
+    logger.info(
+        "checkpoint %d",
+        7,
+        extra={"model": "inbox", "version": 7, "worker": "w1", "color_message": "\x1b[1m"},
+    )
     try:
         raise ValueError("bad\nthing")
     except ValueError:
@@ -48,7 +52,7 @@ def test_one_json_line_per_event_with_extra_fields(capture) -> None:  # type: ig
     first, second = lines(stream)  # two events, two lines, though messages hold newlines
     assert first["message"] == "checkpoint 7" and first["level"] == "info"
     assert (first["model"], first["version"], first["worker"]) == ("inbox", 7, "w1")
-    assert first["time"].endswith("+00:00")
+    assert first["time"].endswith("+00:00") and "color_message" not in first
     assert second["message"] == "failed on line\ntwo" and second["batch"] == [1, 2]
     assert "ValueError: bad" in second["exception"]
 
