@@ -43,6 +43,7 @@ class WorkerPool:
         self.workers: dict[str, tuple[Any, threading.Thread]] = {}
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
+        self._client: Any = None
 
     def sync(self) -> None:
         """Start workers for new models, stop those of deleted models, restart dead ones."""
@@ -51,11 +52,14 @@ class WorkerPool:
         from state.registry import Registry
         from worker.learner import Worker
 
-        client = redis_from_url(self.redis_url, socket_timeout=5.0)
+        if self._client is None:
+            self._client = redis_from_url(self.redis_url, socket_timeout=5.0)
         try:
-            names = set(self.only) if self.only is not None else set(Registry(client).list())
-        finally:
-            client.close()
+            names = set(self.only) if self.only is not None else set(Registry(self._client).list())
+        except Exception:
+            self._client.close()
+            self._client = None  # reconnect at the next poll
+            raise
         for name in list(self.workers):
             worker, thread = self.workers[name]
             if name not in names or not thread.is_alive():
@@ -100,6 +104,9 @@ class WorkerPool:
         for _, thread in self.workers.values():
             thread.join(timeout=30)
         self.workers.clear()
+        if self._client is not None:
+            self._client.close()
+            self._client = None
 
 
 def _run_logged(worker: Any, name: str) -> None:
