@@ -74,9 +74,8 @@ def test_create_learn_route_label_snapshot_rollback(
     plans = default_days(SCALE)
     k = 8
     config = {"n_groups": k, "warmup_documents": plans[0].messages, "batch_size": 100}
-    created = api.post(
-        "/models", json={"name": model_name, "config": config, "options": QUICK_OPTIONS}
-    )
+    options = {**QUICK_OPTIONS, "review_threshold": 0.75}
+    created = api.post("/models", json={"name": model_name, "config": config, "options": options})
     assert created.status_code == 201, created.text
     assert created.json()["version"] == 0
 
@@ -107,6 +106,7 @@ def test_create_learn_route_label_snapshot_rollback(
     assert routed.status_code == 200, routed.text
     body = routed.json()
     assert body["version"] == model["version"] and body["degraded"] is False
+    assert body["review_threshold"] == 0.75  # the model's own option
     results = body["results"]
     assert [r["id"] for r in results] == [m.id for m in examples]
 
@@ -119,7 +119,10 @@ def test_create_learn_route_label_snapshot_rollback(
     assert [r["group"] for r in results] == reference.group.tolist()
     # ... and scikit-learn's MultinomialNB with the same parameters agrees (see sklearn_posterior)
     np.testing.assert_allclose(served, sklearn_posterior(state, texts), rtol=0, atol=1e-10)
-    for result, margin in zip(results, reference.margin, strict=True):
+    for result, margin, top_p in zip(
+        results, reference.margin, reference.posterior.max(axis=1), strict=True
+    ):
+        assert ("low_posterior" in result["review_reasons"]) == (top_p < 0.75)
         assert result["margin"] == pytest.approx(float(margin), abs=1e-12)
         ordered = [p["probability"] for p in result["posterior"]]
         assert ordered == sorted(ordered, reverse=True)
