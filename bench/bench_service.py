@@ -161,6 +161,9 @@ def start_api(redis_url: str, port: int) -> subprocess.Popen[bytes]:
         "MIXROUTE_REDIS_URL": redis_url,
         "MIXROUTE_LOG_LEVEL": "warning",
         "MIXROUTE_MAX_DOCUMENTS_PER_REQUEST": str(BATCH_DOCUMENTS),
+        "MIXROUTE_HOST": "127.0.0.1",
+        "MIXROUTE_API_KEYS_READ": "",
+        "MIXROUTE_API_KEYS_ADMIN": "",
     }
     command = [
         sys.executable, "-m", "uvicorn", "--factory", "service.app:create_app",

@@ -77,7 +77,14 @@ def running_stack(data_dir: str, port: int | None = None) -> Iterator[str]:
 
     redis_server = EmbeddedRedis(data_dir, appendfsync="no").start()
     port = port or _free_port()
-    settings = Settings(redis_url=redis_server.url, host="127.0.0.1", port=port)
+    # self-contained: loopback only, no keys, whatever the environment says
+    settings = Settings(
+        redis_url=redis_server.url,
+        host="127.0.0.1",
+        port=port,
+        api_keys_read="",
+        api_keys_admin="",
+    )
     url = redis_server.url
     app = create_app(settings, background_factories=[lambda _rt: WorkerPool(url, 0.2)])
     server = uvicorn.Server(
