@@ -210,6 +210,10 @@ function drawFlagged(documents, labels) {
 }
 
 function drawSnapshots(snapshots) {
+  // redraw only on a change, so a button never moves (or goes stale) under the pointer
+  const signature = JSON.stringify([view.model, view.role, snapshots]);
+  if (signature === view.snapshotSignature) return;
+  view.snapshotSignature = signature;
   view.snapshots = snapshots;
   const body = $("snapshots");
   body.textContent = "";
@@ -286,6 +290,7 @@ async function loadModels() {
 }
 
 async function refresh() {
+  if ($("confirm-dialog").open) return;  // nothing changes while a restore is being confirmed
   if (view.busy) { view.again = true; return; }
   view.busy = true;
   try {
