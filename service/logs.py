@@ -153,6 +153,22 @@ class SecretRedactor(logging.Filter):
         return True
 
 
+class StandardErrorHandler(logging.StreamHandler):  # type: ignore[type-arg]
+    """Writes to whatever ``sys.stderr`` is when each record is emitted, so a replaced (and
+    later closed) standard error, as under a test runner's capture, is never written to."""
+
+    def __init__(self) -> None:
+        super().__init__()
+
+    @property  # type: ignore[override]
+    def stream(self) -> IO[str]:
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, value: IO[str]) -> None:
+        pass
+
+
 def configure_logging(
     level: str = "info",
     fmt: str = "json",
@@ -182,12 +198,12 @@ def configure_logging(
     """
     root = logging.getLogger()
     for handler in list(root.handlers):
-        if isinstance(handler, logging.StreamHandler) and getattr(handler, "stream", None) in (
-            sys.stderr,
-            sys.stdout,
+        if isinstance(handler, StandardErrorHandler) or (
+            isinstance(handler, logging.StreamHandler)
+            and getattr(handler, "stream", None) in (sys.stderr, sys.stdout)
         ):
             root.removeHandler(handler)
-    handler = logging.StreamHandler(stream or sys.stderr)
+    handler = StandardErrorHandler() if stream is None else logging.StreamHandler(stream)
     if fmt == "json":
         handler.setFormatter(JsonFormatter())
     else:

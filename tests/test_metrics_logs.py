@@ -102,3 +102,25 @@ def test_redactor_and_console_handlers_only() -> None:
         for handler in saved[0]:
             root.addHandler(handler)
         root.setLevel(saved[1])
+
+
+def test_the_default_handler_follows_standard_error(capsys: pytest.CaptureFixture[str]) -> None:
+    """A handler bound to the standard error of the moment it was made would later write to
+    a closed file (a test runner's capture); ours looks sys.stderr up for every record."""
+    root = logging.getLogger()
+    saved = list(root.handlers), root.level
+    try:
+        configure_logging("info", "json")
+        logging.getLogger("mixroute.test").info("first")
+        first = capsys.readouterr().err
+        configure_logging("info", "json")  # again: replaces its own handler, no duplicates
+        logging.getLogger("mixroute.test").info("second")
+        second = capsys.readouterr().err
+    finally:
+        for handler in list(root.handlers):
+            root.removeHandler(handler)
+        for handler in saved[0]:
+            root.addHandler(handler)
+        root.setLevel(saved[1])
+    assert json.loads(first)["message"] == "first"
+    assert [json.loads(line)["message"] for line in second.splitlines()] == ["second"]
