@@ -172,13 +172,13 @@ def work(model: str | None = None, data_dir: str | Path | None = None) -> int:
     from service.cli import CommandError
 
     settings = load_settings(data_dir=data_dir)
-    _configure_logging(settings)
     if not settings.redis_url:
         raise CommandError(
             "`mixroute work` needs a shared Redis: set REDIS_URL (or MIXROUTE_REDIS_URL). "
             "With the embedded Redis, `mixroute serve` runs the worker itself.",
             2,
         )
+    _configure_logging(settings)  # only once the command is really going to run
     pool = WorkerPool(settings.redis_url, models=[model] if model else None)
     done = threading.Event()
 
