@@ -32,7 +32,7 @@ import scipy.sparse as sp
 
 from mixture.config import MixtureConfig
 from mixture.errors import ConfigError, InputError
-from mixture.stats import MixtureState, Parameters, derive_parameters
+from mixture.stats import MixtureState, Parameters, derive_parameters, parallel_rows
 
 Progress = Callable[[int, int], None]
 
@@ -116,7 +116,7 @@ def normalise_log_rows(
     row_max = log_joint.max(axis=1, keepdims=True)
     row_max[~np.isfinite(row_max)] = 0.0
     prob = np.subtract(log_joint, row_max, out=log_joint if overwrite else None)
-    np.exp(prob, out=prob)
+    parallel_rows(np.exp, prob)
     row_sum = prob.sum(axis=1, keepdims=True)
     prob /= row_sum
     log_norm = np.log(row_sum, out=row_sum).ravel()

@@ -30,6 +30,9 @@ off. The pseudo-counts are always added to that many documents' worth of evidenc
 
 from __future__ import annotations
 
+import itertools
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -42,6 +45,24 @@ from mixture.text import Tokenizer, Vocabulary
 
 # Fold the running scale back into the statistics before it can underflow.
 _SCALE_FLOOR = 1e-120
+# Arrays smaller than this are not worth handing to threads.
+_PARALLEL_MIN_SIZE = 1 << 18
+_POOL: ThreadPoolExecutor | None = None
+
+
+def parallel_rows(ufunc: np.ufunc, array: np.ndarray) -> np.ndarray:
+    """Apply a unary ufunc in place, in row blocks on a small thread pool for large arrays."""
+    workers = min(os.cpu_count() or 1, 4)
+    if array.size < _PARALLEL_MIN_SIZE or workers < 2 or array.shape[0] < workers:
+        return ufunc(array, out=array)
+    global _POOL
+    if _POOL is None:
+        _POOL = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="mixture")
+    bounds = np.linspace(0, array.shape[0], workers + 1).astype(int)
+    blocks = [array[a:b] for a, b in itertools.pairwise(bounds)]
+    for _ in _POOL.map(lambda block: ufunc(block, out=block), blocks):
+        pass
+    return array
 
 
 @dataclass(frozen=True)
@@ -101,9 +122,10 @@ def derive_parameters(
         )
         totals = word_counts.sum(axis=0) if all_active else word_counts[active].sum(axis=0)
         log_norm = np.log(totals + n_active * word_pseudocount)
-        # In place: this V x K logarithm is the one dense cost of an EM iteration.
+        # In place and split over cores: this V x K logarithm is the one dense cost of an EM
+        # iteration (numpy releases the GIL inside ufuncs).
         log_word_prob = np.add(word_counts, word_pseudocount)
-        np.log(log_word_prob, out=log_word_prob)
+        parallel_rows(np.log, log_word_prob)
     log_word_prob -= log_norm
     if not all_active:
         log_word_prob[~active] = -np.inf
