@@ -267,3 +267,23 @@ def test_worker_process_needs_a_redis_url() -> None:
         check=False,
     )
     assert done.returncode == 2 and "REDIS_URL" in done.stderr
+
+
+@pytest.mark.parametrize("protocol", [2, 3])
+def test_worker_reads_resp2_and_resp3_replies(
+    redis_url: str, model_name: str, protocol: int
+) -> None:
+    # the worker reads XREADGROUP replies unconverted; both reply protocols must give the same
+    from state.connection import redis_from_url
+
+    client = redis_from_url(redis_url, protocol=protocol)
+    store = create_model(client, model_name)
+    texts = ferry_texts(349, seed=13)  # + 1 odd entry = 7 whole units of 50
+    store.enqueue(texts[:200])
+    client.xadd(store.keys.docs, {"id": "odd", "text": "ticket refund", "extra": "field"})
+    store.enqueue(texts[200:], metadata=[{"n": i} for i in range(149)])
+    with WorkerThread(Worker(client, model_name)):
+        wait_for(learned_all(store, 350), what="350 learned")
+    expected = reference_state([*texts[:200], "ticket refund", *texts[200:]], store.info.config)
+    assert_same_state(store.load_state(), expected)
+    client.close()
