@@ -287,3 +287,20 @@ def test_worker_reads_resp2_and_resp3_replies(
     expected = reference_state([*texts[:200], "ticket refund", *texts[200:]], store.info.config)
     assert_same_state(store.load_state(), expected)
     client.close()
+
+
+def test_warm_up_buffer_survives_a_worker_restart(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    config = small_config()  # warm-up 200 documents, units of 50
+    store = create_model(redis_client, model_name, config)
+    texts = ferry_texts(600, seed=14)
+    store.enqueue(texts[:150])
+    with WorkerThread(Worker(redis_client, model_name)):
+        wait_for(learned_all(store, 150), what="150 buffered")
+    buffered = store.load_state()
+    assert not buffered.warmed_up and buffered.documents_learned == 150  # checkpointed mid warm-up
+    store.enqueue(texts[150:])
+    with WorkerThread(Worker(redis_client, model_name)):
+        wait_for(learned_all(store, 600), what="600 learned after the restart")
+    assert_same_state(store.load_state(), reference_state(texts, config))
