@@ -6,6 +6,7 @@ documents directly from the snapshot's state; Jensen-Shannon divergence from sci
 
 from __future__ import annotations
 
+import hashlib
 import threading
 import time
 
@@ -146,7 +147,11 @@ def test_snapshot_retention_keeps_requested_and_the_newest_automatic(
         redis_client,
         model_name,
         options=fast_options(
-            snapshot_every_documents=200, snapshot_keep=2, checkpoint_documents=100
+            snapshot_every_documents=200,
+            snapshot_keep=2,
+            checkpoint_documents=100,
+            history_limit=3,
+            lineage_limit=4,
         ),
     )
     texts = ferry_texts(1600, seed=51)
@@ -158,6 +163,11 @@ def test_snapshot_retention_keeps_requested_and_the_newest_automatic(
             requested.append(store.create_snapshot(f"operator check {part}"))
     snapshots = store.list_snapshots()
     automatic = [s for s in snapshots if s.automatic]
+    # history and lineage are capped; the newest rows are the ones kept
+    assert len(store.history()) == 3 and len(store.lineage(100)) == 4
+    assert store.history()[-1].version == store.version() == store.lineage(100)[-1].version
+    for snap in snapshots:  # the checksum is the hex SHA-256 of the stored bytes (hashlib)
+        assert hashlib.sha256(store.snapshot_bytes(snap.id)[1]).hexdigest() == snap.checksum
     assert len(automatic) == 2
     assert {s.id for s in snapshots if s.kind == "requested"} == {s.id for s in requested}
     # the two kept are the newest automatic ones
