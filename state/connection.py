@@ -13,6 +13,7 @@ import contextlib
 import logging
 import os
 import shutil
+import signal
 import socket
 import subprocess
 import tempfile
@@ -162,6 +163,7 @@ class EmbeddedRedis:
                 stdin=subprocess.DEVNULL,
                 stdout=subprocess.DEVNULL,
                 stderr=subprocess.PIPE,
+                preexec_fn=_stop_with_parent,
             )
             if not self._atexit_registered:
                 atexit.register(self.stop)
@@ -270,6 +272,22 @@ class EmbeddedRedis:
     def __repr__(self) -> str:
         where = self.url if self._process is not None else "stopped"
         return f"EmbeddedRedis({str(self.data_dir)!r}, {where})"
+
+
+def _stop_with_parent() -> None:
+    """In the child: ask Linux to send SIGTERM when the parent dies (even by SIGKILL).
+
+    redis-server shuts down cleanly on SIGTERM (it saves), so a crashed mixroute never leaves
+    an orphan server holding its data folder. Elsewhere this is a no-op.
+    """
+    try:
+        import ctypes
+
+        libc = ctypes.CDLL("libc.so.6", use_errno=True)
+        pr_set_pdeathsig = 1
+        libc.prctl(pr_set_pdeathsig, signal.SIGTERM)
+    except (OSError, AttributeError):
+        pass
 
 
 def _free_port() -> int:

@@ -48,3 +48,37 @@ def test_connect_with_and_without_url(tmp_path: Path) -> None:
 def test_bad_settings_are_refused(tmp_path: Path) -> None:
     with pytest.raises(StateError, match="appendfsync"):
         EmbeddedRedis(tmp_path, appendfsync="sometimes")
+
+
+def test_server_does_not_outlive_a_killed_parent(tmp_path: Path) -> None:
+    import os
+    import signal
+    import subprocess
+    import sys
+    import time
+
+    script = (
+        "import sys, time\n"
+        "from state.connection import EmbeddedRedis\n"
+        f"server = EmbeddedRedis({str(tmp_path / 'orphan')!r}).start()\n"
+        "print(server.pid, flush=True)\n"
+        "time.sleep(60)\n"
+    )
+    root = Path(__file__).resolve().parent.parent
+    parent = subprocess.Popen(
+        [sys.executable, "-c", script], cwd=root, stdout=subprocess.PIPE, text=True
+    )
+    server_pid = int(parent.stdout.readline())
+    parent.send_signal(signal.SIGKILL)
+    parent.wait()
+    parent.stdout.close()
+    deadline = time.monotonic() + 20  # a guard against a hang, not a timed assertion
+    while time.monotonic() < deadline:
+        try:
+            os.kill(server_pid, 0)
+        except ProcessLookupError:
+            break
+        time.sleep(0.05)
+    else:
+        os.kill(server_pid, signal.SIGKILL)
+        raise AssertionError("the embedded redis-server outlived its killed parent")
