@@ -163,7 +163,12 @@ class EmbeddedRedis:
                 stdin=subprocess.DEVNULL,
                 stdout=subprocess.DEVNULL,
                 stderr=subprocess.PIPE,
-                preexec_fn=_stop_with_parent,
+                # the death signal follows the forking *thread*: only tie it to the main one
+                preexec_fn=(
+                    _stop_with_parent
+                    if threading.current_thread() is threading.main_thread()
+                    else None
+                ),
             )
             if not self._atexit_registered:
                 atexit.register(self.stop)
