@@ -304,3 +304,36 @@ def test_warm_up_buffer_survives_a_worker_restart(
     with WorkerThread(Worker(redis_client, model_name)):
         wait_for(learned_all(store, 600), what="600 learned after the restart")
     assert_same_state(store.load_state(), reference_state(texts, config))
+
+
+def test_a_dead_consumers_pending_entries_are_claimed_and_acknowledged(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    store = create_model(redis_client, model_name)  # claim_idle_seconds 0.5 in fast_options
+    store.enqueue(ferry_texts(200, seed=15))
+    with WorkerThread(Worker(redis_client, model_name)) as runner:
+        wait_for(learned_all(store, 200), what="200 learned")
+        # a consumer takes every entry again and dies holding them (all at/below the watermark)
+        # (one MULTI, so the running worker cannot read in between)
+        ghost = redis_client.pipeline(transaction=True)
+        ghost.xgroup_setid(store.keys.docs, CONSUMER_GROUP, id="0")
+        ghost.xreadgroup(CONSUMER_GROUP, "ghost", {store.keys.docs: ">"}, count=1000)
+        ghost.xpending(store.keys.docs, CONSUMER_GROUP)
+        assert ghost.execute()[2]["pending"] == 200
+        wait_for(lambda: _pending(redis_client, store) == 0, what="XAUTOCLAIM and XACK")
+        consumers = {
+            c["name"].decode() if isinstance(c["name"], bytes) else c["name"]
+            for c in redis_client.xinfo_consumers(store.keys.docs, CONSUMER_GROUP)
+        }
+        wait_for(
+            lambda: (
+                "ghost"
+                not in {
+                    c["name"].decode() if isinstance(c["name"], bytes) else c["name"]
+                    for c in redis_client.xinfo_consumers(store.keys.docs, CONSUMER_GROUP)
+                }
+            ),
+            what="the dead consumer removed",
+        )
+        assert runner.worker.name in consumers
+    assert store.load_state().documents_learned == 200  # acknowledged, not learned again
