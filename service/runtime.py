@@ -200,7 +200,7 @@ class LoadedModel:
     state: MixtureState | None
     checksum: str | None
     labels: dict[int, dict[str, Any]]
-    labels_version: int | None
+    labels_version: int
     typicality: Typicality
     review_threshold: float
     review_unknown_share: float = 0.5
@@ -248,7 +248,6 @@ class ServiceRuntime:
         self._lock = threading.RLock()
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
-        self._memory_labels: dict[str, dict[int, dict[str, Any]]] = {}
 
     # -- Redis health ------------------------------------------------------------------------
     def _mark_down(self, exc: BaseException) -> None:
@@ -328,7 +327,6 @@ class ServiceRuntime:
                 self.settings.typicality_half_life,
                 self.settings.typicality_min_documents,
             )
-        threshold = getattr(info.options, "review_threshold", None)
         return LoadedModel(
             name=name,
             info=info,
@@ -339,9 +337,7 @@ class ServiceRuntime:
             labels_version=_labels_version(store),
             labels=self._read_labels(name, store),
             typicality=typicality,
-            review_threshold=float(
-                threshold if threshold is not None else self.settings.review_posterior_threshold
-            ),
+            review_threshold=float(info.options.review_threshold),
             review_unknown_share=self.settings.review_unknown_share,
         )
 
@@ -357,7 +353,6 @@ class ServiceRuntime:
         """Drop a model from memory (after it was deleted)."""
         with self._lock:
             self.models.pop(name, None)
-            self._memory_labels.pop(name, None)
 
     def load_all(self) -> None:
         """Load every registered model (at start-up), so all of them survive a Redis outage."""
@@ -381,7 +376,7 @@ class ServiceRuntime:
                         continue
                     version = loaded.store.version()
                     labels_version = _labels_version(loaded.store)
-                    if labels_version is None or labels_version != loaded.labels_version:
+                    if labels_version != loaded.labels_version:
                         labels = self._read_labels(name, loaded.store)
                     else:
                         labels = loaded.labels
@@ -430,24 +425,22 @@ class ServiceRuntime:
 
     # -- labels ------------------------------------------------------------------------------
     def _read_labels(self, name: str, store: ModelStore) -> dict[int, dict[str, Any]]:
-        reader = getattr(store, "group_labels", None)
-        if reader is None:  # state/ without label storage: process memory (see R1)
-            return dict(self._memory_labels.get(name, {}))
-        return {int(k): _label_dict(v) for k, v in reader().items()}
+        del name
+        return {int(k): _label_dict(v) for k, v in store.group_labels().items()}
 
     def set_label(
         self, name: str, group: int, label: str | None, destination: str | None
     ) -> dict[str, Any]:
-        """Store an operator's label and destination for one group."""
+        """Store an operator's label and destination for one group (both None: clear)."""
         loaded = self.model(name)
         loaded.check_group(group)
-        writer = getattr(loaded.store, "set_group_label", None)
-        if writer is None:
-            record = {"label": label, "destination": destination, "updated": time.time()}
-            self._memory_labels.setdefault(name, {})[group] = record
-        else:
-            record = _label_dict(self.call(lambda: writer(group, label, destination)))
-        loaded.labels = {**loaded.labels, group: record}
+        record = _label_dict(
+            self.call(lambda: loaded.store.set_group_label(group, label, destination))
+        )
+        labels = {k: v for k, v in loaded.labels.items() if k != group}
+        if label is not None or destination is not None:
+            labels[group] = record
+        loaded.labels = labels
         return record
 
     # -- routing -----------------------------------------------------------------------------
@@ -464,10 +457,9 @@ class ServiceRuntime:
         return routing, atypical
 
 
-def _labels_version(store: ModelStore) -> int | None:
-    """The store's label-change counter (None when state/ has none: read labels every poll)."""
-    reader = getattr(store, "labels_version", None)
-    return int(reader()) if reader is not None else None
+def _labels_version(store: ModelStore) -> int:
+    """The store's label-change counter (labels are re-read only when it moves)."""
+    return int(store.labels_version())
 
 
 def _label_dict(value: Any) -> dict[str, Any]:

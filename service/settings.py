@@ -41,12 +41,6 @@ class Settings(BaseSettings):
     max_request_bytes: int = Field(
         default=20_000_000, ge=1_000, description="Largest request body, bytes."
     )
-    review_posterior_threshold: float = Field(
-        default=0.6,
-        gt=0.0,
-        le=1.0,
-        description="Default per-model threshold: MAP posterior below it sets review=true.",
-    )
     review_typicality_z: float = Field(
         default=3.0,
         gt=0.0,

@@ -212,6 +212,11 @@ def test_create_learn_route_label_snapshot_rollback(
     listed = api.get(f"/models/{model_name}/snapshots").json()["snapshots"]
     assert {snap_body["id"], rollback["safety_snapshot_id"]} <= {s["id"] for s in listed}
 
+    # clearing a label (both fields null) removes it from routing answers
+    assert api.put(f"/models/{model_name}/groups/{group}/label", json={}).status_code == 200
+    cleared = api.post(f"/models/{model_name}/route", json={"text": examples[2].text}).json()
+    assert cleared["results"][0]["label"] is None
+
     deleted = api.delete(f"/models/{model_name}/snapshots/{snap_body['id']}")
     assert deleted.status_code == 204
     assert api.get(f"/models/{model_name}/snapshots/{snap_body['id']}").status_code == 404

@@ -68,7 +68,9 @@ def test_review_reasons_follow_the_rule() -> None:
     atypical = np.zeros(len(documents), dtype=bool)
     atypical[1] = True
     loaded = SimpleNamespace(
-        review_threshold=0.999999, labels={0: {"label": "L0", "destination": "d"}}
+        review_threshold=0.999999,
+        review_unknown_share=0.5,
+        labels={0: {"label": "L0", "destination": "d"}},
     )
     results = build_results(loaded, documents, routing, atypical, None, None)  # type: ignore[arg-type]
     for result, posterior in zip(results, routing.posterior, strict=True):
@@ -100,8 +102,8 @@ def test_settings_come_from_the_environment(monkeypatch) -> None:
     assert settings.redis_url == "redis://127.0.0.1:6390/2"
     monkeypatch.setenv("MIXROUTE_REDIS_URL", "unix:///tmp/x.sock")
     assert Settings().redis_url == "unix:///tmp/x.sock"  # the prefixed name wins
-    monkeypatch.setenv("MIXROUTE_REVIEW_POSTERIOR_THRESHOLD", "1.5")
-    with pytest.raises(ValidationError, match="review_posterior_threshold"):
+    monkeypatch.setenv("MIXROUTE_REVIEW_UNKNOWN_SHARE", "1.5")
+    with pytest.raises(ValidationError, match="review_unknown_share"):
         Settings()
 
 

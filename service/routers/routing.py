@@ -49,7 +49,7 @@ def build_results(
     no_evidence = routing.no_evidence.tolist()
     flagged = atypical.tolist()
     threshold = loaded.review_threshold
-    unknown_share = getattr(loaded, "review_unknown_share", 0.5)
+    unknown_share = loaded.review_unknown_share
     labels = loaded.labels
     results = []
     for i, doc in enumerate(documents):
