@@ -687,6 +687,14 @@ class ModelStore:
             restored = state_from_bytes(data)
         except StateFormatError as exc:
             raise CorruptSnapshotError(f"snapshot {snapshot_id!r} does not decode: {exc}") from exc
+        # The rollback point is the stream's end now; entries added later are new traffic and
+        # are learned. Serialising here keeps the (large) state out of the WATCH window.
+        SkipRanges.build(skip_ids, skip_received)  # refuse bad ranges before anything else
+        until = max_stream_id(self.last_stream_id(), info.watermark)
+        watermark = info.watermark if replay else until
+        restored.watermark = watermark
+        restored.metadata = {**restored.metadata, "rollback": {"snapshot": snapshot_id}}
+        new_data = state_to_bytes(restored)
         for _ in range(attempts):
             with self.redis.pipeline(transaction=True) as pipe:
                 try:
@@ -694,18 +702,8 @@ class ModelStore:
                     current_version = int(pipe.get(self.keys.version) or 0)
                     current_data = pipe.get(self.keys.state)
                     current_meta = _json(pipe.get(self.keys.state_meta))
-                    last = pipe.xrevrange(self.keys.docs, count=1)
-                    last_id = last[0][0].decode() if last else ZERO_ID
-                    until = max_stream_id(last_id, info.watermark)
                     new_version = current_version + 1
-                    watermark = info.watermark if replay else until
                     skip = SkipRanges.build(skip_ids, skip_received, until, new_version)
-                    restored.watermark = watermark
-                    restored.metadata = {
-                        **restored.metadata,
-                        "rollback": {"snapshot": snapshot_id, "version": new_version},
-                    }
-                    new_data = state_to_bytes(restored)
                     now = time.time()
                     safety = None
                     if current_data is not None and current_meta is not None:
