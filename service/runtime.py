@@ -48,10 +48,9 @@ from typing import Any, TypeVar
 import numpy as np
 import redis
 
-from mixture.routing import Routing
+from mixture.routing import Routing, route_texts
 from mixture.serialize import state_from_bytes
 from mixture.stats import MixtureState
-from service.fastroute import route_small
 from service.settings import Settings
 from state.errors import ModelNotFoundError
 from state.registry import ModelInfo, Registry
@@ -447,7 +446,7 @@ class ServiceRuntime:
     def route(self, loaded: LoadedModel, texts: list[str]) -> tuple[Routing, np.ndarray]:
         """Route with the model's in-memory state; also return the atypical flags."""
         state = loaded.require_state()
-        routing = route_small(state, texts)
+        routing = route_texts(state, texts)
         atypical = loaded.typicality.check_and_update(
             routing.group,
             routing.log_likelihood_per_token,

@@ -274,3 +274,31 @@ def test_fit_is_reproducible_and_rejects_bad_input():
         fit_batch_em(sp.csr_matrix(-np.ones((5, 5))), config)
     with pytest.raises(InputError, match="non-finite"):
         fit_batch_em(np.full((5, 5), np.nan), config)
+
+
+def test_few_document_path_equals_the_sparse_path():
+    """route_texts takes a direct path for a handful of documents; it must give route_counts's
+    answer (the sparse products) to rounding."""
+    from mixture.routing import SMALL_BATCH
+    from mixture.text import count_texts
+
+    texts, _ = _themed_texts(400, seed=8)
+    state, _ = fit_texts(texts, MixtureConfig(n_groups=3, n_restarts=1))
+    probes = [*texts[:20], "qqqq zzzz", "the and of", "ferry ferry ferry unknownword", ""]
+    for start in range(0, len(probes), 3):
+        chunk = probes[start : start + 3]
+        fast = route_texts(state, chunk)
+        batch = count_texts(chunk, state.tokenizer, state.vocabulary, grow=False)
+        core = route_counts(state.parameters(), batch.counts, batch.unknown_tokens)
+        np.testing.assert_allclose(fast.posterior, core.posterior, rtol=0, atol=1e-12)
+        np.testing.assert_array_equal(fast.group, core.group)
+        np.testing.assert_allclose(fast.margin, core.margin, rtol=0, atol=1e-12)
+        np.testing.assert_allclose(
+            fast.log_likelihood_per_token, core.log_likelihood_per_token, rtol=1e-12
+        )
+        np.testing.assert_array_equal(fast.known_tokens, core.known_tokens)
+        np.testing.assert_array_equal(fast.unknown_tokens, core.unknown_tokens)
+        np.testing.assert_array_equal(fast.no_evidence, core.no_evidence)
+    assert len(route_texts(state, probes[: SMALL_BATCH + 1])) == SMALL_BATCH + 1
+    with pytest.raises(InputError, match="document 1"):
+        route_texts(state, ["ok", 3])

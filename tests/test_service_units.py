@@ -144,27 +144,3 @@ def test_demo_data_is_deterministic_and_shaped_as_promised() -> None:
     positions = [i for i, m in enumerate(junk_day) if m.theme == "junk"]
     assert positions == list(range(positions[0], positions[-1] + 1))  # one contiguous burst
     assert len({m.id for day in days for m in day}) == sum(len(day) for day in days)
-
-
-def test_small_batch_routing_equals_the_model_core() -> None:
-    """service.fastroute.route_small must give mixture.routing.route_texts's answer."""
-    from service.fastroute import SMALL_BATCH, route_small
-
-    texts = [m.text for plan in default_days(0.2)[:2] for m in generate_day(plan, 5)]
-    config = MixtureConfig(n_groups=6, n_restarts=1, warmup_documents=10)
-    state, _ = fit_texts(texts, config, seed=1)
-    probes = [m.text for m in fresh_examples(9)] + ["qqqq zzzz", "the and of", "ferry ferry ferry"]
-    probes += texts[:40]
-    for start in range(0, len(probes), 3):
-        chunk = probes[start : start + 3]
-        fast, core = route_small(state, chunk), route_texts(state, chunk)
-        np.testing.assert_allclose(fast.posterior, core.posterior, rtol=0, atol=1e-12)
-        np.testing.assert_array_equal(fast.group, core.group)
-        np.testing.assert_allclose(fast.margin, core.margin, rtol=0, atol=1e-12)
-        np.testing.assert_allclose(
-            fast.log_likelihood_per_token, core.log_likelihood_per_token, rtol=1e-12
-        )
-        np.testing.assert_array_equal(fast.known_tokens, core.known_tokens)
-        np.testing.assert_array_equal(fast.unknown_tokens, core.unknown_tokens)
-        np.testing.assert_array_equal(fast.no_evidence, core.no_evidence)
-    assert len(route_small(state, probes[: SMALL_BATCH + 1])) == SMALL_BATCH + 1
