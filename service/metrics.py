@@ -19,7 +19,6 @@ from __future__ import annotations
 
 import collections
 import contextlib
-import json
 import logging
 import re
 import threading
@@ -148,31 +147,21 @@ class RoutingMeter:
             await self.app(scope, receive, send)
             return
         model, kind = match.group(1), match.group(2)
-        request_chunks: list[bytes] = []
-        response_chunks: list[bytes] = []
         status = 500
 
-        async def receive_copy() -> Message:
-            message = await receive()
-            if message["type"] == "http.request" and kind == "route":
-                request_chunks.append(message.get("body", b""))
-            return message
-
-        async def send_copy(message: Message) -> None:
+        async def send_seen(message: Message) -> None:
             nonlocal status
             if message["type"] == "http.response.start":
                 status = int(message["status"])
-            elif message["type"] == "http.response.body":
-                response_chunks.append(message.get("body", b""))
             await send(message)
 
         started = time.perf_counter()
         try:
-            await self.app(scope, receive_copy, send_copy)
+            await self.app(scope, receive, send_seen)
         finally:
             elapsed = time.perf_counter() - started
             try:
-                self._count(model, kind, status, elapsed, request_chunks, response_chunks)
+                self._count(model, kind, status, elapsed, scope)
             except Exception:  # a metric must never break an answer
                 log.exception("counting a %s answer failed", kind)
 
@@ -191,42 +180,27 @@ class RoutingMeter:
         if match is not None and status == 204:
             self.flagged.forget(match.group(1))
 
-    def _count(
-        self,
-        model: str,
-        kind: str,
-        status: int,
-        elapsed: float,
-        request_chunks: list[bytes],
-        response_chunks: list[bytes],
-    ) -> None:
+    def _count(self, model: str, kind: str, status: int, elapsed: float, scope: Scope) -> None:
+        """Count one answer from what the routers left in the ASGI scope (no JSON parsing)."""
         if not _known_model(self.owner, model):
             model = "_unknown"
-        body = b"".join(response_chunks)
         if kind == "documents":
             if status == 202:
-                self.metrics.documents_queued.labels(model).inc(json.loads(body)["queued"])
+                self.metrics.documents_queued.labels(model).inc(scope.get("mixroute.queued", 0))
             return
         self.metrics.route_requests.labels(model, str(status)).inc()
         self.metrics.route_latency.labels(model).observe(elapsed)
-        if status != 200:
+        answer = scope.get("mixroute.answer")
+        if status != 200 or answer is None:
             return
-        # compact JSON (Starlette's JSONResponse): one '"review":' per document answered
-        n_documents = body.count(b'"review":')
-        self.metrics.documents_routed.labels(model).inc(n_documents)
-        flagged = b'"review":true' in body
-        queued = b'"queued":true' in body
-        if not flagged and not queued:
-            return
-        answer = json.loads(body)
         results = answer["results"]
+        self.metrics.documents_routed.labels(model).inc(len(results))
+        queued = sum(1 for r in results if r.get("stream_id") is not None)
         if queued:
-            self.metrics.documents_queued.labels(model).inc(
-                sum(1 for r in results if r.get("stream_id") is not None)
-            )
-        if not flagged:
+            self.metrics.documents_queued.labels(model).inc(queued)
+        if not any(r.get("review") for r in results):
             return
-        texts = _request_texts(b"".join(request_chunks))
+        texts = scope.get("mixroute.texts") or []
         records = []
         now = time.time()
         for i, result in enumerate(results):
@@ -253,18 +227,6 @@ class RoutingMeter:
             )
         if model != "_unknown":
             self.flagged.add(model, records)
-
-
-def _request_texts(body: bytes) -> list[str]:
-    try:
-        data = json.loads(body)
-    except ValueError:
-        return []
-    if not isinstance(data, dict):
-        return []
-    if isinstance(data.get("documents"), list):
-        return [str(d.get("text", "")) if isinstance(d, dict) else "" for d in data["documents"]]
-    return [str(data.get("text", ""))]
 
 
 class ModelCollector(Collector):
