@@ -337,3 +337,27 @@ def test_a_dead_consumers_pending_entries_are_claimed_and_acknowledged(
         )
         assert runner.worker.name in consumers
     assert store.load_state().documents_learned == 200  # acknowledged, not learned again
+
+
+def test_a_step_longer_than_the_lease_still_commits(
+    redis_client: redis.Redis, model_name: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # A learning step that outlives the heartbeat TTL (a big warm-up fit) must not livelock:
+    # with nobody else holding the model, the worker renews and commits its work.
+    from mixture.online import OnlineLearner
+
+    slow_learn = OnlineLearner.learn
+
+    def learn(self: OnlineLearner, texts: list[str]):  # type: ignore[no-untyped-def]
+        time.sleep(0.3)
+        return slow_learn(self, texts)
+
+    monkeypatch.setattr(OnlineLearner, "learn", learn)
+    store = create_model(redis_client, model_name, options=fast_options(lease_seconds=0.1))
+    texts = ferry_texts(200, seed=16)
+    store.enqueue(texts)
+    with WorkerThread(Worker(redis_client, model_name)) as runner:
+        wait_for(learned_all(store, 200), what="200 learned with slow steps")
+    assert runner.worker.conflicts == 0
+    monkeypatch.undo()
+    assert_same_state(store.load_state(), reference_state(texts, store.info.config))

@@ -219,6 +219,19 @@ class Worker:
             self._last_checkpoint = time.monotonic()
             return False
         state = self.learner.state
+        # renew the lease first: a long step (a big warm-up fit) may have outlived its TTL; if
+        # nobody took the model meanwhile, the work is still ours to commit
+        if not self.store.hold_lease(self._status("learning" if state.warmed_up else "warming-up")):
+            log.warning(
+                "worker %s lost the lease of model %r before its checkpoint",
+                self.name,
+                self.model,
+                extra=self._log_fields(),
+            )
+            self.holding = False
+            self._drop_work()
+            return False
+        self._last_lease = time.monotonic()
         alerts = self._drift_alerts(state)
         snapshot_reason = self._snapshot_due(state)
         cp = Checkpoint(
