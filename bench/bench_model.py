@@ -35,16 +35,21 @@ from mixture.stats import MixtureState, derive_parameters
 from mixture.text import Vocabulary
 
 
-def timed(call: Callable[[], object], repeats: int) -> float:
-    """Median wall time of ``repeats`` calls (one untimed warm-up call first)."""
-    call()
-    times = []
+def timed_pair(
+    first: Callable[[], object], second: Callable[[], object], repeats: int
+) -> tuple[float, float]:
+    """Median wall times of two calls measured in alternation (a change in machine load hits
+    both alike); one untimed warm-up call of each first."""
+    first()
+    second()
+    times: tuple[list[float], list[float]] = ([], [])
     for _ in range(repeats):
-        gc.collect()
-        start = time.perf_counter()
-        call()
-        times.append(time.perf_counter() - start)
-    return statistics.median(times)
+        for call, bucket in ((first, times[0]), (second, times[1])):
+            gc.collect()
+            start = time.perf_counter()
+            call()
+            bucket.append(time.perf_counter() - start)
+    return statistics.median(times[0]), statistics.median(times[1])
 
 
 def zipf_counts(
@@ -108,8 +113,9 @@ def bench_routing(n_docs: int, n_words: int, n_groups: int, repeats: int) -> dic
     nb.feature_log_prob_ = np.ascontiguousarray(params.log_word_prob.T)
     nb.class_log_prior_ = params.log_weights.copy()
     assert np.allclose(nb.predict_proba(counts[:50]), route_counts(params, counts[:50]).posterior)
-    ours = timed(lambda: route_counts(params, counts), repeats)
-    reference = timed(lambda: nb.predict_proba(counts), repeats)
+    ours, reference = timed_pair(
+        lambda: route_counts(params, counts), lambda: nb.predict_proba(counts), repeats
+    )
     return {"ours": ours, "reference": reference}
 
 
@@ -144,8 +150,7 @@ def bench_em_iteration(
         r, _ = e_step(counts, p)
         m_step(counts, r, counts_t)
 
-    reference = timed(products, repeats)
-    blocks = timed(building_blocks, repeats)
+    reference, blocks = timed_pair(products, building_blocks, repeats)
 
     # Inside the fit: fit_batch_em calls progress() after every iteration, so the gaps
     # between calls are single iterations (seeding and set-up fall outside them). The median
