@@ -789,7 +789,12 @@ class ModelStore:
         )
 
     # -- drift -------------------------------------------------------------------------------
-    def drift(self, reference: str | None = None, window: int | None = None) -> DriftReport:
+    def drift(
+        self,
+        reference: str | None = None,
+        window: int | None = None,
+        series_limit: int | None = None,
+    ) -> DriftReport:
         """Weight series and divergence of the weights now against a reference.
 
         Parameters
@@ -799,8 +804,9 @@ class ModelStore:
             (:func:`mixture.drift.word_drift`, groups aligned). None: the history row
             ``window`` checkpoints back.
         window : int, optional
-            Checkpoints back (default ``options.drift_window``); also the series length shown
-            is ``max(history_limit, ...)`` rows, all that is kept.
+            Checkpoints back (default ``options.drift_window``).
+        series_limit : int, optional
+            Newest history rows returned as the weight series (default: all that are kept).
 
         Raises
         ------
@@ -821,8 +827,8 @@ class ModelStore:
             if not series:
                 raise StateError(f"model {self.model!r} has no drift history yet")
             ref_row = series[max(len(series) - 1 - window, 0)]
-            ref = np.asarray(ref_row.weights, dtype=float)
             label = f"window:{window}"
+            ref = np.asarray(ref_row.weights, dtype=float)
         else:
             snap = self.get_snapshot(reference)
             ref = np.asarray(snap.weights, dtype=float)
@@ -841,7 +847,7 @@ class ModelStore:
             word_divergence=word_divergence,
             threshold=threshold,
             alert=value > threshold,
-            series=series,
+            series=series if series_limit is None else series[-int(series_limit) :],
         )
 
     def alert_count(self) -> int:

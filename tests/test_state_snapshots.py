@@ -204,6 +204,7 @@ def test_drift_history_query_and_alerts(redis_client: redis.Redis, model_name: s
     assert report.js_divergence == pytest.approx(jensenshannon(now, ref, base=2) ** 2, abs=1e-12)
     np.testing.assert_allclose(report.weight_change, now - ref)
     np.testing.assert_allclose(ref, rows[-4].weights)
+    assert [r.version for r in store.drift(series_limit=2).series] == [r.version for r in rows[-2:]]
     against_calm = store.drift(reference=reference.id)
     assert against_calm.js_divergence > 0.02 and against_calm.alert
     assert len(against_calm.word_divergence) == 3
