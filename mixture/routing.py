@@ -81,30 +81,39 @@ def route_counts(
     if matrix.shape[1] < n_words:
         log_word_prob = log_word_prob[: matrix.shape[1]]
     log_lik = np.asarray(matrix @ log_word_prob)
-    posterior, _ = normalise_log_rows(log_lik + params.log_weights, overwrite=True)
+    known = np.asarray(matrix.sum(axis=1)).ravel()
+    unknown = (
+        np.zeros(matrix.shape[0], dtype=np.int64)
+        if unknown_tokens is None
+        else np.asarray(unknown_tokens, dtype=np.int64)
+    )
+    return _answer(log_lik, params.log_weights, known, unknown)
+
+
+def _answer(
+    log_lik: np.ndarray, log_weights: np.ndarray, known: np.ndarray, unknown: np.ndarray
+) -> Routing:
+    """Posterior, MAP group, margin and typicality from per-group document log-likelihoods.
+
+    ``known`` may be fractional (weighted counts); the per-token figure divides by it as is.
+    """
+    posterior, _ = normalise_log_rows(log_lik + log_weights, overwrite=True)
     n_docs, k = posterior.shape
     group = posterior.argmax(axis=1)
-    rows = np.arange(n_docs)
     if k > 1:
         top_two = np.partition(posterior, k - 2, axis=1)[:, k - 2 :]
         margin = top_two[:, 1] - top_two[:, 0]
     else:
         margin = np.ones(n_docs)
-    known = np.asarray(matrix.sum(axis=1)).ravel()
     no_evidence = known == 0
     with np.errstate(invalid="ignore", divide="ignore"):
-        per_token = np.where(no_evidence, np.nan, log_lik[rows, group] / known)
-    unknown = (
-        np.zeros(n_docs, dtype=np.int64)
-        if unknown_tokens is None
-        else np.asarray(unknown_tokens, dtype=np.int64)
-    )
+        per_token = np.where(no_evidence, np.nan, log_lik[np.arange(n_docs), group] / known)
     return Routing(
         group=group.astype(np.int64),
         posterior=posterior,
         margin=margin,
         log_likelihood_per_token=per_token,
-        known_tokens=known.astype(np.int64),
+        known_tokens=np.rint(known).astype(np.int64),
         unknown_tokens=unknown,
         no_evidence=no_evidence,
     )
@@ -146,22 +155,4 @@ def _route_few(state: MixtureState, texts: Sequence[str]) -> Routing:
         if ids:
             # A repeated word adds its row again: the same sum as counts @ log_word_prob.
             log_lik[i] = log_word_prob[ids].sum(axis=0)
-    posterior, _ = normalise_log_rows(log_lik + log_weights, overwrite=True)
-    group = posterior.argmax(axis=1)
-    if k > 1:
-        top_two = np.partition(posterior, k - 2, axis=1)[:, k - 2 :]
-        margin = top_two[:, 1] - top_two[:, 0]
-    else:
-        margin = np.ones(n_docs)
-    no_evidence = known == 0
-    with np.errstate(invalid="ignore", divide="ignore"):
-        per_token = np.where(no_evidence, np.nan, log_lik[np.arange(n_docs), group] / known)
-    return Routing(
-        group=group.astype(np.int64),
-        posterior=posterior,
-        margin=margin,
-        log_likelihood_per_token=per_token,
-        known_tokens=known,
-        unknown_tokens=unknown,
-        no_evidence=no_evidence,
-    )
+    return _answer(log_lik, log_weights, known, unknown)
