@@ -46,7 +46,7 @@ from mixture.text import Tokenizer, Vocabulary
 # Fold the running scale back into the statistics before it can underflow.
 _SCALE_FLOOR = 1e-120
 # Arrays smaller than this are not worth handing to threads.
-_PARALLEL_MIN_SIZE = 1 << 18
+_PARALLEL_MIN_SIZE = 1 << 20
 _POOL: ThreadPoolExecutor | None = None
 
 
