@@ -45,8 +45,8 @@ from mixture.text import Tokenizer, Vocabulary
 
 # Fold the running scale back into the statistics before it can underflow.
 _SCALE_FLOOR = 1e-120
-# Arrays smaller than this are not worth handing to threads.
-_PARALLEL_MIN_SIZE = 1 << 20
+# Arrays smaller than this (half a million elements) are not worth handing to threads.
+_PARALLEL_MIN_SIZE = 1 << 19
 _POOL: ThreadPoolExecutor | None = None
 
 
