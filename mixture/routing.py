@@ -8,6 +8,7 @@ never routed as if the text had spoken.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
@@ -106,8 +107,8 @@ def _answer(
     else:
         margin = np.ones(n_docs)
     no_evidence = known == 0
-    with np.errstate(invalid="ignore", divide="ignore"):
-        per_token = np.where(no_evidence, np.nan, log_lik[np.arange(n_docs), group] / known)
+    per_token = log_lik[np.arange(n_docs), group] / np.where(no_evidence, 1.0, known)
+    per_token[no_evidence] = np.nan
     return Routing(
         group=group.astype(np.int64),
         posterior=posterior,
@@ -138,21 +139,50 @@ def route_texts(state: MixtureState, texts: Sequence[str]) -> Routing:
 
 
 def _route_few(state: MixtureState, texts: Sequence[str]) -> Routing:
+    # Document by document in plain floats: at this size numpy's per-call overhead, not the
+    # arithmetic, is the cost (one gather-and-sum per document stays in numpy).
+    params = state.parameters()
+    log_word_prob = params.log_word_prob
+    log_weights = params.log_weights.tolist()
+    tokenize, lookup = state.tokenizer.tokenize, state.vocabulary.lookup
+    k = len(log_weights)
+    posteriors: list[list[float]] = []
+    groups: list[int] = []
+    margins: list[float] = []
+    per_token: list[float] = []
+    known: list[int] = []
+    unknown: list[int] = []
     for index, text in enumerate(texts):
         if not isinstance(text, str):
             raise InputError(f"document {index} is {type(text).__name__}, not str")
-    params = state.parameters()
-    log_word_prob, log_weights = params.log_word_prob, params.log_weights
-    tokenize, lookup = state.tokenizer.tokenize, state.vocabulary.lookup
-    n_docs, k = len(texts), log_weights.shape[0]
-    log_lik = np.zeros((n_docs, k))
-    known = np.zeros(n_docs, dtype=np.int64)
-    unknown = np.zeros(n_docs, dtype=np.int64)
-    for i, text in enumerate(texts):
         tokens = tokenize(text)
         ids = [word_id for word_id in map(lookup, tokens) if word_id >= 0]
-        known[i], unknown[i] = len(ids), len(tokens) - len(ids)
-        if ids:
-            # A repeated word adds its row again: the same sum as counts @ log_word_prob.
-            log_lik[i] = log_word_prob[ids].sum(axis=0)
-    return _answer(log_lik, log_weights, known, unknown)
+        known.append(len(ids))
+        unknown.append(len(tokens) - len(ids))
+        # A repeated word adds its row again: the same sum as counts @ log_word_prob.
+        log_lik = log_word_prob[ids].sum(axis=0).tolist() if ids else [0.0] * k
+        joint = [a + b for a, b in zip(log_lik, log_weights, strict=True)]
+        top = max(joint)
+        shift = top if math.isfinite(top) else 0.0
+        weights = [math.exp(v - shift) for v in joint]
+        total = sum(weights)
+        probability = [w / total for w in weights]
+        best = max(range(k), key=probability.__getitem__)  # first maximum, like argmax
+        posteriors.append(probability)
+        groups.append(best)
+        if k > 1:
+            ordered = sorted(probability)
+            margins.append(ordered[-1] - ordered[-2])
+        else:
+            margins.append(1.0)
+        per_token.append(log_lik[best] / len(ids) if ids else math.nan)
+    known_array = np.array(known, dtype=np.int64)
+    return Routing(
+        group=np.array(groups, dtype=np.int64),
+        posterior=np.array(posteriors, dtype=np.float64).reshape(len(texts), k),
+        margin=np.array(margins),
+        log_likelihood_per_token=np.array(per_token),
+        known_tokens=known_array,
+        unknown_tokens=np.array(unknown, dtype=np.int64),
+        no_evidence=known_array == 0,
+    )

@@ -48,13 +48,14 @@ _SCALE_FLOOR = 1e-120
 # Arrays smaller than this (half a million elements) are not worth handing to threads.
 _PARALLEL_MIN_SIZE = 1 << 19
 _POOL: ThreadPoolExecutor | None = None
+_WORKERS = min(os.cpu_count() or 1, 4)  # read once: os.cpu_count() costs ~20 us here
 
 
 def parallel_rows(ufunc: np.ufunc, array: np.ndarray) -> np.ndarray:
     """Apply a unary ufunc in place, in row blocks on a small thread pool for large arrays."""
-    workers = min(os.cpu_count() or 1, 4)
-    if array.size < _PARALLEL_MIN_SIZE or workers < 2 or array.shape[0] < workers:
+    if array.size < _PARALLEL_MIN_SIZE or _WORKERS < 2 or array.shape[0] < _WORKERS:
         return ufunc(array, out=array)
+    workers = _WORKERS
     global _POOL
     if _POOL is None:
         _POOL = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="mixture")
