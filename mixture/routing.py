@@ -17,7 +17,7 @@ import scipy.sparse as sp
 
 from mixture.em import normalise_log_rows
 from mixture.errors import InputError
-from mixture.stats import MixtureState, Parameters
+from mixture.stats import MixtureState, Parameters, parallel_rows
 from mixture.text import count_texts
 
 
@@ -97,17 +97,31 @@ def _answer(
     """Posterior, MAP group, margin and typicality from per-group document log-likelihoods.
 
     ``known`` may be fractional (weighted counts); the per-token figure divides by it as is.
+    The softmax is done in place around the MAP entry: it is shifted to 0 (probability 1
+    before normalising), masked while the runner-up is found, so one exponential pass gives
+    the posterior, the MAP group and the margin together.
     """
-    posterior, _ = normalise_log_rows(log_lik + log_weights, overwrite=True)
-    n_docs, k = posterior.shape
-    group = posterior.argmax(axis=1)
-    if k > 1:
-        top_two = np.partition(posterior, k - 2, axis=1)[:, k - 2 :]
-        margin = top_two[:, 1] - top_two[:, 0]
+    n_docs, k = log_lik.shape
+    rows = np.arange(n_docs)
+    joint = log_lik + log_weights
+    group = joint.argmax(axis=1)
+    top = joint[rows, group]
+    if not np.all(np.isfinite(top)):
+        posterior, _ = normalise_log_rows(joint, overwrite=True)
+        ordered = np.sort(posterior, axis=1)
+        margin = ordered[:, -1] - ordered[:, -2] if k > 1 else np.ones(n_docs)
     else:
-        margin = np.ones(n_docs)
+        joint -= top[:, None]
+        joint[rows, group] = -np.inf
+        parallel_rows(np.exp, joint)
+        runner_up = joint.max(axis=1) if k > 1 else np.zeros(n_docs)
+        joint[rows, group] = 1.0
+        total = joint.sum(axis=1)
+        joint /= total[:, None]
+        posterior = joint
+        margin = (1.0 - runner_up) / total
     no_evidence = known == 0
-    per_token = log_lik[np.arange(n_docs), group] / np.where(no_evidence, 1.0, known)
+    per_token = log_lik[rows, group] / np.where(no_evidence, 1.0, known)
     per_token[no_evidence] = np.nan
     return Routing(
         group=group.astype(np.int64),
