@@ -2,9 +2,14 @@
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
 
 from mixture.errors import InputError
+
+if TYPE_CHECKING:
+    from mixture.stats import MixtureState
 
 
 def _as_distribution(p: np.ndarray, name: str) -> np.ndarray:
@@ -45,7 +50,7 @@ def total_variation(p: np.ndarray, q: np.ndarray) -> float:
     return float(0.5 * np.abs(p - q).sum())
 
 
-def weight_drift(reference, other, aligned: bool = True) -> float:
+def weight_drift(reference: MixtureState, other: MixtureState, aligned: bool = True) -> float:
     """JS divergence between the mixture weights of two states (groups aligned first)."""
     from mixture.describe import align_groups
 
@@ -57,15 +62,14 @@ def weight_drift(reference, other, aligned: bool = True) -> float:
     return js_divergence(w_ref, w_other)
 
 
-def word_drift(reference, other, aligned: bool = True) -> np.ndarray:
+def word_drift(reference: MixtureState, other: MixtureState, aligned: bool = True) -> np.ndarray:
     """Per-group JS divergence between word distributions, over the words of both states.
 
     Returns an array indexed by the reference's groups (nan for a group with no partner).
     """
     from mixture.describe import align_groups, word_distributions_on
 
-    words, p_ref, p_other = word_distributions_on(reference, other)
-    del words
+    _, p_ref, p_other = word_distributions_on(reference, other)
     k_ref = p_ref.shape[1]
     perm = align_groups(reference, other) if aligned else np.arange(p_other.shape[1])
     out = np.full(k_ref, np.nan)

@@ -11,8 +11,8 @@ that the pseudo-counts stand for, ``a sum_k log pi_k + beta sum_kw log theta_k(w
 lowers it (Dempster, Laird and Rubin 1977), except at the iterations where an empty group is
 re-seeded, which the report lists.
 
-Seeding follows k-means++ (Arthur and Vassilvitskii 2007) with the model's own divergence in
-place of squared distance: a seed document s defines the distribution
+Seeding follows k-means++ (Arthur and Vassilvitskii 2007), weighted by the model's own
+divergence rather than a Euclidean one: each chosen seed s induces the word distribution
 ``0.5 * (its word frequencies) + 0.5 * background``, a document's gain under a seed is its
 per-token log-likelihood ratio against the background, and the next seed is drawn with
 probability proportional to the square of how much worse a document is explained by the

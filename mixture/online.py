@@ -43,20 +43,17 @@ class BatchReport:
     steps: int = 0
 
     def merge(self, other: BatchReport) -> BatchReport:
-        tokens = self.tokens + other.tokens
-        if tokens and (self.tokens or other.tokens):
-            parts = [
-                (r.log_likelihood_per_token, r.tokens)
-                for r in (self, other)
-                if r.tokens and np.isfinite(r.log_likelihood_per_token)
-            ]
-            weight = sum(t for _, t in parts)
-            ll = sum(v * t for v, t in parts) / weight if weight else float("nan")
-        else:
-            ll = float("nan")
+        # Token-weighted mean of the parts that measured a log-likelihood.
+        parts = [
+            (r.log_likelihood_per_token, r.tokens)
+            for r in (self, other)
+            if r.tokens and np.isfinite(r.log_likelihood_per_token)
+        ]
+        weight = sum(t for _, t in parts)
+        ll = sum(v * t for v, t in parts) / weight if weight else float("nan")
         return BatchReport(
             documents=self.documents + other.documents,
-            tokens=tokens,
+            tokens=self.tokens + other.tokens,
             no_evidence=self.no_evidence + other.no_evidence,
             warmed_up=other.warmed_up,
             log_likelihood_per_token=ll,
@@ -227,14 +224,3 @@ def _widen(matrix: sp.csr_matrix, columns: int) -> sp.csr_matrix:
     return sp.csr_matrix(
         (matrix.data, matrix.indices, matrix.indptr), shape=(matrix.shape[0], columns)
     )
-
-
-def learn_counts(state: MixtureState, counts: sp.spmatrix, config: MixtureConfig) -> BatchReport:
-    """Stepwise-learn already counted documents in mini-batches (helper for tests/benches)."""
-    matrix = validate_counts(counts)
-    report = BatchReport()
-    for start in range(0, matrix.shape[0], config.batch_size):
-        part = stepwise_update(state, matrix[start : start + config.batch_size])
-        state.documents_learned += part.documents
-        report = report.merge(part)
-    return report
