@@ -33,6 +33,7 @@ import scipy.sparse as sp
 from mixture.config import MixtureConfig
 from mixture.errors import ConfigError, InputError
 from mixture.stats import MixtureState, Parameters, derive_parameters, parallel_rows
+from mixture.sweep import EMSweep
 
 Progress = Callable[[int, int], None]
 
@@ -233,10 +234,11 @@ def _one_run(
 ) -> tuple[float, np.ndarray, np.ndarray, FitReport]:
     n_docs = counts.shape[0]
     k = config.n_groups
+    sweep = EMSweep(counts, counts_t, k, active, config.word_pseudocount, config.weight_pseudocount)
     assignment = seed_assignment(counts, k, rng)
     resp = np.zeros((n_docs, k))
     resp[np.arange(n_docs), assignment] = 1.0
-    word_counts, doc_counts = m_step(counts, resp, counts_t)
+    sweep.m_step(resp)
 
     report = FitReport(documents=n_docs)
     # Deterministic annealing (Ueda and Nakano 1998): the E-step raises the likelihood to a
@@ -254,21 +256,15 @@ def _one_run(
     objective = -np.inf
     used_for_reseed: set[int] = set()
     for iteration in range(n_anneal + config.max_iter):
-        params = derive_parameters(
-            word_counts,
-            doc_counts,
-            active,
-            config.word_pseudocount,
-            config.weight_pseudocount,
-        )
-        log_joint = _log_joint(counts, params)
+        # The parameters of this E-step stay valid through the next M-step (the sweep
+        # alternates two buffers); re-seeding below measures fit with them.
+        params = sweep.parameters()
         if iteration < n_anneal:
-            log_joint *= temperatures[iteration]
-            resp, _ = normalise_log_rows(log_joint, overwrite=True)
+            resp, _ = sweep.e_step(float(temperatures[iteration]))
             log_norm = None
         else:
-            resp, log_norm = normalise_log_rows(log_joint, overwrite=True)
-            objective = float(log_norm.sum()) + log_prior(params, config)
+            resp, log_norm = sweep.e_step()
+            objective = float(log_norm.sum()) + sweep.log_prior
             report.objective_trace.append(objective)
             report.n_iter = iteration + 1 - n_anneal
         if progress is not None:
@@ -280,13 +276,13 @@ def _one_run(
                 report.converged = True
                 break
             previous = objective
-        word_counts, doc_counts = m_step(counts, resp, counts_t)
+        sweep.m_step(resp)
 
-        empty = np.flatnonzero(doc_counts < _EMPTY_GROUP)
+        empty = np.flatnonzero(sweep.doc_counts < _EMPTY_GROUP)
         if empty.size and len(report.reseeded) < 3 * k:
             # Re-seed each empty group with the document the model explains worst.
             if log_norm is None:
-                _, log_norm = normalise_log_rows(_log_joint(counts, params), overwrite=True)
+                _, log_norm = normalise_log_rows(_log_joint(sweep.counts, params), overwrite=True)
             fit_per_token = log_norm / lengths
             order = np.argsort(fit_per_token)
             candidates = [int(d) for d in order if int(d) not in used_for_reseed]
@@ -295,11 +291,11 @@ def _one_run(
                 resp[doc] = 0.0
                 resp[doc, group] = 1.0
                 report.reseeded.append(int(group))
-            word_counts, doc_counts = m_step(counts, resp, counts_t)
+            sweep.m_step(resp)
             if iteration + 1 >= n_anneal:
                 report.reseed_iterations.append(len(report.objective_trace))
             previous = -np.inf
-    return objective, word_counts, doc_counts, report
+    return objective, sweep.word_counts(), sweep.doc_counts, report
 
 
 def fit_batch_em(
