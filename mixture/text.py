@@ -93,6 +93,13 @@ ENGLISH_STOP_WORDS: Final[frozenset[str]] = frozenset(_ENGLISH_STOP_TEXT.split()
 # the vocabulary (only in caches used with grow=False).
 _SKIP: Final = -1
 _UNKNOWN: Final = -2
+# count_texts tokenizes a whole batch in one regex pass over the texts joined by this
+# separator: the ASCII record separator is no word character and is whitespace to the URL and
+# e-mail patterns (str.isspace), and the plain spaces around it bound the stretches given to
+# them, so no token, URL or address can span two texts.
+_SEPARATOR: Final = "\x1e"
+_JOINER: Final = " \x1e "
+_BOUNDARY: Final = -3
 # A lookup cache larger than this (or than twice the vocabulary) is dropped and refilled, so a
 # stream of one-off tokens (hashes, ticket numbers, typos) cannot grow memory without bound.
 _CACHE_LIMIT: Final = 1 << 18
@@ -280,7 +287,9 @@ class Tokenizer:
         word = f"[{characters}]++"
         # Apostrophes join letters ("don't"); . , : join digits ("12.50", "10:30"). The
         # possessive quantifiers never backtrack, so matching stays linear in the text.
-        self._token_re = re.compile(rf"{word}(?:['\u2019]{word}|(?<=[0-9])[.,:][0-9]++)*+")
+        token = rf"{word}(?:['\u2019]{word}|(?<=[0-9])[.,:][0-9]++)*+"
+        self._token_re = re.compile(token)
+        self._batch_re = re.compile(rf"{_SEPARATOR}|{token}")  # tokens and text boundaries
         self._terms = _TermCache(self._resolve)
 
     def __repr__(self) -> str:
@@ -428,6 +437,9 @@ class _IdCache(dict[str, int]):
         self.aliases: dict[str, list[str]] = {}
 
     def __missing__(self, raw: str) -> int:
+        if raw == _SEPARATOR:  # the boundary between two texts of a joined batch
+            self[raw] = _BOUNDARY
+            return _BOUNDARY
         term = self.term_of(raw)
         if term is None:
             word_id = _SKIP
@@ -779,6 +791,47 @@ class CountBatch:
     new_words: int
 
 
+def _needs_folding(folded: str, tokenizer: Tokenizer) -> bool:
+    markers = tokenizer._markers
+    if not markers:
+        return False
+    if markers == ("://", "www.", "@"):  # the default settings, unrolled (the hot path)
+        return "@" in folded or "://" in folded or "www." in folded
+    return True  # any other setting goes through the general check inside _fold_special
+
+
+def _token_ids_joined(
+    joined: str, n_docs: int, tokenizer: Tokenizer, lookup: Any
+) -> tuple[np.ndarray, np.ndarray]:
+    """Token ids of texts joined by ``_JOINER`` (one casefold, one regex pass, one map)."""
+    folded = joined.casefold()  # per character, so folding the join folds every text
+    if _needs_folding(folded, tokenizer):
+        folded = tokenizer._fold_special(folded)
+    ids = np.fromiter(map(lookup, tokenizer._batch_re.findall(folded)), dtype=np.int64)
+    boundaries = np.flatnonzero(ids == _BOUNDARY)
+    ends = np.empty(n_docs, dtype=np.int64)
+    ends[:-1] = boundaries - np.arange(n_docs - 1)  # tokens before each boundary
+    ends[-1] = ids.size - (n_docs - 1)
+    return ids[ids != _BOUNDARY], ends
+
+
+def _token_ids_per_text(
+    texts: Sequence[str], tokenizer: Tokenizer, lookup: Any
+) -> tuple[np.ndarray, np.ndarray]:
+    """Token ids text by text, and the running token count at the end of each text."""
+    findall = tokenizer._token_re.findall
+    token_ids: list[int] = []
+    extend = token_ids.extend
+    ends = np.empty(len(texts), dtype=np.int64)
+    for index, text in enumerate(texts):
+        folded = text.casefold()
+        if _needs_folding(folded, tokenizer):
+            folded = tokenizer._fold_special(folded)
+        extend(map(lookup, findall(folded)))
+        ends[index] = len(token_ids)
+    return np.array(token_ids, dtype=np.int64), ends
+
+
 def count_texts(
     texts: Sequence[str], tokenizer: Tokenizer, vocabulary: Vocabulary, grow: bool
 ) -> CountBatch:
@@ -814,35 +867,23 @@ def count_texts(
     if not isinstance(vocabulary, Vocabulary):
         raise InputError(f"vocabulary must be a Vocabulary, got {type(vocabulary).__name__}")
     # Check every item before touching the vocabulary, so a bad batch adds no words.
-    for index, text in enumerate(texts):
-        if not isinstance(text, str):
-            raise InputError(f"text at index {index} must be a str, got {type(text).__name__}")
+    try:
+        joined = _JOINER.join(texts)
+    except TypeError:
+        for index, text in enumerate(texts):
+            if not isinstance(text, str):
+                raise InputError(
+                    f"text at index {index} must be a str, got {type(text).__name__}"
+                ) from None
+        raise
     grow = bool(grow)
     n_docs = len(texts)
     capacity_before = vocabulary.capacity
     lookup = vocabulary._id_cache(tokenizer, grow).__getitem__
-    findall = tokenizer._token_re.findall
-    fold_special = tokenizer._fold_special
-    markers = tokenizer._markers
-    check_special = bool(markers)
-    # Unrolled marker test for the default settings (the hot path); any other setting goes
-    # through the general check inside _fold_special.
-    default_markers = markers == ("://", "www.", "@")
-
-    token_ids: list[int] = []
-    extend = token_ids.extend
-    ends = np.empty(n_docs, dtype=np.int64)
-    for index, text in enumerate(texts):
-        folded = text.casefold()
-        if check_special and (
-            ("@" in folded or "://" in folded or "www." in folded) if default_markers else True
-        ):
-            folded = fold_special(folded)
-        extend(map(lookup, findall(folded)))
-        ends[index] = len(token_ids)
-
-    ids = np.array(token_ids, dtype=np.int64)
-    del token_ids
+    if n_docs > 1 and joined.count(_SEPARATOR) == n_docs - 1:
+        ids, ends = _token_ids_joined(joined, n_docs, tokenizer, lookup)
+    else:  # one text, or a text holding the separator itself
+        ids, ends = _token_ids_per_text(texts, tokenizer, lookup)
     doc_of_token = np.repeat(np.arange(n_docs, dtype=np.int64), np.diff(ends, prepend=0))
     known = ids >= 0
     known_tokens = np.bincount(doc_of_token[known], minlength=n_docs).astype(np.int64)

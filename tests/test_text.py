@@ -531,3 +531,78 @@ def test_active_mask_is_a_stable_read_only_snapshot() -> None:
     vocabulary.add("storm")
     assert vocabulary.active_mask().shape == (4,)
     assert vocabulary.to_arrays()["active"].flags.writeable
+
+
+# ---- one regex pass over the joined batch equals tokenizing text by text ---------------------
+_PIECES = st.sampled_from(
+    [
+        "ferry",
+        "Ferry's",
+        "12.50",
+        "10:30",
+        "ΣΑΣ",
+        "Straße",
+        "don\u2019t",
+        "the",
+        "a",
+        "https://isle.example/x?y=1",
+        "www.isle.example",
+        "lena@ferry.example",
+        "@",
+        "://",
+        "www.",
+        "\x1e",
+        " ",
+        "\t",
+        "\n",
+        "\u00a0",
+        ".",
+        ",",
+        "-",
+        "é",
+        "\u0301",
+        "x@y",
+        "",
+    ]
+)
+_TEXTS = st.lists(st.lists(_PIECES, max_size=12).map("".join), max_size=8)
+
+
+def _assert_same_as_text_by_text(texts: list[str]) -> None:
+    from mixture.text import _token_ids_per_text
+
+    tokenizer = Tokenizer()
+    joined_vocab, single_vocab = Vocabulary(), Vocabulary()
+    batch = count_texts(texts, tokenizer, joined_vocab, grow=True)
+    lookup = single_vocab._id_cache(tokenizer, True).__getitem__
+    ids, ends = _token_ids_per_text(texts, tokenizer, lookup)
+    assert joined_vocab.words() == single_vocab.words()
+    starts = np.concatenate([[0], ends])[:-1]
+    for row, (start, stop) in enumerate(zip(starts, ends, strict=True)):
+        mine = ids[start:stop]
+        expected = Counter(mine[mine >= 0].tolist())
+        got = batch.counts.getrow(row)
+        assert dict(zip(got.indices.tolist(), got.data.tolist(), strict=True)) == expected
+    assert batch.known_tokens.sum() == (ids >= 0).sum()
+
+
+@settings(max_examples=300, deadline=None)
+@given(_TEXTS)
+def test_joined_batch_pass_equals_text_by_text(texts: list[str]) -> None:
+    # Property check (no outside source): the batch path must be a pure speed-up.
+    _assert_same_as_text_by_text(texts)
+
+
+@pytest.mark.parametrize(
+    "texts",
+    [
+        ["see https://isle.example/a", "next text", "www.isle.example"],
+        ["mail lena@ferry.example", "x@y.example now", "12.50", ":// www."],
+        ["holds the separator \x1e itself", "ferry https://a.example\x1eb"],
+        ["", "", "ferry"],
+    ],
+)
+def test_joined_batch_pass_at_text_edges(texts: list[str]) -> None:
+    # URLs and addresses at the end or start of a text must not run into the next one; a
+    # text holding the separator itself takes the per-text path.
+    _assert_same_as_text_by_text(texts)
