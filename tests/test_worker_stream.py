@@ -361,3 +361,36 @@ def test_a_step_longer_than_the_lease_still_commits(
     assert runner.worker.conflicts == 0
     monkeypatch.undo()
     assert_same_state(store.load_state(), reference_state(texts, store.info.config))
+
+
+def test_a_dropped_read_ahead_loses_nothing_and_learns_nothing_twice(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    # With a backlog the worker sends its next XREADGROUP before learning the current reply.
+    # Dropping that read in flight (a reload after a version change, or a shutdown) leaves its
+    # entries in the pending list unread; the XRANGE catch-up from the cursor must learn each
+    # of them exactly once. Reference: mixture/ fed the same documents directly.
+    config = small_config()
+    store = create_model(
+        redis_client, model_name, config, fast_options(read_count=37, checkpoint_documents=120)
+    )
+    texts = ferry_texts(900, seed=7)
+    store.enqueue(texts)
+    worker = Worker(redis_client, model_name)
+    drops = 0
+    while drops < 3:
+        worker.run_once()
+        if worker._prefetch is not None:
+            worker._drop_work()  # what run_once does when the version moved under it
+            drops += 1
+    while worker._prefetch is None:
+        worker.run_once()
+    worker.stop()
+    worker.run()  # returns at once: shuts down with the read ahead still in flight
+    assert worker._prefetch is None
+    with WorkerThread(Worker(redis_client, model_name)):
+        wait_for(learned_all(store, 900), what="900 learned after the dropped reads")
+        wait_for(lambda: _pending(redis_client, store) == 0, what="nothing pending")
+    state = store.load_state()
+    assert state.documents_learned == 900
+    assert_same_state(state, reference_state(texts, config))

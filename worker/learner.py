@@ -122,6 +122,7 @@ class Worker:
         self._committed = ZERO_ID  # the watermark of the last checkpoint
         self.skip = SkipRanges()
         self._pending = _Pending()
+        self._prefetch: Any = None  # a connection whose XREADGROUP reply is not read yet
         self._ack_ids: list[bytes | str] = []
         self._dead: list[Undecodable] = []
         self._report = BatchReport()
@@ -409,6 +410,7 @@ class Worker:
         """Forget everything not checkpointed; the next step reloads from Redis."""
         self._loaded = False
         self.learner = None
+        self._drop_prefetch()
         self._pending.clear()
         self._ack_ids.clear()
         self._dead.clear()
@@ -458,7 +460,37 @@ class Worker:
 
         redis-py's reply conversion (a dict per entry) costs more than the read itself, so the
         command goes over a pooled connection without it. Works with RESP2 and RESP3 replies.
+
+        When a reply is full (a backlog), the next XREADGROUP is sent at once and its reply
+        read on the next call: Redis prepares it on its own core while this one learns. Its
+        entries are in this consumer's pending list; if the reply is ever dropped (reload,
+        error, shutdown) they are not lost, because reading always catches up from the
+        cursor with XRANGE (step 2 of the module docstring).
         """
+        pool = self.redis.connection_pool
+        connection = self._prefetch
+        self._prefetch = None
+        try:
+            if connection is None:
+                connection = pool.get_connection()
+                connection.send_command(*self._xreadgroup_args(block))
+            reply = connection.read_response()
+        except BaseException:
+            if connection is not None:
+                connection.disconnect()  # a half-read reply must not reach the next user
+            raise
+        finally:
+            if connection is not None:
+                pool.release(connection)
+        if not reply:
+            return []
+        # RESP3: {stream: entries}; RESP2: [[stream, entries]]
+        entries = next(iter(reply.values())) if isinstance(reply, dict) else reply[0][1]
+        if len(entries) >= self.options.read_count and not self._stop.is_set():
+            self._send_prefetch(block)
+        return entries
+
+    def _xreadgroup_args(self, block: int) -> list[Any]:
         args: list[Any] = [
             "XREADGROUP",
             "GROUP",
@@ -470,21 +502,25 @@ class Worker:
         if block > 0:
             args += ["BLOCK", block]
         args += ["STREAMS", self.store.keys.docs, ">"]
+        return args
+
+    def _send_prefetch(self, block: int) -> None:
         pool = self.redis.connection_pool
         connection = pool.get_connection()
         try:
-            connection.send_command(*args)
-            reply = connection.read_response()
-        except BaseException:
-            connection.disconnect()  # a half-read reply must not reach the next user
-            raise
-        finally:
-            pool.release(connection)
-        if not reply:
-            return []
-        if isinstance(reply, dict):  # RESP3: {stream: entries}
-            return next(iter(reply.values()))
-        return reply[0][1]  # RESP2: [[stream, entries]]
+            connection.send_command(*self._xreadgroup_args(block))
+        except _RETRYABLE:
+            connection.disconnect()
+            pool.release(connection)  # no prefetch this time; the next read sends its own
+            return
+        self._prefetch = connection
+
+    def _drop_prefetch(self) -> None:
+        """Forget a read in flight (its entries are re-read by the XRANGE catch-up)."""
+        connection, self._prefetch = self._prefetch, None
+        if connection is not None:
+            connection.disconnect()
+            self.redis.connection_pool.release(connection)
 
     def _take(self, entries: list[Any]) -> int:
         """Queue entries after the cursor, acknowledge the rest, learn full units."""
@@ -709,6 +745,7 @@ class Worker:
 
     def _shutdown(self) -> None:
         """Finish: learn a partial unit when latency mode is on, checkpoint, release the lease."""
+        self._drop_prefetch()
         if self.deleted:
             with contextlib.suppress(*_RETRYABLE):
                 self.store.release_lease(self.name)  # leave no key of a deleted model behind
