@@ -534,6 +534,16 @@ class Worker:
         skip = self.skip
         skipping = bool(skip)
         pending = self._pending
+        if fresh and not skipping:
+            rest = entries[start:] if start else entries
+            texts = _plain_texts(rest)
+            if texts is not None:  # the common case, in three list comprehensions
+                pending.ids.extend([entry[0] for entry in rest])
+                pending.items.extend(texts)
+                pending.documents += len(texts)
+                self.cursor = entries[-1][0].decode()
+                self._last_arrival = time.monotonic()
+                return self._learn_units(flush=False)
         add_id, add_item = pending.ids.append, pending.items.append
         documents = others = 0
         for raw_id, fields in entries[start:]:
@@ -774,6 +784,29 @@ class Worker:
             self.checkpoints,
             extra=self._log_fields(),
         )
+
+
+def _plain_texts(entries: list[Any]) -> list[str] | None:
+    """The texts of raw entries in our enqueue's layout with no metadata, else None.
+
+    None (take the per-entry path) when any entry has another layout, metadata to check, or
+    text that is not UTF-8.
+    """
+    if not all(
+        [
+            type(fields) is list
+            and len(fields) == 8
+            and fields[2] == b"text"
+            and fields[4] == b"metadata"
+            and fields[5] == b"{}"
+            for _, fields in entries
+        ]
+    ):
+        return None
+    try:
+        return [fields[3].decode("utf-8") for _, fields in entries]
+    except UnicodeDecodeError:
+        return None
 
 
 __all__ = ["Worker"]
