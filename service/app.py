@@ -255,6 +255,10 @@ def create_app(
                 socket_timeout=settings.redis_timeout,
                 socket_connect_timeout=settings.redis_timeout,
             )
+        if settings.model_threads is not None:
+            from mixture.sweep import set_worker_threads
+
+            set_worker_threads(settings.model_threads)
         runtime = ServiceRuntime(settings, client)
         app.state.runtime = runtime
         app.state.settings = settings

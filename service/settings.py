@@ -113,6 +113,13 @@ class Settings(BaseSettings):
         default=SecretStr(""),
         description="Key the command line sends to the API (client side; read or admin role).",
     )
+    model_threads: int | None = Field(
+        default=None,
+        ge=1,
+        le=64,
+        description="Threads the model core may use for batch EM fits (unset: the CPUs this "
+        "process may run on, at most 8; 1 runs them inline, e.g. beside other busy processes).",
+    )
     metrics_public: bool = Field(
         default=False,
         description="Serve /metrics without a key (for a scraper that cannot send one; the "

@@ -269,6 +269,24 @@ def test_worker_process_needs_a_redis_url() -> None:
     assert done.returncode == 2 and "REDIS_URL" in done.stderr
 
 
+def test_worker_process_thread_setting_is_checked(monkeypatch: pytest.MonkeyPatch) -> None:
+    from mixture import sweep
+    from worker.__main__ import main
+
+    with pytest.raises(SystemExit) as exited:
+        main(["--model", "x", "--redis-url", "redis://127.0.0.1:1/0", "--threads", "0"])
+    assert exited.value.code == 2
+    previous = sweep.worker_threads()
+    monkeypatch.setenv("MIXROUTE_MODEL_THREADS", "1")
+    try:
+        # the setting is applied before the worker needs Redis (here an unreachable one)
+        with pytest.raises(redis.ConnectionError):
+            main(["--model", "x", "--redis-url", "redis://127.0.0.1:1/0"])
+        assert sweep.worker_threads() == 1
+    finally:
+        sweep.set_worker_threads(previous)
+
+
 @pytest.mark.parametrize("protocol", [2, 3])
 def test_worker_reads_resp2_and_resp3_replies(
     redis_url: str, model_name: str, protocol: int

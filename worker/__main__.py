@@ -12,6 +12,7 @@ import signal
 import sys
 from types import FrameType
 
+from mixture.sweep import set_worker_threads
 from state.connection import redis_from_url
 from state.errors import ModelNotFoundError
 from worker.learner import Worker
@@ -26,7 +27,19 @@ def main(argv: list[str] | None = None) -> int:
         "--redis-url", default=os.environ.get("REDIS_URL"), help="Redis URL (default: $REDIS_URL)"
     )
     parser.add_argument("--log-level", default=os.environ.get("MIXROUTE_LOG_LEVEL", "INFO"))
+    parser.add_argument(
+        "--threads",
+        type=int,
+        default=os.environ.get("MIXROUTE_MODEL_THREADS"),
+        help="threads of the model core for batch EM fits (default: $MIXROUTE_MODEL_THREADS, "
+        "else the CPUs this process may run on, at most 8)",
+    )
     args = parser.parse_args(argv)
+    if args.threads is not None:
+        threads = int(args.threads)
+        if threads < 1:
+            parser.error(f"--threads must be >= 1; got {threads}")
+        set_worker_threads(threads)
     logging.basicConfig(
         level=args.log_level.upper(),
         format="%(asctime)s %(levelname)s %(name)s: %(message)s",
