@@ -426,6 +426,10 @@ class Worker:
         if delivered:
             first = delivered[0][0].decode()
             learned += self._catch_up(until=first)
+            if len(delivered) >= opts.read_count and not self._stop.is_set():
+                # Only now: Redis runs commands in order, and the XRANGE above would otherwise
+                # wait behind this read instead of the read running beside the learning below.
+                self._send_prefetch(block)
             learned += self._take(delivered)
         else:
             learned += self._catch_up(until=None)
@@ -461,8 +465,9 @@ class Worker:
         redis-py's reply conversion (a dict per entry) costs more than the read itself, so the
         command goes over a pooled connection without it. Works with RESP2 and RESP3 replies.
 
-        When a reply is full (a backlog), the next XREADGROUP is sent at once and its reply
-        read on the next call: Redis prepares it on its own core while this one learns. Its
+        When a reply is full (a backlog), the caller sends the next XREADGROUP before learning
+        this one (:meth:`_send_prefetch`) and its reply is read here on the next call: Redis
+        prepares it on its own core while this one learns. Its
         entries are in this consumer's pending list; if the reply is ever dropped (reload,
         error, shutdown) they are not lost, because reading always catches up from the
         cursor with XRANGE (step 2 of the module docstring).
@@ -485,10 +490,7 @@ class Worker:
         if not reply:
             return []
         # RESP3: {stream: entries}; RESP2: [[stream, entries]]
-        entries = next(iter(reply.values())) if isinstance(reply, dict) else reply[0][1]
-        if len(entries) >= self.options.read_count and not self._stop.is_set():
-            self._send_prefetch(block)
-        return entries
+        return next(iter(reply.values())) if isinstance(reply, dict) else reply[0][1]
 
     def _xreadgroup_args(self, block: int) -> list[Any]:
         args: list[Any] = [
