@@ -122,8 +122,9 @@ class MixtureConfig:
         batches = self.half_life_documents / self.batch_size
         return 1.0 - 0.5 ** (1.0 / batches)
 
-    def step_size(self, step: int) -> float:
-        """Stepwise EM step size eta for update number ``step`` (0-based)."""
+    def step_size(self, step: float) -> float:
+        """Stepwise EM step size eta_k of a whole unit of ``batch_size`` documents at progress
+        ``step`` (units learned since the schedule's start; fractional after partial units)."""
         return max((step + 2.0) ** -self.step_exponent, self.eta_floor)
 
     def to_dict(self) -> dict[str, Any]:

@@ -117,14 +117,22 @@ def stepwise_update(state: MixtureState, counts: sp.spmatrix) -> BatchReport:
     batch_word = np.asarray(local_counts.T @ resp) / m  # average per document
     batch_docs = resp.sum(axis=0) / m
 
+    # The schedule counts units of batch_size documents. A smaller batch (a partial unit
+    # flushed for latency, a trickle of single messages) is that fraction of a step: eta is
+    # what applying eta_k over the whole unit gives to its share of the documents, and the
+    # counter moves by the same fraction, so the memory in documents does not depend on how
+    # the traffic was cut.
+    fraction = m / state.config.batch_size
     eta = state.config.step_size(state.step)
+    if fraction != 1.0:
+        eta = -float(np.expm1(fraction * np.log1p(-eta))) if eta < 1.0 else 1.0
     state.running_scale *= 1.0 - eta
     gain = eta / state.running_scale
     state.unscaled_word[rows] += gain * batch_word
     state.unscaled_total += gain * batch_word.sum(axis=0)
     state.unscaled_docs += gain * batch_docs
     state.weight_square_sum = (1.0 - eta) ** 2 * state.weight_square_sum + eta**2 / m
-    state.step += 1
+    state.step += fraction
     report.steps = 1
     state.maybe_fold_scale()
     state.touch()

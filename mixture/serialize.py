@@ -148,7 +148,7 @@ def _build(header: dict[str, Any], arrays: dict[str, np.ndarray]) -> MixtureStat
         unscaled_total=total,
         running_scale=float(header["running_scale"]),
         weight_square_sum=float(header["weight_square_sum"]),
-        step=int(header["step"]),
+        step=float(header["step"]),
         documents_learned=int(header["documents_learned"]),
         warmed_up=bool(header["warmed_up"]),
         seed=int(header["seed"]),

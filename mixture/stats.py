@@ -148,7 +148,7 @@ class MixtureState:
     unscaled_total: np.ndarray  # (K,) sum of unscaled_word over active rows
     running_scale: float = 1.0  # c: running average = c * unscaled
     weight_square_sum: float = 1.0  # q = sum_i w_i^2; effective documents = 1 / q
-    step: int = 0
+    step: float = 0.0  # stepwise progress in units of batch_size documents
     documents_learned: int = 0
     warmed_up: bool = False
     seed: int = 0
@@ -363,7 +363,7 @@ class MixtureState:
         return state_from_bytes(state_to_bytes(self))
 
 
-def warm_start_step(config: MixtureConfig, n_documents: float) -> int:
+def warm_start_step(config: MixtureConfig, n_documents: float) -> float:
     """Step counter at which stepwise EM continues after a batch fit of n documents.
 
     Chosen so the first step size is about batch / (n + batch): the next mini-batch then weighs
@@ -372,7 +372,7 @@ def warm_start_step(config: MixtureConfig, n_documents: float) -> int:
     m = config.batch_size
     target = m / (n_documents + m)
     step = int(np.ceil(target ** (-1.0 / config.step_exponent) - 2.0))
-    return max(step, 0)
+    return float(max(step, 0))
 
 
 def _drop_columns(matrix: sp.csr_matrix, columns: np.ndarray) -> sp.csr_matrix:

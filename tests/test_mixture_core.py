@@ -111,6 +111,44 @@ def test_effective_documents_is_the_count_for_an_exact_running_average():
     assert state.effective_documents == pytest.approx(60.0)
 
 
+def test_a_unit_cut_into_smaller_batches_is_one_step():
+    """A partial unit is that fraction of a step: four batches of a quarter unit keep exactly
+    the share (1 - eta) of the old statistics that one whole unit keeps, and move the
+    schedule by one step. (Derivation: (1 - eta_m)^(M/m) = 1 - eta with
+    eta_m = 1 - (1 - eta)^(m/M); here eta is held by the floor, so it does not move.)"""
+    config = MixtureConfig(n_groups=3, batch_size=16, warmup_documents=3, half_life_documents=64)
+    eta = config.eta_floor
+    results = []
+    for sizes in ([16], [4, 4, 4, 4]):
+        state = _random_state(40, 3)
+        state.config = config
+        state.step = 1e9  # far along the schedule: eta is the floor
+        before = state.running_scale
+        for i, size in enumerate(sizes):
+            stepwise_update(state, _random_batch(size, 40, seed=i))
+        assert state.step == pytest.approx(1e9 + 1.0)
+        results.append(state.running_scale / before)
+    assert results[0] == pytest.approx(1.0 - eta, rel=1e-12)
+    assert results[1] == pytest.approx(1.0 - eta, rel=1e-12)
+
+
+def test_a_trickle_of_single_documents_keeps_the_effective_sample_size():
+    """Kish's effective size (1 / sum w^2) after a unit's worth of documents one at a time
+    is about what one batch of them gives; a full step per document would collapse it."""
+    config = MixtureConfig(n_groups=3, batch_size=16, warmup_documents=3)
+    sizes = []
+    for pieces in (1, 16):
+        state = _random_state(40, 3)
+        state.config = config
+        for unit in range(4):
+            batch = _random_batch(16, 40, seed=unit)
+            for i in range(pieces):
+                rows = slice(i * 16 // pieces, (i + 1) * 16 // pieces)
+                stepwise_update(state, batch[rows])
+        sizes.append(state.effective_documents)
+    assert sizes[1] == pytest.approx(sizes[0], rel=0.05)
+
+
 def test_eta_floor_is_a_half_life_in_documents():
     config = MixtureConfig(batch_size=100, half_life_documents=10_000)
     eta = config.eta_floor
