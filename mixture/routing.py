@@ -18,6 +18,7 @@ import scipy.sparse as sp
 from mixture.em import normalise_log_rows
 from mixture.errors import InputError
 from mixture.stats import MixtureState, Parameters, parallel_rows
+from mixture.sweep import blocked_product
 from mixture.text import count_texts
 
 
@@ -81,7 +82,7 @@ def route_counts(
     log_word_prob = params.log_word_prob
     if matrix.shape[1] < n_words:
         log_word_prob = log_word_prob[: matrix.shape[1]]
-    log_lik = np.asarray(matrix @ log_word_prob)
+    log_lik = blocked_product(matrix, log_word_prob)
     known = np.asarray(matrix.sum(axis=1)).ravel()
     unknown = (
         np.zeros(matrix.shape[0], dtype=np.int64)

@@ -115,6 +115,24 @@ def row_blocks(matrix: sp.csr_matrix, n_blocks: int, row_cost: float) -> list[Ro
     return blocks
 
 
+def blocked_product(matrix: sp.csr_matrix, dense: np.ndarray) -> np.ndarray:
+    """``matrix @ dense`` with the rows cut into blocks that run on the pool's threads."""
+    n_rows = matrix.shape[0]
+    by_work = max(1, (matrix.nnz * dense.shape[1]) // _MIN_BLOCK_WORK)
+    n_blocks = max(1, min(worker_threads(), by_work, n_rows))
+    if n_blocks == 1:
+        return np.asarray(matrix @ dense)
+    blocks = row_blocks(matrix, n_blocks, _ROW_COST)
+    out = np.empty((n_rows, dense.shape[1]))
+
+    def block(i: int) -> None:
+        part = blocks[i]
+        out[part.start : part.stop] = part.matrix @ dense
+
+    run_blocks(block, len(blocks))
+    return out
+
+
 class EMSweep:
     """Batch-EM steps over one corpus, blocked for threads.
 

@@ -194,3 +194,25 @@ def test_thread_count_is_checked_and_restored() -> None:
     previous = set_worker_threads(3)
     assert sweep_module.worker_threads() == 3
     assert set_worker_threads(previous) == 3
+
+
+@pytest.mark.usefixtures("two_threads")
+def test_blocked_routing_equals_multinomial_nb_and_one_thread() -> None:
+    # Source: scikit-learn MultinomialNB.predict_proba under the same parameters.
+    from mixture.routing import route_counts
+
+    counts = _corpus(9)
+    k = 4
+    labels = np.random.default_rng(9).integers(0, k, size=counts.shape[0])
+    nb = MultinomialNB(alpha=0.1).fit(counts, labels)
+    params = derive_parameters(nb.feature_count_.T, nb.class_count_, None, 0.1, 0.0)
+    assert (counts.nnz * k) // sweep_module._MIN_BLOCK_WORK >= 2  # the blocked path runs
+    two = route_counts(params, counts)
+    np.testing.assert_allclose(two.posterior, nb.predict_proba(counts), rtol=0, atol=1e-10)
+    previous = set_worker_threads(1)
+    try:
+        one = route_counts(params, counts)
+    finally:
+        set_worker_threads(previous)
+    np.testing.assert_array_equal(two.posterior, one.posterior)
+    np.testing.assert_array_equal(two.group, one.group)
