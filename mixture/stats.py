@@ -31,8 +31,6 @@ off. The pseudo-counts are always added to that many documents' worth of evidenc
 from __future__ import annotations
 
 import itertools
-import os
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -42,27 +40,22 @@ import scipy.sparse as sp
 from mixture.config import MixtureConfig
 from mixture.errors import InputError
 from mixture.text import Tokenizer, Vocabulary
+from mixture.threads import run_blocks, worker_threads
 
 # Fold the running scale back into the statistics before it can underflow.
 _SCALE_FLOOR = 1e-120
 # Arrays smaller than this (half a million elements) are not worth handing to threads.
 _PARALLEL_MIN_SIZE = 1 << 19
-_POOL: ThreadPoolExecutor | None = None
-_WORKERS = min(os.cpu_count() or 1, 4)  # read once: os.cpu_count() costs ~20 us here
 
 
 def parallel_rows(ufunc: np.ufunc, array: np.ndarray) -> np.ndarray:
-    """Apply a unary ufunc in place, in row blocks on a small thread pool for large arrays."""
-    if array.size < _PARALLEL_MIN_SIZE or _WORKERS < 2 or array.shape[0] < _WORKERS:
+    """Apply a unary ufunc in place, in row blocks on the model core's threads for large arrays."""
+    workers = worker_threads()
+    if array.size < _PARALLEL_MIN_SIZE or workers < 2 or array.shape[0] < workers:
         return ufunc(array, out=array)
-    workers = _WORKERS
-    global _POOL
-    if _POOL is None:
-        _POOL = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="mixture")
     bounds = np.linspace(0, array.shape[0], workers + 1).astype(int)
     blocks = [array[a:b] for a, b in itertools.pairwise(bounds)]
-    for _ in _POOL.map(lambda block: ufunc(block, out=block), blocks):
-        pass
+    run_blocks(lambda i: ufunc(blocks[i], out=blocks[i]), len(blocks))
     return array
 
 

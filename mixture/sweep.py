@@ -14,18 +14,23 @@ sums taken in another order.
 from __future__ import annotations
 
 import itertools
-import os
-from collections.abc import Callable
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
-from typing import TypeVar
 
 import numpy as np
 import scipy.sparse as sp
 
 from mixture.stats import Parameters
+from mixture.threads import run_blocks, set_worker_threads, worker_threads
 
-T = TypeVar("T")
+__all__ = [
+    "EMSweep",
+    "RowBlock",
+    "blocked_product",
+    "row_blocks",
+    "run_blocks",
+    "set_worker_threads",
+    "worker_threads",
+]
 
 # A block's cost in units of one multiply-add of the sparse product: its non-zeros times K plus
 # this many units per row times K for the row's exponential or logarithm and the element-wise
@@ -33,54 +38,6 @@ T = TypeVar("T")
 _ROW_COST = 4
 # Below this much work (non-zeros x K) per block a thread costs more than it saves.
 _MIN_BLOCK_WORK = 1 << 17
-
-
-def _default_threads() -> int:
-    try:
-        available = len(os.sched_getaffinity(0))  # honours CPU sets in containers
-    except AttributeError:  # pragma: no cover - platforms without sched_getaffinity
-        available = os.cpu_count() or 1
-    return max(1, min(available, 8))
-
-
-_threads = _default_threads()
-_pool: ThreadPoolExecutor | None = None
-_pool_pid = 0  # a forked child inherits the executor but not its threads: it needs its own
-
-
-def worker_threads() -> int:
-    """Threads the model core uses for large arrays (the CPUs this process may run on, <= 8)."""
-    return _threads
-
-
-def set_worker_threads(count: int) -> int:
-    """Set how many threads the model core may use; returns the previous setting.
-
-    One thread runs everything inline (useful beside other CPU-bound work, and to measure the
-    single-core cost).
-    """
-    global _threads, _pool
-    if count < 1:
-        raise ValueError(f"thread count must be >= 1; got {count}")
-    previous = _threads
-    if count != _threads and _pool is not None:
-        _pool.shutdown(wait=True)
-        _pool = None
-    _threads = count
-    return previous
-
-
-def run_blocks(task: Callable[[int], T], n_blocks: int) -> list[T]:
-    """Run ``task(i)`` for every block, block 0 in the calling thread and the rest on the pool."""
-    global _pool, _pool_pid
-    if n_blocks == 1:
-        return [task(0)]
-    if _pool is None or _pool_pid != os.getpid():
-        _pool = ThreadPoolExecutor(max_workers=max(1, _threads - 1), thread_name_prefix="mixture")
-        _pool_pid = os.getpid()
-    futures = [_pool.submit(task, i) for i in range(1, n_blocks)]
-    first = task(0)
-    return [first, *(future.result() for future in futures)]
 
 
 @dataclass(frozen=True)

@@ -216,3 +216,12 @@ def test_blocked_routing_equals_multinomial_nb_and_one_thread() -> None:
         set_worker_threads(previous)
     np.testing.assert_array_equal(two.posterior, one.posterior)
     np.testing.assert_array_equal(two.group, one.group)
+
+
+@pytest.mark.usefixtures("two_threads")
+def test_blocks_started_from_the_pool_run_inline() -> None:
+    # A block that waited on the pool from inside it could wait for itself (a deadlock).
+    from mixture.threads import run_blocks
+
+    nested = run_blocks(lambda i: run_blocks(lambda j: (i, j), 3), 2)
+    assert nested == [[(0, 0), (0, 1), (0, 2)], [(1, 0), (1, 1), (1, 2)]]
