@@ -93,12 +93,13 @@ ENGLISH_STOP_WORDS: Final[frozenset[str]] = frozenset(_ENGLISH_STOP_TEXT.split()
 # the vocabulary (only in caches used with grow=False).
 _SKIP: Final = -1
 _UNKNOWN: Final = -2
-# count_texts tokenizes a whole batch in one regex pass over the texts joined by this
-# separator: the ASCII record separator is no word character and is whitespace to the URL and
-# e-mail patterns (str.isspace), and the plain spaces around it bound the stretches given to
-# them, so no token, URL or address can span two texts.
-_SEPARATOR: Final = "\x1e"
-_JOINER: Final = " \x1e "
+# count_texts tokenizes a whole batch in one regex pass over its case-folded texts joined by
+# this separator: a word the token pattern itself finds (an alternation would slow the regex's
+# scan), made of ASCII so that joining ASCII texts keeps them narrow, between plain spaces,
+# which end every token, URL and e-mail stretch. A batch in which a text holds the word takes
+# the per-text path (the count of separators then differs from the number of joins).
+_SEPARATOR: Final = "qzxjbound0"
+_JOINER: Final = " qzxjbound0 "
 _BOUNDARY: Final = -3
 # A lookup cache larger than this (or than twice the vocabulary) is dropped and refilled, so a
 # stream of one-off tokens (hashes, ticket numbers, typos) cannot grow memory without bound.
@@ -287,9 +288,7 @@ class Tokenizer:
         word = f"[{characters}]++"
         # Apostrophes join letters ("don't"); . , : join digits ("12.50", "10:30"). The
         # possessive quantifiers never backtrack, so matching stays linear in the text.
-        token = rf"{word}(?:['\u2019]{word}|(?<=[0-9])[.,:][0-9]++)*+"
-        self._token_re = re.compile(token)
-        self._batch_re = re.compile(rf"{_SEPARATOR}|{token}")  # tokens and text boundaries
+        self._token_re = re.compile(rf"{word}(?:['\u2019]{word}|(?<=[0-9])[.,:][0-9]++)*+")
         self._terms = _TermCache(self._resolve)
 
     def __repr__(self) -> str:
@@ -801,13 +800,12 @@ def _needs_folding(folded: str, tokenizer: Tokenizer) -> bool:
 
 
 def _token_ids_joined(
-    joined: str, n_docs: int, tokenizer: Tokenizer, lookup: Any
+    folded: str, n_docs: int, tokenizer: Tokenizer, lookup: Any
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Token ids of texts joined by ``_JOINER`` (one casefold, one regex pass, one map)."""
-    folded = joined.casefold()  # per character, so folding the join folds every text
+    """Token ids of case-folded texts joined by ``_JOINER`` (one regex pass, one map)."""
     if _needs_folding(folded, tokenizer):
         folded = tokenizer._fold_special(folded)
-    ids = np.fromiter(map(lookup, tokenizer._batch_re.findall(folded)), dtype=np.int64)
+    ids = np.fromiter(map(lookup, tokenizer._token_re.findall(folded)), dtype=np.int64)
     boundaries = np.flatnonzero(ids == _BOUNDARY)
     ends = np.empty(n_docs, dtype=np.int64)
     ends[:-1] = boundaries - np.arange(n_docs - 1)  # tokens before each boundary
@@ -866,10 +864,12 @@ def count_texts(
         raise InputError(f"tokenizer must be a Tokenizer, got {type(tokenizer).__name__}")
     if not isinstance(vocabulary, Vocabulary):
         raise InputError(f"vocabulary must be a Vocabulary, got {type(vocabulary).__name__}")
-    # Check every item before touching the vocabulary, so a bad batch adds no words.
+    # Check every item before touching the vocabulary, so a bad batch adds no words. Each text
+    # is case-folded on its own (ASCII texts take casefold's fast path; one non-ASCII text
+    # would slow a fold of the whole join), then the folded texts are joined.
     try:
-        joined = _JOINER.join(texts)
-    except TypeError:
+        folded = _JOINER.join([text.casefold() for text in texts])
+    except (TypeError, AttributeError):
         for index, text in enumerate(texts):
             if not isinstance(text, str):
                 raise InputError(
@@ -880,8 +880,8 @@ def count_texts(
     n_docs = len(texts)
     capacity_before = vocabulary.capacity
     lookup = vocabulary._id_cache(tokenizer, grow).__getitem__
-    if n_docs > 1 and joined.count(_SEPARATOR) == n_docs - 1:
-        ids, ends = _token_ids_joined(joined, n_docs, tokenizer, lookup)
+    if n_docs > 1 and folded.count(_SEPARATOR) == n_docs - 1:  # no text holds the separator
+        ids, ends = _token_ids_joined(folded, n_docs, tokenizer, lookup)
     else:  # one text, or a text holding the separator itself
         ids, ends = _token_ids_per_text(texts, tokenizer, lookup)
     doc_of_token = np.repeat(np.arange(n_docs, dtype=np.int64), np.diff(ends, prepend=0))

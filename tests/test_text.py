@@ -598,7 +598,13 @@ def test_joined_batch_pass_equals_text_by_text(texts: list[str]) -> None:
     [
         ["see https://isle.example/a", "next text", "www.isle.example"],
         ["mail lena@ferry.example", "x@y.example now", "12.50", ":// www."],
-        ["holds the separator \x1e itself", "ferry https://a.example\x1eb"],
+        [
+            "holds the separator qzxjbound0 itself",
+            "ferry https://a.exampleqzxjbound0b",
+            "qzxjbound0",
+            "QZXJBOUND0 folds to it",
+        ],
+        ["\x1e record separators \x1e", "\u0301mark first", "don' ", "12."],
         ["", "", "ferry"],
     ],
 )
