@@ -251,14 +251,7 @@ class Worker:
         try:
             self.version = self.store.commit_checkpoint(cp)
         except ModelNotFoundError:
-            log.warning(
-                "worker %s: model %r was deleted; stopping",
-                self.name,
-                self.model,
-                extra=self._log_fields(),
-            )
-            self.deleted = True
-            self._stop.set()
+            self._stop_for_deletion()
             self._drop_work()
             return False
         except VersionConflictError as exc:
@@ -281,6 +274,16 @@ class Worker:
         self._last_checkpoint = time.monotonic()
         return True
 
+    def _stop_for_deletion(self) -> None:
+        log.warning(
+            "worker %s: model %r was deleted; stopping",
+            self.name,
+            self.model,
+            extra=self._log_fields(),
+        )
+        self.deleted = True
+        self._stop.set()
+
     def _same_version(self) -> bool:
         """True while the model's version is the one loaded (a rollback moves it)."""
         pipe = self.redis.pipeline(transaction=False)
@@ -288,14 +291,7 @@ class Worker:
         pipe.exists(self.store.keys.config)
         raw_version, exists = pipe.execute()
         if not exists:
-            log.warning(
-                "worker %s: model %r was deleted; stopping",
-                self.name,
-                self.model,
-                extra=self._log_fields(),
-            )
-            self.deleted = True
-            self._stop.set()
+            self._stop_for_deletion()
             return True
         version = int(raw_version or 0)
         if version != self.version:
