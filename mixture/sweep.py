@@ -100,6 +100,7 @@ class EMSweep:
         to the used words, as ``counts``.
     counts_t : csr_matrix of shape (V, n_docs)
         The same counts transposed, in CSR.
+    n_groups : int
     active : ndarray of shape (V,) of bool, or None for all active
     word_pseudocount, weight_pseudocount : float
     threads : int, optional

@@ -463,10 +463,10 @@ class Worker:
 
         When a reply is full (a backlog), the caller sends the next XREADGROUP before learning
         this one (:meth:`_send_prefetch`) and its reply is read here on the next call: Redis
-        prepares it on its own core while this one learns. Its
-        entries are in this consumer's pending list; if the reply is ever dropped (reload,
-        error, shutdown) they are not lost, because reading always catches up from the
-        cursor with XRANGE (step 2 of the module docstring).
+        prepares it on its own core while this one learns. Its entries are in this consumer's
+        pending list; if the reply is ever dropped (reload, error, shutdown) they are not
+        lost, because reading always catches up from the cursor with XRANGE (step 2 of the
+        module docstring).
         """
         pool = self.redis.connection_pool
         connection = self._prefetch
