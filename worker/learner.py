@@ -6,7 +6,9 @@ The worker holds the model's lease (the ``heartbeat`` key, a TTL naming it) or w
 standby. Holding it, it loads the current checkpoint; its *cursor* starts at the checkpoint's
 watermark. It learns strictly in stream order after the cursor:
 
-1. XREADGROUP ``>`` (count, block) delivers new entries.
+1. XREADGROUP ``>`` (count, block) delivers new entries. With a backlog (a full reply) the next
+   XREADGROUP is sent before the current entries are learned, so Redis prepares it meanwhile;
+   a read-ahead that is dropped (reload, error, shutdown) is covered by step 2.
 2. If entries exist between the cursor and the first delivered one (delivered earlier to a
    consumer that died, read before an aborted checkpoint, or to be replayed after a rollback),
    they are fetched first with XRANGE ``(cursor, first)``. With nothing delivered, XRANGE
