@@ -144,3 +144,22 @@ def test_demo_data_is_deterministic_and_shaped_as_promised() -> None:
     positions = [i for i, m in enumerate(junk_day) if m.theme == "junk"]
     assert positions == list(range(positions[0], positions[-1] + 1))  # one contiguous burst
     assert len({m.id for day in days for m in day}) == sum(len(day) for day in days)
+
+
+def test_model_threads_setting_reaches_the_model_core() -> None:
+    import fakeredis
+    from fastapi.testclient import TestClient
+
+    from mixture import threads
+    from service.app import create_app
+    from service.settings import Settings
+
+    with pytest.raises(ValueError, match="model_threads"):
+        Settings(model_threads=0)
+    previous = threads.worker_threads()
+    try:
+        app = create_app(Settings(model_threads=1), redis_client=fakeredis.FakeRedis())
+        with TestClient(app):
+            assert threads.worker_threads() == 1
+    finally:
+        threads.set_worker_threads(previous)
