@@ -5,7 +5,9 @@ sufficient statistics s_batch, and the running statistics move towards them,
 
     s <- (1 - eta_k) s + eta_k s_batch,    eta_k = (k + 2) ** -alpha,  0.5 < alpha <= 1,
 
-optionally with eta floored (exponential forgetting, so the model follows drift). The update
+optionally with eta floored (exponential forgetting, so the model follows drift). k counts units
+of ``batch_size`` documents: a batch of m documents moves it by m / batch_size and takes the step
+1 - (1 - eta_k) ** (m / batch_size), so partial units do not shorten the memory. The update
 touches only the rows of the words in the batch plus O(K) numbers: the uniform shrink by
 (1 - eta) is a change of the running scale factor (see mixture.stats).
 
