@@ -252,57 +252,10 @@ class ModelCollector(Collector):
         weight = GaugeMetricFamily(
             "mixroute_group_weight", "Mixture weight of each group.", labels=["model", "group"]
         )
-        length = GaugeMetricFamily(
-            "mixroute_stream_length_entries", "Entries in the model's stream.", labels=["model"]
-        )
-        pending = GaugeMetricFamily(
-            "mixroute_stream_pending_entries",
-            "Stream entries delivered to a worker and not yet checkpointed.",
-            labels=["model"],
-        )
-        lag = GaugeMetricFamily(
-            "mixroute_stream_lag_entries",
-            "Stream entries not yet delivered to any worker (consumer-group lag; only where "
-            "Redis reports it, version 7 and later).",
-            labels=["model"],
-        )
-        lag_age = GaugeMetricFamily(
-            "mixroute_stream_lag_seconds",
-            "Age of the oldest stream entry not yet learned (after the watermark); 0 when "
-            "the model has caught up with its stream.",
-            labels=["model"],
-        )
-        checkpoint_time = GaugeMetricFamily(
-            "mixroute_last_checkpoint_timestamp_seconds",
-            "Unix time of the newest checkpoint (its drift-history row).",
-            labels=["model"],
-        )
-        checkpoint_age = GaugeMetricFamily(
-            "mixroute_checkpoint_age_seconds",
-            "Seconds since the newest checkpoint at scrape time.",
-            labels=["model"],
-        )
-        divergence = GaugeMetricFamily(
-            "mixroute_drift_divergence",
-            "Jensen-Shannon divergence (base 2) of the weights now against the drift window "
-            "(as GET /models/{model}/drift answers).",
-            labels=["model"],
-        )
-        threshold = GaugeMetricFamily(
-            "mixroute_drift_threshold",
-            "Divergence above which an alert is raised.",
-            labels=["model"],
-        )
-        alerts = CounterMetricFamily(
-            "mixroute_drift_alerts",
-            "Drift alerts raised by checkpoints (entries of the model's alerts stream).",
-            labels=["model"],
-        )
-        heartbeat = GaugeMetricFamily(
-            "mixroute_worker_heartbeat_age_seconds",
-            "Seconds since the learning worker last reported.",
-            labels=["model"],
-        )
+        from_redis = {
+            key: family(name, documentation, labels=["model"])
+            for key, (family, name, documentation) in _REDIS_FAMILIES.items()
+        }
         redis_up = GaugeMetricFamily(
             "mixroute_redis_up", "1 when Redis answered this scrape, else 0 (degraded)."
         )
@@ -319,11 +272,7 @@ class ModelCollector(Collector):
             if not reachable:
                 continue
             try:
-                self._from_redis(
-                    runtime, name, loaded, now,
-                    length, pending, lag, lag_age, checkpoint_time, checkpoint_age,
-                    divergence, threshold, alerts, heartbeat,
-                )  # fmt: skip
+                self._from_redis(runtime, name, loaded, now, from_redis)
             except REDIS_DOWN_ERRORS:
                 reachable = False
         if reachable and not runtime.models:
@@ -332,33 +281,94 @@ class ModelCollector(Collector):
             except REDIS_DOWN_ERRORS:
                 reachable = False
         redis_up.add_metric([], 1.0 if reachable else 0.0)
-        yield from (version, learned, weight, length, pending, lag, lag_age, checkpoint_time)
-        yield from (checkpoint_age, divergence, threshold, alerts, heartbeat, redis_up)
+        yield from (version, learned, weight, *from_redis.values(), redis_up)
 
     @staticmethod
-    def _from_redis(runtime: Any, name: str, loaded: Any, now: float, *families: Any) -> None:
+    def _from_redis(
+        runtime: Any, name: str, loaded: Any, now: float, families: dict[str, Metric]
+    ) -> None:
         from state.errors import StateError
 
-        (length, pending, lag, lag_age, checkpoint_time, checkpoint_age) = families[:6]
-        (divergence, threshold, alerts, heartbeat) = families[6:]
+        def add(key: str, value: float) -> None:
+            families[key].add_metric([name], value)  # type: ignore[attr-defined]
+
         store = loaded.store
         info = store.stream_info()
-        length.add_metric([name], info["length"])
-        pending.add_metric([name], info["pending"])
+        add("length", info["length"])
+        add("pending", info["pending"])
         if info.get("lag") is not None:  # Redis 7 and later report it
-            lag.add_metric([name], info["lag"])
-        lag_age.add_metric([name], _unlearned_age(runtime.redis, store.keys.docs, info, now))
+            add("lag", info["lag"])
+        add("lag_age", _unlearned_age(runtime.redis, store.keys.docs, info, now))
         rows = store.history(limit=1)
         if rows:
-            checkpoint_time.add_metric([name], rows[-1].time)
-            checkpoint_age.add_metric([name], max(0.0, now - rows[-1].time))
-        threshold.add_metric([name], store.options.drift_threshold)
+            add("checkpoint_time", rows[-1].time)
+            add("checkpoint_age", max(0.0, now - rows[-1].time))
+        add("threshold", store.options.drift_threshold)
         with contextlib.suppress(StateError):  # no checkpoint yet: no divergence to report
-            divergence.add_metric([name], store.drift().js_divergence)
-        alerts.add_metric([name], store.alert_count())
+            add("divergence", store.drift().js_divergence)
+        add("alerts", store.alert_count())
         status = store.worker_status()
         if status is not None:
-            heartbeat.add_metric([name], max(0.0, now - status.time))
+            add("heartbeat", max(0.0, now - status.time))
+
+
+# Per-model families read from Redis at scrape time (label: model): key -> (family type, name,
+# help), in the order they are exposed.
+_REDIS_FAMILIES: dict[str, tuple[Any, str, str]] = {
+    "length": (
+        GaugeMetricFamily,
+        "mixroute_stream_length_entries",
+        "Entries in the model's stream.",
+    ),
+    "pending": (
+        GaugeMetricFamily,
+        "mixroute_stream_pending_entries",
+        "Stream entries delivered to a worker and not yet checkpointed.",
+    ),
+    "lag": (
+        GaugeMetricFamily,
+        "mixroute_stream_lag_entries",
+        "Stream entries not yet delivered to any worker (consumer-group lag; only where "
+        "Redis reports it, version 7 and later).",
+    ),
+    "lag_age": (
+        GaugeMetricFamily,
+        "mixroute_stream_lag_seconds",
+        "Age of the oldest stream entry not yet learned (after the watermark); 0 when "
+        "the model has caught up with its stream.",
+    ),
+    "checkpoint_time": (
+        GaugeMetricFamily,
+        "mixroute_last_checkpoint_timestamp_seconds",
+        "Unix time of the newest checkpoint (its drift-history row).",
+    ),
+    "checkpoint_age": (
+        GaugeMetricFamily,
+        "mixroute_checkpoint_age_seconds",
+        "Seconds since the newest checkpoint at scrape time.",
+    ),
+    "divergence": (
+        GaugeMetricFamily,
+        "mixroute_drift_divergence",
+        "Jensen-Shannon divergence (base 2) of the weights now against the drift window "
+        "(as GET /models/{model}/drift answers).",
+    ),
+    "threshold": (
+        GaugeMetricFamily,
+        "mixroute_drift_threshold",
+        "Divergence above which an alert is raised.",
+    ),
+    "alerts": (
+        CounterMetricFamily,
+        "mixroute_drift_alerts",
+        "Drift alerts raised by checkpoints (entries of the model's alerts stream).",
+    ),
+    "heartbeat": (
+        GaugeMetricFamily,
+        "mixroute_worker_heartbeat_age_seconds",
+        "Seconds since the learning worker last reported.",
+    ),
+}
 
 
 def _unlearned_age(client: Any, stream_key: str, info: dict[str, Any], now: float) -> float:

@@ -347,14 +347,7 @@ class Worker:
     # -- loading -----------------------------------------------------------------------------
     def _load(self) -> None:
         if not self.redis.exists(self.store.keys.config):
-            log.warning(
-                "worker %s: model %r does not exist (deleted); stopping",
-                self.name,
-                self.model,
-                extra=self._log_fields(),
-            )
-            self.deleted = True
-            self._stop.set()
+            self._stop_for_deletion()
             return
         self.store.ensure_group()
         current = self.store.current()
