@@ -10,7 +10,13 @@ score), scikit-learn KMeans on TF-IDF (sublinear tf, l2, n_init=10), and scikit-
 LatentDirichletAllocation (batch variational Bayes, argmax topic). Scores:
 ``sklearn.metrics.normalized_mutual_info_score`` and ``adjusted_rand_score``.
 
-Run ``python -m bench.bench_quality [--seed N]``.
+A second table shows how much the online learner's warm-up decides: one shuffled pass per
+seed with the warm-up fit on 1/12 to 2/3 of the corpus, scored right after the warm-up fit and
+at the end of the pass, against batch EM on all documents at the same seed. The fractions are
+of the corpus, so the two corpora are compared at equal shares, not equal counts.
+
+Run ``python -m bench.bench_quality [--seed N] [--sweep-seeds N]`` (``--sweep-seeds 0`` skips
+the second table).
 """
 
 from __future__ import annotations
@@ -46,13 +52,50 @@ def load_corpora() -> list[corpora.LabelledCorpus]:
     return loaded
 
 
+WARMUP_SHARES = (1 / 12, 1 / 6, 1 / 3, 1 / 2, 2 / 3)
+
+
+def warmup_sweep(corpus: corpora.LabelledCorpus, seeds: range) -> None:
+    """Print NMI after the warm-up fit and after the pass, per warm-up share of the corpus."""
+    batch = {
+        seed: normalized_mutual_info_score(corpus.labels, corpora.cluster_batch_em(corpus, seed))
+        for seed in seeds
+    }
+    print(
+        f"{corpus.name}: batch EM on all {len(corpus)} documents, NMI mean "
+        f"{np.mean(list(batch.values())):.3f} over seeds {seeds.start}-{seeds.stop - 1}"
+    )
+    print(
+        f"{'warm-up':>8} {'share':>6} {'tokens':>8} {'NMI fit':>8} {'NMI pass':>9} "
+        f"{'gap mean':>9} {'gap worst':>10}"
+    )
+    for share in WARMUP_SHARES:
+        documents = max(len(corpus.label_names), round(share * len(corpus)))
+        fit, final, gap, tokens = [], [], [], []
+        for seed in seeds:
+            run = corpora.stepwise_pass(corpus, seed, warmup_documents=documents)
+            fit.append(normalized_mutual_info_score(corpus.labels, run.warmup))
+            final.append(normalized_mutual_info_score(corpus.labels, run.final))
+            gap.append(batch[seed] - final[-1])
+            tokens.append(run.warmup_tokens)
+        print(
+            f"{documents:>8} {share:>6.3f} {np.mean(tokens):>8.0f} {np.mean(fit):>8.3f} "
+            f"{np.mean(final):>9.3f} {np.mean(gap):>9.3f} {max(gap):>10.3f}",
+            flush=True,
+        )
+
+
 def main(argv: list[str] | None = None) -> None:
-    """Print a table of NMI, ARI and wall time per corpus and method."""
+    """Print a table of NMI, ARI and wall time per corpus and method, then the warm-up sweep."""
     parser = argparse.ArgumentParser(prog="python -m bench.bench_quality", description=__doc__)
     parser.add_argument("--seed", type=int, default=0)
+    parser.add_argument(
+        "--sweep-seeds", type=int, default=5, help="seeds of the warm-up sweep (0 skips it)"
+    )
     args = parser.parse_args(argv)
+    loaded = load_corpora()
     print(f"{'corpus':<22} {'method':<28} {'NMI':>6} {'ARI':>6} {'seconds':>8}")
-    for corpus in load_corpora():
+    for corpus in loaded:
         label = f"{corpus.name} ({len(corpus)}, K={len(corpus.label_names)})"
         for name, run in METHODS.items():
             start = time.perf_counter()
@@ -61,6 +104,10 @@ def main(argv: list[str] | None = None) -> None:
             nmi = normalized_mutual_info_score(corpus.labels, groups)
             ari = adjusted_rand_score(corpus.labels, groups)
             print(f"{label:<22} {name:<28} {nmi:6.3f} {ari:6.3f} {seconds:8.1f}", flush=True)
+    if args.sweep_seeds > 0:
+        for corpus in loaded:
+            print()
+            warmup_sweep(corpus, range(args.sweep_seeds))
 
 
 if __name__ == "__main__":

@@ -19,6 +19,7 @@ import importlib.util
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -309,16 +310,63 @@ def cluster_batch_em(corpus: LabelledCorpus, seed: int = 0) -> np.ndarray:
 
 def cluster_stepwise_em(corpus: LabelledCorpus, seed: int = 0) -> np.ndarray:
     """One pass of the online learner over the corpus in shuffled order, then route all."""
+    return stepwise_pass(corpus, seed).final
+
+
+@dataclass
+class StepwisePass:
+    """What one shuffled pass of the online learner gave.
+
+    Attributes
+    ----------
+    warmup : numpy.ndarray
+        MAP group of every document under the warm-up fit (batch EM on the first documents
+        of the pass), before any stepwise update.
+    final : numpy.ndarray
+        MAP group of every document under the state at the end of the pass.
+    warmup_tokens : int
+        Tokens in the documents the warm-up fit saw.
+    """
+
+    warmup: np.ndarray
+    final: np.ndarray
+    warmup_tokens: int
+
+
+def stepwise_pass(
+    corpus: LabelledCorpus, seed: int = 0, warmup_documents: int = STEPWISE_WARMUP
+) -> StepwisePass:
+    """One pass of the online learner in shuffled order, scored after the warm-up and at the end."""
     from mixture.config import MixtureConfig
-    from mixture.online import OnlineLearner
+    from mixture.online import BatchReport, OnlineLearner
     from mixture.routing import route_texts
 
-    config = MixtureConfig(n_groups=len(corpus.label_names), warmup_documents=STEPWISE_WARMUP)
+    class WatchedLearner(OnlineLearner):
+        """Keeps a copy of the state right after the warm-up fit (nothing else changes)."""
+
+        warmup_state = None
+        warmup_tokens = 0
+
+        def _buffer(self, counts: Any, report: BatchReport) -> int | None:
+            tokens_before = report.tokens
+            cut = super()._buffer(counts, report)
+            self.warmup_tokens += report.tokens - tokens_before
+            if cut is not None:
+                self.warmup_state = self.state.copy()
+            return cut
+
+    config = MixtureConfig(n_groups=len(corpus.label_names), warmup_documents=warmup_documents)
     order = np.random.default_rng(seed).permutation(len(corpus))
-    learner = OnlineLearner(config, seed=seed)
+    learner = WatchedLearner(config, seed=seed)
     for start in range(0, len(order), STEPWISE_CHUNK):
         learner.learn([corpus.texts[i] for i in order[start : start + STEPWISE_CHUNK]])
-    return route_texts(learner.state, corpus.texts).group
+    if learner.warmup_state is None:
+        raise ValueError(f"the pass ended before the warm-up of {warmup_documents} documents")
+    return StepwisePass(
+        warmup=route_texts(learner.warmup_state, corpus.texts).group,
+        final=route_texts(learner.state, corpus.texts).group,
+        warmup_tokens=learner.warmup_tokens,
+    )
 
 
 def cluster_kmeans_tfidf(corpus: LabelledCorpus, seed: int = 0) -> np.ndarray:

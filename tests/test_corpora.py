@@ -92,6 +92,45 @@ def test_wordnet_data_line_parsing(tmp_path: Path) -> None:
     assert corpus.texts[1] == "animal. a living organism characterized by voluntary movement"
 
 
+def test_the_scored_pass_watches_the_warm_up_without_changing_the_learning() -> None:
+    # Invented two-topic messages (ferry timetable against lost property), long enough that
+    # the pass has a warm-up, a unit that completes it, and stepwise units after it.
+    rng = np.random.default_rng(3)
+    topics = [
+        ["ferry", "sailing", "timetable", "harbour", "departure", "delayed", "crossing", "weather"],
+        ["lost", "wallet", "umbrella", "backpack", "cabin", "found", "property", "returned"],
+    ]
+    labels = rng.integers(0, 2, size=700)
+    texts = []
+    for k in labels:
+        # Three words in ten from the other topic, so that some messages are borderline and
+        # the warm-up fit and the end of the pass route them differently.
+        own = rng.random(rng.integers(2, 9)) < 0.7
+        texts.append(" ".join(rng.choice(topics[k if o else 1 - k]) for o in own))
+    corpus = corpora.LabelledCorpus("ferry", texts, labels, ["timetable", "lost"], "invented")
+    run = corpora.stepwise_pass(corpus, seed=1, warmup_documents=300)
+
+    from mixture.config import MixtureConfig
+    from mixture.online import OnlineLearner
+    from mixture.routing import route_texts
+    from mixture.text import Tokenizer
+
+    order = np.random.default_rng(1).permutation(len(corpus))
+    plain = OnlineLearner(MixtureConfig(n_groups=2, warmup_documents=300), seed=1)
+    for start in range(0, len(order), corpora.STEPWISE_CHUNK):
+        plain.learn([texts[i] for i in order[start : start + corpora.STEPWISE_CHUNK]])
+    assert np.array_equal(run.final, route_texts(plain.state, texts).group)
+    tokenize = Tokenizer(plain.config.tokenizer).tokenize
+    assert run.warmup_tokens == sum(len(tokenize(texts[i])) for i in order[:300])
+    # The warm-up fit is batch EM on the first 300 shuffled documents (all 16 words occur in
+    # them, so the vocabulary is the same as in the pass, whose unit also holds later texts).
+    first = OnlineLearner(MixtureConfig(n_groups=2, warmup_documents=300), seed=1)
+    first.learn([texts[i] for i in order[:300]])
+    assert first.state.warmed_up
+    assert np.array_equal(run.warmup, route_texts(first.state, texts).group)
+    assert (run.warmup != run.final).any(), "the stand-in cannot tell the two states apart"
+
+
 @pytest.mark.corpus
 def test_bbc_files_and_duplicates() -> None:
     corpus = _corpus("bbc")
@@ -171,7 +210,9 @@ def test_batch_em_is_not_worse_than_kmeans_on_tfidf(name: str) -> None:
 # NMI), and three passes plateau. Batch EM's lead is deterministic annealing over all documents
 # at once, which one pass cannot repeat. Larger warm-ups, the step counter restarted at 0,
 # smaller batches, alpha 0.6-1, tempered stream E-steps and smoothing scaled to documents seen
-# each gave at most +0.06 on average. Not strict: a pass is reported.
+# each gave at most +0.06 on average. A sweep of the warm-up's share (bench.bench_quality,
+# seeds 0-4) still misses at a worst seed with two thirds of the glosses in the warm-up fit
+# (gap 0.061; mean 0.028). Not strict: a pass is reported.
 _WORDNET_STEPWISE_GAP = pytest.mark.xfail(
     strict=False,
     reason="one pass of stepwise EM on short glosses ends 0.04-0.21 NMI below annealed batch EM",
