@@ -292,41 +292,30 @@ class AccessControl:
         role = self.keys.role_of(presented)
         if role is None:
             reason = "no API key given" if presented is None else "the API key is not valid"
-            log.info(
-                "refused %s %s: %s",
-                method,
-                template,
-                reason,
-                extra={"event": "auth_refused", "status": 401},
-            )
             await _refuse(
                 send,
                 401,
                 f"{reason}: send 'Authorization: Bearer KEY' (or 'X-API-Key: KEY') with a key "
                 f"of the {needed.name.lower()} role",
+                logged=f"{method} {template}: {reason}",
             )
             return
         if role < needed:
-            log.info(
-                "refused %s %s: %s role, %s needed",
-                method,
-                template,
-                role.name.lower(),
-                needed.name.lower(),
-                extra={"event": "auth_refused", "status": 403},
-            )
+            has, wants = role.name.lower(), needed.name.lower()
             await _refuse(
                 send,
                 403,
-                f"{method} {template} needs the {needed.name.lower()} role; this key has the "
-                f"{role.name.lower()} role",
+                f"{method} {template} needs the {wants} role; this key has the {has} role",
+                logged=f"{method} {template}: {has} role, {wants} needed",
             )
             return
         scope.setdefault("state", {})["role"] = role.name.lower()
         await self.app(scope, receive, send)
 
 
-async def _refuse(send: Send, status: int, detail: str) -> None:
+async def _refuse(send: Send, status: int, detail: str, logged: str) -> None:
+    """Answer 401 or 403 with ``detail`` for the client; log ``logged`` (never the key)."""
+    log.info("refused %s", logged, extra={"event": "auth_refused", "status": status})
     payload = json.dumps({"detail": detail, "field": None}).encode()
     headers = [
         (b"content-type", b"application/json"),

@@ -46,6 +46,20 @@ SNIPPET_CHARACTERS = 200
 LATENCY_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0)
 
 
+class _StatusSeen:
+    """An ASGI ``send`` that passes every message on and keeps the response's status
+    (500 until the response starts: an app that raised before answering)."""
+
+    def __init__(self, send: Send) -> None:
+        self.send = send
+        self.status = 500
+
+    async def __call__(self, message: Message) -> None:
+        if message["type"] == "http.response.start":
+            self.status = int(message["status"])
+        await self.send(message)
+
+
 class FlaggedDocuments:
     """The most recent documents flagged for review, per model, in this process's memory.
 
@@ -147,37 +161,23 @@ class RoutingMeter:
             await self.app(scope, receive, send)
             return
         model, kind = match.group(1), match.group(2)
-        status = 500
-
-        async def send_seen(message: Message) -> None:
-            nonlocal status
-            if message["type"] == "http.response.start":
-                status = int(message["status"])
-            await send(message)
-
+        seen = _StatusSeen(send)
         started = time.perf_counter()
         try:
-            await self.app(scope, receive, send_seen)
+            await self.app(scope, receive, seen)
         finally:
             elapsed = time.perf_counter() - started
             try:
-                self._count(model, kind, status, elapsed, scope)
+                self._count(model, kind, seen.status, elapsed, scope)
             except Exception:  # a metric must never break an answer
                 log.exception("counting a %s answer failed", kind)
 
     async def _deleting(self, scope: Scope, receive: Receive, send: Send) -> None:
         """A deleted model's flagged documents (message text) leave memory with it."""
         match = _MODEL_PATH.match(scope.get("path", ""))
-        status = 500
-
-        async def send_seen(message: Message) -> None:
-            nonlocal status
-            if message["type"] == "http.response.start":
-                status = int(message["status"])
-            await send(message)
-
-        await self.app(scope, receive, send_seen)
-        if match is not None and status == 204:
+        seen = _StatusSeen(send)
+        await self.app(scope, receive, seen)
+        if match is not None and seen.status == 204:
             self.flagged.forget(match.group(1))
 
     def _count(self, model: str, kind: str, status: int, elapsed: float, scope: Scope) -> None:

@@ -59,6 +59,42 @@ def learned(client: Any, model: str, target: int) -> dict[str, Any] | None:
     return None
 
 
+def first_checkpoint(
+    http: Any, redis: Any, redis_url: str, model: str, n_groups: int, seed: int
+) -> tuple[Any, Any, list[Any]]:
+    """Create ``model`` through the API, queue one small invented demo day and run a worker
+    in this thread until the model's first checkpoint.
+
+    Parameters
+    ----------
+    http : TestClient or httpx.Client
+        Talks to the API (with whatever key it needs).
+    redis : redis.Redis
+        Client of the same Redis, for queueing.
+    redis_url, model, n_groups, seed
+        Where the worker connects, the model's name, its K, the demo day's seed.
+
+    Returns
+    -------
+    (ModelStore, Worker, list of DemoMessage)
+        The model's store on ``redis``, the worker (still open: stop or checkpoint it) and
+        the queued messages.
+    """
+    from service.demo_data import default_days, generate_day
+    from state.store import ModelStore
+    from worker.learner import Worker
+
+    config = {"n_groups": n_groups, "warmup_documents": 60, "n_restarts": 1}
+    made = http.post("/models", json={"name": model, "config": config, "options": QUICK_OPTIONS})
+    assert made.status_code == 201, made.text
+    store = ModelStore(redis, model)
+    messages = generate_day(default_days(0.1)[0], seed=seed)
+    store.enqueue([m.text for m in messages], ids=[m.id for m in messages])
+    worker = Worker(redis_url, model)
+    wait_until(lambda: worker.run_once() >= 0 and store.version() > 0, what="a checkpoint")
+    return store, worker, messages
+
+
 @contextmanager
 def uvicorn_thread(app: Any, port: int | None = None) -> Iterator[str]:
     """Serve ``app`` with uvicorn in a thread on loopback; yields the base URL."""

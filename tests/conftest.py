@@ -7,6 +7,7 @@ Every test that uses a model takes ``model_name`` (unique) and cleans up with ``
 
 from __future__ import annotations
 
+import logging
 import os
 import uuid
 from collections.abc import Iterator
@@ -59,3 +60,17 @@ def model_name(redis_url: str) -> Iterator[str]:
         client.delete(*keys)
     client.srem(REGISTRY_KEY, name)
     client.close()
+
+
+@pytest.fixture
+def root_logging() -> Iterator[logging.Logger]:
+    """The root logger, with its handlers and level put back after the test (for tests that
+    call ``configure_logging``, which installs a handler on it)."""
+    root = logging.getLogger()
+    handlers, level = list(root.handlers), root.level
+    yield root
+    for handler in list(root.handlers):
+        root.removeHandler(handler)
+    for handler in handlers:
+        root.addHandler(handler)
+    root.setLevel(level)

@@ -283,20 +283,11 @@ def test_every_key_is_compared_in_constant_time(monkeypatch: pytest.MonkeyPatch)
     assert ring.role_of("not-a-key-at-all-0000") is None and len(calls) == 5
 
 
-def test_settings_and_redactor_hide_keys() -> None:
+def test_settings_and_redactor_hide_keys(root_logging: logging.Logger) -> None:
     settings = Settings(api_keys_admin=ADMIN_KEY, api_keys_read=READ_KEY)
     assert ADMIN_KEY not in repr(settings) and READ_KEY not in str(settings.model_dump())
     stream = io.StringIO()
-    root = logging.getLogger()
-    saved = list(root.handlers), root.level
-    try:
-        configure_logging("info", "json", secrets=auth.secrets_of(settings), stream=stream)
-        logging.getLogger("mixroute.test").info("someone pasted %s here", ADMIN_KEY)
-    finally:
-        for handler in list(root.handlers):
-            root.removeHandler(handler)
-        for handler in saved[0]:
-            root.addHandler(handler)
-        root.setLevel(saved[1])
+    configure_logging("info", "json", secrets=auth.secrets_of(settings), stream=stream)
+    logging.getLogger("mixroute.test").info("someone pasted %s here", ADMIN_KEY)
     line = json.loads(stream.getvalue().splitlines()[-1])
     assert line["message"] == "someone pasted [redacted] here"

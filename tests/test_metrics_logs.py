@@ -82,45 +82,29 @@ def test_request_ids_are_checked() -> None:
         assert generated != bad and len(generated) == 32
 
 
-def test_redactor_and_console_handlers_only() -> None:
+def test_redactor_and_console_handlers_only(root_logging: logging.Logger) -> None:
     record = logging.LogRecord("x", logging.INFO, "", 0, "key=%s", ("abcdefghijklmnopqrst",), None)
     SecretRedactor(["abcdefghijklmnopqrst"]).filter(record)
     assert record.getMessage() == "key=[redacted]"
-    root = logging.getLogger()
-    saved = list(root.handlers), root.level
     keep = logging.StreamHandler(io.StringIO())  # e.g. a test's capture: must survive
-    root.addHandler(keep)
-    try:
-        out = io.StringIO()
-        installed = configure_logging("warning", "text", stream=out)
-        assert keep in root.handlers and installed in root.handlers
-        logging.getLogger("mixroute.test").warning("plain %s", "text")
-        assert out.getvalue().rstrip().endswith("WARNING mixroute.test: plain text")
-    finally:
-        for handler in list(root.handlers):
-            root.removeHandler(handler)
-        for handler in saved[0]:
-            root.addHandler(handler)
-        root.setLevel(saved[1])
+    root_logging.addHandler(keep)
+    out = io.StringIO()
+    installed = configure_logging("warning", "text", stream=out)
+    assert keep in root_logging.handlers and installed in root_logging.handlers
+    logging.getLogger("mixroute.test").warning("plain %s", "text")
+    assert out.getvalue().rstrip().endswith("WARNING mixroute.test: plain text")
 
 
-def test_the_default_handler_follows_standard_error(capsys: pytest.CaptureFixture[str]) -> None:
+def test_the_default_handler_follows_standard_error(
+    capsys: pytest.CaptureFixture[str], root_logging: logging.Logger
+) -> None:
     """A handler bound to the standard error of the moment it was made would later write to
     a closed file (a test runner's capture); ours looks sys.stderr up for every record."""
-    root = logging.getLogger()
-    saved = list(root.handlers), root.level
-    try:
-        configure_logging("info", "json")
-        logging.getLogger("mixroute.test").info("first")
-        first = capsys.readouterr().err
-        configure_logging("info", "json")  # again: replaces its own handler, no duplicates
-        logging.getLogger("mixroute.test").info("second")
-        second = capsys.readouterr().err
-    finally:
-        for handler in list(root.handlers):
-            root.removeHandler(handler)
-        for handler in saved[0]:
-            root.addHandler(handler)
-        root.setLevel(saved[1])
+    configure_logging("info", "json")
+    logging.getLogger("mixroute.test").info("first")
+    first = capsys.readouterr().err
+    configure_logging("info", "json")  # again: replaces its own handler, no duplicates
+    logging.getLogger("mixroute.test").info("second")
+    second = capsys.readouterr().err
     assert json.loads(first)["message"] == "first"
     assert [json.loads(line)["message"] for line in second.splitlines()] == ["second"]

@@ -12,12 +12,9 @@ import pytest
 import redis
 
 from service.app import create_app
-from service.demo_data import default_days, generate_day
 from service.settings import Settings
-from service.testing import QUICK_OPTIONS, wait_until
+from service.testing import first_checkpoint, wait_until
 from state.keys import REGISTRY_KEY, ModelKeys
-from state.store import ModelStore
-from worker.learner import Worker
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore")
@@ -54,16 +51,7 @@ def warm(redis_url: str, redis_client: redis.Redis, model_name: str) -> Iterator
     )
     app = create_app(settings, middleware=[(ScopeRecorder, {})])
     with TestClient(app) as client:
-        config = {"n_groups": 3, "warmup_documents": 60, "n_restarts": 1}
-        made = client.post(
-            "/models", json={"name": model_name, "config": config, "options": QUICK_OPTIONS}
-        )
-        assert made.status_code == 201, made.text
-        store = ModelStore(redis_client, model_name)
-        messages = generate_day(default_days(0.1)[0], seed=1)
-        store.enqueue([m.text for m in messages], ids=[m.id for m in messages])
-        worker = Worker(redis_url, model_name)
-        wait_until(lambda: worker.run_once() >= 0 and store.version() > 0, what="a checkpoint")
+        _, worker, _ = first_checkpoint(client, redis_client, redis_url, model_name, 3, seed=1)
         worker.checkpoint()
         wait_until(lambda: client.get(f"/models/{model_name}").json()["version"] > 0)
         yield client

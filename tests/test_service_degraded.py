@@ -11,13 +11,10 @@ import numpy as np
 import pytest
 
 from service.app import DEGRADED_HEADER, create_app
-from service.demo_data import default_days, generate_day
 from service.settings import Settings
-from service.testing import QUICK_OPTIONS, free_port, wait_until
+from service.testing import first_checkpoint, free_port, wait_until
 from state.connection import EmbeddedRedis, redis_from_url
 from state.keys import ModelKeys
-from state.store import ModelStore
-from worker.learner import Worker
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore")
@@ -55,16 +52,7 @@ def test_outage_keeps_routing_refuses_queueing_and_loses_nothing(
     app = create_app(settings)
     with TestClient(app) as client:
         runtime = app.state.runtime
-        config = {"n_groups": 4, "warmup_documents": 60, "n_restarts": 1}
-        made = client.post(
-            "/models", json={"name": MODEL, "config": config, "options": QUICK_OPTIONS}
-        )
-        assert made.status_code == 201, made.text
-        store = ModelStore(redis_from_url(url), MODEL)
-        messages = generate_day(default_days(0.1)[0], seed=2)
-        store.enqueue([m.text for m in messages], ids=[m.id for m in messages])
-        worker = Worker(url, MODEL)
-        wait_until(lambda: worker.run_once() >= 0 and store.version() > 0, what="a checkpoint")
+        _, worker, messages = first_checkpoint(client, redis_from_url(url), url, MODEL, 4, seed=2)
         worker.stop()
         wait_until(lambda: client.get(f"/models/{MODEL}").json()["version"] > 0)
 

@@ -20,13 +20,10 @@ from hypothesis import HealthCheck, settings
 from schemathesis import checks
 
 from service.app import create_app
-from service.demo_data import default_days, generate_day
 from service.settings import Settings
-from service.testing import QUICK_OPTIONS, uvicorn_thread, wait_until
+from service.testing import first_checkpoint, uvicorn_thread, wait_until
 from state.keys import REGISTRY_KEY
 from state.registry import Registry
-from state.store import ModelStore
-from worker.learner import Worker
 
 pytestmark = pytest.mark.redis
 
@@ -54,16 +51,7 @@ def live(redis_url: str) -> Iterator[str]:
     app = create_app(Settings(redis_url=redis_url, max_documents_per_request=50))
     with uvicorn_thread(app) as base_url:
         http = httpx.Client(base_url=base_url)
-        config = {"n_groups": 3, "warmup_documents": 60, "n_restarts": 1}
-        made = http.post(
-            "/models", json={"name": SCHEMA_MODEL, "config": config, "options": QUICK_OPTIONS}
-        )
-        assert made.status_code == 201, made.text
-        store = ModelStore(client, SCHEMA_MODEL)
-        messages = generate_day(default_days(0.1)[0], seed=4)
-        store.enqueue([m.text for m in messages])
-        worker = Worker(redis_url, SCHEMA_MODEL)
-        wait_until(lambda: worker.run_once() >= 0 and store.version() > 0, what="a checkpoint")
+        _, worker, _ = first_checkpoint(http, client, redis_url, SCHEMA_MODEL, 3, seed=4)
         worker.stop()
         wait_until(lambda: http.get(f"/models/{SCHEMA_MODEL}").json()["version"] > 0)
         http.post(f"/models/{SCHEMA_MODEL}/snapshots", json={"reason": "schema test"})
