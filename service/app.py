@@ -36,6 +36,7 @@ from state.errors import (
     ModelNotFoundError,
     OptionsError,
     SnapshotNotFoundError,
+    StreamFullError,
     VersionConflictError,
 )
 
@@ -173,10 +174,16 @@ def install_error_handlers(app: FastAPI) -> None:
         response.headers["Retry-After"] = "1"
         return response
 
+    async def stream_full(_: Request, exc: StreamFullError) -> JSONResponse:
+        response = _json_problem(503, str(exc))  # backpressure: nothing was queued
+        response.headers["Retry-After"] = str(exc.retry_after_seconds)
+        return response
+
     app.add_exception_handler(RequestValidationError, validation)  # type: ignore[arg-type]
     app.add_exception_handler(PayloadTooLargeError, too_large)  # type: ignore[arg-type]
     app.add_exception_handler(RedisUnavailableError, unavailable)  # type: ignore[arg-type]
     app.add_exception_handler(InvalidFieldError, invalid_field)  # type: ignore[arg-type]
+    app.add_exception_handler(StreamFullError, stream_full)  # type: ignore[arg-type]
     app.add_exception_handler(ConfigError, simple(422, with_field=True))
     app.add_exception_handler(OptionsError, simple(422, with_field=True))
     app.add_exception_handler(InputError, simple(422))

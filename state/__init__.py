@@ -9,9 +9,10 @@ from state.errors import (
     OptionsError,
     SnapshotNotFoundError,
     StateError,
+    StreamFullError,
     VersionConflictError,
 )
-from state.keys import CONSUMER_GROUP, REGISTRY_KEY, ModelKeys, validate_model_name
+from state.keys import CONSUMER_GROUP, GENERATION_KEY, REGISTRY_KEY, ModelKeys, validate_model_name
 from state.options import ModelOptions
 from state.records import (
     Alert,
@@ -26,10 +27,13 @@ from state.records import (
     WorkerStatus,
 )
 from state.registry import ModelInfo, Registry
-from state.store import Checkpoint, ModelStore
+from state.store import ModelStore
+from state.stream import SkipRanges, SkipRule
+from state.versions import Checkpoint
 
 __all__ = [
     "CONSUMER_GROUP",
+    "GENERATION_KEY",
     "REGISTRY_KEY",
     "Alert",
     "Checkpoint",
@@ -49,9 +53,12 @@ __all__ = [
     "OptionsError",
     "Registry",
     "RollbackResult",
+    "SkipRanges",
+    "SkipRule",
     "SnapshotInfo",
     "SnapshotNotFoundError",
     "StateError",
+    "StreamFullError",
     "VersionConflictError",
     "VersionRecord",
     "WorkerStatus",

@@ -37,3 +37,15 @@ class OptionsError(StateError, ValueError):
 
 class VersionConflictError(StateError):
     """A checkpoint lost its WATCH: the version (rollback) or the lease changed under it."""
+
+
+class StreamFullError(StateError):
+    """The model's unlearned backlog is at its cap (``stream_max_length``): nothing was queued.
+
+    Backpressure instead of trimming: the documents are refused, never silently dropped.
+    ``retry_after_seconds`` is how long a client should wait before trying again.
+    """
+
+    def __init__(self, message: str, retry_after_seconds: int) -> None:
+        super().__init__(message)
+        self.retry_after_seconds = int(retry_after_seconds)

@@ -3,19 +3,24 @@
 All keys of one model share the hash tag ``{<model>}``: ``mixroute:{<model>}:<what>``. Redis
 Cluster hashes only the text between the braces, so every key of one model lives in one slot
 and a MULTI/EXEC or a Lua script over them is legal on a cluster too. The only key outside a
-model's tag is the registry set :data:`REGISTRY_KEY`.
+model's tag are the registry set :data:`REGISTRY_KEY` and the generation counter
+:data:`GENERATION_KEY` (each created model takes the next number, so a model re-created under
+an old name is told apart from the deleted one by every writer that checks it).
 
 Keys of model ``M`` (``mixroute:{M}:`` omitted):
 
 =================  ==========  ===========================================================
 key                type        what it holds
 =================  ==========  ===========================================================
-config             string      JSON: MixtureConfig, ModelOptions, creation time
+config             string      JSON: MixtureConfig, ModelOptions, creation time, generation
 docs               stream      documents: id, text, metadata (JSON), received (unix s)
+entries_added      string      entries our enqueue ever added to ``docs`` (the count Redis 7
+                               reports as ``entries-added``, kept for Redis 6.2)
 dead               stream      entries that could not be decoded, with the reason
 id:<client id>     string      marks a client id as seen (TTL = idempotency window)
 state              string      current state bytes (mixture.serialize)
-state_meta         string      JSON summary of the current state (version, weights, checksum)
+state_meta         string      JSON summary of the current state (version, weights, checksum,
+                               ``entries_read`` when the state's line counts it)
 version            string      current version number (int)
 watermark          string      last stream id applied to the current state
 history            list        JSON drift-history rows, one per checkpoint (capped)
@@ -26,7 +31,8 @@ snapshot_seq       string      counter for snapshot ids
 alerts             stream      drift alerts: kind, reason, value, threshold, version
 heartbeat          string      name of the worker holding the model (TTL = lease)
 worker_status      string      JSON status of that worker (same TTL)
-replay             string      JSON replay record of the last rollback (skip ranges)
+replay             string      JSON replay record: the last rollback and the skip rules of
+                               every rollback whose entries are still in the stream
 notify             channel     pub/sub: the new version after each checkpoint / rollback
 labels             hash        operator labels per group: field = group id, value = JSON
 labels_version     string      counter bumped by every label change (cheap change check)
@@ -41,6 +47,9 @@ from state.errors import OptionsError
 
 PREFIX = "mixroute"
 REGISTRY_KEY = f"{PREFIX}:models"
+GENERATION_KEY = f"{PREFIX}:generation_seq"
+# Temporary: only the consumer-group worker still reads with a group; it goes with that worker
+# (reads become plain XREAD from the watermark).
 CONSUMER_GROUP = "learners"
 
 _MODEL_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}")
@@ -93,6 +102,7 @@ class ModelKeys:
         "config",
         "dead_letters",
         "docs",
+        "entries_added",
         "heartbeat",
         "history",
         "labels",
@@ -116,6 +126,7 @@ class ModelKeys:
         b = self.base
         self.config = b + "config"
         self.docs = b + "docs"
+        self.entries_added = b + "entries_added"
         self.dead_letters = b + "dead"
         self.state = b + "state"
         self.state_meta = b + "state_meta"
@@ -132,6 +143,29 @@ class ModelKeys:
         self.notify = b + "notify"
         self.labels = b + "labels"
         self.labels_version = b + "labels_version"
+
+    def fixed(self) -> list[str]:
+        """Every key of the model whose name does not depend on an id (not the channel)."""
+        return [
+            self.config,
+            self.docs,
+            self.entries_added,
+            self.dead_letters,
+            self.state,
+            self.state_meta,
+            self.version,
+            self.watermark,
+            self.history,
+            self.lineage,
+            self.snapshots,
+            self.snapshot_seq,
+            self.alerts,
+            self.heartbeat,
+            self.worker_status,
+            self.replay,
+            self.labels,
+            self.labels_version,
+        ]
 
     def snapshot(self, snapshot_id: str) -> str:
         """Key of the hash holding one snapshot."""

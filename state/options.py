@@ -33,9 +33,12 @@ class ModelOptions:
     read_block_ms : int
         XREADGROUP BLOCK in milliseconds.
     stream_max_length : int or None
-        Approximate cap on the stream length (XADD MAXLEN ~); None for no cap.
+        Cap on the unlearned backlog (entries added minus entries read): queueing that would
+        pass it is refused whole (``StreamFullError``, answered 503 with Retry-After), so no
+        entry is ever trimmed before it is learned; None for no cap.
     stream_max_age_seconds : float or None
-        Entries older than this are trimmed (XTRIM MINID ~), never past the watermark.
+        Learned entries older than this are trimmed at checkpoints (XTRIM MINID ~), never
+        past the watermark.
     id_ttl_seconds : float
         How long a client-given id stays known: the idempotency window.
     snapshot_every_documents : int or None

@@ -11,7 +11,7 @@ import redis
 
 from mixture.config import MixtureConfig
 from state.errors import ModelExistsError, ModelNotFoundError, StateError
-from state.keys import CONSUMER_GROUP, REGISTRY_KEY, ModelKeys, validate_model_name
+from state.keys import CONSUMER_GROUP, GENERATION_KEY, REGISTRY_KEY, ModelKeys, validate_model_name
 from state.options import ModelOptions
 from state.records import dumps
 
@@ -24,6 +24,7 @@ class ModelInfo:
     config: MixtureConfig
     options: ModelOptions
     created: float
+    generation: int = 0  # 0: created before generations were counted
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -31,7 +32,18 @@ class ModelInfo:
             "config": self.config.to_dict(),
             "options": self.options.to_dict(),
             "created": self.created,
+            "generation": self.generation,
         }
+
+
+# Sweep of a deleted model's per-id keys, one batch at a time. KEYS[1]: config; the rest: keys
+# to unlink. Stops (-1) once the name is registered again, so a re-created model keeps its keys.
+_SWEEP_LUA = """
+if redis.call('EXISTS', KEYS[1]) == 1 then
+  return -1
+end
+return redis.call('UNLINK', unpack(KEYS, 2))
+"""
 
 
 class Registry:
@@ -60,18 +72,27 @@ class Registry:
         """
         keys = ModelKeys(validate_model_name(name))
         options = options or ModelOptions()
-        info = ModelInfo(name=name, config=config, options=options, created=time.time())
-        payload = dumps(info.to_dict())
+        if self.redis.exists(keys.config):  # spare a generation number in the common refusal
+            raise ModelExistsError(f"model {name!r} already exists")
+        generation = int(self.redis.incr(GENERATION_KEY))
+        info = ModelInfo(
+            name=name, config=config, options=options, created=time.time(), generation=generation
+        )
         # SET NX makes creation atomic between two racing clients
-        if not self.redis.set(keys.config, payload, nx=True):
+        if not self.redis.set(keys.config, dumps(info.to_dict()), nx=True):
             raise ModelExistsError(f"model {name!r} already exists")
         self.redis.sadd(REGISTRY_KEY, name)
-        try:  # the group reads from the stream's start, so nothing sent early is missed
+        self._create_group(keys)
+        return info
+
+    def _create_group(self, keys: ModelKeys) -> None:
+        """Temporary: the consumer group the consumer-group worker reads with (created at
+        the stream's start, so nothing sent early is missed). Goes with that worker."""
+        try:
             self.redis.xgroup_create(keys.docs, CONSUMER_GROUP, id="0", mkstream=True)
         except redis.ResponseError as exc:
             if "BUSYGROUP" not in str(exc):
                 raise
-        return info
 
     def list(self) -> list[str]:
         """Names of every registered model, sorted."""
@@ -96,7 +117,14 @@ class Registry:
         return parse_model_info(raw, name)
 
     def delete(self, name: str) -> int:
-        """Remove every key of the model (SCAN of its hash-tagged prefix) and nothing else.
+        """Remove every key of the model and nothing else, atomically against checkpoints.
+
+        First one MULTI unlinks the model's fixed keys and its snapshots (one hash slot). A
+        checkpoint, rollback or snapshot WATCHes ``config``, so one racing the delete either
+        lands before it (and is removed with the rest) or fails and writes nothing; stale
+        writers of a deleted model also fail the generation check once the name is reused.
+        Then a SCAN sweeps the per-id keys left (client ids), stopping if the name is
+        registered again meanwhile.
 
         Returns
         -------
@@ -106,17 +134,38 @@ class Registry:
         keys = ModelKeys(validate_model_name(name))
         if not self.redis.exists(keys.config) and not self.redis.sismember(REGISTRY_KEY, name):
             raise ModelNotFoundError(f"model {name!r} does not exist")
-        # unregister first so no new writer treats it as live, then sweep its keys
+        # unregister first so no new writer treats it as live
         self.redis.srem(REGISTRY_KEY, name)
+        return self._unlink_fixed(keys) + self._sweep(keys)
+
+    def _unlink_fixed(self, keys: ModelKeys) -> int:
+        """One MULTI: every fixed key and every snapshot listed in the index."""
+        while True:
+            with self.redis.pipeline(transaction=True) as pipe:
+                try:
+                    pipe.watch(keys.snapshots)  # a snapshot added meanwhile is listed too
+                    ids = [m.decode() for m in pipe.zrange(keys.snapshots, 0, -1)]
+                    pipe.multi()
+                    pipe.unlink(*keys.fixed(), *(keys.snapshot(i) for i in ids))
+                    return int(pipe.execute()[0])
+                except redis.WatchError:
+                    continue
+
+    def _sweep(self, keys: ModelKeys) -> int:
+        """Unlink what the fixed-key step cannot name (client-id keys, orphans)."""
+        sweep = self.redis.register_script(_SWEEP_LUA)
         removed = 0
         batch: list[bytes] = []
         for key in self.redis.scan_iter(match=keys.pattern(), count=1000):
             batch.append(key)
             if len(batch) >= 500:
-                removed += int(self.redis.unlink(*batch))
+                done = int(sweep(keys=[keys.config, *batch]))
+                if done < 0:
+                    return removed
+                removed += done
                 batch = []
         if batch:
-            removed += int(self.redis.unlink(*batch))
+            removed += max(int(sweep(keys=[keys.config, *batch])), 0)
         return removed
 
 
@@ -129,6 +178,7 @@ def parse_model_info(raw: bytes, name: str) -> ModelInfo:
             config=MixtureConfig.from_dict(d["config"]),
             options=ModelOptions.from_dict(d["options"]),
             created=float(d["created"]),
+            generation=int(d.get("generation", 0)),
         )
     except (ValueError, KeyError, TypeError) as exc:
         raise StateError(f"stored configuration of model {name!r} is unreadable: {exc}") from exc

@@ -21,7 +21,7 @@ from __future__ import annotations
 import json
 import math
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 from state.errors import OptionsError
@@ -133,60 +133,30 @@ def _bad(stream_id: str, reason: str, fields: Mapping[bytes, bytes]) -> Undecoda
 
 
 @dataclass(frozen=True)
-class SkipRanges:
-    """Stream entries a replay must not learn.
+class SkipRule:
+    """The ranges one rollback asked a replay to pass over.
 
     An entry is skipped when its stream id is at or below ``until`` and either its id lies in
     one of ``ids`` (inclusive) or its received time lies in one of ``received`` (inclusive).
     Bounding by ``until`` (the stream's last id when the rollback ran) keeps the ranges from
-    ever cutting out traffic that arrived after the rollback.
+    ever cutting out traffic that arrived after that rollback.
     """
 
     ids: tuple[tuple[tuple[int, int], tuple[int, int]], ...] = ()
     received: tuple[tuple[float, float], ...] = ()
     until: tuple[int, int] = (0, 0)
     version: int = 0
-    raw_ids: tuple[tuple[str, str], ...] = field(default=(), compare=False)
 
-    @classmethod
-    def build(
-        cls,
-        ids: Iterable[Sequence[str]] = (),
-        received: Iterable[Sequence[float]] = (),
-        until: str = ZERO_ID,
-        version: int = 0,
-    ) -> SkipRanges:
-        """Validate and build; :class:`OptionsError` names a bad range."""
-        id_ranges = []
-        raw = []
-        for pair in ids:
-            if len(pair) != 2:
-                raise OptionsError(f"skip id range {pair!r} must be [first, last]")
-            first, last = parse_stream_id(str(pair[0])), parse_stream_id(str(pair[1]))
-            if first > last:
-                raise OptionsError(f"skip id range {list(pair)!r}: first is after last")
-            id_ranges.append((first, last))
-            raw.append((format_stream_id(first), format_stream_id(last)))
-        time_ranges = []
-        for pair in received:
-            if len(pair) != 2:
-                raise OptionsError(f"skip received range {pair!r} must be [start, end]")
-            start, end = float(pair[0]), float(pair[1])
-            if not (math.isfinite(start) and math.isfinite(end)) or start > end:
-                raise OptionsError(f"skip received range {list(pair)!r} is not a valid interval")
-            time_ranges.append((start, end))
-        return cls(
-            tuple(id_ranges), tuple(time_ranges), parse_stream_id(until), version, tuple(raw)
-        )
+    @property
+    def raw_ids(self) -> tuple[tuple[str, str], ...]:
+        """The id ranges as stream-id strings."""
+        return tuple((format_stream_id(a), format_stream_id(b)) for a, b in self.ids)
 
     def __bool__(self) -> bool:
         return bool(self.ids or self.received)
 
-    def skips(self, stream_id: str, received: float | None) -> bool:
-        """True when the entry must not be learned."""
-        if not self:
-            return False
-        sid = parse_stream_id(stream_id)
+    def skips(self, sid: tuple[int, int], received: float | None) -> bool:
+        """True when the entry of parsed id ``sid`` falls in one of the ranges."""
         if sid > self.until:
             return False
         for first, last in self.ids:
@@ -198,19 +168,103 @@ class SkipRanges:
                     return True
         return False
 
+    def trimmed(self, first_entry: tuple[int, int]) -> SkipRule:
+        """The rule without what lies wholly below the stream's first entry (already gone)."""
+        if self.until < first_entry:
+            return SkipRule(until=self.until, version=self.version)
+        ids = tuple((a, b) for a, b in self.ids if b >= first_entry)
+        return SkipRule(ids, self.received, self.until, self.version)
+
     def to_dict(self) -> dict[str, Any]:
         return {
-            "ids": [[format_stream_id(a), format_stream_id(b)] for a, b in self.ids],
+            "ids": [list(pair) for pair in self.raw_ids],
             "received": [[a, b] for a, b in self.received],
             "until": format_stream_id(self.until),
             "version": self.version,
         }
 
+
+@dataclass(frozen=True)
+class SkipRanges:
+    """Stream entries a replay must not learn: the rules of every rollback still in force.
+
+    A rollback adds its own :class:`SkipRule`; earlier rules stay (an earlier rollback's skipped
+    burst must not come back on a later replay) until the entries they cover are trimmed from
+    the stream (:meth:`trimmed`). An entry is skipped when any rule skips it.
+    """
+
+    rules: tuple[SkipRule, ...] = ()
+
+    @classmethod
+    def build(
+        cls,
+        ids: Iterable[Sequence[str]] = (),
+        received: Iterable[Sequence[float]] = (),
+        until: str = ZERO_ID,
+        version: int = 0,
+    ) -> SkipRanges:
+        """Validate and build one rule; :class:`OptionsError` names a bad range."""
+        id_ranges = []
+        for pair in ids:
+            if len(pair) != 2:
+                raise OptionsError(f"skip id range {pair!r} must be [first, last]")
+            first, last = parse_stream_id(str(pair[0])), parse_stream_id(str(pair[1]))
+            if first > last:
+                raise OptionsError(f"skip id range {list(pair)!r}: first is after last")
+            id_ranges.append((first, last))
+        time_ranges = []
+        for pair in received:
+            if len(pair) != 2:
+                raise OptionsError(f"skip received range {pair!r} must be [start, end]")
+            start, end = float(pair[0]), float(pair[1])
+            if not (math.isfinite(start) and math.isfinite(end)) or start > end:
+                raise OptionsError(f"skip received range {list(pair)!r} is not a valid interval")
+            time_ranges.append((start, end))
+        rule = SkipRule(tuple(id_ranges), tuple(time_ranges), parse_stream_id(until), version)
+        return cls((rule,) if rule else ())
+
+    def __bool__(self) -> bool:
+        return bool(self.rules)
+
+    @property
+    def newest(self) -> SkipRule:
+        """The rule added last (an empty rule when there is none)."""
+        return self.rules[-1] if self.rules else SkipRule()
+
+    def skips(self, stream_id: str, received: float | None) -> bool:
+        """True when the entry must not be learned."""
+        if not self.rules:
+            return False
+        sid = parse_stream_id(stream_id)
+        return any(rule.skips(sid, received) for rule in self.rules)
+
+    def plus(self, other: SkipRanges) -> SkipRanges:
+        """Both sets of rules, this one's first."""
+        return SkipRanges(self.rules + other.rules)
+
+    def trimmed(self, first_entry: str | None) -> SkipRanges:
+        """Drop the ranges wholly below the stream's first entry (None: the stream is empty,
+        so every range is gone)."""
+        if first_entry is None:
+            return SkipRanges()
+        first = parse_stream_id(first_entry)
+        return SkipRanges(tuple(r for r in (rule.trimmed(first) for rule in self.rules) if r))
+
+    def to_dict(self) -> dict[str, Any]:
+        return {"rules": [rule.to_dict() for rule in self.rules]}
+
     @classmethod
     def from_dict(cls, d: Mapping[str, Any]) -> SkipRanges:
-        return cls.build(
-            d.get("ids", ()),
-            d.get("received", ()),
-            d.get("until", ZERO_ID),
-            int(d.get("version", 0)),
-        )
+        """Read :meth:`to_dict`'s form, or a single rule as stored before rules accumulated."""
+        if "rules" not in d:
+            d = {"rules": [d]} if d else {"rules": []}
+        rules: tuple[SkipRule, ...] = ()
+        for r in d["rules"]:
+            built = cls.build(
+                r.get("ids", ()),
+                r.get("received", ()),
+                r.get("until", ZERO_ID),
+                int(r.get("version", 0)),
+            )
+            rules += built.rules
+        return cls(rules)

@@ -12,6 +12,7 @@ import pytest
 import redis
 
 from mixture.routing import route_texts
+from state.errors import StreamFullError
 from state.keys import CONSUMER_GROUP, REGISTRY_KEY, ModelKeys
 from state.records import WorkerStatus
 from state.registry import Registry
@@ -214,9 +215,11 @@ def test_retention_by_length_and_by_age_never_past_the_watermark(
     redis_client: redis.Redis, model_name: str
 ) -> None:
     capped = create_model(redis_client, model_name, options=fast_options(stream_max_length=100))
-    capped.enqueue(ferry_texts(1000, seed=9))
-    # MAXLEN ~ trims whole stream nodes (100 entries each by default), so "about" 100
-    assert 100 <= redis_client.xlen(capped.keys.docs) < 300
+    capped.enqueue(ferry_texts(100, seed=9))
+    # the length option caps the unlearned backlog: past it queueing is refused, never trimmed
+    with pytest.raises(StreamFullError):
+        capped.enqueue(ferry_texts(1, seed=9))
+    assert redis_client.xlen(capped.keys.docs) == 100
     aged_name = model_name + "-age"
     try:
         aged = create_model(

@@ -1,0 +1,73 @@
+"""Operator labels and destinations per group, with a counter every change bumps (so each API
+process re-reads the labels only when the counter moved)."""
+
+from __future__ import annotations
+
+import json
+import time
+
+import redis
+
+from state.errors import OptionsError, VersionConflictError
+from state.handle import ModelHandle
+from state.records import GroupLabel, dumps
+
+
+class GroupLabels:
+    """Read and set the labels of one model's groups."""
+
+    def __init__(self, handle: ModelHandle) -> None:
+        self.handle = handle
+
+    def all(self) -> dict[int, GroupLabel]:
+        """Operator labels by group id (groups without one are absent)."""
+        out: dict[int, GroupLabel] = {}
+        for field_name, raw in self.handle.redis.hgetall(self.handle.keys.labels).items():
+            d = json.loads(raw)
+            group = int(field_name)
+            out[group] = GroupLabel(
+                group, d.get("label"), d.get("destination"), float(d.get("updated", 0.0))
+            )
+        return dict(sorted(out.items()))
+
+    def version(self) -> int:
+        """Counter bumped by every label change (compare it to skip re-reading the labels)."""
+        raw = self.handle.redis.get(self.handle.keys.labels_version)
+        return int(raw) if raw else 0
+
+    def set(self, group: int, label: str | None, destination: str | None) -> GroupLabel:
+        """Set (or, with both None, clear) the label and destination of one group.
+
+        Raises
+        ------
+        OptionsError
+            When ``group`` is outside [0, K) or a text is empty or longer than 200 characters.
+        ModelNotFoundError
+            When the model was deleted (nothing is written).
+        """
+        k = self.handle.info.config.n_groups
+        if isinstance(group, bool) or not isinstance(group, int) or not 0 <= group < k:
+            raise OptionsError(f"group must be an integer in [0, {k}), got {group!r}")
+        for name, value in (("label", label), ("destination", destination)):
+            if value is not None and (
+                not isinstance(value, str) or not value.strip() or len(value) > 200
+            ):
+                raise OptionsError(f"{name} must be 1-200 characters or null")
+        record = GroupLabel(group, label, destination, time.time())
+        keys = self.handle.keys
+        for _ in range(20):
+            with self.handle.redis.pipeline(transaction=True) as pipe:
+                try:  # WATCH config: a label set racing a delete leaves nothing behind
+                    pipe.watch(keys.config)
+                    self.handle.check_alive(pipe.get(keys.config))
+                    pipe.multi()
+                    if label is None and destination is None:
+                        pipe.hdel(keys.labels, str(group))
+                    else:
+                        pipe.hset(keys.labels, str(group), dumps(record.to_dict()))
+                    pipe.incr(keys.labels_version)
+                    pipe.execute()
+                    return record
+                except redis.WatchError:
+                    continue
+        raise VersionConflictError(f"labels of model {self.handle.model!r} kept changing")

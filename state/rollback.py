@@ -1,0 +1,185 @@
+"""Rollback: make a snapshot the current state again, with a new version.
+
+The snapshot's checksum is verified first. Then, under WATCH of ``version`` and ``config``, in
+ONE MULTI: a "pre-rollback" snapshot of the current state, the snapshot's state written as a
+new version (:func:`state.versions.write_version`: lineage parent = the snapshot's version,
+replaced = the old version, a history row with the snapshot's weights) and the ``replay``
+record. With replay the watermark is the snapshot's own, so the worker re-reads the stream from
+there and passes over every entry inside the skip rules recorded by this rollback AND by earlier
+rollbacks (rules stay in force until their entries are trimmed from the stream); without replay
+the watermark is the stream's last id, so only new traffic is learned.
+
+``entries_read`` (see :mod:`state.queueing`) follows the state: with replay it is the
+snapshot's own count (the entries after it will be read again); without replay it is the
+stream's entries-added at the rollback (every entry up to the last one is passed over). It is
+written into the restored state's metadata and into ``state_meta`` alike.
+"""
+
+from __future__ import annotations
+
+import json
+import time
+from collections.abc import Sequence
+
+import redis
+
+from mixture.serialize import checksum, state_to_bytes
+from mixture.stats import MixtureState
+from state.errors import OptionsError, VersionConflictError
+from state.handle import ModelHandle, loads_or_none
+from state.queueing import DocumentQueue
+from state.records import RollbackResult, SnapshotInfo, dumps
+from state.snapshots import Snapshots, decode_snapshot
+from state.stream import SkipRanges, max_stream_id
+from state.versions import VersionWrite, write_version
+
+
+class Rollbacks:
+    """Roll a model back to one of its snapshots; read the skip rules in force."""
+
+    def __init__(self, handle: ModelHandle, snapshots: Snapshots, queue: DocumentQueue) -> None:
+        self.handle = handle
+        self.snapshots = snapshots
+        self.queue = queue
+
+    def replay_ranges(self) -> SkipRanges:
+        """Skip rules of every rollback still in force (empty when none)."""
+        raw = self.handle.redis.get(self.handle.keys.replay)
+        return SkipRanges() if raw is None else _recorded_rules(raw)
+
+    def rollback(
+        self,
+        snapshot_id: str,
+        *,
+        replay: bool = False,
+        skip_ids: Sequence[Sequence[str]] = (),
+        skip_received: Sequence[Sequence[float]] = (),
+        attempts: int = 20,
+    ) -> RollbackResult:
+        """Make a snapshot the current state, with a new version.
+
+        Parameters
+        ----------
+        snapshot_id : str
+            The snapshot to restore (its checksum is verified first).
+        replay : bool
+            Re-learn the stream after the snapshot's watermark (needs the stream to still hold
+            those entries); without it, traffic after the snapshot is dropped.
+        skip_ids : sequence of [first, last]
+            Inclusive stream-id ranges not to learn during this and later replays.
+        skip_received : sequence of [start, end]
+            Inclusive received-time ranges (unix seconds) not to learn, likewise.
+
+        Raises
+        ------
+        CorruptSnapshotError, SnapshotNotFoundError, OptionsError
+        ModelNotFoundError
+            When the model was deleted (nothing is written).
+        """
+        if not replay and (skip_ids or skip_received):
+            raise OptionsError("skip ranges need replay=True (without replay nothing is re-read)")
+        SkipRanges.build(skip_ids, skip_received)  # refuse bad ranges before anything else
+        info, data = self.snapshots.data(snapshot_id)
+        restored = decode_snapshot(snapshot_id, data)
+        # The rollback point is the stream's end now (read with the entries-added count, at
+        # once); entries added later are new traffic and are learned.
+        added, last_id = self.queue.counts()
+        until = max_stream_id(last_id, info.watermark)
+        restored.watermark = info.watermark if replay else until
+        restored.metadata = {**restored.metadata, "rollback": {"snapshot": snapshot_id}}
+        if not replay:
+            restored.metadata["entries_read"] = added
+        new_data = state_to_bytes(restored)  # outside the WATCH window: it can be large
+        for _ in range(attempts):
+            with self.handle.redis.pipeline(transaction=True) as pipe:
+                try:
+                    return self._commit(
+                        pipe, info, restored, new_data, until, replay, skip_ids, skip_received
+                    )
+                except redis.WatchError:
+                    continue
+        raise VersionConflictError(
+            f"rollback of model {self.handle.model!r} kept racing checkpoints ({attempts} tries)"
+        )
+
+    def _commit(
+        self,
+        pipe: redis.client.Pipeline,
+        info: SnapshotInfo,
+        restored: MixtureState,
+        new_data: bytes,
+        until: str,
+        replay: bool,
+        skip_ids: Sequence[Sequence[str]],
+        skip_received: Sequence[Sequence[float]],
+    ) -> RollbackResult:
+        """Under WATCH: the safety snapshot, the version write and the replay record."""
+        keys = self.handle.keys
+        pipe.watch(keys.version, keys.config)
+        self.handle.check_alive(pipe.get(keys.config))
+        current_version = int(pipe.get(keys.version) or 0)
+        new_version = current_version + 1
+        rule = SkipRanges.build(skip_ids, skip_received, until, new_version)
+        # earlier rollbacks' rules stay, minus what the stream no longer holds
+        earlier = pipe.get(keys.replay)
+        kept = (SkipRanges() if earlier is None else _recorded_rules(earlier)).plus(rule)
+        kept = kept.trimmed(self.queue.first_stream_id())
+        safety = self._safety_snapshot(pipe, info.id, current_version)
+        now = time.time()
+        result = RollbackResult(
+            version=new_version,
+            parent=info.version,
+            replaced_version=current_version,
+            snapshot_id=info.id,
+            safety_snapshot_id=safety[0].id if safety else None,
+            replay=replay,
+            watermark=restored.watermark,
+            skip_ids=list(rule.newest.raw_ids),
+            skip_received=list(rule.newest.received),
+            until=until,
+        )
+        write = VersionWrite(
+            version=new_version,
+            parent=info.version,
+            kind="rollback",
+            data=new_data,
+            state=restored,
+            watermark=restored.watermark,
+            time=now,
+            snapshot_id=info.id,
+            replaced=current_version,
+        )
+        pipe.multi()
+        if safety is not None:
+            self.snapshots.write(pipe, *safety)
+        write_version(pipe, self.handle, write)
+        pipe.set(keys.replay, dumps({"result": result.to_dict(), "skip": kept.to_dict()}))
+        pipe.execute()
+        return result
+
+    def _safety_snapshot(
+        self, pipe: redis.client.Pipeline, snapshot_id: str, current_version: int
+    ) -> tuple[SnapshotInfo, bytes] | None:
+        """The "pre-rollback" snapshot of the current state (None before the first state)."""
+        keys = self.handle.keys
+        current_data = pipe.get(keys.state)
+        current_meta = loads_or_none(pipe.get(keys.state_meta))
+        if current_data is None or current_meta is None:
+            return None
+        info = SnapshotInfo(
+            id=self.snapshots.next_id(),
+            reason=f"before rollback to {snapshot_id}",
+            kind="pre-rollback",
+            created=time.time(),
+            version=current_version,
+            documents_learned=int(current_meta["documents_learned"]),
+            weights=[float(w) for w in current_meta["weights"]],
+            checksum=checksum(current_data),
+            watermark=str(current_meta["watermark"]),
+            size=len(current_data),
+        )
+        return info, current_data
+
+
+def _recorded_rules(raw: bytes) -> SkipRanges:
+    return SkipRanges.from_dict(json.loads(raw).get("skip", {}))

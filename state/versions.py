@@ -1,0 +1,295 @@
+"""The model's current state and its versions: checkpoints, and the one function that writes a
+version for both a checkpoint and a rollback.
+
+**Checkpoint** (:meth:`Versions.commit`): WATCH ``version``, ``heartbeat`` and ``config``; check
+that the model is still this handle's generation, that the version is the one the worker
+loaded and that the worker still holds the lease; then ONE MULTI writes the version
+(:func:`write_version`: state bytes, version + 1, watermark, ``state_meta`` with
+``entries_read``, lineage record, history row, PUBLISH ``notify``), dead letters, a due
+automatic snapshot (with retention), the checkpoint's alerts and the age trim of the stream
+(XTRIM MINID, never past the watermark). If anything changed under the WATCH nothing is
+written (:class:`VersionConflictError`); the worker reloads and re-reads from the watermark.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import redis
+
+from mixture.serialize import checksum, state_from_bytes, state_to_bytes
+from mixture.stats import MixtureState
+from state.errors import VersionConflictError
+from state.handle import ModelHandle, loads_or_none
+from state.keys import CONSUMER_GROUP
+from state.records import CurrentState, HistoryRow, SnapshotInfo, VersionRecord, dumps
+from state.snapshots import Snapshots
+from state.stream import ZERO_ID, Undecodable, parse_stream_id
+
+
+@dataclass
+class Checkpoint:
+    """Everything one checkpoint writes (built by the worker, committed by the store).
+
+    ``state.metadata["entries_read"]`` (when the worker counts it) is copied into
+    ``state_meta``. ``ack_ids`` is temporary: the consumer-group worker still passes the ids
+    it read; they are acknowledged in the same MULTI until that worker is gone.
+    """
+
+    worker: str
+    expected_version: int
+    state: MixtureState
+    watermark: str
+    ack_ids: list[bytes | str] = field(default_factory=list)
+    dead_letters: list[Undecodable] = field(default_factory=list)
+    batch_documents: int = 0
+    log_likelihood_per_token: float = float("nan")
+    no_evidence: int = 0
+    snapshot_reason: str | None = None
+    alerts: list[dict[str, Any]] = field(default_factory=list)
+
+
+@dataclass(frozen=True)
+class VersionWrite:
+    """One new version: its bytes, where it comes from, and what its history row says."""
+
+    version: int
+    parent: int | None
+    kind: str  # "checkpoint" or "rollback"
+    data: bytes
+    state: MixtureState  # the state the bytes encode (for the summary)
+    watermark: str
+    time: float
+    snapshot_id: str | None = None
+    replaced: int | None = None
+    log_likelihood_per_token: float = float("nan")
+    no_evidence: int = 0
+    batch_documents: int = 0
+
+
+def state_summary(state: MixtureState) -> dict[str, Any]:
+    """Documents learned, weights (uniform before the warm-up) and the entries-read count."""
+    weights = state.weights() if state.warmed_up else np.full(state.n_groups, 1 / state.n_groups)
+    out: dict[str, Any] = {
+        "documents_learned": int(state.documents_learned),
+        "weights": [float(w) for w in weights],
+        "warmed_up": bool(state.warmed_up),
+    }
+    entries_read = state.metadata.get("entries_read")
+    if isinstance(entries_read, int) and not isinstance(entries_read, bool):
+        out["entries_read"] = entries_read
+    return out
+
+
+def write_version(pipe: redis.client.Pipeline, handle: ModelHandle, w: VersionWrite) -> None:
+    """Queue, inside the caller's MULTI, every write of a new version.
+
+    State bytes, version number, watermark, ``state_meta`` (the summary, with
+    ``entries_read`` when the state counts it), the lineage record, the drift-history row
+    (capped lists) and the ``notify`` message. Used by checkpoints and rollbacks alike.
+    """
+    keys, options = handle.keys, handle.options
+    summary = state_summary(w.state)
+    meta = {
+        "version": w.version,
+        "watermark": w.watermark,
+        "checksum": checksum(w.data),
+        "size": len(w.data),
+        "time": w.time,
+        **summary,
+    }
+    record = VersionRecord(
+        version=w.version,
+        parent=w.parent,
+        kind=w.kind,
+        time=w.time,
+        watermark=w.watermark,
+        documents_learned=summary["documents_learned"],
+        snapshot_id=w.snapshot_id,
+        replaced=w.replaced,
+    )
+    row = HistoryRow(
+        time=w.time,
+        version=w.version,
+        documents_learned=summary["documents_learned"],
+        weights=summary["weights"],
+        log_likelihood_per_token=w.log_likelihood_per_token,
+        no_evidence=w.no_evidence,
+        batch_documents=w.batch_documents,
+    )
+    pipe.set(keys.state, w.data)
+    pipe.set(keys.version, w.version)
+    pipe.set(keys.watermark, w.watermark)
+    pipe.set(keys.state_meta, dumps(meta))
+    pipe.rpush(keys.lineage, dumps(record.to_dict()))
+    pipe.ltrim(keys.lineage, -options.lineage_limit, -1)
+    pipe.rpush(keys.history, dumps(row.to_dict()))
+    pipe.ltrim(keys.history, -options.history_limit, -1)
+    pipe.publish(keys.notify, str(w.version))
+
+
+class Versions:
+    """Read the current state and its lineage; commit checkpoints."""
+
+    def __init__(self, handle: ModelHandle, snapshots: Snapshots) -> None:
+        self.handle = handle
+        self.snapshots = snapshots
+
+    def version(self) -> int:
+        """Current version (0 before the first checkpoint)."""
+        raw = self.handle.redis.get(self.handle.keys.version)
+        return int(raw) if raw else 0
+
+    def current(self) -> CurrentState | None:
+        """The current state bytes with version and watermark (read atomically)."""
+        keys = self.handle.keys
+        pipe = self.handle.redis.pipeline(transaction=True)
+        pipe.get(keys.version)
+        pipe.get(keys.watermark)
+        pipe.get(keys.state)
+        version, watermark, data = pipe.execute()
+        if data is None:
+            return None
+        return CurrentState(
+            version=int(version or 0),
+            watermark=watermark.decode() if watermark else ZERO_ID,
+            data=data,
+            checksum=checksum(data),
+        )
+
+    def summary(self) -> dict[str, Any] | None:
+        """Small JSON summary of the current state (version, weights, documents, checksum,
+        ``entries_read`` when counted)."""
+        return loads_or_none(self.handle.redis.get(self.handle.keys.state_meta))
+
+    def load_state(self) -> MixtureState | None:
+        """The current state decoded, or None before the first checkpoint."""
+        current = self.current()
+        return None if current is None else state_from_bytes(current.data)
+
+    def lineage(self, limit: int = 100) -> list[VersionRecord]:
+        """The newest ``limit`` version records, oldest first."""
+        rows = self.handle.redis.lrange(self.handle.keys.lineage, -limit, -1)
+        return [VersionRecord.from_dict(loads_or_none(r)) for r in rows]
+
+    def commit(self, cp: Checkpoint) -> int:
+        """Write one checkpoint atomically (see the module docstring).
+
+        Returns
+        -------
+        int
+            The new version.
+
+        Raises
+        ------
+        VersionConflictError
+            When the version moved (a rollback) or the lease is no longer ``cp.worker``'s.
+        ModelNotFoundError
+            When the model was deleted meanwhile, or deleted and created again (nothing is
+            written).
+        """
+        cp.state.watermark = cp.watermark
+        data = state_to_bytes(cp.state)
+        snapshot_id = self.snapshots.next_id() if cp.snapshot_reason else None
+        with self.handle.redis.pipeline(transaction=True) as pipe:
+            try:
+                current_version = self._check(pipe, cp)
+                expired = self.snapshots.to_prune(pipe, extra=1 if snapshot_id else 0)
+                now = time.time()
+                write = VersionWrite(
+                    version=current_version + 1,
+                    parent=current_version or None,
+                    kind="checkpoint",
+                    data=data,
+                    state=cp.state,
+                    watermark=cp.watermark,
+                    time=now,
+                    log_likelihood_per_token=cp.log_likelihood_per_token,
+                    no_evidence=cp.no_evidence,
+                    batch_documents=cp.batch_documents,
+                )
+                pipe.multi()
+                write_version(pipe, self.handle, write)
+                self._write_extras(pipe, cp, write, snapshot_id, expired)
+                pipe.execute()
+            except redis.WatchError as exc:
+                raise VersionConflictError(
+                    f"model {self.handle.model!r} changed during the checkpoint "
+                    "(rollback, lease or delete)"
+                ) from exc
+        return write.version
+
+    def _check(self, pipe: redis.client.Pipeline, cp: Checkpoint) -> int:
+        """WATCH and check generation, version and lease; the current version."""
+        keys = self.handle.keys
+        pipe.watch(keys.version, keys.heartbeat, keys.config)
+        raw_version, holder = pipe.get(keys.version), pipe.get(keys.heartbeat)
+        self.handle.check_alive(pipe.get(keys.config))
+        current_version = int(raw_version or 0)
+        if current_version != cp.expected_version:
+            raise VersionConflictError(
+                f"model {self.handle.model!r} is at version {current_version}, the worker "
+                f"loaded {cp.expected_version} (a rollback happened)"
+            )
+        if holder is None or holder.decode() != cp.worker:
+            who = holder.decode() if holder else "nobody"
+            raise VersionConflictError(
+                f"worker {cp.worker!r} no longer holds model {self.handle.model!r} ({who} does)"
+            )
+        return current_version
+
+    def _write_extras(
+        self,
+        pipe: redis.client.Pipeline,
+        cp: Checkpoint,
+        write: VersionWrite,
+        snapshot_id: str | None,
+        expired: list[str],
+    ) -> None:
+        """Dead letters, the due automatic snapshot and retention, alerts, the stream trim."""
+        keys, options = self.handle.keys, self.handle.options
+        for start in range(0, len(cp.ack_ids), 10_000):  # temporary: the consumer-group worker
+            pipe.xack(keys.docs, CONSUMER_GROUP, *cp.ack_ids[start : start + 10_000])
+        for letter in cp.dead_letters:
+            pipe.xadd(
+                keys.dead_letters, letter.dead_letter_fields(), maxlen=100_000, approximate=True
+            )
+        if snapshot_id:
+            summary = state_summary(cp.state)
+            info = SnapshotInfo(
+                id=snapshot_id,
+                reason=cp.snapshot_reason or "automatic",
+                kind="automatic",
+                created=write.time,
+                version=write.version,
+                documents_learned=summary["documents_learned"],
+                weights=summary["weights"],
+                checksum=checksum(write.data),
+                watermark=cp.watermark,
+                size=len(write.data),
+            )
+            self.snapshots.write(pipe, info, write.data)
+        self.snapshots.prune(pipe, expired)
+        for alert in cp.alerts:
+            pipe.xadd(
+                keys.alerts, {k: str(v) for k, v in alert.items()}, maxlen=10_000, approximate=True
+            )
+        minid = trim_floor(cp.watermark, options.stream_max_age_seconds, write.time)
+        if minid is not None:
+            pipe.xtrim(keys.docs, minid=minid, approximate=True)
+
+
+def trim_floor(watermark: str, max_age_seconds: float | None, now: float) -> str | None:
+    """The XTRIM MINID of a checkpoint: entries older than the age limit, never past the
+    watermark (MINID keeps its own id, so the watermark entry itself always stays).
+
+    None when nothing may be trimmed (no age limit, or nothing learned yet).
+    """
+    if max_age_seconds is None or watermark == ZERO_ID:
+        return None
+    cutoff = (max(int((now - max_age_seconds) * 1000), 0), 0)
+    floor = min(parse_stream_id(watermark), cutoff)
+    return None if floor == (0, 0) else f"{floor[0]}-{floor[1]}"
