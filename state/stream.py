@@ -13,7 +13,7 @@ An entry of ``mixroute:{M}:docs`` has the fields
 
 An entry that cannot be decoded (no ``text``, text not UTF-8, metadata not a JSON object,
 received not a number) is not learned: the worker writes it to the dead-letter stream with the
-reason, in the same transaction that acknowledges it, and carries on.
+reason, in the checkpoint that moves the watermark past it, and carries on.
 """
 
 from __future__ import annotations
