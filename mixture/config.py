@@ -36,6 +36,7 @@ from dataclasses import asdict, dataclass, field, fields
 from typing import Any
 
 from mixture.errors import ConfigError
+from mixture.lifecycle_config import LifecycleConfig
 from mixture.text import TokenizerConfig
 
 
@@ -68,6 +69,8 @@ class MixtureConfig:
         Tempered E-steps at the start of each batch EM run (0 switches annealing off).
     tokenizer : TokenizerConfig
         How text becomes tokens.
+    lifecycle : LifecycleConfig
+        Births, merges and retirements of groups; ``n_groups`` is then the starting count.
     """
 
     n_groups: int = 8
@@ -83,6 +86,7 @@ class MixtureConfig:
     tolerance: float = 1e-6
     annealing_steps: int = 60
     tokenizer: TokenizerConfig = field(default_factory=TokenizerConfig)
+    lifecycle: LifecycleConfig = field(default_factory=LifecycleConfig)
 
     def __post_init__(self) -> None:
         _check_int(self, "n_groups", 1, 10_000)
@@ -113,6 +117,13 @@ class MixtureConfig:
         _check_int(self, "annealing_steps", 0, 10_000)
         if not isinstance(self.tokenizer, TokenizerConfig):
             raise ConfigError("tokenizer must be a TokenizerConfig")
+        if not isinstance(self.lifecycle, LifecycleConfig):
+            raise ConfigError("lifecycle must be a LifecycleConfig")
+        if self.lifecycle.ceiling(self.n_groups) < self.n_groups:
+            raise ConfigError(
+                f"lifecycle.max_groups ({self.lifecycle.max_groups}) is below n_groups "
+                f"({self.n_groups}), the starting count"
+            )
 
     @property
     def eta_floor(self) -> float:
@@ -131,6 +142,7 @@ class MixtureConfig:
         """Plain JSON-able dict (the tokenizer config nested)."""
         out = asdict(self)
         out["tokenizer"] = self.tokenizer.to_dict()
+        out["lifecycle"] = self.lifecycle.to_dict()
         return out
 
     @classmethod
@@ -145,6 +157,8 @@ class MixtureConfig:
         values = dict(data)
         if "tokenizer" in values and not isinstance(values["tokenizer"], TokenizerConfig):
             values["tokenizer"] = TokenizerConfig.from_dict(values["tokenizer"] or {})
+        if "lifecycle" in values and not isinstance(values["lifecycle"], LifecycleConfig):
+            values["lifecycle"] = LifecycleConfig.from_dict(values["lifecycle"] or {})
         return cls(**values)
 
     def replace(self, **changes: Any) -> MixtureConfig:

@@ -18,8 +18,8 @@ those statistics with a step counter chosen so the next batch weighs as in a run
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from dataclasses import dataclass
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
@@ -27,6 +27,7 @@ import scipy.sparse as sp
 from mixture.config import MixtureConfig
 from mixture.em import fit_pending, normalise_log_rows, validate_counts
 from mixture.errors import InputError
+from mixture.lifecycle import GroupEvent, run_due_decisions, unit_observer
 from mixture.stats import MixtureState
 from mixture.text import count_texts
 
@@ -43,6 +44,7 @@ class BatchReport:
     pruned_words: int = 0
     new_words: int = 0
     steps: int = 0
+    events: list[GroupEvent] = field(default_factory=list)  # births, merges, retirements
 
     def merge(self, other: BatchReport) -> BatchReport:
         # Token-weighted mean of the parts that measured a log-likelihood.
@@ -62,10 +64,16 @@ class BatchReport:
             pruned_words=self.pruned_words + other.pruned_words,
             new_words=self.new_words + other.new_words,
             steps=self.steps + other.steps,
+            events=[*self.events, *other.events],
         )
 
 
-def stepwise_update(state: MixtureState, counts: sp.spmatrix) -> BatchReport:
+def stepwise_update(
+    state: MixtureState,
+    counts: sp.spmatrix,
+    *,
+    observe: Callable[[np.ndarray, np.ndarray, np.ndarray], None] | None = None,
+) -> BatchReport:
     """Apply one stepwise EM update with a mini-batch of counts.
 
     Parameters
@@ -74,6 +82,9 @@ def stepwise_update(state: MixtureState, counts: sp.spmatrix) -> BatchReport:
         Warmed up; changed in place.
     counts : sparse matrix of shape (m, capacity)
         Word counts of the batch over the state's vocabulary ids.
+    observe : callable (evidence, resp, log_norm), optional
+        Called with the E-step before the state changes: which rows had tokens (bool, (m,)),
+        their posteriors and their log p(d) (the group lifecycle's evidence).
 
     Returns
     -------
@@ -115,6 +126,8 @@ def stepwise_update(state: MixtureState, counts: sp.spmatrix) -> BatchReport:
     log_joint += state.log_weights()
     resp, log_norm = normalise_log_rows(log_joint, overwrite=True)
     report.log_likelihood_per_token = float(log_norm.sum() / lengths.sum())
+    if observe is not None:
+        observe(evidence, resp, log_norm)
 
     batch_word = np.asarray(local_counts.T @ resp) / m  # average per document
     batch_docs = resp.sum(axis=0) / m
@@ -189,12 +202,17 @@ class OnlineLearner:
             report.new_words += rest.new_words
             counts = rest.counts
         size = self.config.batch_size
+        lifecycle = self.config.lifecycle.enabled
         for start in range(0, counts.shape[0], size):
             # A worker hands over one unit at a time: no copy when it is the whole batch.
             whole = start == 0 and counts.shape[0] <= size
-            part = stepwise_update(state, counts if whole else counts[start : start + size])
+            unit = counts if whole else counts[start : start + size]
+            observe = unit_observer(state, unit) if lifecycle else None
+            part = stepwise_update(state, unit, observe=observe)
             state.documents_learned += part.documents
             report = report.merge(part)
+            if lifecycle:
+                report.events.extend(run_due_decisions(state))
         if state.vocabulary.n_active > self.config.vocabulary_limit:
             report.pruned_words += state.prune_vocabulary()
         return report

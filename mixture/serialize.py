@@ -7,6 +7,10 @@ Layout::
     sha256 of the payload  32 bytes
     payload                an uncompressed .npz archive: a JSON header (as uint8) plus arrays
 
+Version 2 adds the stable group ids, the next id and the group lifecycle's evidence
+(mixture.novelty); the number of groups is then that of the arrays, not the configuration's
+starting count. Version 1 states are still read: their groups get the ids 0..K-1.
+
 Loading checks the magic, the version and the checksum before it parses anything, and parses
 with ``np.load(..., allow_pickle=False)``, so bytes from a tampered store cannot run code. Any
 defect is a StateFormatError that says what is wrong.
@@ -26,11 +30,13 @@ import scipy.sparse as sp
 
 from mixture.config import MixtureConfig
 from mixture.errors import ConfigError, StateFormatError
+from mixture.novelty import GroupEvidence
 from mixture.stats import MixtureState
 from mixture.text import Vocabulary
 
 MAGIC = b"MXRSTATE"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
+_READABLE_VERSIONS = (1, 2)
 _PREFIX = struct.Struct("<8sH32s")
 
 
@@ -55,6 +61,7 @@ def state_to_bytes(state: MixtureState) -> bytes:
         "seed": state.seed,
         "watermark": state.watermark,
         "metadata": state.metadata,
+        "next_group_id": state.next_group_id,
     }
     arrays: dict[str, np.ndarray] = {
         "unscaled_word": np.ascontiguousarray(state.unscaled_word[: state.capacity]),
@@ -63,6 +70,11 @@ def state_to_bytes(state: MixtureState) -> bytes:
     }
     for name, value in state.vocabulary.to_arrays().items():
         arrays[f"vocab.{name}"] = value
+    assert state.group_ids is not None
+    arrays["group_ids"] = state.group_ids.astype(np.int64)
+    if state.evidence is not None:
+        for name, value in state.evidence.to_arrays().items():
+            arrays[f"life.{name}"] = value
     if state.pending is not None:
         pending = sp.csr_matrix(state.pending)
         arrays["pending.data"] = pending.data
@@ -93,9 +105,10 @@ def state_from_bytes(data: bytes) -> MixtureState:
     magic, version, digest = _PREFIX.unpack_from(data)
     if magic != MAGIC:
         raise StateFormatError("not a mixroute state (wrong magic bytes)")
-    if version != FORMAT_VERSION:
+    if version not in _READABLE_VERSIONS:
         raise StateFormatError(
-            f"state format version {version} is not supported (this build reads {FORMAT_VERSION})"
+            f"state format version {version} is not supported "
+            f"(this build reads {', '.join(map(str, _READABLE_VERSIONS))})"
         )
     payload = data[_PREFIX.size :]
     if hashlib.sha256(payload).digest() != digest:
@@ -107,21 +120,32 @@ def state_from_bytes(data: bytes) -> MixtureState:
     except (ValueError, OSError, KeyError, zipfile.BadZipFile, UnicodeDecodeError) as exc:
         raise StateFormatError(f"state archive is malformed: {exc}") from exc
     try:
-        return _build(header, arrays)
-    except (KeyError, TypeError, ValueError, ConfigError) as exc:
+        return _build(header, arrays, version)
+    except (KeyError, TypeError, ValueError, IndexError, ConfigError) as exc:
         if isinstance(exc, StateFormatError):
             raise
         raise StateFormatError(f"state content is inconsistent: {exc}") from exc
 
 
-def _build(header: dict[str, Any], arrays: dict[str, np.ndarray]) -> MixtureState:
+def _build(header: dict[str, Any], arrays: dict[str, np.ndarray], version: int) -> MixtureState:
     if header.get("format") != "mixroute-state":
         raise StateFormatError("state header does not describe a mixroute state")
     config = MixtureConfig.from_dict(header["config"])
     vocab_arrays = {k[len("vocab.") :]: v for k, v in arrays.items() if k.startswith("vocab.")}
     vocabulary = Vocabulary.from_arrays(vocab_arrays)
     word = np.array(arrays["unscaled_word"], dtype=np.float64)
-    k = config.n_groups
+    # Version 1 had a fixed number of groups; from version 2 on the ids say how many there are.
+    group_ids = (
+        np.arange(config.n_groups, dtype=np.int64)
+        if version == 1
+        else np.array(arrays["group_ids"], dtype=np.int64)
+    )
+    k = int(group_ids.shape[0])
+    next_group_id = k if version == 1 else int(header["next_group_id"])
+    if group_ids.ndim != 1 or k == 0 or np.unique(group_ids).size != k:
+        raise StateFormatError("group ids must be distinct, one per group")
+    if group_ids.min() < 0 or next_group_id <= int(group_ids.max()):
+        raise StateFormatError("group ids must be >= 0 and below the next id to give")
     if word.shape != (vocabulary.capacity, k):
         raise StateFormatError(
             f"word statistics have shape {word.shape}, expected ({vocabulary.capacity}, {k})"
@@ -155,7 +179,12 @@ def _build(header: dict[str, Any], arrays: dict[str, np.ndarray]) -> MixtureStat
         watermark=str(header["watermark"]),
         metadata=dict(header["metadata"]),
         pending=pending,
+        group_ids=group_ids,
+        next_group_id=next_group_id,
     )
+    life = {k[len("life.") :]: v for k, v in arrays.items() if k.startswith("life.")}
+    if life:
+        state.evidence = GroupEvidence.from_arrays(life, k)
     if not (state.running_scale > 0 and state.weight_square_sum > 0):
         raise StateFormatError("state scale factors must be positive")
     return state

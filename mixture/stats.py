@@ -32,7 +32,7 @@ from __future__ import annotations
 
 import itertools
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import scipy.sparse as sp
@@ -41,6 +41,9 @@ from mixture.config import MixtureConfig
 from mixture.errors import InputError
 from mixture.text import Tokenizer, Vocabulary
 from mixture.threads import run_blocks, worker_threads
+
+if TYPE_CHECKING:
+    from mixture.novelty import GroupEvidence
 
 # Fold the running scale back into the statistics before it can underflow.
 _SCALE_FLOOR = 1e-120
@@ -148,9 +151,20 @@ class MixtureState:
     watermark: str = ""
     metadata: dict[str, Any] = field(default_factory=dict)
     pending: sp.csr_matrix | None = None  # warm-up buffer of counts
+    # Stable group names: position -> id (None: 0..K-1); a birth takes next_group_id (-1: K),
+    # and an id is never given to another group, even after its group was retired or merged.
+    group_ids: np.ndarray | None = None
+    next_group_id: int = -1
+    evidence: GroupEvidence | None = None  # the lifecycle's evidence (mixture.novelty)
     _revision: int = 0
     _cached: tuple[int, Parameters] | None = field(default=None, repr=False)
     _tokenizer: Tokenizer | None = field(default=None, repr=False)
+
+    def __post_init__(self) -> None:
+        if self.group_ids is None:
+            self.group_ids = np.arange(self.unscaled_docs.shape[0], dtype=np.int64)
+        if self.next_group_id < 0:
+            self.next_group_id = int(self.group_ids.max(initial=-1)) + 1
 
     # ---- construction -------------------------------------------------------------------
     @classmethod
@@ -200,7 +214,8 @@ class MixtureState:
     # ---- shape ----------------------------------------------------------------------------
     @property
     def n_groups(self) -> int:
-        return self.config.n_groups
+        # The current count: config.n_groups is the starting one, births and merges change it.
+        return int(self.unscaled_docs.shape[0])
 
     @property
     def capacity(self) -> int:
@@ -324,6 +339,8 @@ class MixtureState:
         vocab.retire(retire)
         if self.pending is not None and self.pending.nnz:
             self.pending = _drop_columns(self.pending, retire)
+        if self.evidence is not None:
+            self.evidence.drop_words(retire)
         self.maybe_compact()
         self.touch()
         return int(n_retire)
@@ -347,6 +364,8 @@ class MixtureState:
                 (coo.data[ok], (coo.row[ok], new_cols[ok])),
                 shape=(self.pending.shape[0], vocab.capacity),
             )
+        if self.evidence is not None:
+            self.evidence.renumber_words(mapping, vocab.capacity)
         self.touch()
 
     def copy(self) -> MixtureState:

@@ -1,0 +1,516 @@
+"""Groups that change: birth, merge and retirement as pure operations on the statistics.
+
+The operations (:func:`birth`, :func:`merge`, :func:`retire`) change a state's structure in
+place and return a :class:`GroupEvent`; :func:`run_due_decisions` decides, from the evidence in
+the state (mixture.novelty), which of them to apply, at most once per ``check_every_documents``
+learned documents. Groups are named by stable ids (``state.group_ids``: position -> id); an id
+is never given to another group, so an id that is gone (retired, or absorbed by a merge) stays
+gone. Positions are an internal detail and shift when a group leaves.
+
+What each operation does to the statistics (stored as running averages times a scale; see
+mixture.stats), in count units:
+
+- birth: the founding documents' counts become the new group's statistics, one document's
+  worth each, and are taken out of the groups that claim them now, in proportion to their
+  posteriors under the current parameters (clipped at what a group holds). Total documents
+  and word counts are preserved (up to the clipping); the effective sample size is unchanged,
+  because the same documents are only assigned anew;
+- merge: the absorbed group's statistics add to the survivor's; every total is preserved;
+- retirement: the group's column is removed with its mass. The documents it explained are
+  forgotten, the other groups' counts are unchanged, and the weights renormalise over the
+  groups that remain (the log weights divide by the remaining total). The running average
+  sums to less than one after this and returns towards one as the stream goes on.
+
+Decisions, and the principle behind each (thresholds in mixture.lifecycle_config):
+
+- birth: a Bayes factor, because both hypotheses have closed forms and it needs no tuning of a
+  parameter count. The buffer is split by a small batch-EM fit (at most four components);
+  for each component C with enough documents,
+  ln BF = [ln DM(C) + n ln w + (S - n) ln(1 - w)] - sum_{d in C} ln p(d | current mixture)
+  - (1/2) ln S, where DM is the Dirichlet-multinomial marginal likelihood of C's pooled
+  counts with the model's word pseudo-count as the Dirichlet parameter over the active
+  vocabulary (the new group's word distribution integrated out), S the stream span in which
+  C's documents arrived, w = n / S the new group's weight there, and (1/2) ln S the BIC
+  penalty for that one fitted weight (Schwarz 1978). The new hypothesis assigns C's
+  documents to the new group outright, a lower bound of its mixture likelihood, so the test
+  leans towards no birth. The component with the largest ln BF above the threshold is born.
+- merge: two groups merge when the overlap coefficient of their soft memberships in the last
+  window is high (documents cannot tell them apart) and the squared Jensen-Shannon distance
+  of their word distributions (scipy.spatial.distance.jensenshannon, base 2) is small. The
+  survivor is the group with more expected documents (the lower id on a tie).
+- retirement: a group whose posterior share stayed under a floor for whole windows in a row.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+from scipy.spatial.distance import jensenshannon
+
+from mixture.em import e_step, fit_batch_em, normalise_log_rows
+from mixture.errors import InputError
+from mixture.lifecycle_config import LifecycleConfig
+from mixture.novelty import (
+    GroupEvidence,
+    dirichlet_multinomial_log_marginal,
+    observe_unit,
+    overlap_coefficients,
+)
+from mixture.stats import MixtureState, derive_parameters
+
+BIRTH = "birth"
+MERGE = "merge"
+RETIRE = "retire"
+
+# Components of the local fit on the novelty buffer (a new topic or two at a time).
+_BUFFER_COMPONENTS = 4
+
+
+@dataclass(frozen=True)
+class GroupEvent:
+    """One change of the model's groups.
+
+    Attributes
+    ----------
+    kind : str
+        "birth", "merge" or "retire".
+    groups : tuple of int
+        Group ids: (new,) for a birth, (survivor, absorbed) for a merge, (retired,).
+    reason : str
+        Why, in words, with the decisive numbers.
+    position : int
+        Stream position (documents learned) at which it happened.
+    documents : tuple of int
+        Stream positions of a birth's founding documents (empty for the other kinds).
+    evidence : dict
+        The numbers the decision used (JSON-able floats).
+    """
+
+    kind: str
+    groups: tuple[int, ...]
+    reason: str
+    position: int
+    documents: tuple[int, ...] = ()
+    evidence: dict[str, float] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-able dict."""
+        return {
+            "kind": self.kind,
+            "groups": list(self.groups),
+            "reason": self.reason,
+            "position": self.position,
+            "documents": list(self.documents),
+            "evidence": dict(self.evidence),
+        }
+
+
+def position_of(state: MixtureState, group_id: int) -> int:
+    """Array position of a group id; InputError when no current group has that id."""
+    assert state.group_ids is not None
+    hits = np.flatnonzero(state.group_ids == group_id)
+    if hits.size != 1:
+        raise InputError(f"no current group has id {group_id}")
+    return int(hits[0])
+
+
+# ---- the operations ------------------------------------------------------------------------
+def birth(
+    state: MixtureState,
+    counts: sp.spmatrix,
+    *,
+    reason: str,
+    documents: tuple[int, ...] = (),
+    evidence: dict[str, float] | None = None,
+) -> GroupEvent:
+    """Add a group made of some documents, with a new id.
+
+    Parameters
+    ----------
+    state : MixtureState
+        Warmed up; changed in place.
+    counts : sparse matrix (n, <= capacity)
+        The founding documents' word counts over the state's vocabulary ids.
+    reason : str
+    documents : tuple of int
+        Their stream positions, for the record.
+    evidence : dict, optional
+        Numbers behind the decision, for the record.
+
+    Returns
+    -------
+    GroupEvent
+    """
+    if not state.warmed_up:
+        raise InputError("a birth needs a warmed-up state")
+    matrix = sp.csr_matrix(counts, dtype=np.float64)
+    if matrix.shape[1] > state.capacity:
+        raise InputError("founding counts have more columns than the vocabulary has ids")
+    active = state.vocabulary.active_mask()
+    used, local = np.unique(matrix.indices, return_inverse=True)
+    keep_words = active[used] if used.size else np.zeros(0, dtype=bool)
+    local_counts = sp.csr_matrix(
+        (matrix.data, local.astype(np.int32), matrix.indptr), shape=(matrix.shape[0], used.size)
+    )[:, np.flatnonzero(keep_words)]
+    used = used[keep_words]
+    lengths = np.asarray(local_counts.sum(axis=1)).ravel()
+    local_counts = local_counts[lengths > 0]
+    n_docs = local_counts.shape[0]
+    if n_docs == 0:
+        raise InputError("a birth needs founding documents with known words")
+
+    # Take the documents out of the groups that claim them now (their current posteriors).
+    scale = state.count_scale
+    log_joint = np.asarray(local_counts @ state.log_word_prob_rows(used)) + state.log_weights()
+    resp, _ = normalise_log_rows(log_joint, overwrite=True)
+    taken_word = np.minimum(np.asarray(local_counts.T @ resp), state.unscaled_word[used] * scale)
+    taken_docs = np.minimum(resp.sum(axis=0), state.unscaled_docs * scale)
+    state.unscaled_word[used] -= taken_word / scale
+    state.unscaled_docs = state.unscaled_docs - taken_docs / scale
+    state.unscaled_total = state.unscaled_total - taken_word.sum(axis=0) / scale
+
+    new_word = np.asarray(local_counts.sum(axis=0)).ravel()
+    column = np.zeros((state.unscaled_word.shape[0], 1))
+    column[used, 0] = new_word / scale
+    state.unscaled_word = np.hstack([state.unscaled_word, column])
+    state.unscaled_docs = np.append(state.unscaled_docs, n_docs / scale)
+    state.unscaled_total = np.append(state.unscaled_total, new_word.sum() / scale)
+    new_id = int(state.next_group_id)
+    assert state.group_ids is not None
+    state.group_ids = np.append(state.group_ids, np.int64(new_id))
+    state.next_group_id = new_id + 1
+    state.touch()
+
+    if state.evidence is not None:
+        state.evidence.append_group(state.documents_learned)
+        # The new group's typicality starts from its founders under its own parameters.
+        own = np.asarray(local_counts @ state.log_word_prob_rows(used)[:, -1]).ravel()
+        state.evidence.add_typicality(
+            np.full(n_docs, state.n_groups - 1),
+            own / lengths[lengths > 0],
+            state.config.lifecycle.typicality_half_life,
+        )
+    numbers = {"documents": float(n_docs), **(evidence or {})}
+    return GroupEvent(BIRTH, (new_id,), reason, state.documents_learned, documents, numbers)
+
+
+def merge(
+    state: MixtureState,
+    survivor_id: int,
+    absorbed_id: int,
+    *,
+    reason: str,
+    evidence: dict[str, float] | None = None,
+) -> GroupEvent:
+    """Add the statistics of one group to another's; the absorbed id is gone for good."""
+    if survivor_id == absorbed_id:
+        raise InputError("a group cannot merge with itself")
+    a = position_of(state, survivor_id)
+    b = position_of(state, absorbed_id)
+    absorbed_docs = float(state.expected_documents()[b])
+    state.unscaled_word[:, a] += state.unscaled_word[:, b]
+    state.unscaled_docs = state.unscaled_docs.copy()
+    state.unscaled_docs[a] += state.unscaled_docs[b]
+    state.unscaled_total = state.unscaled_total.copy()
+    state.unscaled_total[a] += state.unscaled_total[b]
+    if state.evidence is not None:
+        state.evidence.absorb_group(a, b)
+    _remove_position(state, b)
+    numbers = {"absorbed_documents": absorbed_docs, **(evidence or {})}
+    return GroupEvent(
+        MERGE, (survivor_id, absorbed_id), reason, state.documents_learned, (), numbers
+    )
+
+
+def retire(
+    state: MixtureState,
+    group_id: int,
+    *,
+    reason: str,
+    evidence: dict[str, float] | None = None,
+) -> GroupEvent:
+    """Remove a group and its mass; the weights renormalise over the groups that remain."""
+    if state.n_groups <= 1:
+        raise InputError("the last group cannot be retired")
+    g = position_of(state, group_id)
+    removed = float(state.expected_documents()[g])
+    _remove_position(state, g)
+    numbers = {"removed_documents": removed, **(evidence or {})}
+    return GroupEvent(RETIRE, (group_id,), reason, state.documents_learned, (), numbers)
+
+
+def _remove_position(state: MixtureState, position: int) -> None:
+    state.unscaled_word = np.delete(state.unscaled_word, position, axis=1)
+    state.unscaled_docs = np.delete(state.unscaled_docs, position)
+    state.unscaled_total = np.delete(state.unscaled_total, position)
+    assert state.group_ids is not None
+    state.group_ids = np.delete(state.group_ids, position)
+    if state.evidence is not None:
+        state.evidence.remove_group(position)
+    state.touch()
+
+
+# ---- the decisions -------------------------------------------------------------------------
+def ensure_evidence(state: MixtureState) -> GroupEvidence:
+    """The state's lifecycle evidence, created empty (window starting now) when missing."""
+    if state.evidence is None or state.evidence.n_groups != state.n_groups:
+        state.evidence = GroupEvidence.empty(
+            state.n_groups, state.capacity, start=state.documents_learned
+        )
+    return state.evidence
+
+
+def run_due_decisions(state: MixtureState) -> list[GroupEvent]:
+    """Close the evidence window when it is full and apply the changes it calls for.
+
+    Retirements first, then merges, then at most one birth. Cost: O(K^2) for the overlap,
+    O(V) per merge candidate, and a small batch-EM fit on the bounded novelty buffer.
+
+    Returns
+    -------
+    list of GroupEvent
+        In the order applied (empty when the window is not full yet).
+    """
+    config = state.config.lifecycle
+    evidence = state.evidence
+    if evidence is None or evidence.window_documents < config.check_every_documents:
+        return []
+    events: list[GroupEvent] = []
+    events += _retirements(state, evidence, config)
+    events += _merges(state, evidence, config)
+    born = _birth_from_buffer(state, evidence, config)
+    if born is not None:
+        events.append(born)
+    evidence = state.evidence
+    assert evidence is not None
+    evidence.window_mass = np.zeros(state.n_groups)
+    evidence.window_shared = np.zeros((state.n_groups, state.n_groups))
+    evidence.window_documents = 0.0
+    evidence.window_start = state.documents_learned
+    return events
+
+
+def _retirements(
+    state: MixtureState, evidence: GroupEvidence, config: LifecycleConfig
+) -> list[GroupEvent]:
+    share = evidence.window_mass / evidence.window_documents
+    whole = evidence.born_at <= evidence.window_start  # present for the whole window
+    quiet = whole & (share < config.retire_share)
+    evidence.quiet_windows = np.where(quiet, evidence.quiet_windows + 1, 0)
+    due = np.flatnonzero(evidence.quiet_windows >= config.retire_windows)
+    due = due[np.argsort(share[due], kind="stable")]  # the quietest first
+    assert state.group_ids is not None
+    found = [
+        (int(state.group_ids[g]), float(share[g]), int(evidence.quiet_windows[g])) for g in due
+    ]
+    events = []
+    for group_id, group_share, windows in found:
+        if state.n_groups <= 1:
+            break
+        events.append(
+            retire(
+                state,
+                group_id,
+                reason=(
+                    f"posterior share {group_share:.2g} under the floor {config.retire_share:g} "
+                    f"for {windows} windows of {config.check_every_documents} documents"
+                ),
+                evidence={
+                    "window_share": group_share,
+                    "quiet_windows": float(windows),
+                    "floor": config.retire_share,
+                },
+            )
+        )
+    return events
+
+
+def _merges(
+    state: MixtureState, evidence: GroupEvidence, config: LifecycleConfig
+) -> list[GroupEvent]:
+    if state.n_groups < 2:
+        return []
+    overlap = overlap_coefficients(evidence)
+    mass = evidence.window_mass
+    enough = mass >= config.birth_min_documents
+    candidates = np.argwhere((overlap >= config.merge_overlap) & enough[:, None] & enough[None, :])
+    if candidates.size == 0:
+        return []
+    order = np.argsort(-overlap[candidates[:, 0], candidates[:, 1]], kind="stable")
+    assert state.group_ids is not None
+    ids = state.group_ids.copy()
+    pairs = [(int(ids[a]), int(ids[b]), float(overlap[a, b])) for a, b in candidates[order]]
+    touched: set[int] = set()
+    events = []
+    for first, second, coefficient in pairs:
+        if first in touched or second in touched:
+            continue
+        a, b = position_of(state, first), position_of(state, second)
+        params = state.parameters()
+        p = np.exp(params.log_word_prob[:, a][params.active])
+        q = np.exp(params.log_word_prob[:, b][params.active])
+        divergence = float(jensenshannon(p, q, base=2) ** 2)
+        if divergence >= config.merge_divergence:
+            continue
+        docs = state.expected_documents()
+        survivor, absorbed = (first, second) if docs[a] >= docs[b] else (second, first)
+        if docs[a] == docs[b]:
+            survivor, absorbed = min(first, second), max(first, second)
+        touched.update((first, second))
+        events.append(
+            merge(
+                state,
+                survivor,
+                absorbed,
+                reason=(
+                    f"posterior overlap {coefficient:.2f} >= {config.merge_overlap:g} and word "
+                    f"divergence {divergence:.3f} < {config.merge_divergence:g} bits"
+                ),
+                evidence={"overlap": coefficient, "js_divergence": divergence},
+            )
+        )
+    return events
+
+
+def birth_log_bayes_factor(
+    state: MixtureState, counts: sp.csr_matrix, ordinals: np.ndarray
+) -> float:
+    """ln BF of "one new group" against "the current mixture" for some documents.
+
+    See the module docstring for the formula. ``counts`` are rows over the vocabulary ids;
+    ``ordinals`` their stream positions (the span runs from the oldest to now).
+    """
+    matrix = sp.csr_matrix(counts, dtype=np.float64)
+    active = state.vocabulary.active_mask()
+    used = np.unique(matrix.indices)
+    used = used[active[used]]
+    local = matrix[:, used]
+    lengths = np.asarray(local.sum(axis=1)).ravel()
+    local = local[lengths > 0]
+    n = local.shape[0]
+    if n == 0:
+        return -np.inf
+    pooled = np.asarray(local.sum(axis=0)).ravel()
+    new_group = dirichlet_multinomial_log_marginal(
+        pooled, state.vocabulary.n_active, state.config.word_pseudocount
+    )
+    span = float(max(state.documents_learned - int(np.min(ordinals)), n))
+    weight = n / span
+    weight_terms = n * np.log(weight) + ((span - n) * np.log1p(-weight) if span > n else 0.0)
+    log_joint = np.asarray(local @ state.log_word_prob_rows(used)) + state.log_weights()
+    _, log_norm = normalise_log_rows(log_joint, overwrite=True)
+    return float(new_group + weight_terms - log_norm.sum() - 0.5 * np.log(span))
+
+
+def _birth_from_buffer(
+    state: MixtureState, evidence: GroupEvidence, config: LifecycleConfig
+) -> GroupEvent | None:
+    evidence.forget_older_than(state.documents_learned - config.buffer_horizon_documents)
+    buffered = evidence.buffer_counts(state.capacity)
+    if state.n_groups >= config.ceiling(state.config.n_groups):
+        return None
+    n_buffered = buffered.shape[0]
+    if n_buffered < config.birth_min_documents:
+        return None
+    labels = _split_buffer(state, buffered, config)
+    best: tuple[float, np.ndarray] | None = None
+    for label in np.unique(labels):
+        members = np.flatnonzero(labels == label)
+        if members.size < config.birth_min_documents:
+            continue
+        score = birth_log_bayes_factor(state, buffered[members], evidence.buffer_ordinals[members])
+        if best is None or score > best[0]:
+            best = (score, members)
+    if best is None or not best[0] > config.birth_log_bayes_factor:
+        return None
+    score, members = best
+    ordinals = tuple(int(x) for x in evidence.buffer_ordinals[members])
+    event = birth(
+        state,
+        buffered[members],
+        reason=(
+            f"{members.size} novel documents form one group: ln Bayes factor {score:.1f} > "
+            f"{config.birth_log_bayes_factor:g}"
+        ),
+        documents=ordinals,
+        evidence={"log_bayes_factor": score, "buffered": float(n_buffered)},
+    )
+    keep = np.ones(n_buffered, dtype=bool)
+    keep[members] = False
+    assert state.evidence is not None
+    state.evidence.keep_buffered(keep)
+    return event
+
+
+def _split_buffer(
+    state: MixtureState, buffered: sp.csr_matrix, config: LifecycleConfig
+) -> np.ndarray:
+    """Cluster labels of the buffered documents from a small batch-EM fit (seeded by the
+    state, so the split is a function of the state)."""
+    lengths = np.asarray(buffered.sum(axis=1)).ravel()
+    n_docs = int(np.count_nonzero(lengths))
+    components = min(_BUFFER_COMPONENTS, n_docs // config.birth_min_documents)
+    if components <= 1:
+        return np.zeros(buffered.shape[0], dtype=np.int64)
+    local_config = state.config.replace(
+        n_groups=components, n_restarts=2, lifecycle=LifecycleConfig()
+    )
+    active = state.vocabulary.active_mask()
+    word_counts, doc_counts, _ = fit_batch_em(
+        buffered, local_config, seed=state.seed + state.documents_learned, active=active
+    )
+    params = derive_parameters(
+        word_counts,
+        doc_counts,
+        active,
+        state.config.word_pseudocount,
+        state.config.weight_pseudocount,
+    )
+    resp, _ = e_step(buffered, params)
+    labels = resp.argmax(axis=1)
+    labels[lengths == 0] = -1
+    return labels
+
+
+def unit_observer(
+    state: MixtureState, unit: sp.csr_matrix
+) -> Callable[[np.ndarray, np.ndarray, np.ndarray], None]:
+    """The ``observe`` hook of :func:`mixture.online.stepwise_update` for one unit.
+
+    Parameters
+    ----------
+    state : MixtureState
+        The state about to learn the unit (its evidence is created when missing).
+    unit : csr_matrix (m, capacity)
+        The unit's counts. A token is unknown when its word has no mass in any group before
+        the unit (new to the model, whichever way the stream was cut into calls).
+    """
+    config = state.config.lifecycle
+    evidence = ensure_evidence(state)
+    start = state.documents_learned
+    log_weights = state.log_weights()
+
+    def observe(has_tokens: np.ndarray, resp: np.ndarray, log_norm: np.ndarray) -> None:
+        rows = unit[has_tokens] if not has_tokens.all() else unit
+        token_rows = np.repeat(np.arange(rows.shape[0]), np.diff(rows.indptr))
+        lengths = np.bincount(token_rows, weights=rows.data, minlength=rows.shape[0])
+        seen = state.unscaled_word[rows.indices].sum(axis=1) > 0  # before the update
+        new = ~seen
+        unknown = np.bincount(token_rows[new], weights=rows.data[new], minlength=rows.shape[0])
+        observe_unit(
+            evidence,
+            config,
+            rows,
+            resp,
+            log_norm,
+            log_weights,
+            lengths,
+            unknown,
+            start + np.flatnonzero(has_tokens),
+        )
+
+    return observe

@@ -1,0 +1,177 @@
+"""Settings of the group lifecycle: novelty, birth, merge and retirement.
+
+Nested in :class:`mixture.config.MixtureConfig` as ``lifecycle`` (like the tokenizer's). Each
+threshold is stated with the principle behind it; see mixture.lifecycle for the decisions.
+
+Defaults and where they come from
+---------------------------------
+enabled = False
+    The layers above the model core (checkpoint events, labels, the API) still index groups by
+    position with a fixed count; the lifecycle is switched on per model until they follow.
+max_groups = None
+    The ceiling on births; None means twice ``n_groups`` (the range the benchmarks ask a model
+    with an unknown number of topics to land in).
+check_every_documents = 1000
+    Decisions run once per this many learned documents (a bounded cadence). It is also the
+    window of the retirement and overlap evidence.
+novelty_z = 3.0
+    A document is novel when its per-token log-likelihood under its MAP group lies more than
+    this many standard deviations below the group's recent mean. Under a normal approximation
+    a one-sided 3-sigma event has probability 0.13%, so a stationary stream sends about one
+    document in 740 to the buffer; the birth test has to reject such strays, not the filter.
+novel_unknown_share = 0.5
+    A document is also novel when more than this share of its tokens are words the model had
+    never seen before this batch ("mostly unknown words").
+typicality_half_life = 1000.0, typicality_min_documents = 30
+    The typicality of a group is an exponentially weighted mean and variance (a document's
+    weight halves after this many further documents of the group); a group is judged only once
+    it holds 30 documents' worth, the usual size at which a sample variance is taken as stable
+    (common practice, no source).
+buffer_documents = 500, buffer_horizon_documents = 5000
+    The novelty buffer keeps at most this many documents, and none older than the horizon (a
+    new topic shows itself within it; older strays would only feed spurious clusters).
+birth_min_documents = 20
+    A new group needs at least this many founding documents (a handful of repeats is not a
+    topic; rule of thumb, no source).
+birth_log_bayes_factor = 5.0
+    A birth needs ln BF > 5 for "one new Dirichlet-multinomial group" against "each from the
+    current mixture": Kass and Raftery (1995) call 2 ln BF > 10 very strong evidence.
+merge_overlap = 0.5
+    Two groups merge only when at least half of the smaller group's posterior mass in the last
+    window is shared with the other (overlap coefficient of the soft memberships): for most of
+    its documents the pair cannot be told apart.
+merge_divergence = 0.1
+    ... and when their word distributions are close: squared Jensen-Shannon distance in bits
+    below 0.1, i.e. one word tells less than a tenth of a bit about which of the two groups it
+    came from (JS is that mutual information under an equal mix). A guard against merging two
+    distinct topics that share ambiguous short messages (rule of thumb, no source).
+retire_share = 0.001, retire_windows = 2
+    A group is retired when its posterior mass stayed below this share of the documents for
+    this many whole windows in a row. With a 1000-document window that is under one document's
+    worth per window; a live group with a 1% share expects 10 per window, and the Poisson
+    chance of it falling to one or fewer twice running is about 2.5e-7.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, fields
+from typing import Any
+
+from mixture.errors import ConfigError
+
+
+@dataclass(frozen=True)
+class LifecycleConfig:
+    """How groups are born, merged and retired while the model learns.
+
+    Parameters
+    ----------
+    enabled : bool
+        Run the lifecycle in :class:`mixture.online.OnlineLearner`.
+    max_groups : int or None
+        Ceiling on the number of groups (None: twice the starting ``n_groups``).
+    check_every_documents : int
+        Cadence of the decisions and length of the evidence window, in documents.
+    novelty_z : float
+        Standard deviations below a group's typicality that make a document novel.
+    novel_unknown_share : float
+        Share of never-seen tokens above which a document is novel.
+    typicality_half_life : float
+        Half-life, in a group's documents, of its typicality statistics.
+    typicality_min_documents : int
+        Documents' worth a group needs before its typicality judges anything.
+    buffer_documents : int
+        Capacity of the novelty buffer.
+    buffer_horizon_documents : int
+        Buffered documents older than this (in stream positions) are dropped.
+    birth_min_documents : int
+        Founding documents a birth needs.
+    birth_log_bayes_factor : float
+        Natural-log Bayes factor a birth needs.
+    merge_overlap : float
+        Posterior overlap coefficient a merge needs, in (0, 1].
+    merge_divergence : float
+        Squared JS distance (bits) under which two groups may merge, in (0, 1].
+    retire_share : float
+        Posterior share under which a group counts as quiet in a window, in [0, 1).
+    retire_windows : int
+        Whole quiet windows in a row before a retirement.
+    """
+
+    enabled: bool = False
+    max_groups: int | None = None
+    check_every_documents: int = 1000
+    novelty_z: float = 3.0
+    novel_unknown_share: float = 0.5
+    typicality_half_life: float = 1000.0
+    typicality_min_documents: int = 30
+    buffer_documents: int = 500
+    buffer_horizon_documents: int = 5000
+    birth_min_documents: int = 20
+    birth_log_bayes_factor: float = 5.0
+    merge_overlap: float = 0.5
+    merge_divergence: float = 0.1
+    retire_share: float = 0.001
+    retire_windows: int = 2
+
+    def __post_init__(self) -> None:
+        if not isinstance(self.enabled, bool):
+            raise ConfigError(f"lifecycle.enabled must be true or false; got {self.enabled!r}")
+        if self.max_groups is not None:
+            _check_int(self, "max_groups", 1, 10_000)
+        _check_int(self, "check_every_documents", 1, 100_000_000)
+        _check_float(self, "novelty_z", 0.0, 100.0)
+        _check_float(self, "novel_unknown_share", 0.0, 1.0)
+        _check_float(self, "typicality_half_life", 1.0, 1e12)
+        _check_int(self, "typicality_min_documents", 1, 1_000_000)
+        _check_int(self, "buffer_documents", 1, 100_000)
+        _check_int(self, "buffer_horizon_documents", 1, 1_000_000_000)
+        _check_int(self, "birth_min_documents", 2, 100_000)
+        if self.birth_min_documents > self.buffer_documents:
+            raise ConfigError(
+                f"lifecycle.birth_min_documents ({self.birth_min_documents}) must not exceed "
+                f"lifecycle.buffer_documents ({self.buffer_documents}): no birth could happen"
+            )
+        _check_float(self, "birth_log_bayes_factor", 0.0, 1e9)
+        _check_float(self, "merge_overlap", 1e-9, 1.0)
+        _check_float(self, "merge_divergence", 1e-9, 1.0)
+        _check_float(self, "retire_share", 0.0, 0.999)
+        _check_int(self, "retire_windows", 1, 1_000_000)
+
+    def ceiling(self, n_groups: int) -> int:
+        """The effective ``max_groups`` for a model that starts with ``n_groups``."""
+        return 2 * n_groups if self.max_groups is None else self.max_groups
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-able dict."""
+        return asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: dict[str, Any]) -> LifecycleConfig:
+        """Build from a dict; unknown keys and bad values raise ConfigError naming the field."""
+        if not isinstance(data, dict):
+            raise ConfigError("lifecycle must be a JSON object")
+        unknown = sorted(set(data) - {f.name for f in fields(cls)})
+        if unknown:
+            raise ConfigError(f"unknown lifecycle field(s): {', '.join(unknown)}")
+        return cls(**data)
+
+
+def _check_int(cfg: LifecycleConfig, name: str, low: int, high: int) -> None:
+    value = getattr(cfg, name)
+    if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
+        raise ConfigError(f"lifecycle.{name} must be an integer in [{low}, {high}]; got {value!r}")
+
+
+def _check_float(cfg: LifecycleConfig, name: str, low: float, high: float) -> None:
+    value = getattr(cfg, name)
+    if (
+        isinstance(value, bool)
+        or not isinstance(value, int | float)
+        or not math.isfinite(value)
+        or not low <= value <= high
+    ):
+        raise ConfigError(
+            f"lifecycle.{name} must be a finite number in [{low}, {high}]; got {value!r}"
+        )

@@ -1,0 +1,345 @@
+"""The group lifecycle of the model core: stable ids, birth, merge, retirement, novelty.
+
+Streams are invented (tests/lifecycle_streams.py generates them from known unigram topics with
+numpy); the outside checks are scipy's Dirichlet-multinomial pmf and scipy's Jensen-Shannon
+distance.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import struct
+
+import numpy as np
+import pytest
+import scipy.sparse as sp
+from scipy.special import gammaln
+from scipy.stats import dirichlet_multinomial
+
+from mixture.config import MixtureConfig
+from mixture.errors import ConfigError, InputError
+from mixture.lifecycle import (
+    BIRTH,
+    MERGE,
+    RETIRE,
+    birth,
+    birth_log_bayes_factor,
+    merge,
+    position_of,
+    retire,
+)
+from mixture.lifecycle_config import LifecycleConfig
+from mixture.novelty import dirichlet_multinomial_log_marginal
+from mixture.online import OnlineLearner
+from mixture.routing import route_counts, route_texts
+from mixture.serialize import MAGIC, state_from_bytes, state_to_bytes
+from mixture.stats import MixtureState
+from mixture.text import Vocabulary
+from tests.lifecycle_streams import TopicStream
+
+LIFECYCLE_ON = LifecycleConfig(enabled=True)
+
+
+def _random_state(n_words: int = 60, k: int = 3, seed: int = 0) -> MixtureState:
+    rng = np.random.default_rng(seed)
+    vocab = Vocabulary()
+    for i in range(n_words):
+        vocab.add(f"w{i}")
+    config = MixtureConfig(n_groups=k, batch_size=16, warmup_documents=k, lifecycle=LIFECYCLE_ON)
+    counts = rng.gamma(2.0, 40.0, size=(n_words, k)) + 20.0
+    docs = rng.uniform(200, 400, size=k)
+    state = MixtureState.from_counts(config, vocab, counts, docs, int(docs.sum()))
+    # Move the running scale away from 1, as a long stream does.
+    state.running_scale = 1e-3
+    state.unscaled_word /= 1e-3
+    state.unscaled_docs /= 1e-3
+    state.unscaled_total /= 1e-3
+    state.touch()
+    return state
+
+
+def _founders(n_docs: int, words: np.ndarray, n_words: int, seed: int = 1) -> sp.csr_matrix:
+    rng = np.random.default_rng(seed)
+    dense = np.zeros((n_docs, n_words))
+    for d in range(n_docs):
+        dense[d, rng.choice(words, size=8)] += 1.0
+    return sp.csr_matrix(dense)
+
+
+def _learn(learner: OnlineLearner, texts: list[str], size: int = 256) -> list:
+    events = []
+    for start in range(0, len(texts), size):
+        events += learner.learn(texts[start : start + size]).events
+    return events
+
+
+# ---- outside check: the closed-form marginal likelihood ------------------------------------
+def test_dirichlet_multinomial_marginal_matches_scipy():
+    """Our sequence probability plus the multinomial coefficient log(N! / prod n_w!) is the
+    Dirichlet-multinomial pmf of scipy.stats.dirichlet_multinomial (scipy >= 1.11)."""
+    rng = np.random.default_rng(3)
+    for n_words, beta in ((5, 0.1), (40, 1.0), (200, 0.5)):
+        counts = rng.poisson(0.7, size=n_words).astype(float)
+        counts[0] += 1.0
+        total = int(counts.sum())
+        coefficient = gammaln(total + 1) - gammaln(counts + 1).sum()
+        ours = dirichlet_multinomial_log_marginal(counts, n_words, beta) + coefficient
+        reference = dirichlet_multinomial.logpmf(counts, np.full(n_words, beta), total)
+        assert ours == pytest.approx(float(reference), rel=1e-10)
+
+
+# ---- the operations ------------------------------------------------------------------------
+def test_birth_moves_documents_into_a_new_group_with_a_new_id():
+    state = _random_state()
+    before_docs = state.expected_documents().sum()
+    before_words = state.expected_word_counts().sum()
+    founders = _founders(25, np.arange(50, 60), state.capacity)
+    event = birth(state, founders, reason="test", documents=tuple(range(25)))
+    assert event.kind == BIRTH and event.groups == (3,)
+    np.testing.assert_array_equal(state.group_ids, [0, 1, 2, 3])
+    assert state.next_group_id == 4 and state.n_groups == 4
+    # The founders are assigned anew: totals are preserved (nothing was clipped here).
+    assert state.expected_documents().sum() == pytest.approx(before_docs, rel=1e-9)
+    assert state.expected_word_counts().sum() == pytest.approx(before_words, rel=1e-9)
+    assert state.expected_documents()[3] == pytest.approx(25.0)
+    np.testing.assert_allclose(
+        state.unscaled_total, state.unscaled_word[: state.capacity].sum(axis=0), rtol=1e-12
+    )
+    params = state.parameters()
+    assert np.all(np.isfinite(params.log_word_prob)) and np.all(np.isfinite(params.log_weights))
+    routed = route_counts(params, founders)
+    assert np.all(routed.group == 3)
+
+
+def test_merge_adds_the_statistics_and_the_absorbed_id_is_gone():
+    state = _random_state(k=4)
+    words = state.expected_word_counts()
+    docs = state.expected_documents()
+    event = merge(state, 1, 3, reason="test")
+    assert event.kind == MERGE and event.groups == (1, 3)
+    np.testing.assert_array_equal(state.group_ids, [0, 1, 2])
+    np.testing.assert_allclose(state.expected_word_counts()[:, 1], words[:, 1] + words[:, 3])
+    np.testing.assert_allclose(state.expected_documents(), [docs[0], docs[1] + docs[3], docs[2]])
+    assert state.expected_word_counts().sum() == pytest.approx(words.sum())
+    with pytest.raises(InputError, match="id 3"):
+        position_of(state, 3)
+    assert np.all(np.isfinite(state.parameters().log_word_prob))
+    assert route_counts(state.parameters(), _founders(5, np.arange(10), 60)).posterior.shape[1] == 3
+
+
+def test_retire_removes_the_mass_and_the_weights_renormalise():
+    state = _random_state(k=3)
+    words = state.expected_word_counts()
+    event = retire(state, 1, reason="test")
+    assert event.kind == RETIRE and event.groups == (1,)
+    np.testing.assert_array_equal(state.group_ids, [0, 2])
+    # The other groups' counts are unchanged; only the weights renormalise over them.
+    np.testing.assert_allclose(state.expected_word_counts(), words[:, [0, 2]])
+    assert state.weights().sum() == pytest.approx(1.0)
+    assert np.all(np.isfinite(state.parameters().log_word_prob))
+    retire(state, 2, reason="test")
+    with pytest.raises(InputError, match="last group"):
+        retire(state, 0, reason="test")
+
+
+def test_ids_are_never_given_again():
+    state = _random_state(k=3)
+    retire(state, 2, reason="test")
+    event = birth(state, _founders(20, np.arange(40, 50), 60), reason="test")
+    assert event.groups == (3,)  # not 2, which named another group
+    np.testing.assert_array_equal(state.group_ids, [0, 1, 3])
+
+
+def test_bayes_factor_prefers_a_coherent_cluster_to_strays():
+    """Documents that share new words make one group (large ln BF); documents spread over
+    the words the groups already know do not."""
+    state = _random_state(n_words=200, k=3)
+    coherent = _founders(25, np.arange(180, 190), 200)
+    strays = _founders(25, np.arange(0, 150), 200, seed=4)
+    ordinals = np.arange(state.documents_learned - 500, state.documents_learned - 475)
+    assert birth_log_bayes_factor(state, coherent, ordinals) > 5.0
+    assert birth_log_bayes_factor(state, strays, ordinals) < 0.0
+
+
+# ---- configuration ---------------------------------------------------------------------------
+def test_lifecycle_settings_are_validated_and_nested():
+    with pytest.raises(ConfigError, match=r"lifecycle\.novelty_z"):
+        LifecycleConfig(novelty_z=-1.0)
+    with pytest.raises(ConfigError, match=r"lifecycle\.retire_windows"):
+        LifecycleConfig(retire_windows=True)
+    with pytest.raises(ConfigError, match=r"lifecycle\.max_groups"):
+        MixtureConfig(n_groups=5, lifecycle=LifecycleConfig(max_groups=3))
+    with pytest.raises(ConfigError, match="unknown lifecycle field"):
+        MixtureConfig.from_dict({"lifecycle": {"births": True}})
+    config = MixtureConfig(n_groups=3, lifecycle=LifecycleConfig(enabled=True, max_groups=9))
+    assert MixtureConfig.from_dict(json.loads(json.dumps(config.to_dict()))) == config
+    assert MixtureConfig.from_dict({"n_groups": 3}).lifecycle == LifecycleConfig()
+    assert LifecycleConfig().ceiling(4) == 8
+
+
+# ---- serialisation ---------------------------------------------------------------------------
+def _as_version_1(data: bytes) -> bytes:
+    """Rewrite version-2 bytes as the version-1 layout (no ids, no lifecycle evidence)."""
+    with np.load(io.BytesIO(data[42:]), allow_pickle=False) as archive:
+        arrays = {name: archive[name] for name in archive.files}
+    for name in list(arrays):
+        if name == "group_ids" or name.startswith("life."):
+            del arrays[name]
+    header = json.loads(arrays["header"].tobytes().decode("utf-8"))
+    del header["next_group_id"]
+    del header["config"]["lifecycle"]
+    arrays["header"] = np.frombuffer(json.dumps(header).encode("utf-8"), dtype=np.uint8)
+    buffer = io.BytesIO()
+    np.savez(buffer, allow_pickle=False, **arrays)
+    payload = buffer.getvalue()
+    return struct.pack("<8sH32s", MAGIC, 1, hashlib.sha256(payload).digest()) + payload
+
+
+def test_state_bytes_keep_ids_and_evidence_and_read_version_1():
+    stream = TopicStream(3, seed=5)
+    texts = stream.messages(stream.labels(2600, [0, 1, 2]))
+    config = MixtureConfig(n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
+    learner = OnlineLearner(config, seed=0)
+    _learn(learner, texts)
+    state = learner.state
+    founders = state.evidence.buffer_counts(state.capacity)[:3]
+    event = birth(state, founders, reason="x")
+    retire(state, 0, reason="x")
+    data = state_to_bytes(state)
+    loaded = state_from_bytes(data)
+    np.testing.assert_array_equal(loaded.group_ids, [1, 2, event.groups[0]])
+    assert loaded.next_group_id == 4 and loaded.n_groups == 3
+    for name, value in state.evidence.to_arrays().items():
+        np.testing.assert_array_equal(loaded.evidence.to_arrays()[name], value)
+    assert state_to_bytes(loaded) == data
+    # The old layout: the ids are 0..K-1 and the lifecycle starts with no evidence.
+    fresh = OnlineLearner(config, seed=0)
+    _learn(fresh, texts)
+    fresh.state.evidence = None
+    version_1 = _as_version_1(state_to_bytes(fresh.state))
+    assert version_1[8:10] == b"\x01\x00"
+    read = state_from_bytes(version_1)
+    np.testing.assert_array_equal(read.group_ids, [0, 1, 2])
+    assert read.next_group_id == 3 and read.evidence is None
+    np.testing.assert_array_equal(
+        route_texts(read, texts[:50]).posterior, route_texts(fresh.state, texts[:50]).posterior
+    )
+
+
+def test_the_lifecycle_is_a_function_of_the_stream():
+    """Saved and loaded between units (as the worker checkpoints), the stream gives the same
+    state bytes and the same events as one uninterrupted run: the checkpoint holds everything
+    the lifecycle uses. (One unit per call, as the worker hands them over: a call with several
+    units grows the vocabulary for all of them at once, which the plain learner does too.)"""
+    stream = TopicStream(5, seed=6)
+    labels = np.concatenate([stream.labels(2500, [0, 1, 2]), stream.labels(2500, [0, 1, 2, 3])])
+    texts = stream.messages(labels)
+    config = MixtureConfig(n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
+    whole = OnlineLearner(config, seed=0)
+    events = _learn(whole, texts)
+    assert any(e.kind == BIRTH for e in events)
+    pieces = OnlineLearner(config, seed=0)
+    events_again = []
+    for cut in (0, 1536, 2816, 3072, 4096):
+        pieces = OnlineLearner.from_state(state_from_bytes(state_to_bytes(pieces.state)))
+        end = {0: 1536, 1536: 2816, 2816: 3072, 3072: 4096, 4096: len(texts)}[cut]
+        events_again += _learn(pieces, texts[cut:end])
+    assert [e.to_dict() for e in events_again] == [e.to_dict() for e in events]
+    assert state_to_bytes(pieces.state) == state_to_bytes(whole.state)
+
+
+# ---- synthetic streams (invented) -----------------------------------------------------------
+def test_a_new_topic_gets_a_group_and_its_messages_route_there():
+    """A topic appearing at message 5,000 gets a birth within 1,500 messages (the decisions run
+    every 1,000; the novel messages need a few hundred to fill a cluster), and later its
+    messages go to the new group with purity and recall >= 0.9."""
+    stream = TopicStream(6, seed=0)
+    old = [0, 1, 2, 3]
+    labels = np.concatenate([stream.labels(5000, old), stream.labels(10000, [*old, 4])])
+    texts = stream.messages(labels)
+    learner = OnlineLearner(MixtureConfig(n_groups=4, lifecycle=LIFECYCLE_ON), seed=0)
+    events = _learn(learner, texts)
+    assert [e.kind for e in events] == [BIRTH]
+    born = events[0]
+    assert 5000 <= born.position <= 6500
+    assert all(5000 <= d < born.position for d in born.documents)
+    later = np.arange(8000, 15000)
+    routed = learner.state.group_ids[route_texts(learner.state, [texts[i] for i in later]).group]
+    new_topic = labels[later] == 4
+    in_new_group = routed == born.groups[0]
+    assert (new_topic & in_new_group).sum() / in_new_group.sum() >= 0.9  # purity
+    assert (new_topic & in_new_group).sum() / new_topic.sum() >= 0.9  # recall
+
+
+def test_a_topic_that_stops_is_retired():
+    """With the default floor and two windows of 1,000, a group whose topic stopped at message
+    5,000 is retired within 4,000 messages; the other groups stay."""
+    stream = TopicStream(4, seed=1)
+    labels = np.concatenate([stream.labels(5000, [0, 1, 2, 3]), stream.labels(6000, [0, 1, 2])])
+    texts = stream.messages(labels)
+    learner = OnlineLearner(MixtureConfig(n_groups=4, lifecycle=LIFECYCLE_ON), seed=0)
+    events = _learn(learner, texts)
+    assert [e.kind for e in events] == [RETIRE]
+    assert 5000 <= events[0].position <= 9000
+    state = learner.state
+    assert state.n_groups == 3
+    routed = route_texts(state, texts[-1000:]).group
+    for t in range(3):
+        assert np.bincount(routed[labels[-1000:] == t]).max() / (labels[-1000:] == t).sum() >= 0.9
+
+
+def test_two_groups_started_on_one_topic_merge():
+    """Four groups warmed up on three topics: the two that share a topic merge (within the
+    first 6,000 messages) and every topic ends in one group."""
+    stream = TopicStream(3, seed=2)
+    labels = stream.labels(8000, [0, 1, 2])
+    texts = stream.messages(labels)
+    learner = OnlineLearner(MixtureConfig(n_groups=4, lifecycle=LIFECYCLE_ON), seed=0)
+    events = _learn(learner, texts)
+    assert [e.kind for e in events] == [MERGE]
+    assert events[0].position <= 6000
+    assert events[0].evidence["js_divergence"] < 0.1
+    state = learner.state
+    assert state.n_groups == 3
+    routed = route_texts(state, texts[-1000:]).group
+    for t in range(3):
+        assert np.bincount(routed[labels[-1000:] == t]).max() / (labels[-1000:] == t).sum() >= 0.9
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_a_stationary_stream_gets_no_events(seed):
+    """Fixed topics (unequal shares, short and long messages): no birth, merge or retirement
+    in 20,000 messages."""
+    stream = TopicStream(5, seed=10 + seed)
+    rng = np.random.default_rng(seed)
+    labels = rng.choice(5, size=20000, p=[0.4, 0.25, 0.2, 0.1, 0.05])
+    texts = stream.messages(labels, mean_length=8.0 if seed == 1 else 12.0)
+    learner = OnlineLearner(MixtureConfig(n_groups=5, lifecycle=LIFECYCLE_ON), seed=seed)
+    assert _learn(learner, texts) == []
+    assert learner.state.evidence.buffer.shape[0] <= 500
+
+
+def test_the_ceiling_stops_births():
+    stream = TopicStream(6, seed=0)
+    labels = np.concatenate([stream.labels(3000, [0, 1, 2]), stream.labels(4000, [0, 1, 2, 4])])
+    capped = LifecycleConfig(enabled=True, max_groups=3)
+    learner = OnlineLearner(MixtureConfig(n_groups=3, lifecycle=capped), seed=0)
+    assert _learn(learner, stream.messages(labels)) == []
+    assert learner.state.n_groups == 3
+
+
+def test_vocabulary_pruning_keeps_the_buffer_on_the_vocabulary():
+    """With a small vocabulary limit words are retired and renumbered while novel documents
+    sit in the buffer; the buffer follows (no retired or out-of-range word ids)."""
+    stream = TopicStream(5, seed=3)
+    labels = np.concatenate([stream.labels(2500, [0, 1, 2]), stream.labels(4000, [0, 1, 2, 3])])
+    config = MixtureConfig(n_groups=3, vocabulary_limit=400, lifecycle=LIFECYCLE_ON)
+    learner = OnlineLearner(config, seed=0)
+    _learn(learner, stream.messages(labels))
+    state = learner.state
+    assert state.vocabulary.generation > 0  # a compaction happened
+    buffer = state.evidence.buffer
+    assert buffer.shape[1] <= state.capacity
+    assert np.all(state.vocabulary.active_mask()[buffer.indices])
