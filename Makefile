@@ -3,8 +3,17 @@ PYTHON ?= python3.11
 VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
+# a second venv with every `>=` floor of pyproject pinned (.ci/floors.py): the floors are true
+FLOOR_VENV := .venv-floors
+FLOOR_PY := $(FLOOR_VENV)/bin/python
+FLOOR_STAMP := $(FLOOR_VENV)/.installed
+# the unit and Redis tests of each layer (about a minute), so CI stays well inside its budget
+FLOOR_TESTS := tests/test_mixture_core.py tests/test_text.py tests/test_state_keys.py \
+	tests/test_state_connection.py tests/test_state_snapshots.py tests/test_worker_stream.py \
+	tests/test_service_units.py tests/test_service_api.py tests/test_runtime_reload.py \
+	tests/test_embedded_lifecycle.py
 
-.PHONY: install corpora browser test test-fast demo bench lint format clean
+.PHONY: install corpora browser test test-fast test-floors demo bench lint format clean
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -30,6 +39,16 @@ test: $(STAMP) corpora browser
 test-fast: $(STAMP)
 	$(PY) -m pytest -q -m "not corpus and not browser"
 
+$(FLOOR_STAMP): pyproject.toml .ci/floors.py
+	test -x $(FLOOR_PY) || $(PYTHON) -m venv $(FLOOR_VENV)
+	$(FLOOR_PY) -m pip install --quiet --upgrade pip
+	$(FLOOR_PY) .ci/floors.py dev > $(FLOOR_VENV)/floors.txt
+	$(FLOOR_PY) -m pip install --quiet -c $(FLOOR_VENV)/floors.txt -e '.[dev]'
+	touch $(FLOOR_STAMP)
+
+test-floors: $(FLOOR_STAMP)
+	$(FLOOR_PY) -m pytest -q -p no:cacheprovider -m "not corpus and not browser" $(FLOOR_TESTS)
+
 demo: $(STAMP)
 	$(VENV)/bin/mixroute demo
 
@@ -45,4 +64,4 @@ format: $(STAMP)
 	$(VENV)/bin/ruff check --fix .
 
 clean:
-	rm -rf $(VENV) build *.egg-info .pytest_cache .ruff_cache
+	rm -rf $(VENV) $(FLOOR_VENV) build *.egg-info .pytest_cache .ruff_cache

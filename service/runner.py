@@ -126,13 +126,30 @@ def _configure_logging(settings: Settings) -> None:
     configure_logging(settings.log_level, settings.log_format, secrets=secrets_of(settings))
 
 
+class _StopSignal(BaseException):
+    """A SIGTERM/SIGINT turned into an exception, so that ``finally`` blocks run."""
+
+    def __init__(self, signum: int) -> None:
+        super().__init__(signum)
+        self.signum = signum
+
+
 def serve(
     host: str | None = None,
     port: int | None = None,
     data_dir: str | Path | None = None,
     worker: bool = True,
 ) -> int:
-    """Run the API until interrupted; exit status."""
+    """Run the API until interrupted; exit status.
+
+    uvicorn answers SIGTERM and SIGINT with a graceful shutdown (the lifespan stops the
+    workers, which checkpoint), then raises the signal again with the handler it found. Left
+    at the default, that second SIGTERM ended the process before the embedded Redis was
+    stopped: the server was still saving while its owner was gone. Here the handler uvicorn
+    finds turns the signal into :class:`_StopSignal`, the embedded server is stopped and
+    waited for, and only then does the process end: by SIGTERM again, or with status 130
+    after SIGINT.
+    """
     import uvicorn
 
     from service.app import create_app
@@ -140,18 +157,28 @@ def serve(
 
     settings = load_settings(host=host, port=port, data_dir=data_dir)
     _configure_logging(settings)
+    received: list[int] = []
+
+    def on_signal(signum: int, frame: FrameType | None) -> None:
+        received.append(signum)
+        if len(received) == 1:
+            raise _StopSignal(signum)
+        # a second signal while the embedded Redis stops: let the stop finish
+
+    previous = {sig: signal.signal(sig, on_signal) for sig in (signal.SIGTERM, signal.SIGINT)}
     embedded: EmbeddedRedis | None = None
-    if not settings.redis_url:
-        embedded = EmbeddedRedis(settings.data_dir).start()
-        settings.redis_url = embedded.url
-        log.info("embedded Redis started in %s (%s)", settings.data_dir, embedded.url)
-    assert settings.redis_url is not None
-    factories = []
-    if worker and (embedded is not None or settings.embedded_worker):
-        url = settings.redis_url
-        factories.append(lambda _runtime: WorkerPool(url))
-    app = create_app(settings, background_factories=factories)
     try:
+        if not settings.redis_url:
+            embedded = EmbeddedRedis(settings.data_dir)
+            embedded.start()
+            settings.redis_url = embedded.url
+            log.info("embedded Redis started in %s (%s)", settings.data_dir, embedded.url)
+        assert settings.redis_url is not None
+        factories = []
+        if worker and (embedded is not None or settings.embedded_worker):
+            url = settings.redis_url
+            factories.append(lambda _runtime: WorkerPool(url))
+        app = create_app(settings, background_factories=factories)
         # log_config=None keeps our handlers; RequestContext writes the access lines
         uvicorn.run(
             app,
@@ -161,10 +188,17 @@ def serve(
             log_config=None,
             access_log=False,
         )
+    except _StopSignal as stop:
+        log.info("signal %d: stopped", stop.signum)
     finally:
         if embedded is not None:
             embedded.stop()
-    return 0
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+    if received and received[0] == signal.SIGTERM:  # end by the signal, as uvicorn intends
+        signal.signal(signal.SIGTERM, signal.SIG_DFL)
+        signal.raise_signal(signal.SIGTERM)
+    return 130 if received else 0  # an interrupt: the shell's status for SIGINT
 
 
 def work(model: str | None = None, data_dir: str | Path | None = None) -> int:

@@ -1,9 +1,14 @@
 """What one API process holds in memory: the latest parameters of every model, and Redis health.
 
-Serving never reads model state from Redis per request. A poller thread checks every loaded
-model's version key (one GET each, ``reload_poll_interval`` apart, 0.2 s by default) and reloads
-the state bytes only when the version moved, so a new checkpoint or a rollback is served within
-well under a second. When Redis stops answering, the poller marks the runtime *degraded*:
+Serving never reads model state from Redis per request. Every checkpoint and rollback
+PUBLISHes its new version on the model's ``notify`` channel; one pub/sub connection of this
+process subscribes to all of them (one pattern) and reloads the model named by a notice, so a
+new version is served within milliseconds. A poller thread is the fallback for notices that
+never arrive (a pub/sub connection being re-made, a Redis that drops them): every
+``reload_poll_interval`` seconds (5 s by default), and at once after each (re)subscription, it
+reads the version, the label counter and the existence of every loaded model in one pipelined
+round trip, and reloads the state bytes only when the version moved. When Redis stops
+answering, the poller marks the runtime *degraded*:
 routing keeps answering from the parameters in memory and says so, while every call that must
 reach Redis (queueing, snapshots, labels, ...) fails fast with :class:`RedisUnavailableError`, which
 the app turns into a 503.
@@ -53,6 +58,7 @@ from mixture.serialize import state_from_bytes
 from mixture.stats import MixtureState
 from service.settings import Settings
 from state.errors import ModelNotFoundError
+from state.keys import NOTIFY_PATTERN, ModelKeys, model_of_notify_channel
 from state.registry import ModelInfo, Registry
 from state.store import ModelStore
 
@@ -244,9 +250,14 @@ class ServiceRuntime:
         self.redis_error: str | None = None
         self.degraded_since: float | None = None
         self.last_poll: float | None = None
+        self.notices = 0  # notices that named a loaded model (tests and /metrics read it)
+        self.subscribed = False  # True while the notice subscription is live
         self._lock = threading.RLock()
         self._stop = threading.Event()
+        self._poll_now = threading.Event()
         self._thread: threading.Thread | None = None
+        self._listener: threading.Thread | None = None
+        self._pubsub: Any = None
 
     # -- Redis health ------------------------------------------------------------------------
     def _mark_down(self, exc: BaseException) -> None:
@@ -360,67 +371,140 @@ class ServiceRuntime:
                 self.model(name)
 
     def poll_once(self) -> None:
-        """Reload every loaded model whose version or labels changed; track Redis health."""
-        names = list(self.models)
+        """Reload every loaded model whose version or labels changed; track Redis health.
+
+        One pipelined round trip reads, for every loaded model, whether it still exists, its
+        version and its label counter; only the models that moved are read further.
+        """
         try:
-            if not names:
-                self.redis.ping()
-            for name in names:
-                loaded = self.models.get(name)
-                if loaded is None:
-                    continue
-                try:
-                    if not self.registry.exists(name):  # deleted, maybe by another replica
-                        self.forget(name)
-                        continue
-                    version = loaded.store.version()
-                    labels_version = _labels_version(loaded.store)
-                    if labels_version != loaded.labels_version:
-                        labels = self._read_labels(name, loaded.store)
-                    else:
-                        labels = loaded.labels
-                except ModelNotFoundError:
-                    self.forget(name)
-                    continue
-                if version != loaded.version or (loaded.state is None and version > 0):
-                    with self._lock:
-                        try:
-                            self.models[name] = self._load(name, loaded)
-                        except ModelNotFoundError:
-                            self.forget(name)
-                elif labels != loaded.labels or labels_version != loaded.labels_version:
-                    loaded.labels = labels
-                    loaded.labels_version = labels_version
+            self._refresh(list(self.models))
         except REDIS_DOWN_ERRORS as exc:
             self._mark_down(exc)
         else:
             self._mark_up()
         self.last_poll = time.time()
 
+    def _refresh(self, names: list[str]) -> None:
+        """Check ``names`` in one round trip and reload those that changed (Redis errors rise)."""
+        if not names:
+            self.redis.ping()
+            return
+        pipe = self.redis.pipeline(transaction=False)
+        for name in names:
+            keys = ModelKeys(name)
+            pipe.exists(keys.config)
+            pipe.get(keys.version)
+            pipe.get(keys.labels_version)
+        replies = pipe.execute()
+        for index, name in enumerate(names):
+            exists, raw_version, raw_labels_version = replies[3 * index : 3 * index + 3]
+            loaded = self.models.get(name)
+            if loaded is None:
+                continue
+            if not exists:  # deleted, maybe by another replica
+                self.forget(name)
+                continue
+            version = int(raw_version) if raw_version else 0
+            labels_version = int(raw_labels_version) if raw_labels_version else 0
+            try:
+                if version != loaded.version or (loaded.state is None and version > 0):
+                    with self._lock:
+                        self.models[name] = self._load(name, loaded)
+                elif labels_version != loaded.labels_version:
+                    loaded.labels = self._read_labels(name, loaded.store)
+                    loaded.labels_version = labels_version
+            except ModelNotFoundError:
+                self.forget(name)
+
     def _poll_forever(self) -> None:
-        while not self._stop.wait(self.settings.reload_poll_interval):
+        while not self._stop.is_set():
+            self._poll_now.wait(self.settings.reload_poll_interval)
+            self._poll_now.clear()
+            if self._stop.is_set():
+                return
             try:
                 self.poll_once()
             except Exception:  # a poller must not die; the next poll retries
                 log.exception("version poll failed")
 
+    def on_notice(self, channel: str | bytes, data: bytes | str | None) -> None:
+        """Handle one checkpoint notice: reload the model it names if its version moved."""
+        name = model_of_notify_channel(channel)
+        loaded = self.models.get(name) if name is not None else None
+        if name is None or loaded is None:
+            return  # not loaded here: it is read fresh on first use
+        self.notices += 1
+        try:
+            if data is not None and int(data) == loaded.version:
+                return  # already loaded (this process made the change)
+        except ValueError:
+            pass
+        try:
+            self._refresh([name])
+        except REDIS_DOWN_ERRORS as exc:
+            self._mark_down(exc)
+
+    def _listen_forever(self) -> None:
+        """Keep one pattern subscription to every model's notices; re-make it when it drops."""
+        pause = 0.1
+        while not self._stop.is_set():
+            pubsub = self.redis.pubsub()
+            self._pubsub = pubsub
+            try:
+                pubsub.psubscribe(NOTIFY_PATTERN)
+                while not self._stop.is_set():
+                    message = pubsub.get_message(timeout=1.0)
+                    if message is None:
+                        continue
+                    if message["type"] == "psubscribe":
+                        # (re)subscribed: notices sent while unsubscribed were missed; poll now
+                        self.subscribed = True
+                        self._poll_now.set()
+                        pause = 0.1
+                    elif message["type"] == "pmessage":
+                        self.on_notice(message["channel"], message["data"])
+            except Exception as exc:  # the poll keeps serving; try again after a pause
+                self.subscribed = False
+                if not self._stop.is_set():
+                    log.debug("checkpoint notices lost (%s); resubscribing", exc)
+                    self._stop.wait(pause)
+                    pause = min(pause * 2, self.settings.reload_poll_interval)
+            finally:
+                self.subscribed = False
+                self._pubsub = None
+                with contextlib.suppress(Exception):
+                    pubsub.close()
+
     def start(self) -> None:
-        """Load the registered models (if Redis answers) and start the version poller."""
+        """Load the registered models (if Redis answers), subscribe to the checkpoint notices
+        and start the fallback version poller."""
         with contextlib.suppress(RedisUnavailableError):
             self.load_all()
+        self._stop.clear()
+        if self._listener is None and self.settings.reload_notifications:
+            self._listener = threading.Thread(
+                target=self._listen_forever, name="mixroute-notice-listener", daemon=True
+            )
+            self._listener.start()
         if self._thread is None:
-            self._stop.clear()
             self._thread = threading.Thread(
                 target=self._poll_forever, name="mixroute-version-poller", daemon=True
             )
             self._thread.start()
 
     def stop(self) -> None:
-        """Stop the poller thread."""
+        """Stop the poller and the notice listener."""
         self._stop.set()
-        if self._thread is not None:
-            self._thread.join(timeout=5)
-            self._thread = None
+        self._poll_now.set()
+        pubsub = self._pubsub
+        if pubsub is not None and pubsub.connection is not None:
+            with contextlib.suppress(Exception):  # wakes the listener's blocking read
+                pubsub.connection.disconnect()
+        for thread in (self._thread, self._listener):
+            if thread is not None:
+                thread.join(timeout=5)
+        self._thread = None
+        self._listener = None
 
     # -- labels ------------------------------------------------------------------------------
     def _read_labels(self, name: str, store: ModelStore) -> dict[int, dict[str, Any]]:

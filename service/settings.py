@@ -68,10 +68,15 @@ class Settings(BaseSettings):
         "rule applies to it.",
     )
     reload_poll_interval: float = Field(
-        default=0.2,
+        default=5.0,
         gt=0.0,
         le=60.0,
-        description="Seconds between cheap checkpoint-version polls of every loaded model.",
+        description="Seconds between fallback version polls (one round trip for every loaded "
+        "model); checkpoints and rollbacks are seen at once through their pub/sub notice.",
+    )
+    reload_notifications: bool = Field(
+        default=True,
+        description="Reload on the checkpoint notices (pub/sub); off: the poll alone.",
     )
     redis_timeout: float = Field(
         default=1.0, gt=0.0, le=60.0, description="Socket timeout of Redis calls, seconds."

@@ -4,14 +4,29 @@
 package (not a fake) as a child process, with its RDB file and append-only file in a data
 folder, so an embedded mixroute keeps its models across restarts. It listens on a unix socket
 by default (nothing on the network), or on a loopback TCP port when one is given.
+
+The server never outlives its owner:
+
+* it is forked from a thread that lives as long as the process, with Linux's parent-death
+  signal set to SIGTERM, so it is told to stop however the owner ends (SIGKILL included);
+* with the append-only file on, it has no RDB save points: at start Redis reads only the AOF
+  then, and a save on SIGTERM is the one step of its shutdown that can fail (a full disk, a
+  removed folder) and make Redis refuse to exit for good; SIGTERM now fsyncs the AOF and exits;
+* the owner holds an exclusive lock on ``owner.lock`` in the data folder while the server runs,
+  and a start that gets the lock stops any redis-server still working in that folder (its
+  ``redis.pid``, or any redis-server process whose working directory is the folder), since two
+  servers appending to one AOF would corrupt it.
 """
 
 from __future__ import annotations
 
 import atexit
 import contextlib
+import errno
+import fcntl
 import logging
 import os
+import queue
 import shutil
 import signal
 import socket
@@ -19,8 +34,10 @@ import subprocess
 import tempfile
 import threading
 import time
+from collections.abc import Callable
 from pathlib import Path
 from types import TracebackType
+from typing import Any, TypeVar
 
 import redis
 
@@ -29,6 +46,8 @@ from state.errors import StateError
 log = logging.getLogger(__name__)
 
 _SOCKET_PATH_LIMIT = 100  # sun_path is 108 bytes on Linux; keep a margin
+PID_FILE = "redis.pid"  # written by redis-server itself, removed by its clean shutdown
+LOCK_FILE = "owner.lock"  # flock held by the owning process while its server runs
 
 
 def redis_server_binary() -> str:
@@ -106,6 +125,7 @@ class EmbeddedRedis:
         self._socket_dir: str | None = None
         self._process: subprocess.Popen[bytes] | None = None
         self._lock = threading.Lock()
+        self._lock_handle: Any = None
         self._atexit_registered = False
 
     # -- lifecycle --------------------------------------------------------------------------
@@ -134,50 +154,95 @@ class EmbeddedRedis:
             if self.running:
                 return self
             self.data_dir.mkdir(parents=True, exist_ok=True)
-            config_lines = [
-                f"dir {self.data_dir}",
-                "dbfilename dump.rdb",
-                f"appendonly {'yes' if self.appendonly else 'no'}",
-                "appendfilename appendonly.aof",
-                f"appendfsync {self.appendfsync}",
-                f"logfile {self.data_dir / 'redis.log'}",
-                "daemonize no",
-                "save 900 1",
-                "save 60 1000",
-                "protected-mode yes",
-                "databases 16",
-            ]
-            if self.requested_port is not None:
-                self.port = self.requested_port or _free_port()
-                config_lines += ["bind 127.0.0.1", f"port {self.port}"]
-                self.socket_path = None
-            else:
-                self.port = None
-                self.socket_path = self._pick_socket_path()
-                config_lines += ["port 0", f"unixsocket {self.socket_path}", "unixsocketperm 700"]
-            config_file = self.data_dir / "redis.conf"
-            config_file.write_text("\n".join(config_lines) + "\n")
-            binary = redis_server_binary()
-            self._process = subprocess.Popen(
-                [binary, str(config_file)],
-                stdin=subprocess.DEVNULL,
-                stdout=subprocess.DEVNULL,
-                stderr=subprocess.PIPE,
-                # the death signal follows the forking *thread*: only tie it to the main one
-                preexec_fn=(
-                    _stop_with_parent
-                    if threading.current_thread() is threading.main_thread()
-                    else None
-                ),
-            )
-            if not self._atexit_registered:
-                atexit.register(self.stop)
-                self._atexit_registered = True
+            self._take_folder()
+            try:
+                self._launch()
+            except BaseException:
+                self._release_folder()
+                raise
         self._wait_ready(timeout)
         log.info(
             "embedded Redis started (pid %s) at %s, data in %s", self.pid, self.url, self.data_dir
         )
         return self
+
+    def _take_folder(self) -> None:
+        """Lock the data folder for this owner, then stop any server left working in it."""
+        if self._lock_handle is None:
+            self._lock_handle = self._lock_folder()
+        for pid in servers_of_folder(self.data_dir):
+            log.warning(
+                "stopping redis-server pid %d left running in %s by an earlier owner",
+                pid,
+                self.data_dir,
+            )
+            stop_process(pid)
+
+    def _lock_folder(self) -> Any:
+        handle = open(self.data_dir / LOCK_FILE, "a+")  # noqa: SIM115 - held while running
+        try:
+            fcntl.flock(handle.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except OSError as exc:
+            handle.seek(0)
+            owner = handle.read().strip() or "unknown"
+            handle.close()
+            if exc.errno not in (errno.EAGAIN, errno.EACCES):
+                raise
+            raise StateError(
+                f"data folder {self.data_dir} is in use by another running mixroute "
+                f"(pid {owner}); stop it or choose another folder"
+            ) from None
+        handle.seek(0)
+        handle.truncate()
+        handle.write(f"{os.getpid()}\n")
+        handle.flush()
+        return handle
+
+    def _release_folder(self) -> None:
+        if self._lock_handle is not None:
+            self._lock_handle.close()  # closing the only descriptor releases the flock
+            self._lock_handle = None
+
+    def _launch(self) -> None:
+        """Write redis.conf and fork the server from the launcher thread."""
+        config_lines = [
+            f"dir {self.data_dir}",
+            "dbfilename dump.rdb",
+            f"appendonly {'yes' if self.appendonly else 'no'}",
+            "appendfilename appendonly.aof",
+            f"appendfsync {self.appendfsync}",
+            f"logfile {self.data_dir / 'redis.log'}",
+            "daemonize no",
+            f"pidfile {self.data_dir / PID_FILE}",
+            # with the AOF on Redis loads only the AOF; without it the RDB is all there is
+            *(['save ""'] if self.appendonly else ["save 900 1", "save 60 1000"]),
+            "protected-mode yes",
+            "databases 16",
+        ]
+        if self.requested_port is not None:
+            self.port = self.requested_port or _free_port()
+            config_lines += ["bind 127.0.0.1", f"port {self.port}"]
+            self.socket_path = None
+        else:
+            self.port = None
+            self.socket_path = self._pick_socket_path()
+            config_lines += ["port 0", f"unixsocket {self.socket_path}", "unixsocketperm 700"]
+        config_file = self.data_dir / "redis.conf"
+        config_file.write_text("\n".join(config_lines) + "\n")
+        binary = redis_server_binary()
+        stop_with_parent = _parent_death_hook()
+        self._process = _launcher.run(
+            lambda: subprocess.Popen(
+                [binary, str(config_file)],
+                stdin=subprocess.DEVNULL,
+                stdout=subprocess.DEVNULL,
+                stderr=subprocess.PIPE,
+                preexec_fn=stop_with_parent,
+            )
+        )
+        if not self._atexit_registered:
+            atexit.register(self.stop)
+            self._atexit_registered = True
 
     def _pick_socket_path(self) -> Path:
         candidate = self.data_dir / "redis.sock"
@@ -197,6 +262,7 @@ class EmbeddedRedis:
                 if process is not None and process.stderr is not None:
                     stderr = process.stderr.read() or b""
                 self._process = None
+                self._release_folder()
                 raise StateError(
                     "the embedded redis-server exited at start; see "
                     f"{self.data_dir / 'redis.log'}: {stderr.decode(errors='replace')[-500:]}"
@@ -247,6 +313,7 @@ class EmbeddedRedis:
             if self._socket_dir is not None:
                 shutil.rmtree(self._socket_dir, ignore_errors=True)
                 self._socket_dir = None
+            self._release_folder()
             log.info("embedded Redis stopped (data in %s)", self.data_dir)
 
     def kill(self) -> None:
@@ -258,6 +325,7 @@ class EmbeddedRedis:
                 if self._process.stderr is not None:
                     self._process.stderr.close()
                 self._process = None
+            self._release_folder()
 
     def client(self, **kwargs: object) -> redis.Redis:
         """A new client connected to this server."""
@@ -279,20 +347,134 @@ class EmbeddedRedis:
         return f"EmbeddedRedis({str(self.data_dir)!r}, {where})"
 
 
-def _stop_with_parent() -> None:
-    """In the child: ask Linux to send SIGTERM when the parent dies (even by SIGKILL).
+class _Launcher:
+    """One daemon thread, alive as long as the process, that forks the servers.
 
-    redis-server shuts down cleanly on SIGTERM (it saves), so a crashed mixroute never leaves
-    an orphan server holding its data folder. Elsewhere this is a no-op.
+    Linux sends the parent-death signal when the *thread* that forked the child ends, not the
+    process; forking from this thread (whichever thread calls :meth:`EmbeddedRedis.start`)
+    ties the signal to the process's own end.
+    """
+
+    def __init__(self) -> None:
+        self._jobs: queue.SimpleQueue[tuple[Callable[[], Any], queue.SimpleQueue[Any]]] = (
+            queue.SimpleQueue()
+        )
+        self._thread: threading.Thread | None = None
+        self._lock = threading.Lock()
+
+    def run(self, job: Callable[[], T]) -> T:
+        """Run ``job`` on the launcher thread and return its result (or raise its error)."""
+        with self._lock:
+            if self._thread is None or not self._thread.is_alive():
+                self._thread = threading.Thread(
+                    target=self._serve, name="mixroute-redis-launcher", daemon=True
+                )
+                self._thread.start()
+        answer: queue.SimpleQueue[Any] = queue.SimpleQueue()
+        self._jobs.put((job, answer))
+        ok, value = answer.get()
+        if not ok:
+            raise value
+        return value  # type: ignore[no-any-return]
+
+    def _serve(self) -> None:
+        while True:
+            job, answer = self._jobs.get()
+            try:
+                answer.put((True, job()))
+            except BaseException as exc:  # handed to the caller
+                answer.put((False, exc))
+
+
+T = TypeVar("T")
+_launcher = _Launcher()
+
+
+def _parent_death_hook() -> Callable[[], None] | None:
+    """A ``preexec_fn`` asking Linux to SIGTERM the child when this process dies, or None.
+
+    ``prctl`` is looked up here, in the parent: the child between fork and exec must not
+    import or load libraries (another thread may hold the import lock). redis-server stops on
+    SIGTERM (it fsyncs the AOF), so a mixroute ended by any signal never leaves it running.
     """
     try:
         import ctypes
 
-        libc = ctypes.CDLL("libc.so.6", use_errno=True)
-        pr_set_pdeathsig = 1
-        libc.prctl(pr_set_pdeathsig, signal.SIGTERM)
-    except (OSError, AttributeError):
-        pass
+        prctl = ctypes.CDLL(None, use_errno=True).prctl
+    except (OSError, AttributeError):  # not Linux: the stale-server check at start remains
+        return None
+    parent = os.getpid()
+    pr_set_pdeathsig, death_signal = 1, int(signal.SIGTERM)
+
+    def stop_with_parent() -> None:
+        prctl(pr_set_pdeathsig, death_signal)
+        if os.getppid() != parent:  # the parent died before the signal was armed
+            os._exit(1)
+
+    return stop_with_parent
+
+
+def _process_state(pid: int) -> str | None:
+    """The one-letter state of ``pid`` from /proc, or None when there is no such process."""
+    try:
+        stat = Path(f"/proc/{pid}/stat").read_text()
+    except OSError:
+        return None
+    return stat[stat.rindex(")") + 2 :].split(" ", 1)[0]
+
+
+def _alive(pid: int) -> bool:
+    # a zombie has exited; nobody may reap an orphan (some container inits do not)
+    return _process_state(pid) not in (None, "Z", "X")
+
+
+def is_server_of_folder(pid: int, data_dir: str | Path) -> bool:
+    """True when ``pid`` is a live redis-server working in ``data_dir`` (Linux /proc).
+
+    redis-server changes its working directory to its ``dir``, so the directory says which
+    folder a server writes; the executable's name says it is a redis-server (never kill a
+    process that merely reused the pid).
+    """
+    if not _alive(pid):
+        return False
+    try:
+        cwd = os.readlink(f"/proc/{pid}/cwd")
+        exe = os.readlink(f"/proc/{pid}/exe")
+    except OSError:
+        return False
+    return Path(exe).name == "redis-server" and cwd == str(Path(data_dir).resolve())
+
+
+def servers_of_folder(data_dir: str | Path) -> list[int]:
+    """Process ids of the redis-servers working in ``data_dir``.
+
+    The folder's ``redis.pid`` first, then every process of this user (servers started by an
+    older mixroute wrote no pid file); each is checked with :func:`is_server_of_folder`.
+    """
+    folder = Path(data_dir).resolve()
+    candidates: list[int] = []
+    with contextlib.suppress(OSError, ValueError):
+        candidates.append(int((folder / PID_FILE).read_text().split()[0]))
+    with contextlib.suppress(OSError):
+        candidates += [int(entry) for entry in os.listdir("/proc") if entry.isdigit()]
+    found: list[int] = []
+    for pid in candidates:
+        if pid != os.getpid() and pid not in found and is_server_of_folder(pid, folder):
+            found.append(pid)
+    return found
+
+
+def stop_process(pid: int, timeout: float = 10.0) -> None:
+    """SIGTERM ``pid``, then SIGKILL it if it is still alive after ``timeout`` seconds."""
+    for sig, wait in ((signal.SIGTERM, timeout), (signal.SIGKILL, 5.0)):
+        with contextlib.suppress(ProcessLookupError):
+            os.kill(pid, sig)
+        deadline = time.monotonic() + wait
+        while _alive(pid) and time.monotonic() < deadline:
+            time.sleep(0.02)
+        if not _alive(pid):
+            return
+    raise StateError(f"redis-server pid {pid} does not stop, even on SIGKILL")
 
 
 def _free_port() -> int:

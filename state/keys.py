@@ -183,3 +183,18 @@ class ModelKeys:
         matches ``{inbox2}``.
         """
         return f"{self.base}*"
+
+
+# PSUBSCRIBE pattern matching every model's ``notify`` channel (names cannot contain "}").
+NOTIFY_PATTERN = f"{PREFIX}:{{*}}:notify"
+
+
+def model_of_notify_channel(channel: str | bytes) -> str | None:
+    """The model whose ``notify`` channel ``channel`` is, or None for any other channel."""
+    if isinstance(channel, bytes):
+        channel = channel.decode(errors="replace")
+    head, tail = f"{PREFIX}:{{", "}:notify"
+    if not (channel.startswith(head) and channel.endswith(tail)):
+        return None
+    name = channel[len(head) : -len(tail)]
+    return name if _MODEL_NAME.fullmatch(name) else None
