@@ -278,3 +278,19 @@ def test_route_with_learn_says_per_document_what_was_queued(
         answer = warm.post(route, json=bad)
         assert answer.status_code == 422 and answer.json()["field"] in ("learn", "top")
     assert redis_client.xlen(stream) == length + 1
+
+
+def test_an_unexpected_failure_is_answered_in_the_same_shape(redis_url: str) -> None:
+    from fastapi import APIRouter
+
+    broken = APIRouter()
+
+    @broken.get("/broken")
+    def fail() -> None:
+        raise RuntimeError("internal detail that must not be sent")
+
+    app = create_app(Settings(redis_url=redis_url), extra_routers=[broken])
+    with TestClient(app, raise_server_exceptions=False) as client:
+        answer = client.get("/broken")
+    assert answer.status_code == 500
+    assert set(answer.json()) == {"detail", "field"} and "internal detail" not in answer.text
