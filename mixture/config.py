@@ -51,7 +51,9 @@ class MixtureConfig:
     vocabulary_limit : int
         Most active words kept; past it the rarest words (by expected count) are retired.
     word_pseudocount : float
-        Additive smoothing of the word distributions (>= 0).
+        Additive smoothing of the word distributions (> 0: with 0, a group that has never
+        seen a word gives it probability 0, so an emptied group has no distribution at all
+        and a document of words each unseen in some group has no finite posterior).
     weight_pseudocount : float
         Symmetric Dirichlet pseudo-count on the mixture weights (>= 0).
     step_exponent : float
@@ -91,7 +93,7 @@ class MixtureConfig:
     def __post_init__(self) -> None:
         _check_int(self, "n_groups", 1, 10_000)
         _check_int(self, "vocabulary_limit", 1, 50_000_000)
-        _check_float(self, "word_pseudocount", 0.0, 1e6)
+        _check_float(self, "word_pseudocount", 0.0, 1e6, low_open=True)
         _check_float(self, "weight_pseudocount", 0.0, 1e9)
         if not (
             isinstance(self.step_exponent, int | float)
@@ -174,12 +176,18 @@ def _check_int(cfg: MixtureConfig, name: str, low: int, high: int) -> None:
         raise ConfigError(f"{name} must be an integer in [{low}, {high}]; got {value!r}")
 
 
-def _check_float(cfg: MixtureConfig, name: str, low: float, high: float) -> None:
+def _check_float(
+    cfg: MixtureConfig, name: str, low: float, high: float, *, low_open: bool = False
+) -> None:
     value = getattr(cfg, name)
     if (
         isinstance(value, bool)
         or not isinstance(value, int | float)
         or not math.isfinite(value)
-        or not low <= value <= high
+        or not (value > low if low_open else value >= low)
+        or value > high
     ):
-        raise ConfigError(f"{name} must be a finite number in [{low}, {high}]; got {value!r}")
+        bracket = "(" if low_open else "["
+        raise ConfigError(
+            f"{name} must be a finite number in {bracket}{low}, {high}]; got {value!r}"
+        )

@@ -12,17 +12,18 @@ from __future__ import annotations
 import contextlib
 import logging
 import re
-from collections.abc import AsyncIterator, Awaitable, Callable, Iterable, Sequence
+from collections.abc import AsyncIterator, Awaitable, Callable, Iterable, Mapping, Sequence
 from typing import Any, Protocol
 
 import redis
 from fastapi import APIRouter, FastAPI, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
+from starlette.exceptions import HTTPException as StarletteHTTPException
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from mixture.errors import ConfigError, InputError
-from service.errors import InvalidFieldError, PayloadTooLargeError
+from service.errors import InvalidFieldError, PayloadTooLargeError, clip, clip_echoes
 from service.runtime import (
     GroupNotFoundError,
     ModelNotReadyError,
@@ -128,23 +129,45 @@ def _field_of(message: str) -> str | None:
     return match.group(1) if match else None
 
 
-def _json_problem(status: int, detail: str, field: str | None = None) -> JSONResponse:
-    return JSONResponse(status_code=status, content={"detail": detail, "field": field})
+def _json_problem(
+    status: int,
+    detail: str,
+    field: str | None = None,
+    headers: Mapping[str, str] | None = None,
+) -> JSONResponse:
+    """Every error answer: ``{"detail", "field"}``, neither repeating much of the request."""
+    content = {
+        "detail": clip_echoes(detail),
+        "field": None if field is None else clip(field, FIELD_LIMIT),
+    }
+    return JSONResponse(status_code=status, content=content, headers=headers)
+
+
+# A field path names at most this many characters (it may hold a client's unknown key).
+FIELD_LIMIT = 60
+# Validation answers list this many errors; the rest are counted (a body of 1,000 bad
+# documents would otherwise be described, and its keys repeated, 1,000 times).
+ERRORS_LISTED = 3
 
 
 def _validation_message(exc: RequestValidationError) -> tuple[str, str | None]:
     parts: list[str] = []
     first_field: str | None = None
-    for error in exc.errors():
+    errors = exc.errors()
+    for error in errors[:ERRORS_LISTED]:
         loc = [str(p) for p in error.get("loc", ()) if p not in ("body",)]
-        where = ".".join(loc)
+        where = clip(".".join(loc), FIELD_LIMIT)
         if error.get("type") == "json_invalid":
             reason = (error.get("ctx") or {}).get("error", "invalid JSON")
-            return f"request body is not valid JSON: {reason}", None
+            return f"request body is not valid JSON: {clip(str(reason))}", None
+        if error.get("type") == "missing" and not loc:
+            return "request body is required", None
         if first_field is None and where:
             first_field = where
         message = str(error.get("msg", "invalid")).removeprefix("Value error, ")
         parts.append(f"{where}: {message}" if where else message)
+    if len(errors) > ERRORS_LISTED:
+        parts.append(f"and {len(errors) - ERRORS_LISTED} more")
     return "; ".join(parts) or "invalid request", first_field
 
 
@@ -168,6 +191,15 @@ def install_error_handlers(app: FastAPI) -> None:
     async def invalid_field(_: Request, exc: InvalidFieldError) -> JSONResponse:
         return _json_problem(422, str(exc), exc.field)
 
+    async def http_error(_: Request, exc: StarletteHTTPException) -> JSONResponse:
+        # 404 for an unknown path, 405, body-reading errors: the same shape as ours
+        field = getattr(exc, "field", None)
+        return _json_problem(exc.status_code, str(exc.detail), field, exc.headers)
+
+    async def internal(_: Request, exc: Exception) -> JSONResponse:
+        # logged with its traceback by the server (the exception propagates after this)
+        return _json_problem(500, "internal error; the server log has the details")
+
     async def unavailable(_: Request, exc: RedisUnavailableError) -> JSONResponse:
         response = _json_problem(503, str(exc))
         response.headers[DEGRADED_HEADER] = "redis-unreachable"
@@ -180,6 +212,8 @@ def install_error_handlers(app: FastAPI) -> None:
         return response
 
     app.add_exception_handler(RequestValidationError, validation)  # type: ignore[arg-type]
+    app.add_exception_handler(StarletteHTTPException, http_error)  # type: ignore[arg-type]
+    app.add_exception_handler(Exception, internal)
     app.add_exception_handler(PayloadTooLargeError, too_large)  # type: ignore[arg-type]
     app.add_exception_handler(RedisUnavailableError, unavailable)  # type: ignore[arg-type]
     app.add_exception_handler(InvalidFieldError, invalid_field)  # type: ignore[arg-type]
@@ -314,4 +348,4 @@ def install_operations(app: FastAPI, settings: Settings) -> None:
     metrics.install(app, settings)
     dashboard.install(app, settings)
     auth.install(app, settings)
-    app.add_middleware(logs.RequestContext)
+    app.add_middleware(logs.RequestContext, secrets=auth.secrets_of(settings))

@@ -5,15 +5,19 @@ Every log record becomes one line of JSON on standard error with ``time`` (UTC, 
 ``worker``. Those four come from the record's ``extra`` (``log.info("...", extra={"model": m})``)
 or, inside an HTTP request, from the request context that :class:`RequestContext` sets.
 
-The request id: a client may send ``X-Request-ID`` (at most 128 characters of letters, digits
-and ``._:-``); otherwise one is generated. It is echoed in the response header, written on the
-request's access line, and :func:`request_metadata` gives the ``metadata`` objects that carry it
-into the stream entries a request queues (``{"request_id": ...}``), so a document can be traced
-from the intake system's call to the worker that learned it.
+The request id: a client may send ``X-Request-ID`` (at most 64 characters of letters, digits
+and ``._:-``, and no configured API key inside it); otherwise one is generated. It is echoed
+in the response header, written on the request's access line, and :func:`request_metadata`
+gives the ``metadata`` objects that carry it into the stream entries a request queues
+(``{"request_id": ...}``), so a document can be traced from the intake system's call to the
+worker that learned it.
 
-Keys never reach a log line: the access line holds method, path (without the query string),
-status, duration and ids only, and :class:`SecretRedactor` replaces any configured API key that
-somehow appears in a message (common practice, no source: defence in depth).
+Keys never reach a log line, in any field: the access line holds method, path (without the
+query string), status, duration and ids only; :class:`RequestContext` replaces a configured key
+in the path (and so in the model name taken from it) and never adopts a request id holding one;
+and :class:`SecretRedactor` replaces any configured key that still appears in the message, the
+context fields, any ``extra`` field, or an exception's text (defence in depth: a key pasted
+into a URL or a header is the client's mistake, not ours to spread).
 """
 
 from __future__ import annotations
@@ -32,7 +36,10 @@ from typing import IO, Any
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 REQUEST_ID_HEADER = "X-Request-ID"
-_REQUEST_ID_OK = re.compile(r"^[A-Za-z0-9._:-]{1,128}$")
+# short and of a safe character set: it is echoed in a header and stored with each queued entry
+REQUEST_ID_MAX_LENGTH = 64
+_REQUEST_ID_OK = re.compile(rf"^[A-Za-z0-9._:-]{{1,{REQUEST_ID_MAX_LENGTH}}}$")
+REDACTED = "[redacted]"
 _MODEL_IN_PATH = re.compile(r"^/models/([A-Za-z0-9][A-Za-z0-9_.-]{0,63})(?:/|$)")
 
 request_id_var: contextvars.ContextVar[str | None] = contextvars.ContextVar(
@@ -77,11 +84,49 @@ def request_metadata(n: int) -> list[dict[str, Any]] | None:
     return [{"request_id": request_id} for _ in range(n)]
 
 
-def valid_request_id(value: str | None) -> str:
-    """The client's request id when acceptable, else a new random one (32 hex digits)."""
-    if value and _REQUEST_ID_OK.match(value):
+def valid_request_id(value: str | None, secrets: Iterable[str] = ()) -> str:
+    """The client's request id when acceptable, else a new random one (32 hex digits).
+
+    Parameters
+    ----------
+    value : str or None
+        The ``X-Request-ID`` header as sent.
+    secrets : iterable of str
+        The configured API keys: an id holding one is never adopted (it would be logged,
+        echoed and stored with every queued document).
+    """
+    if value and _REQUEST_ID_OK.match(value) and not any(s and s in value for s in secrets):
         return value
     return uuid.uuid4().hex
+
+
+def redact(text: str, secrets: Iterable[str]) -> str:
+    """``text`` with every one of ``secrets`` replaced by ``[redacted]``."""
+    for secret in secrets:
+        if secret and secret in text:
+            text = text.replace(secret, REDACTED)
+    return text
+
+
+def context_value(record: logging.LogRecord, name: str) -> Any:
+    """A context field of a record: its own ``extra`` value, else the request context (and
+    for ``model`` the worker thread's name)."""
+    value = getattr(record, name, None)
+    if value is not None:
+        return value
+    if name == "request_id":
+        return request_id_var.get()
+    if name == "model":
+        model = model_var.get()
+        if (
+            model is None
+            and record.threadName
+            and record.threadName.startswith(WORKER_THREAD_PREFIX)
+        ):
+            # service.runner names each worker thread after its model
+            model = record.threadName.removeprefix(WORKER_THREAD_PREFIX)
+        return model
+    return None
 
 
 class JsonFormatter(logging.Formatter):
@@ -94,20 +139,16 @@ class JsonFormatter(logging.Formatter):
             "logger": record.name,
             "message": record.getMessage(),
         }
-        context = {"request_id": request_id_var.get(), "model": model_var.get()}
-        if context["model"] is None and record.threadName.startswith(WORKER_THREAD_PREFIX):
-            # service.runner names each worker thread after its model
-            context["model"] = record.threadName.removeprefix(WORKER_THREAD_PREFIX)
         for name in CONTEXT_FIELDS:
-            value = getattr(record, name, None)
-            if value is None:
-                value = context.get(name)
+            value = context_value(record, name)
             if value is not None:
                 data[name] = value
         for name, value in vars(record).items():
             if name not in _STANDARD_ATTRS and name not in data and not name.startswith("_"):
                 data[name] = _jsonable(value)
-        if record.exc_info:
+        if record.exc_text:  # formatted (and redacted) by SecretRedactor
+            data["exception"] = record.exc_text
+        elif record.exc_info:
             data["exception"] = self.formatException(record.exc_info)
         if record.stack_info:
             data["stack"] = self.formatStack(record.stack_info)
@@ -125,7 +166,12 @@ def _jsonable(value: Any) -> Any:
 
 
 class SecretRedactor(logging.Filter):
-    """Replace every configured secret in a record's message and arguments by ``[redacted]``.
+    """Replace every configured secret by ``[redacted]`` in every field a record prints.
+
+    That is the message (with its arguments), the context fields (``request_id``, ``model``,
+    ... including those the formatter would take from the request context: they are set on
+    the record here, cleaned), every ``extra`` field (strings inside lists and dicts too), and
+    the text of an exception or stack.
 
     Parameters
     ----------
@@ -137,11 +183,16 @@ class SecretRedactor(logging.Filter):
         super().__init__()
         self.secrets = sorted({s for s in secrets if s}, key=len, reverse=True)
 
-    def _clean(self, text: str) -> str:
-        for secret in self.secrets:
-            if secret in text:
-                text = text.replace(secret, "[redacted]")
-        return text
+    def _clean(self, value: Any) -> Any:
+        if isinstance(value, str):
+            return redact(value, self.secrets)
+        if isinstance(value, Mapping):
+            return {self._clean(str(k)): self._clean(v) for k, v in value.items()}
+        if isinstance(value, list | tuple):
+            return [self._clean(v) for v in value]
+        if value is None or isinstance(value, int | float | bool):
+            return value
+        return redact(str(value), self.secrets)
 
     def filter(self, record: logging.LogRecord) -> bool:
         if not self.secrets:
@@ -150,6 +201,19 @@ class SecretRedactor(logging.Filter):
         cleaned = self._clean(message)
         if cleaned != message:
             record.msg, record.args = cleaned, None
+        for name in CONTEXT_FIELDS:
+            value = context_value(record, name)
+            if value is not None:
+                setattr(record, name, value)
+        for name, value in list(vars(record).items()):
+            if name not in _STANDARD_ATTRS and not name.startswith("_"):
+                setattr(record, name, self._clean(value))
+        if record.exc_info and not record.exc_text:
+            record.exc_text = logging.Formatter().formatException(record.exc_info)
+        if record.exc_text:
+            record.exc_text = self._clean(record.exc_text)
+        if record.stack_info:
+            record.stack_info = self._clean(record.stack_info)
         return True
 
 
@@ -226,10 +290,14 @@ class RequestContext:
     Parameters
     ----------
     app : ASGI app
+    secrets : iterable of str
+        The configured API keys: never adopted as a request id, replaced in the logged path
+        and model name.
     """
 
-    def __init__(self, app: ASGIApp) -> None:
+    def __init__(self, app: ASGIApp, secrets: Iterable[str] = ()) -> None:
         self.app = app
+        self.secrets = sorted({s for s in secrets if s}, key=len, reverse=True)
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
         if scope["type"] != "http":
@@ -240,8 +308,8 @@ class RequestContext:
             if name == b"x-request-id":
                 given = value.decode("latin-1")
                 break
-        request_id = valid_request_id(given)
-        path: str = scope.get("path", "")
+        request_id = valid_request_id(given, self.secrets)
+        path: str = redact(scope.get("path", ""), self.secrets)
         match = _MODEL_IN_PATH.match(path)
         model = match.group(1) if match else None
         id_token = request_id_var.set(request_id)

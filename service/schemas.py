@@ -1,15 +1,121 @@
 """Request and response bodies of the HTTP API (pydantic), shared by every router.
 
-Range checks of model configuration are done once, by ``mixture.config.MixtureConfig`` and
-``state.options.ModelOptions``; the schemas here only fix the types, so the OpenAPI document
-tells clients the shape while the model core stays the single source of the limits.
+Request bodies are strict: a JSON ``true`` is not an integer, ``"8"`` is not a number, ``"no"``
+is not a boolean, and a field the schema does not name is refused (422 naming the field).
+
+Model configuration has one source of truth: the dataclasses ``mixture.config.MixtureConfig``
+(with its nested ``TokenizerConfig``) and ``state.options.ModelOptions``. Their range checks
+stay in their ``__post_init__`` (pure Python, so ``mixture/`` needs no validation library and
+raises ``ConfigError`` naming the field), and the request schemas :data:`ConfigIn`,
+:data:`TokenizerIn` and :data:`OptionsIn` are *generated* from their fields by
+:func:`schema_of_dataclass`: the same names, types, defaults and descriptions (from the numpy
+docstrings), so a field added to a dataclass is in the API and its OpenAPI document with no
+hand copy to keep in step. The schemas fix the types; the dataclasses own the limits.
 """
 
 from __future__ import annotations
 
-from typing import Any, Literal
+import dataclasses
+import inspect
+import re
+import typing
+from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, model_validator
+from pydantic import BaseModel, ConfigDict, Field, create_model, model_validator
+
+from mixture.config import MixtureConfig
+from state.options import ModelOptions
+
+STRICT_INPUT = ConfigDict(extra="forbid", strict=True)
+
+
+class StrictIn(BaseModel):
+    """Base of request bodies: no type coercion, no unknown fields."""
+
+    model_config = STRICT_INPUT
+
+
+_PARAMETER = re.compile(r"^    ([a-z_][a-z0-9_, ]*?)(?: : .*)?$")
+
+
+def parameter_descriptions(cls: type) -> dict[str, str]:
+    """Descriptions of a class's fields from its numpy-style "Parameters" docstring section.
+
+    An entry naming several fields (``a, b, c``) gives its text to each of them.
+    """
+    doc = inspect.getdoc(cls) or ""
+    found: dict[str, list[str]] = {}
+    current: list[str] | None = None
+    in_parameters = False
+    for line in ("    " + row if row else row for row in doc.splitlines()):
+        stripped = line.strip()
+        if stripped == "Parameters":
+            in_parameters = True
+            continue
+        if not in_parameters or set(stripped) <= {"-"}:
+            continue
+        if line.startswith("        "):
+            if current is not None:
+                current.append(stripped)
+            continue
+        match = _PARAMETER.match(line)
+        if match is None:
+            break  # the next section
+        current = []
+        for name in match.group(1).split(","):
+            found[name.strip()] = current
+    return {name: " ".join(text) for name, text in found.items() if text}
+
+
+def schema_of_dataclass(cls: type, name: str | None = None) -> type[StrictIn]:
+    """A strict request model with the fields of dataclass ``cls``.
+
+    Each field keeps its name, type, default and docstring description; a nested dataclass
+    becomes a nested model of its own. Validation fixes only the types: building ``cls`` from
+    ``model_dump(exclude_unset=True)`` applies the dataclass's own range checks and defaults.
+
+    Parameters
+    ----------
+    cls : dataclass type
+    name : str, optional
+        Name of the model and of its OpenAPI component; default the class name with
+        ``Config`` replaced by ``In`` (``TokenizerConfig`` -> ``TokenizerIn``).
+
+    Returns
+    -------
+    type of StrictIn
+        The same class for the same ``cls`` on every call.
+    """
+    if cls in _GENERATED:
+        return _GENERATED[cls]
+    hints = typing.get_type_hints(cls)
+    descriptions = parameter_descriptions(cls)
+    definitions: dict[str, Any] = {}
+    for item in dataclasses.fields(cls):
+        annotation = hints[item.name]
+        description = descriptions.get(item.name)
+        if dataclasses.is_dataclass(annotation):
+            nested = schema_of_dataclass(annotation)  # type: ignore[arg-type]
+            definitions[item.name] = (
+                nested,
+                Field(default_factory=nested, description=description),
+            )
+            continue
+        if item.default is not dataclasses.MISSING:
+            default = item.default
+        else:
+            default = item.default_factory()  # type: ignore[misc]
+        definitions[item.name] = (annotation, Field(default=default, description=description))
+    model_name = name or cls.__name__.removesuffix("Config") + "In"
+    model = create_model(model_name, __base__=StrictIn, **definitions)
+    model.__doc__ = (
+        f"The fields of ``{cls.__module__}.{cls.__qualname__}``; omitted ones take its defaults."
+    )
+    _GENERATED[cls] = model
+    return model
+
+
+_GENERATED: dict[type, type[StrictIn]] = {}
 
 
 class Problem(BaseModel):
@@ -22,19 +128,15 @@ class Problem(BaseModel):
 # -- documents ------------------------------------------------------------------------------
 
 
-class DocumentIn(BaseModel):
+class DocumentIn(StrictIn):
     """One document. ``id`` is optional; a given id makes queueing idempotent."""
-
-    model_config = ConfigDict(extra="forbid")
 
     id: str | None = Field(default=None, min_length=1, max_length=200)
     text: str = Field(description="The message text (UTF-8; not empty).")
 
 
-class DocumentsIn(BaseModel):
+class DocumentsIn(StrictIn):
     """Documents to queue for learning."""
-
-    model_config = ConfigDict(extra="forbid")
 
     documents: list[DocumentIn]
 
@@ -51,10 +153,8 @@ class QueuedOut(BaseModel):
 # -- routing --------------------------------------------------------------------------------
 
 
-class RouteIn(BaseModel):
+class RouteIn(StrictIn):
     """Documents to route: either ``text`` (one document) or ``documents`` (many)."""
-
-    model_config = ConfigDict(extra="forbid")
 
     text: str | None = Field(default=None, description="A single document's text.")
     id: str | None = Field(default=None, min_length=1, max_length=200)
@@ -103,6 +203,11 @@ class RouteResult(BaseModel):
     review_reasons: list[
         Literal["low_posterior", "no_known_words", "mostly_unknown_words", "atypical"]
     ]
+    queued: bool = Field(
+        default=False,
+        description="True when this document was added to the stream for learning (false for "
+        "an id already queued within the model's idempotency window).",
+    )
     stream_id: str | None = Field(
         default=None, description="Stream id when the document was queued for learning."
     )
@@ -113,7 +218,10 @@ class RouteOut(BaseModel):
     version: int = Field(description="Model version whose parameters answered.")
     degraded: bool = Field(description="True when Redis is unreachable: answered from memory.")
     notice: str | None = Field(default=None, description="Why the answer is degraded, if it is.")
-    queued: bool = Field(description="True when the documents were queued for learning.")
+    queued: bool = Field(
+        description="True when at least one document was added to the stream (see each "
+        "result's queued: a repeated id is not queued again)."
+    )
     review_threshold: float
     results: list[RouteResult]
 
@@ -121,51 +229,21 @@ class RouteOut(BaseModel):
 # -- models ---------------------------------------------------------------------------------
 
 
-class TokenizerIn(BaseModel):
-    model_config = ConfigDict(extra="forbid")
-
-    min_length: int | None = None
-    max_length: int | None = None
-    stop_words: str | None = None
-    fold_urls: bool | None = None
-    fold_emails: bool | None = None
-    fold_numbers: bool | None = None
+TokenizerIn = schema_of_dataclass(typing.get_type_hints(MixtureConfig)["tokenizer"])
+ConfigIn = schema_of_dataclass(MixtureConfig, "ConfigIn")
+OptionsIn = schema_of_dataclass(ModelOptions, "OptionsIn")
 
 
-class ConfigIn(BaseModel):
-    """MixtureConfig fields; omitted ones take the model core's defaults."""
-
-    model_config = ConfigDict(extra="forbid")
-
-    n_groups: int | None = None
-    vocabulary_limit: int | None = None
-    word_pseudocount: float | None = None
-    weight_pseudocount: float | None = None
-    step_exponent: float | None = None
-    batch_size: int | None = None
-    half_life_documents: float | None = None
-    warmup_documents: int | None = None
-    n_restarts: int | None = None
-    max_iter: int | None = None
-    tolerance: float | None = None
-    tokenizer: TokenizerIn | None = None
-
-    def to_config_dict(self) -> dict[str, Any]:
-        data = self.model_dump(exclude_none=True)
-        if "tokenizer" in data:
-            data["tokenizer"] = {k: v for k, v in data["tokenizer"].items() if v is not None}
-        return data
-
-
-class ModelIn(BaseModel):
+class ModelIn(StrictIn):
     """A model to create."""
 
-    model_config = ConfigDict(extra="forbid")
-
     name: str = Field(description="1-64 letters, digits, '_', '.', '-'; starts alphanumeric.")
-    config: ConfigIn = Field(default_factory=ConfigIn)
-    options: dict[str, Any] = Field(
-        default_factory=dict, description="state.options.ModelOptions fields (checkpointing...)."
+    config: ConfigIn = Field(  # type: ignore[valid-type]
+        default_factory=ConfigIn, description="mixture.config.MixtureConfig fields."
+    )
+    options: OptionsIn = Field(  # type: ignore[valid-type]
+        default_factory=OptionsIn,
+        description="state.options.ModelOptions fields (checkpointing, stream, review...).",
     )
 
 
@@ -216,10 +294,8 @@ class GroupList(BaseModel):
     groups: list[GroupOut]
 
 
-class LabelIn(BaseModel):
+class LabelIn(StrictIn):
     """Operator's name for a group and where its messages go."""
-
-    model_config = ConfigDict(extra="forbid")
 
     label: str | None = Field(default=None, min_length=1, max_length=200)
     destination: str | None = Field(default=None, min_length=1, max_length=200)
@@ -228,9 +304,7 @@ class LabelIn(BaseModel):
 # -- snapshots ------------------------------------------------------------------------------
 
 
-class SnapshotIn(BaseModel):
-    model_config = ConfigDict(extra="forbid")
-
+class SnapshotIn(StrictIn):
     reason: str = Field(default="requested", min_length=1, max_length=500)
 
 
@@ -253,16 +327,17 @@ class SnapshotList(BaseModel):
     snapshots: list[SnapshotOut]
 
 
-class RestoreIn(BaseModel):
+class RestoreIn(StrictIn):
     """Rollback to a snapshot; with ``replay`` the stream after it is learned again."""
 
-    model_config = ConfigDict(extra="forbid")
-
-    replay: bool = False
-    skip_ids: list[tuple[str, str]] = Field(
+    replay: bool = Field(
+        description="Required: true learns the stream after the snapshot again (minus the "
+        "skipped ranges); false drops everything learned after the snapshot."
+    )
+    skip_ids: list[Annotated[list[str], Field(min_length=2, max_length=2)]] = Field(
         default_factory=list, description="Inclusive [first, last] stream-id ranges to skip."
     )
-    skip_received: list[tuple[float, float]] = Field(
+    skip_received: list[Annotated[list[float], Field(min_length=2, max_length=2)]] = Field(
         default_factory=list, description="Inclusive [from, to] receive-time ranges (unix s)."
     )
 

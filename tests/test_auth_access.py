@@ -188,7 +188,9 @@ def test_admin_key_may_snapshot_and_restore(live: Live) -> None:
     made = admin.post(f"/models/{live.model}/snapshots", json={"reason": "auth test"})
     assert made.status_code == 201, made.text
     version = admin.get(f"/models/{live.model}").json()["version"]
-    restored = admin.post(f"/models/{live.model}/snapshots/{live.snapshot}/restore", json={})
+    restored = admin.post(
+        f"/models/{live.model}/snapshots/{live.snapshot}/restore", json={"replay": False}
+    )
     assert restored.status_code == 200, restored.text
     assert restored.json()["version"] > version
     assert live.client.get("/auth", headers=READ).json() == {"keys_required": True, "role": "read"}

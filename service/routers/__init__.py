@@ -1,13 +1,24 @@
-"""One router per resource; shared dependencies and request checks live here."""
+"""One router per resource; shared dependencies, request checks and the body reader live here.
+
+Request bodies are read by :func:`loads_strict` (jiter, the standalone build of pydantic-core's
+own JSON parser): a JSON object naming a key twice is refused with a 422 naming the key (the
+standard json module and pydantic keep the last value silently, so ``{"learn": false,
+"learn": true}`` would mean whatever the last parser in a chain decides), and ``NaN`` or
+``Infinity``, which are not JSON, are refused too. Routers whose operations take a body use
+:class:`StrictJsonRoute` so FastAPI's own body reading goes through it.
+"""
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+import re
+from collections.abc import Callable, Coroutine, Sequence
 from typing import Annotated, Any
 
-from fastapi import Depends, Request
+import jiter
+from fastapi import Depends, HTTPException, Request, Response
+from fastapi.routing import APIRoute
 
-from service.errors import PayloadTooLargeError
+from service.errors import DuplicateKeyError, PayloadTooLargeError, clip
 from service.runtime import ServiceRuntime
 from service.schemas import DocumentIn, Problem
 from service.settings import Settings
@@ -19,6 +30,63 @@ COMMON_RESPONSES: dict[int | str, dict[str, Any]] = {
     422: {"model": Problem, "description": "Invalid input (names the field when one is)"},
     503: {"model": Problem, "description": "Redis unreachable; nothing was changed"},
 }
+
+
+class InvalidJsonError(HTTPException):
+    """The request body is not JSON (answered with 422)."""
+
+    field: str | None = None
+
+    def __init__(self, reason: str) -> None:
+        super().__init__(status_code=422, detail=f"request body is not valid JSON: {reason}")
+
+
+_DUPLICATE = re.compile(r'^Detected duplicate key "(.*)" at line \d+ column \d+$', re.DOTALL)
+
+
+def loads_strict(raw: bytes) -> Any:
+    """Parse a request body: JSON only, each key at most once per object.
+
+    Raises
+    ------
+    DuplicateKeyError
+        An object names a key twice (422, the key in ``field``).
+    InvalidJsonError
+        Not JSON, including ``NaN`` and ``Infinity`` (422).
+    """
+    try:
+        # keys only in the string cache: document texts are seldom repeated
+        return jiter.from_json(
+            raw, allow_inf_nan=False, catch_duplicate_keys=True, cache_mode="keys"
+        )
+    except ValueError as exc:
+        message = str(exc)
+        duplicate = _DUPLICATE.match(message)
+        if duplicate is not None:
+            raise DuplicateKeyError(duplicate.group(1)) from None
+        raise InvalidJsonError(clip(message)) from None
+
+
+class StrictJsonRequest(Request):
+    """A request whose ``json()`` is :func:`loads_strict`."""
+
+    async def json(self) -> Any:
+        if not hasattr(self, "_json"):
+            self._json = loads_strict(await self.body())
+        return self._json
+
+
+class StrictJsonRoute(APIRoute):
+    """An APIRoute that reads JSON bodies with :func:`loads_strict` (FastAPI's documented way
+    to customise the request of a route class)."""
+
+    def get_route_handler(self) -> Callable[[Request], Coroutine[Any, Any, Response]]:
+        handler = super().get_route_handler()
+
+        async def strict_handler(request: Request) -> Response:
+            return await handler(StrictJsonRequest(request.scope, request.receive))
+
+        return strict_handler
 
 
 def get_runtime(request: Request) -> ServiceRuntime:

@@ -7,10 +7,10 @@ from typing import Any
 from fastapi import APIRouter, Request, status
 
 from service.logs import request_metadata
-from service.routers import COMMON_RESPONSES, Runtime, check_documents
+from service.routers import COMMON_RESPONSES, Runtime, StrictJsonRoute, check_documents
 from service.schemas import DocumentsIn, Problem, QueuedOut
 
-router = APIRouter(tags=["documents"], responses=COMMON_RESPONSES)
+router = APIRouter(tags=["documents"], responses=COMMON_RESPONSES, route_class=StrictJsonRoute)
 
 
 @router.post(

@@ -7,11 +7,11 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Query
 
 from mixture.describe import describe_groups
-from service.routers import COMMON_RESPONSES, Runtime
+from service.routers import COMMON_RESPONSES, Runtime, StrictJsonRoute
 from service.runtime import LoadedModel
 from service.schemas import GroupList, GroupOut, LabelIn, Problem
 
-router = APIRouter(tags=["groups"], responses=COMMON_RESPONSES)
+router = APIRouter(tags=["groups"], responses=COMMON_RESPONSES, route_class=StrictJsonRoute)
 
 NOT_FOUND = {404: {"model": Problem, "description": "Unknown model or group"}}
 

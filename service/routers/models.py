@@ -8,14 +8,14 @@ from fastapi import APIRouter, Response, status
 
 from mixture.config import MixtureConfig
 from service.errors import InvalidFieldError
-from service.routers import COMMON_RESPONSES, Runtime
+from service.routers import COMMON_RESPONSES, Runtime, StrictJsonRoute
 from service.runtime import LoadedModel, RedisUnavailableError, ServiceRuntime
 from service.schemas import ModelIn, ModelList, ModelOut, Problem
 from state.errors import OptionsError
 from state.keys import validate_model_name
 from state.options import ModelOptions
 
-router = APIRouter(tags=["models"], responses=COMMON_RESPONSES)
+router = APIRouter(tags=["models"], responses=COMMON_RESPONSES, route_class=StrictJsonRoute)
 
 NOT_FOUND = {404: {"model": Problem, "description": "Unknown model"}}
 
@@ -73,8 +73,9 @@ def create_model(body: ModelIn, runtime: Runtime) -> dict[str, Any]:
         validate_model_name(body.name)
     except OptionsError as exc:
         raise InvalidFieldError(str(exc), "name") from None
-    config = MixtureConfig.from_dict(body.config.to_config_dict())
-    options = ModelOptions.from_dict(body.options)
+    # the schemas fixed the types; the dataclasses check the ranges and fill the defaults
+    config = MixtureConfig.from_dict(body.config.model_dump(exclude_unset=True))
+    options = ModelOptions.from_dict(body.options.model_dump(exclude_unset=True))
     runtime.call(lambda: runtime.registry.create(body.name, config, options))
     loaded = runtime.reload(body.name)
     return model_out(runtime, loaded, with_stream=False)

@@ -6,10 +6,10 @@ from typing import Any
 
 from fastapi import APIRouter, Response, status
 
-from service.routers import COMMON_RESPONSES, Runtime
+from service.routers import COMMON_RESPONSES, Runtime, StrictJsonRoute
 from service.schemas import Problem, RestoreIn, RestoreOut, SnapshotIn, SnapshotList, SnapshotOut
 
-router = APIRouter(tags=["snapshots"], responses=COMMON_RESPONSES)
+router = APIRouter(tags=["snapshots"], responses=COMMON_RESPONSES, route_class=StrictJsonRoute)
 
 NOT_FOUND = {404: {"model": Problem, "description": "Unknown model or snapshot"}}
 
@@ -70,7 +70,7 @@ def restore_snapshot(
     model: str,
     runtime: Runtime,
     snapshot_id: str,
-    body: RestoreIn | None = None,
+    body: RestoreIn,
 ) -> dict[str, Any]:
     """Make the snapshot the current state under a new version.
 
@@ -78,16 +78,17 @@ def restore_snapshot(
     again from the snapshot's watermark, skipping entries whose id (``skip_ids``) or receive time
     (``skip_received``) falls in one of the given inclusive ranges; without it, the traffic
     after the snapshot is dropped from the model (but stays in the stream until trimmed).
-    This process serves the restored version as soon as the call returns.
+    This process serves the restored version as soon as the call returns. The body is
+    required and must say ``replay``: a rollback without replay drops everything learned
+    after the snapshot, so it is never a default.
     """
-    body = body or RestoreIn()
     loaded = runtime.model(model)
     result = runtime.call(
         lambda: loaded.store.rollback(
             snapshot_id,
             replay=body.replay,
-            skip_ids=[tuple(r) for r in body.skip_ids],
-            skip_received=[tuple(r) for r in body.skip_received],
+            skip_ids=[(r[0], r[1]) for r in body.skip_ids],
+            skip_received=[(r[0], r[1]) for r in body.skip_received],
         )
     )
     runtime.reload(model)
