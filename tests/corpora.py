@@ -475,3 +475,46 @@ def cluster_lda(corpus: LabelledCorpus, seed: int = 0) -> np.ndarray:
         random_state=seed,
     )
     return lda.fit_transform(counts).argmax(axis=1)
+
+
+def invented_small_topics(
+    n_topics: int = 60, per_topic: int = 25, seed: int = 0, n_words: int = 2000
+) -> LabelledCorpus:
+    """An invented corpus of many small topics of short texts (marked as invented).
+
+    Each topic owns 12 words that make 60 % of its tokens; the rest come from one background
+    distribution shared by all topics (a Dirichlet(0.5) draw, so a few background words are
+    frequent). Texts have 5 to 14 tokens, like subject lines or short glosses. Words are
+    letter strings (``"bba"``, ``"bbb"``, ...), so every tokenizer setting keeps them.
+    """
+    rng = np.random.default_rng(seed)
+    background = rng.dirichlet(np.full(n_words, 0.5))
+    vocabulary = [_letter_word(i) for i in range(n_words)]
+    texts: list[str] = []
+    labels: list[int] = []
+    for topic in range(n_topics):
+        own = rng.choice(n_words, 12, replace=False)
+        prob = 0.4 * background
+        prob[own] += 0.6 / own.size
+        for _ in range(per_topic):
+            tokens = rng.choice(n_words, int(rng.integers(5, 15)), p=prob)
+            texts.append(" ".join(vocabulary[w] for w in tokens))
+            labels.append(topic)
+    return LabelledCorpus(
+        name="invented-topics",
+        texts=texts,
+        labels=np.asarray(labels, dtype=np.int64),
+        label_names=[f"topic {t}" for t in range(n_topics)],
+        source="invented (tests/corpora.py invented_small_topics)",
+        notes={"per_label": per_topic},
+    )
+
+
+def _letter_word(index: int) -> str:
+    # Base-26 letters, at least three of them (the tokenizer drops one-letter words).
+    number = index + 26 * 26
+    word = ""
+    while number:
+        word = chr(ord("a") + number % 26) + word
+        number //= 26
+    return word
