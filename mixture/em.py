@@ -8,8 +8,8 @@ additive smoothing (mixture.stats.derive_parameters).
 The objective is the log posterior up to a constant: the log-likelihood (without the
 multinomial coefficients, which do not depend on the parameters) plus the log Dirichlet prior
 that the pseudo-counts stand for, ``a sum_k log pi_k + beta sum_kw log theta_k(w)``. EM never
-lowers it (Dempster, Laird and Rubin 1977), except at the iterations where an empty group is
-re-seeded, which the report lists.
+lowers it (Dempster, Laird and Rubin 1977), except at the iterations where a starved group is
+revived, which the report lists.
 
 Seeding follows k-means++ (Arthur and Vassilvitskii 2007), weighted by the model's own
 divergence rather than a Euclidean one: each chosen seed s induces the word distribution
@@ -17,9 +17,10 @@ divergence rather than a Euclidean one: each chosen seed s induces the word dist
 per-token log-likelihood ratio against the background, and the next seed is drawn with
 probability proportional to the square of how much worse a document is explained by the
 chosen seeds than by its own seed distribution. This spreads the seeds over the distinct
-themes instead of starting several groups on one theme, the classic bad start of EM. The first
-``annealing_steps`` iterations then temper the likelihood (deterministic annealing, Ueda and
-Nakano 1998), and the objective trace starts once the temperature has reached 1.
+themes instead of starting several groups on one theme, the classic bad start of EM. Each
+seeding is then run with deterministic annealing (Ueda and Nakano 1998) and without; the
+objective trace starts once the temperature has reached 1 (mixture.restarts: why both, and
+how starved groups are revived).
 """
 
 from __future__ import annotations

@@ -181,9 +181,11 @@ def fit_restarts(
     summaries: list[RestartSummary] = []
     root = np.random.default_rng(seed)
     for seeding, child in enumerate(root.spawn(config.n_restarts)):
-        seeding_rng, revival_root = child.spawn(2)
-        assignment = seeder(counts, config.n_groups, seeding_rng)
-        revival_rngs = dict(zip((ANNEALED, PLAIN), revival_root.spawn(2), strict=True))
+        # The seeding draws from the restart's own generator, as before plain runs were added
+        # (an annealed run without starved groups is the fit of then); revival draws from
+        # generators spawned off it, one per kind.
+        assignment = seeder(counts, config.n_groups, child)
+        revival_rngs = dict(zip((ANNEALED, PLAIN), child.spawn(2), strict=True))
         for kind in kinds:
             run = _one_run(
                 counts,
