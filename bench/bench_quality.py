@@ -15,8 +15,16 @@ seed with the warm-up fit on 1/12 to 2/3 of the corpus, scored right after the w
 at the end of the pass, against batch EM on all documents at the same seed. The fractions are
 of the corpus, so the two corpora are compared at equal shares, not equal counts.
 
-Run ``python -m bench.bench_quality [--seed N] [--sweep-seeds N]`` (``--sweep-seeds 0`` skips
-the second table).
+A third table compares the two kinds of batch-EM run at K = 5 to 150: annealed only, plain
+only, and the default (both from every seeding, the run with every group alive and the highest
+MAP objective kept; mixture/restarts.py), on BBC at K = 5, 20, 50, the six-file WordNet set at
+K = 6, WordNet at its 26 noun files and all 45 files (at most 200 synsets a file) and an
+invented corpus of 150 small topics (tests/corpora.py ``invented_small_topics``). Columns:
+NMI, the kept run's MAP objective, groups under 1/(10K), and seconds; the last column is the
+default's time over the annealed run's (the cost of the plain runs and the revival).
+
+Run ``python -m bench.bench_quality [--seed N] [--sweep-seeds N] [--no-kinds]``
+(``--sweep-seeds 0`` skips the second table, ``--no-kinds`` the third).
 """
 
 from __future__ import annotations
@@ -85,6 +93,63 @@ def warmup_sweep(corpus: corpora.LabelledCorpus, seeds: range) -> None:
         )
 
 
+KIND_CHOICES: dict[str, tuple[str, ...] | None] = {
+    "annealed": ("annealed",),
+    "plain": ("plain",),
+    "default": None,
+}
+
+
+def kinds_corpora() -> list[tuple[corpora.LabelledCorpus, int]]:
+    """The corpora and K of the kinds table (those installed; a note for each missing one)."""
+    cases: list[tuple[corpora.LabelledCorpus, int]] = []
+    try:
+        bbc = corpora.load_bbc()
+        cases += [(bbc, 5), (bbc, 20), (bbc, 50)]
+    except corpora.CorpusMissingError as exc:
+        print(f"skipped: {exc}")
+    try:
+        six = corpora.load_wordnet_nouns(max_per_label=corpora.WORDNET_PER_LABEL, seed=0)
+        nouns = corpora.load_wordnet_files(list(corpora.NOUN_LEXNAMES.values()), 200, seed=0)
+        every = corpora.load_wordnet_files(None, 200, seed=0)
+        cases += [(six, 6), (nouns, 26), (every, 45)]
+    except corpora.CorpusMissingError as exc:
+        print(f"skipped: {exc}")
+    cases.append((corpora.invented_small_topics(n_topics=150, per_topic=30, seed=0), 150))
+    return cases
+
+
+def kinds_table(seed: int) -> None:
+    """Print NMI, objective, starved groups and time of annealed, plain and default fits."""
+    from mixture.config import MixtureConfig
+    from mixture.em import fit_texts
+    from mixture.routing import route_texts
+
+    print(
+        f"{'corpus':<24} {'K':>4} {'fit':<9} {'NMI':>6} {'MAP objective':>15} "
+        f"{'starved':>7} {'seconds':>8} {'/annealed':>9}"
+    )
+    for corpus, k in kinds_corpora():
+        label = f"{corpus.name} ({len(corpus)})"
+        seconds: dict[str, float] = {}
+        for name, kinds in KIND_CHOICES.items():
+            start = time.perf_counter()
+            state, report = fit_texts(
+                corpus.texts, MixtureConfig(n_groups=k), seed=seed, kinds=kinds
+            )
+            seconds[name] = time.perf_counter() - start
+            groups = route_texts(state, corpus.texts).group
+            nmi = normalized_mutual_info_score(corpus.labels, groups)
+            objective = report.restart_objectives[report.best_restart]
+            starved = int(np.count_nonzero(state.weights() < 0.1 / k))
+            ratio = f"{seconds[name] / seconds['annealed']:9.2f}" if name == "default" else ""
+            print(
+                f"{label:<24} {k:>4} {name:<9} {nmi:6.3f} {objective:15.1f} {starved:>7} "
+                f"{seconds[name]:8.1f} {ratio}",
+                flush=True,
+            )
+
+
 def main(argv: list[str] | None = None) -> None:
     """Print a table of NMI, ARI and wall time per corpus and method, then the warm-up sweep."""
     parser = argparse.ArgumentParser(prog="python -m bench.bench_quality", description=__doc__)
@@ -92,6 +157,7 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument(
         "--sweep-seeds", type=int, default=5, help="seeds of the warm-up sweep (0 skips it)"
     )
+    parser.add_argument("--no-kinds", action="store_true", help="skip the kinds table")
     args = parser.parse_args(argv)
     loaded = load_corpora()
     print(f"{'corpus':<22} {'method':<28} {'NMI':>6} {'ARI':>6} {'seconds':>8}")
@@ -108,6 +174,9 @@ def main(argv: list[str] | None = None) -> None:
         for corpus in loaded:
             print()
             warmup_sweep(corpus, range(args.sweep_seeds))
+    if not args.no_kinds:
+        print()
+        kinds_table(args.seed)
 
 
 if __name__ == "__main__":

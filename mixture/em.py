@@ -8,8 +8,8 @@ additive smoothing (mixture.stats.derive_parameters).
 The objective is the log posterior up to a constant: the log-likelihood (without the
 multinomial coefficients, which do not depend on the parameters) plus the log Dirichlet prior
 that the pseudo-counts stand for, ``a sum_k log pi_k + beta sum_kw log theta_k(w)``. EM never
-lowers it (Dempster, Laird and Rubin 1977), except at the iterations where an empty group is
-re-seeded, which the report lists.
+lowers it (Dempster, Laird and Rubin 1977), except at the iterations where a starved group is
+revived, which the report lists.
 
 Seeding follows k-means++ (Arthur and Vassilvitskii 2007), weighted by the model's own
 divergence rather than a Euclidean one: each chosen seed s induces the word distribution
@@ -17,62 +17,35 @@ divergence rather than a Euclidean one: each chosen seed s induces the word dist
 per-token log-likelihood ratio against the background, and the next seed is drawn with
 probability proportional to the square of how much worse a document is explained by the
 chosen seeds than by its own seed distribution. This spreads the seeds over the distinct
-themes instead of starting several groups on one theme, the classic bad start of EM. The first
-``annealing_steps`` iterations then temper the likelihood (deterministic annealing, Ueda and
-Nakano 1998), and the objective trace starts once the temperature has reached 1.
+themes instead of starting several groups on one theme, the classic bad start of EM. Each
+seeding is then run with deterministic annealing (Ueda and Nakano 1998) and without; the
+objective trace starts once the temperature has reached 1 (mixture.restarts: why both, and
+how starved groups are revived).
 """
 
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
 
 from mixture.config import MixtureConfig
 from mixture.errors import ConfigError, InputError
+from mixture.restarts import (
+    ANNEALED,
+    PLAIN,
+    FitReport,
+    RestartSummary,
+    fit_restarts,
+    iteration_bound,
+    restart_kinds,
+)
 from mixture.stats import MixtureState, Parameters, derive_parameters, parallel_rows
-from mixture.sweep import EMSweep
+
+__all__ = ["FitReport", "RestartSummary"]
 
 Progress = Callable[[int, int], None]
-
-# A group with fewer expected documents than this is empty and gets re-seeded.
-_EMPTY_GROUP = 0.5
-
-
-@dataclass
-class FitReport:
-    """What a batch EM fit did.
-
-    Attributes
-    ----------
-    objective_trace : list of float
-        MAP objective before each M-step of the best run once annealing is over
-        (non-decreasing between re-seeds).
-    restart_objectives : list of float
-        Final objective of every restart.
-    best_restart : int
-    n_iter : int
-        Iterations of the best run after annealing.
-    converged : bool
-        Whether the best run met the tolerance before max_iter.
-    reseeded : list of int
-        Groups of the best run re-seeded because they became empty.
-    reseed_iterations : list of int
-        Iterations (indices into objective_trace) right after a re-seed.
-    documents : int
-        Documents with at least one token that took part in the fit.
-    """
-
-    objective_trace: list[float] = field(default_factory=list)
-    restart_objectives: list[float] = field(default_factory=list)
-    best_restart: int = 0
-    n_iter: int = 0
-    converged: bool = False
-    reseeded: list[int] = field(default_factory=list)
-    reseed_iterations: list[int] = field(default_factory=list)
-    documents: int = 0
 
 
 def validate_counts(counts: sp.spmatrix | np.ndarray) -> sp.csr_matrix:
@@ -223,81 +196,6 @@ def seed_assignment(counts: sp.csr_matrix, n_groups: int, rng: np.random.Generat
 
 
 # ---- the fit --------------------------------------------------------------------------------
-def _one_run(
-    counts: sp.csr_matrix,
-    counts_t: sp.csr_matrix,
-    lengths: np.ndarray,
-    config: MixtureConfig,
-    rng: np.random.Generator,
-    active: np.ndarray | None,
-    progress: Callable[[], None] | None,
-) -> tuple[float, np.ndarray, np.ndarray, FitReport]:
-    n_docs = counts.shape[0]
-    k = config.n_groups
-    sweep = EMSweep(counts, counts_t, k, active, config.word_pseudocount, config.weight_pseudocount)
-    assignment = seed_assignment(counts, k, rng)
-    resp = np.zeros((n_docs, k))
-    resp[np.arange(n_docs), assignment] = 1.0
-    sweep.m_step(resp)
-
-    report = FitReport(documents=n_docs)
-    # Deterministic annealing (Ueda and Nakano 1998): the E-step raises the likelihood to a
-    # power tau that climbs geometrically from 1 / (mean document length) to 1. At the start
-    # a document's tempered evidence is about one token's worth, so responsibilities are soft
-    # and groups can trade documents; hard, length-driven posteriors would freeze the seeds'
-    # first guess (the local optimum plain EM falls into on long documents).
-    n_anneal = config.annealing_steps
-    if n_anneal > 0:
-        start = 1.0 / max(float(lengths.mean()), 1.0)
-        temperatures = np.geomspace(start, 1.0, n_anneal + 1)[:-1]
-    else:
-        temperatures = np.empty(0)
-    previous = -np.inf
-    objective = -np.inf
-    used_for_reseed: set[int] = set()
-    for iteration in range(n_anneal + config.max_iter):
-        # The parameters of this E-step stay valid through the next M-step (the sweep
-        # alternates two buffers); re-seeding below measures fit with them.
-        params = sweep.parameters()
-        if iteration < n_anneal:
-            resp, _ = sweep.e_step(float(temperatures[iteration]))
-            log_norm = None
-        else:
-            resp, log_norm = sweep.e_step()
-            objective = float(log_norm.sum()) + sweep.log_prior
-            report.objective_trace.append(objective)
-            report.n_iter = iteration + 1 - n_anneal
-        if progress is not None:
-            progress()
-        if log_norm is not None:
-            if np.isfinite(previous) and abs(objective - previous) <= config.tolerance * abs(
-                objective
-            ):
-                report.converged = True
-                break
-            previous = objective
-        sweep.m_step(resp)
-
-        empty = np.flatnonzero(sweep.doc_counts < _EMPTY_GROUP)
-        if empty.size and len(report.reseeded) < 3 * k:
-            # Re-seed each empty group with the document the model explains worst.
-            if log_norm is None:
-                _, log_norm = normalise_log_rows(_log_joint(sweep.counts, params), overwrite=True)
-            fit_per_token = log_norm / lengths
-            order = np.argsort(fit_per_token)
-            candidates = [int(d) for d in order if int(d) not in used_for_reseed]
-            for group, doc in zip(empty, candidates, strict=False):
-                used_for_reseed.add(doc)
-                resp[doc] = 0.0
-                resp[doc, group] = 1.0
-                report.reseeded.append(int(group))
-            sweep.m_step(resp)
-            if iteration + 1 >= n_anneal:
-                report.reseed_iterations.append(len(report.objective_trace))
-            previous = -np.inf
-    return objective, sweep.word_counts(), sweep.doc_counts, report
-
-
 def fit_batch_em(
     counts: sp.spmatrix | np.ndarray,
     config: MixtureConfig,
@@ -305,8 +203,12 @@ def fit_batch_em(
     seed: int = 0,
     active: np.ndarray | None = None,
     progress: Progress | None = None,
+    kinds: tuple[str, ...] | None = None,
 ) -> tuple[np.ndarray, np.ndarray, FitReport]:
     """Fit the mixture by MAP-EM with seeded restarts; the best MAP objective wins.
+
+    Each seeding is run annealed and plain (see mixture.restarts for why), and starved groups
+    are revived split-style once EM has converged at temperature 1.
 
     Parameters
     ----------
@@ -319,8 +221,11 @@ def fit_batch_em(
     active : ndarray of shape (V,) of bool, optional
         Words that count for smoothing (retired vocabulary ids are inactive).
     progress : callable (done, total), optional
-        Called after every iteration; total is n_restarts * (annealing_steps + max_iter),
-        an upper bound.
+        Called after every iteration; total is an upper bound
+        (mixture.restarts.iteration_bound).
+    kinds : tuple of str, optional
+        Runs made from each seeding, ``"annealed"`` and/or ``"plain"``; by default both (plain
+        only when annealing_steps is 0). For comparisons: one kind alone is the fit of before.
 
     Returns
     -------
@@ -344,31 +249,30 @@ def fit_batch_em(
         raise InputError(f"active mask has shape {active.shape}, expected ({matrix.shape[1]},)")
     used_t = used.T.tocsr()
     used_lengths = lengths[nonempty]
-    total = config.n_restarts * (config.annealing_steps + config.max_iter)
+    if kinds is None:
+        kinds = restart_kinds(config)
+    unknown = set(kinds) - {ANNEALED, PLAIN}
+    if not kinds or unknown:
+        raise ConfigError(f"kinds must name 'annealed' and/or 'plain'; got {kinds!r}")
+    total = iteration_bound(config, kinds)
     done = 0
 
     def tick() -> None:
         nonlocal done
         done += 1
         if progress is not None:
-            progress(done, total)
+            progress(min(done, total), total)
 
-    root = np.random.default_rng(seed)
-    best: tuple[float, np.ndarray, np.ndarray, FitReport] | None = None
-    objectives: list[float] = []
-    for restart, child in enumerate(root.spawn(config.n_restarts)):
-        result = _one_run(used, used_t, used_lengths, config, child, active, tick)
-        objectives.append(result[0])
-        if best is None or result[0] > best[0]:
-            best = result
-            best[3].best_restart = restart
-    assert best is not None
-    _, word_counts, doc_counts, report = best
-    report.restart_objectives = objectives
-    return word_counts, doc_counts, report
+    return fit_restarts(
+        used, used_t, used_lengths, config, seed, active, seed_assignment, kinds, tick
+    )
 
 
-def fit_pending(state: MixtureState, progress: Progress | None = None) -> FitReport:
+def fit_pending(
+    state: MixtureState,
+    progress: Progress | None = None,
+    kinds: tuple[str, ...] | None = None,
+) -> FitReport:
     """Fit batch EM on the state's warm-up buffer and make it the state's statistics."""
     if state.pending is None or state.pending.shape[0] == 0:
         raise InputError("no buffered documents to fit")
@@ -389,6 +293,7 @@ def fit_pending(state: MixtureState, progress: Progress | None = None) -> FitRep
         seed=state.seed,
         active=state.vocabulary.active_mask(),
         progress=progress,
+        kinds=kinds,
     )
     fitted = MixtureState.from_counts(
         state.config, state.vocabulary, word_counts, doc_counts, state.documents_learned
@@ -411,8 +316,11 @@ def fit_texts(
     *,
     seed: int = 0,
     progress: Progress | None = None,
+    kinds: tuple[str, ...] | None = None,
 ) -> tuple[MixtureState, FitReport]:
     """Tokenise texts with a growing vocabulary, bound it, and fit batch EM.
+
+    ``kinds`` is passed to :func:`fit_batch_em` (by default annealed and plain runs).
 
     Returns
     -------
@@ -426,5 +334,5 @@ def fit_texts(
     batch = count_texts(texts, state.tokenizer, state.vocabulary, grow=True)
     state.pending = batch.counts
     state.documents_learned = len(texts)
-    report = fit_pending(state, progress)
+    report = fit_pending(state, progress, kinds)
     return state, report

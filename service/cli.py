@@ -33,9 +33,14 @@ import sys
 import tempfile
 from collections.abc import Callable, Sequence
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from service.jsonl import JsonlBatch, read_jsonl
+
+if TYPE_CHECKING:
+    import numpy as np
+
+    from mixture.em import FitReport
 
 EXIT_OK = 0
 EXIT_FAILURE = 1
@@ -127,6 +132,7 @@ def _finite(value: float) -> float | None:
 def cmd_fit(args: argparse.Namespace) -> int:
     from mixture.config import MixtureConfig
     from mixture.em import fit_texts
+    from mixture.restarts import iteration_bound, restart_kinds
     from mixture.serialize import state_to_bytes
 
     batch = _load_documents(args.docs, args.strict)
@@ -144,7 +150,7 @@ def cmd_fit(args: argparse.Namespace) -> int:
         if value is not None:
             config_fields[name] = value
     config = MixtureConfig.from_dict(config_fields)
-    bar = _progress_bar(config.n_restarts * config.max_iter, "batch EM", "iter")
+    bar = _progress_bar(iteration_bound(config, restart_kinds(config)), "batch EM", "iter")
 
     def progress(done: int, total: int) -> None:
         bar.total = total
@@ -156,17 +162,78 @@ def cmd_fit(args: argparse.Namespace) -> int:
         bar.close()
     out = Path(args.out)
     _write_atomic(out, state_to_bytes(state))
-    weights = ", ".join(f"{w:.3f}" for w in state.weights())
     convergence = "converged" if report.converged else "stopped at max_iter"
     print(
         f"fitted {len(batch.documents)} documents into {config.n_groups} groups "
-        f"(vocabulary {state.vocabulary.n_active} words; best of {config.n_restarts} restarts, "
-        f"{report.n_iter} iterations, {convergence}); weights [{weights}]; wrote {out}",
+        f"(vocabulary {state.vocabulary.n_active} words; {report.n_iter} iterations, "
+        f"{convergence}); wrote {out}",
         file=sys.stderr,
     )
-    if report.reseeded:
-        print(f"re-seeded empty groups: {report.reseeded}", file=sys.stderr)
+    for line in fit_summary_lines(report, state.weights()):
+        print(line, file=sys.stderr)
     return EXIT_OK
+
+
+# Up to this many groups the weights are printed one by one; past it, a summary.
+_WEIGHTS_LISTED = 12
+
+
+def fit_summary_lines(report: FitReport, weights: np.ndarray) -> list[str]:
+    """The fit's summary: every restart's objective, the one kept and why, the weights.
+
+    Parameters
+    ----------
+    report : mixture.em.FitReport
+    weights : ndarray of shape (K,)
+        Mixture weights of the fitted state.
+
+    Returns
+    -------
+    list of str
+        One line each; the weights compact (min, quartiles, max, groups under 1 / (10 K))
+        past a dozen groups.
+    """
+    import numpy as np
+
+    from mixture.restarts import STARVED_SHARE
+
+    k = weights.size
+    lines = [
+        f"{'restart':>7} {'seeding':>7} {'start':<8} {'MAP objective':>16} {'re-seeds':>8} "
+        f"{'starved':>7}"
+    ]
+    for index, run in enumerate(report.restarts):
+        mark = "  <- kept" if index == report.best_restart else ""
+        lines.append(
+            f"{index:>7} {run.seeding:>7} {run.kind:<8} {run.objective:>16.1f} "
+            f"{run.reseeds:>8} {run.starved:>7}{mark}"
+        )
+    winner = report.winner
+    if winner is not None:
+        alive = min(run.starved for run in report.restarts) == 0
+        reason = (
+            "highest MAP objective (every run kept all groups alive)"
+            if all(run.starved == 0 for run in report.restarts)
+            else "highest MAP objective among the runs with every group alive"
+            if alive
+            else "fewest starved groups, then highest MAP objective"
+        )
+        lines.append(
+            f"kept restart {report.best_restart} ({winner.kind}, seeding {winner.seeding}): "
+            f"{reason}"
+        )
+    floor = STARVED_SHARE / k
+    under = int(np.count_nonzero(weights < floor))
+    if k <= _WEIGHTS_LISTED:
+        listed = ", ".join(f"{w:.3f}" for w in weights)
+        lines.append(f"weights [{listed}]; {under} under 1/(10K) = {floor:.2g}")
+    else:
+        q1, q2, q3 = np.quantile(weights, [0.25, 0.5, 0.75])
+        lines.append(
+            f"weights min {weights.min():.2g}, quartiles {q1:.2g} / {q2:.2g} / {q3:.2g}, "
+            f"max {weights.max():.2g}; {under} of {k} under 1/(10K) = {floor:.2g}"
+        )
+    return lines
 
 
 def route_records(

@@ -65,6 +65,31 @@ NOUN_LEXNAMES: dict[int, str] = {
     28: "noun.time",
 }
 
+# The other lexicographer files of the same manual page (recalled from memory, as above):
+# adjectives, adverbs and verbs. With the noun files they make WordNet's 45 files.
+OTHER_LEXNAMES: dict[int, str] = {
+    0: "adj.all",
+    1: "adj.pert",
+    2: "adv.all",
+    29: "verb.body",
+    30: "verb.change",
+    31: "verb.cognition",
+    32: "verb.communication",
+    33: "verb.competition",
+    34: "verb.consumption",
+    35: "verb.contact",
+    36: "verb.creation",
+    37: "verb.emotion",
+    38: "verb.motion",
+    39: "verb.perception",
+    40: "verb.possession",
+    41: "verb.social",
+    42: "verb.stative",
+    43: "verb.weather",
+    44: "adj.ppl",
+}
+WORDNET_PARTS: tuple[str, ...] = ("noun", "verb", "adj", "adv")
+
 WORDNET_LABELS: tuple[str, ...] = (
     "noun.animal",
     "noun.plant",
@@ -224,22 +249,44 @@ def read_wordnet_nouns(directory: Path = WORDNET_DIR) -> list[tuple[str, list[st
     CorpusMissingError
         When ``data.noun`` is not installed.
     """
-    path = directory / "data.noun"
-    if not path.is_file():
-        raise CorpusMissingError(f"WordNet not installed ({path} missing); run: {WORDNET_INSTALL}")
-    lexnames = wordnet_lexnames(directory)
+    return read_wordnet(("noun",), directory)
+
+
+def read_wordnet(
+    parts: Sequence[str] = WORDNET_PARTS, directory: Path = WORDNET_DIR
+) -> list[tuple[str, list[str], str]]:
+    """Parse ``data.<part>`` for each part of speech: one ``(lexname, lemmas, gloss)`` each.
+
+    Same line format as :func:`read_wordnet_nouns`; an adjective's syntactic marker
+    (``(a)``, ``(p)``, ``(ip)`` after the word, wndb(5WN)) is dropped from its lemma.
+
+    Raises
+    ------
+    CorpusMissingError
+        When a ``data.<part>`` file is not installed.
+    """
+    lexnames = {**OTHER_LEXNAMES, **wordnet_lexnames(directory)}
     synsets: list[tuple[str, list[str], str]] = []
-    with path.open(encoding="utf-8") as handle:
-        for line in handle:
-            if line.startswith("  "):
-                continue
-            head, _, gloss = line.partition("| ")
-            fields = head.split()
-            lex_filenum = int(fields[1])
-            word_count = int(fields[3], 16)
-            lemmas = [fields[4 + 2 * i].replace("_", " ") for i in range(word_count)]
-            name = lexnames.get(lex_filenum, f"lex{lex_filenum:02d}")
-            synsets.append((name, lemmas, gloss.strip()))
+    for part in parts:
+        path = directory / f"data.{part}"
+        if not path.is_file():
+            raise CorpusMissingError(
+                f"WordNet not installed ({path} missing); run: {WORDNET_INSTALL}"
+            )
+        with path.open(encoding="utf-8") as handle:
+            for line in handle:
+                if line.startswith("  "):
+                    continue
+                head, _, gloss = line.partition("| ")
+                fields = head.split()
+                lex_filenum = int(fields[1])
+                word_count = int(fields[3], 16)
+                lemmas = [fields[4 + 2 * i] for i in range(word_count)]
+                if part == "adj":
+                    lemmas = [lemma.split("(", 1)[0] for lemma in lemmas]
+                lemmas = [lemma.replace("_", " ") for lemma in lemmas]
+                name = lexnames.get(lex_filenum, f"lex{lex_filenum:02d}")
+                synsets.append((name, lemmas, gloss.strip()))
     return synsets
 
 
@@ -263,9 +310,41 @@ def load_wordnet_nouns(
     directory : Path
         WordNet database directory.
     """
+    return _wordnet_corpus(
+        read_wordnet_nouns(directory), labels, max_per_label, seed, str(directory / "data.noun")
+    )
+
+
+def load_wordnet_files(
+    labels: Sequence[str] | None = None,
+    max_per_label: int | None = None,
+    seed: int = 0,
+    directory: Path = WORDNET_DIR,
+) -> LabelledCorpus:
+    """Synsets of every part of speech, labelled by lexicographer file (45 files by default).
+
+    Parameters are those of :func:`load_wordnet_nouns`; ``labels`` None keeps every file, in
+    the order of their numbers (lexnames(5WN)).
+    """
+    if labels is None:
+        names = {**OTHER_LEXNAMES, **wordnet_lexnames(directory)}
+        labels = [names[number] for number in sorted(names)]
+    source = ", ".join(str(directory / f"data.{part}") for part in WORDNET_PARTS)
+    return _wordnet_corpus(
+        read_wordnet(WORDNET_PARTS, directory), labels, max_per_label, seed, source
+    )
+
+
+def _wordnet_corpus(
+    synsets: list[tuple[str, list[str], str]],
+    labels: Sequence[str],
+    max_per_label: int | None,
+    seed: int,
+    source: str,
+) -> LabelledCorpus:
     wanted = {name: i for i, name in enumerate(labels)}
     by_label: dict[int, list[str]] = {i: [] for i in range(len(labels))}
-    for name, lemmas, gloss in read_wordnet_nouns(directory):
+    for name, lemmas, gloss in synsets:
         if name in wanted:
             by_label[wanted[name]].append("; ".join(lemmas) + ". " + gloss)
     rng = np.random.default_rng(seed)
@@ -284,7 +363,7 @@ def load_wordnet_nouns(
         texts=texts,
         labels=np.asarray(label_ids, dtype=np.int64),
         label_names=list(labels),
-        source=str(directory / "data.noun"),
+        source=source,
         notes={"per_label": per_label},
     )
 
@@ -396,3 +475,46 @@ def cluster_lda(corpus: LabelledCorpus, seed: int = 0) -> np.ndarray:
         random_state=seed,
     )
     return lda.fit_transform(counts).argmax(axis=1)
+
+
+def invented_small_topics(
+    n_topics: int = 60, per_topic: int = 25, seed: int = 0, n_words: int = 2000
+) -> LabelledCorpus:
+    """An invented corpus of many small topics of short texts (marked as invented).
+
+    Each topic owns 12 words that make 60 % of its tokens; the rest come from one background
+    distribution shared by all topics (a Dirichlet(0.5) draw, so a few background words are
+    frequent). Texts have 5 to 14 tokens, like subject lines or short glosses. Words are
+    letter strings (``"bba"``, ``"bbb"``, ...), so every tokenizer setting keeps them.
+    """
+    rng = np.random.default_rng(seed)
+    background = rng.dirichlet(np.full(n_words, 0.5))
+    vocabulary = [_letter_word(i) for i in range(n_words)]
+    texts: list[str] = []
+    labels: list[int] = []
+    for topic in range(n_topics):
+        own = rng.choice(n_words, 12, replace=False)
+        prob = 0.4 * background
+        prob[own] += 0.6 / own.size
+        for _ in range(per_topic):
+            tokens = rng.choice(n_words, int(rng.integers(5, 15)), p=prob)
+            texts.append(" ".join(vocabulary[w] for w in tokens))
+            labels.append(topic)
+    return LabelledCorpus(
+        name="invented-topics",
+        texts=texts,
+        labels=np.asarray(labels, dtype=np.int64),
+        label_names=[f"topic {t}" for t in range(n_topics)],
+        source="invented (tests/corpora.py invented_small_topics)",
+        notes={"per_label": per_topic},
+    )
+
+
+def _letter_word(index: int) -> str:
+    # Base-26 letters, at least three of them (the tokenizer drops one-letter words).
+    number = index + 26 * 26
+    word = ""
+    while number:
+        word = chr(ord("a") + number % 26) + word
+        number //= 26
+    return word
