@@ -36,12 +36,14 @@ this state's line has passed (learned, skipped, dead-lettered, or recorded as lo
 ``entries-added - entries_read`` (``XINFO STREAM``, Redis >= 7). A state without the counter
 (written before it existed, or whose watermark was moved by a rollback without replay) gets
 it once at load: entries-added minus the entries after the watermark still in the stream.
-When ``max-deleted-entry-id`` shows that entries after the cursor were removed (an XDEL or a
-trim outside mixroute), the worker notes (entries-added, last id) and, once it has read past
-that id, records the difference to its own count as lost: an alert of kind ``stream-gap``
-with the count, the count added to ``entries_read`` and to ``metadata["entries_lost"]``
-(the ``mixroute_stream_lost_entries_total`` metric). Before Redis 7 the counters do not
-exist: the counter is then seeded from XLEN and gaps are not detected.
+At load and every ``checkpoint_seconds`` the worker notes the stream's (entries-added,
+last id); once it has read past every entry present up to that id, entries-added minus its
+own count up to that id is the number of entries removed before they were read (an XDEL or a
+trim outside mixroute; ``max-deleted-entry-id`` past the watermark is the sign). A positive
+difference is recorded as lost: an alert of kind ``stream-gap`` with the count, the count
+added to ``entries_read`` and to ``metadata["entries_lost"]`` (the
+``mixroute_stream_lost_entries_total`` metric), and the worker carries on. Before Redis 7 the
+counters do not exist: the counter is then seeded from XLEN and gaps are not detected.
 
 Why no consumer group
 ---------------------
@@ -84,7 +86,7 @@ from state.reader import (
 )
 from state.records import CurrentState, WorkerStatus
 from state.store import Checkpoint, ModelStore, default_worker_name
-from state.stream import ZERO_ID, Document, SkipRanges, Undecodable, decode_entry, parse_stream_id
+from state.stream import ZERO_ID, Document, SkipRanges, Undecodable, decode_entry
 
 log = logging.getLogger(__name__)
 
@@ -162,7 +164,6 @@ class Worker:
         self._entries_seen = 0
         self._entries_lost = 0  # this state's line: entries recorded as lost in gaps
         self._gap_probe: tuple[int, str] | None = None  # (entries-added, last id) to check
-        self._gap_checked_through = ZERO_ID
         self._gap_alerts: list[dict[str, object]] = []
         self._last_gap_check = 0.0
         self._counts_known = True  # False before Redis 7 (no entries-added)
@@ -440,7 +441,6 @@ class Worker:
     def _load_counters(self, current: CurrentState | None) -> None:
         """Set the entries counter (D2) and the lost count from the loaded state."""
         self._gap_probe = None
-        self._gap_checked_through = ZERO_ID
         self._read_before_probe = False
         if current is None or self.learner is None:
             self._entries_seen = 0
@@ -516,12 +516,19 @@ class Worker:
 
     # -- gaps --------------------------------------------------------------------------------
     def _check_for_gap(self) -> None:
-        """Note the stream's counters when entries after the cursor were removed (Redis 7)."""
+        """Note the stream's counters, to be compared with ours once we have read that far.
+
+        Every entry ever added up to the stream's last id is either passed by this line
+        (learned, skipped, dead-lettered) or was removed before it was read: once the cursor
+        has passed every entry present up to that id, the difference between entries-added
+        and our count is the number lost. Checked at load and every ``checkpoint_seconds``
+        (one XINFO STREAM; Redis >= 7).
+        """
         self._last_gap_check = time.monotonic()
         if not self._counts_known or self._gap_probe is not None:
             return
         counts = stream_counts(self.redis, self.store.keys.docs)
-        if counts.entries_added is None or counts.max_deleted_id is None:
+        if counts.entries_added is None:
             self._counts_known = False
             log.info(
                 "worker %s: this Redis reports no entries-added (before 7.0); stream gaps "
@@ -530,20 +537,14 @@ class Worker:
                 extra=self._log_fields(),
             )
             return
-        deleted = parse_stream_id(counts.max_deleted_id)
-        if deleted > parse_stream_id(self.cursor) and deleted > parse_stream_id(
-            self._gap_checked_through
-        ):
-            # settled once the cursor has passed every entry up to last_generated_id
-            self._gap_probe = (counts.entries_added, counts.last_generated_id)
-            self._read_before_probe = self.reader.ahead_after is not None
+        self._gap_probe = (counts.entries_added, counts.last_generated_id)
+        self._read_before_probe = self.reader.ahead_after is not None
 
     def _settle_gap(self, seen_through_probe: int) -> None:
         """Compare the entries passed up to the probe's id with those ever added up to it."""
         assert self._gap_probe is not None
         added, through = self._gap_probe
         self._gap_probe = None
-        self._gap_checked_through = through
         lost = added - seen_through_probe
         if lost < 0:  # our count was too high (a foreign state): trust the stream's
             log.warning(
