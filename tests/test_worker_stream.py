@@ -244,7 +244,10 @@ def test_worker_process_needs_a_redis_url() -> None:
     assert done.returncode == 2 and "REDIS_URL" in done.stderr
 
 
-def test_worker_process_thread_setting_is_checked(monkeypatch: pytest.MonkeyPatch) -> None:
+def test_worker_process_thread_setting_is_checked(
+    monkeypatch: pytest.MonkeyPatch,
+    root_logging: object,  # main() configures the process's logging
+) -> None:
     from mixture import sweep
     from worker.__main__ import main
 
