@@ -113,3 +113,36 @@ def test_lag_in_entries_counts_what_the_worker_has_not_passed(tmp_path: Path) ->
             assert values["mixroute_stream_lag_entries"] == 70.0
             assert values["mixroute_stream_lost_entries_total"] == 0.0
         client.close()
+
+
+def test_rollbacks_move_the_counter_with_the_watermark_and_raise_no_false_gap(
+    tmp_path: Path,
+) -> None:
+    # After a rollback without replay the watermark jumps to the stream's end: the entries
+    # in between are passed (dropped on purpose), not lost. With replay they are re-read.
+    with private_redis7(tmp_path) as url:
+        client = redis_from_url(url)
+        config = small_config()
+        store = create_model(client, "rolled", config, fast_options())
+        first, second, third = (
+            ferry_texts(n, seed=s) for n, s in ((300, 36), (200, 37), (100, 38))
+        )
+        with WorkerThread(Worker(client, "rolled")):
+            store.enqueue(first)
+            wait_for(learned_all(store, 300), what="300 learned")
+            snapshot = store.create_snapshot("after the first 300")
+            store.enqueue(second)
+            wait_for(learned_all(store, 500), what="500 learned")
+            store.rollback(snapshot.id, replay=False)
+            store.enqueue(third)
+            wait_for(learned_all(store, 400), what="the snapshot's 300 and the new 100")
+            state = store.load_state()
+            assert state.metadata["entries_read"] == 600  # XINFO STREAM entries-added
+            assert_same_state(state, reference_state(first + third, config))
+            store.rollback(snapshot.id, replay=True)
+            wait_for(learned_all(store, 600), what="everything after the snapshot replayed")
+            state = store.load_state()
+            assert state.metadata["entries_read"] == 600
+            assert_same_state(state, reference_state(first + second + third, config))
+        assert [a for a in store.alerts() if a.kind == "stream-gap"] == []
+        client.close()
