@@ -25,7 +25,7 @@ def main(argv: list[str] | None = None) -> int:
     """Run one worker until SIGTERM/SIGINT; returns the exit status."""
     parser = argparse.ArgumentParser(prog="python -m worker", description=__doc__)
     parser.add_argument("--model", required=True, help="registered model name")
-    parser.add_argument("--name", default=None, help="consumer / lease name")
+    parser.add_argument("--name", default=None, help="lease name (default <host>:<pid>:<random>)")
     parser.add_argument(
         "--redis-url", default=os.environ.get("REDIS_URL"), help="Redis URL (default: $REDIS_URL)"
     )

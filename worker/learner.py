@@ -124,7 +124,7 @@ class Worker:
     model : str
         Registered model name.
     name : str, optional
-        Consumer and lease name (default ``<host>:<pid>:<random>``).
+        Lease name (default ``<host>:<pid>:<random>``).
     options : ModelOptions, optional
         Override the model's stored options (tests, benchmarks).
 
@@ -219,7 +219,7 @@ class Worker:
                 backoff = min(backoff * 2, 5.0)
             except Exception:
                 # a bug or a Redis-side surprise must not kill the loop silently: log it,
-                # drop the uncommitted work (nothing was acknowledged) and start over
+                # drop the uncommitted work (the watermark did not move) and start over
                 self.errors += 1
                 log.exception(
                     "worker %s: unexpected error; reloading in %.1fs",
