@@ -1,17 +1,20 @@
-"""Reading a model's stream after a cursor: pages by XREAD, with one read sent ahead.
+"""Reading a model's stream after a cursor: pages by XREAD.
 
 The learning worker is the only reader of a model's stream (the lease makes it so), and it
 knows exactly where it is: its cursor, the last entry it has taken. So it reads with plain
 ``XREAD COUNT n BLOCK ms STREAMS docs <cursor>``; the next page starts after the last id of
-the current one, which makes a read sent ahead of time (before the current page is learned)
-exactly the read that would have been sent afterwards.
+the current one.
 
 :class:`PageReader` keeps its own connection, made from the client pool's connection class
-and arguments (``pool.connection_class(**pool.connection_kwargs)``): a reply may be left
-unread on it while other commands go through the pool, and it needs no ``get_connection``
-call, whose signature changed across redis-py 5.x. Replies are read as Redis sent them
-(``[[id, [field, value, ...]], ...]``): redis-py's conversion to a dict per entry costs more
-than the read itself.
+and arguments (``pool.connection_class(**pool.connection_kwargs)``): it needs no
+``get_connection`` call, whose signature changed across redis-py 5.x, and its replies are
+read as Redis sent them (``[[id, [field, value, ...]], ...]``): redis-py's conversion to a
+dict per entry costs more than the read itself.
+
+A read sent ahead (the next page requested before the current one is learned) paid while the
+worker read through a consumer group, whose XREADGROUP + XACK cost Redis real work; with
+XREAD it measured no gain (bench/bench_worker.py, six runs each way: median 60,000 documents
+a second with and without), so there is none.
 
 :func:`stream_counts` reads ``XINFO STREAM``'s counters (``entries-added`` and
 ``max-deleted-entry-id`` exist from Redis 7 on; None before), which tell whether entries
@@ -90,7 +93,7 @@ def count_entries_after(
 
 
 class PageReader:
-    """XREAD pages after a cursor over a dedicated connection, one read possibly sent ahead.
+    """XREAD pages after a cursor over a dedicated connection.
 
     Parameters
     ----------
@@ -103,10 +106,8 @@ class PageReader:
 
     Notes
     -----
-    Only one read is ever outstanding. :meth:`read` answers the read sent ahead when it was
-    sent after the same cursor, else sends a fresh one. Any failure, and :meth:`drop`,
-    disconnect the connection, so a half-read reply never reaches a later read (the next
-    command reconnects).
+    Any failure, and :meth:`drop`, disconnect the connection, so a half-read reply never
+    reaches a later read (the next command reconnects).
     """
 
     def __init__(self, client: redis.Redis, key: str, count: int) -> None:
@@ -114,23 +115,15 @@ class PageReader:
         self._connection = pool.connection_class(**pool.connection_kwargs)
         self.key = key
         self.count = int(count)
-        self.ahead_after: str | None = None  # the cursor the read in flight reads after
 
-    def _send(self, after: str, block: int) -> None:
+    def read(self, after: str, block: int) -> list[RawEntry]:
+        """The next page after ``after`` (waiting up to ``block`` ms; [] when none came)."""
         args: list[Any] = ["XREAD", "COUNT", self.count]
         if block > 0:
             args += ["BLOCK", block]
         args += ["STREAMS", self.key, after]
-        self._connection.send_command(*args)
-
-    def read(self, after: str, block: int) -> list[RawEntry]:
-        """The next page after ``after`` (waiting up to ``block`` ms; [] when none came)."""
         try:
-            if self.ahead_after is not None and self.ahead_after != after:
-                self.drop()  # sent after another cursor (cannot happen in the worker's order)
-            if self.ahead_after is None:
-                self._send(after, block)
-            self.ahead_after = None
+            self._connection.send_command(*args)
             reply = self._connection.read_response()
         except BaseException:
             self.drop()
@@ -140,24 +133,11 @@ class PageReader:
         # RESP3: {stream: entries}; RESP2: [[stream, entries]]
         return next(iter(reply.values())) if isinstance(reply, dict) else reply[0][1]
 
-    def send_ahead(self, after: str, block: int) -> bool:
-        """Send the read of the page after ``after`` now; its reply waits for :meth:`read`."""
-        if self.ahead_after is not None:
-            return False
-        try:
-            self._send(after, block)
-        except (redis.ConnectionError, redis.TimeoutError, OSError):
-            self.drop()  # no read ahead this time; the next read sends its own
-            return False
-        self.ahead_after = after
-        return True
-
-    def drop(self) -> None:
-        """Forget a read in flight (disconnect; the next read reconnects)."""
-        self.ahead_after = None
+    def close(self) -> None:
+        """Disconnect (the next read reconnects)."""
         self._connection.disconnect()
 
-    close = drop
+    drop = close
 
 
 def last_id_of(entries: list[RawEntry]) -> str:

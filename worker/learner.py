@@ -9,10 +9,8 @@ docs <cursor>`` (:class:`state.reader.PageReader`), and learns it strictly in st
 
 1. Live traffic, the catch-up after a restart and the replay after a rollback (which moves the
    watermark back to the snapshot's) are the same read: pages after the cursor.
-2. With a backlog (a full page) the read of the next page, after the last id of this one, is
-   sent before this page is learned, so Redis prepares it meanwhile. It is exactly the read
-   that would follow; a read-ahead dropped by a reload, an error or a shutdown costs nothing,
-   the next read starts from the cursor again.
+2. A reload (a rollback, the lease regained), an error or a shutdown drops nothing that
+   matters: the next read starts from the cursor of the state loaded.
 3. Undecodable entries become dead letters; entries inside a rollback's skip ranges
    (``ModelStore.replay_ranges``) are passed over, entry by entry.
 4. Documents are learned in units of ``batch_size`` (``OnlineLearner.learn``); a partial unit is
@@ -167,7 +165,6 @@ class Worker:
         self._gap_alerts: list[dict[str, object]] = []
         self._last_gap_check = 0.0
         self._counts_known = True  # False before Redis 7 (no entries-added)
-        self._read_before_probe = False
         self._report = BatchReport()
         self._documents_since_checkpoint = 0
         self._last_checkpoint = time.monotonic()
@@ -441,7 +438,6 @@ class Worker:
     def _load_counters(self, current: CurrentState | None) -> None:
         """Set the entries counter (D2) and the lost count from the loaded state."""
         self._gap_probe = None
-        self._read_before_probe = False
         if current is None or self.learner is None:
             self._entries_seen = 0
             self._entries_lost = 0
@@ -488,23 +484,16 @@ class Worker:
 
     # -- reading -----------------------------------------------------------------------------
     def _read_page(self) -> int:
-        """Read one page after the cursor (or the read sent ahead), learn its full units."""
+        """Read one page after the cursor, learn its full units."""
         opts = self.options
         block = opts.read_block_ms
         if self._pending.documents and opts.flush_partial_seconds is not None:
             block = min(block, max(int(opts.flush_partial_seconds * 1000), 1))
-        # a read sent before the gap probe was taken cannot show that everything up to the
-        # probe's last id has been read (entries may have been added in between)
-        early, self._read_before_probe = self._read_before_probe, False
         entries = self.reader.read(self.cursor, block)
         learned = 0
         if entries:
-            if len(entries) >= opts.read_count and not self._stop.is_set():
-                # a backlog: the next page is the one after this page's last id; Redis
-                # prepares it while this one is learned
-                self.reader.send_ahead(last_id_of(entries), block)
-            learned += self._take(entries, complete=not early and len(entries) < opts.read_count)
-        elif self._gap_probe is not None and not early:
+            learned += self._take(entries, complete=len(entries) < opts.read_count)
+        elif self._gap_probe is not None:
             self._settle_gap(self._entries_seen)  # nothing after the cursor: all was read
         if (
             self._pending.documents
@@ -538,7 +527,6 @@ class Worker:
             )
             return
         self._gap_probe = (counts.entries_added, counts.last_generated_id)
-        self._read_before_probe = self.reader.ahead_after is not None
 
     def _settle_gap(self, seen_through_probe: int) -> None:
         """Compare the entries passed up to the probe's id with those ever added up to it."""
@@ -588,7 +576,7 @@ class Worker:
         """Queue a page's entries (all after the cursor), learn full units.
 
         ``complete``: the page holds every entry after the cursor that existed when the read
-        ran (a short page read after the gap probe).
+        ran (a short page; reads always follow the gap probe they are compared with).
         """
         if self._gap_probe is not None:
             through = count_through(entries, self._gap_probe[1])
