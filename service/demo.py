@@ -55,7 +55,6 @@ DEMO_OPTIONS: dict[str, Any] = {
     "drift_threshold": 0.01,
     "snapshot_every_documents": None,
     "snapshot_every_seconds": None,
-    "claim_idle_seconds": 3600.0,  # no dead consumers to claim from in one process
 }
 
 

@@ -7,8 +7,9 @@ Two kinds of figures:
   answers the clients get, so they match what the API said;
 * read at scrape time from the sources the API answers from: the in-memory model
   (version, documents learned, group weights: what ``GET /models/{model}`` says) and Redis
-  through ``state/`` (stream length, pending and lag, last checkpoint time and age, drift
-  divergence as ``GET /models/{model}/drift`` computes it, alerts raised, worker heartbeat).
+  through ``state/`` (stream length, pending, lag and lost entries, last checkpoint time and
+  age, drift divergence as ``GET /models/{model}/drift`` computes it, alerts raised, worker
+  heartbeat).
 
 The review-flag counting also keeps the most recent flagged documents of each model in memory
 (:class:`FlaggedDocuments`, ``flagged_documents_kept`` per model, text cut to 200 characters)
@@ -295,9 +296,11 @@ class ModelCollector(Collector):
         store = loaded.store
         info = store.stream_info()
         add("length", info["length"])
-        add("pending", info["pending"])
-        if info.get("lag") is not None:  # Redis 7 and later report it
-            add("lag", info["lag"])
+        add("pending", info.get("pending", 0))
+        lag, lost = _entry_counts(runtime.redis, store, loaded)
+        if lag is not None:  # Redis 7 and later count the entries ever added
+            add("lag", lag)
+        add("lost", lost)
         add("lag_age", _unlearned_age(runtime.redis, store.keys.docs, info, now))
         rows = store.history(limit=1)
         if rows:
@@ -323,13 +326,20 @@ _REDIS_FAMILIES: dict[str, tuple[Any, str, str]] = {
     "pending": (
         GaugeMetricFamily,
         "mixroute_stream_pending_entries",
-        "Stream entries delivered to a worker and not yet checkpointed.",
+        "Stream entries not yet learned, as GET /models/{model} reports them (stream.pending).",
     ),
     "lag": (
         GaugeMetricFamily,
         "mixroute_stream_lag_entries",
-        "Stream entries not yet delivered to any worker (consumer-group lag; only where "
-        "Redis reports it, version 7 and later).",
+        "Stream entries not yet passed by the learner: entries ever added minus the state's "
+        "entries counter (only where Redis counts them, version 7 and later).",
+    ),
+    "lost": (
+        CounterMetricFamily,
+        "mixroute_stream_lost_entries",
+        "Stream entries removed before the learner read them (a gap: XDEL or a trim outside "
+        "mixroute), as recorded by the served state's line; each gap also raises an alert "
+        "of kind stream-gap.",
     ),
     "lag_age": (
         GaugeMetricFamily,
@@ -369,6 +379,26 @@ _REDIS_FAMILIES: dict[str, tuple[Any, str, str]] = {
         "Seconds since the learning worker last reported.",
     ),
 }
+
+
+def _entry_counts(client: Any, store: Any, loaded: Any) -> tuple[int | None, int]:
+    """(lag in entries, entries lost) of a model.
+
+    Lag = the stream's ``entries-added`` (Redis >= 7, else None) minus the entries counter
+    of the current state (``entries_read``: the state layer's summary, else the served
+    state's metadata; 0 before the first checkpoint). Lost = the served state's
+    ``entries_lost``.
+    """
+    from state.reader import stream_counts
+
+    summary = store.summary() or {}
+    metadata = loaded.state.metadata if loaded.state is not None else {}
+    entries_read = summary.get("entries_read", metadata.get("entries_read", 0))
+    lost = int(summary.get("entries_lost", metadata.get("entries_lost", 0)))
+    added = stream_counts(client, store.keys.docs).entries_added
+    if added is None:
+        return None, lost
+    return max(int(added) - int(entries_read), 0), lost
 
 
 def _unlearned_age(client: Any, stream_key: str, info: dict[str, Any], now: float) -> float:

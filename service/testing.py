@@ -17,7 +17,6 @@ QUICK_OPTIONS: dict[str, Any] = {
     "checkpoint_seconds": 0.3,
     "read_count": 200,
     "read_block_ms": 50,
-    "claim_idle_seconds": 3600.0,
     "snapshot_every_documents": None,
     "snapshot_every_seconds": None,
 }

@@ -12,7 +12,7 @@ from state.errors import (
     StreamFullError,
     VersionConflictError,
 )
-from state.keys import CONSUMER_GROUP, GENERATION_KEY, REGISTRY_KEY, ModelKeys, validate_model_name
+from state.keys import GENERATION_KEY, REGISTRY_KEY, ModelKeys, validate_model_name
 from state.options import ModelOptions
 from state.records import (
     Alert,
@@ -32,7 +32,6 @@ from state.stream import SkipRanges, SkipRule
 from state.versions import Checkpoint
 
 __all__ = [
-    "CONSUMER_GROUP",
     "GENERATION_KEY",
     "REGISTRY_KEY",
     "Alert",

@@ -50,7 +50,6 @@ REGISTRY_KEY = f"{PREFIX}:models"
 GENERATION_KEY = f"{PREFIX}:generation_seq"
 # Temporary: only the consumer-group worker still reads with a group; it goes with that worker
 # (reads become plain XREAD from the watermark).
-CONSUMER_GROUP = "learners"
 
 _MODEL_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}")
 

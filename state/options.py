@@ -29,9 +29,9 @@ class ModelOptions:
         only full units, which makes the state a function of the stream alone (reproducible
         whatever the read sizes, crashes and restarts).
     read_count : int
-        XREADGROUP COUNT: entries per read.
+        XREAD COUNT: entries per page the worker reads after its cursor.
     read_block_ms : int
-        XREADGROUP BLOCK in milliseconds.
+        XREAD BLOCK in milliseconds (how long a read waits for new entries).
     stream_max_length : int or None
         Cap on the unlearned backlog (entries added minus entries read): queueing that would
         pass it is refused whole (``StreamFullError``, answered 503 with Retry-After), so no
@@ -55,8 +55,6 @@ class ModelOptions:
         Alert when the Jensen-Shannon divergence (base 2) of the weights crosses this.
     drift_window : int
         Checkpoints back to the "window before" reference.
-    claim_idle_seconds : float
-        Pending entries idle this long are claimed from their consumer (XAUTOCLAIM).
     lease_seconds : float
         TTL of the heartbeat key: a worker silent this long loses the model.
     seed : int
@@ -80,7 +78,6 @@ class ModelOptions:
     lineage_limit: int = 10_000
     drift_threshold: float = 0.05
     drift_window: int = 10
-    claim_idle_seconds: float = 30.0
     lease_seconds: float = 15.0
     seed: int = 0
     review_threshold: float = 0.6
@@ -104,7 +101,6 @@ class ModelOptions:
                 _check_int(name, value, minimum=1)
         for name in ("checkpoint_seconds", "id_ttl_seconds", "lease_seconds"):
             _check_float(name, getattr(self, name), minimum=0.0, strict=True)
-        _check_float("claim_idle_seconds", self.claim_idle_seconds, minimum=0.0, strict=False)
         if self.flush_partial_seconds is not None:
             _check_float(
                 "flush_partial_seconds", self.flush_partial_seconds, minimum=0.0, strict=False
@@ -133,10 +129,15 @@ class ModelOptions:
         if not isinstance(d, dict):
             raise OptionsError(f"model options must be an object, got {type(d).__name__}")
         known = {f.name for f in fields(cls)}
+        # options that no longer exist, kept readable in models stored before their removal
+        d = {k: v for k, v in d.items() if k not in _RETIRED_OPTIONS}
         unknown = sorted(set(d) - known)
         if unknown:
             raise OptionsError(f"unknown model option(s): {', '.join(unknown)}")
         return cls(**d)
+
+
+_RETIRED_OPTIONS = frozenset({"claim_idle_seconds"})  # the consumer group's XAUTOCLAIM
 
 
 def _check_int(name: str, value: Any, *, minimum: int) -> None:

@@ -11,7 +11,7 @@ import redis
 
 from mixture.config import MixtureConfig
 from state.errors import ModelExistsError, ModelNotFoundError, StateError
-from state.keys import CONSUMER_GROUP, GENERATION_KEY, REGISTRY_KEY, ModelKeys, validate_model_name
+from state.keys import GENERATION_KEY, REGISTRY_KEY, ModelKeys, validate_model_name
 from state.options import ModelOptions
 from state.records import dumps
 
@@ -82,17 +82,7 @@ class Registry:
         if not self.redis.set(keys.config, dumps(info.to_dict()), nx=True):
             raise ModelExistsError(f"model {name!r} already exists")
         self.redis.sadd(REGISTRY_KEY, name)
-        self._create_group(keys)
         return info
-
-    def _create_group(self, keys: ModelKeys) -> None:
-        """Temporary: the consumer group the consumer-group worker reads with (created at
-        the stream's start, so nothing sent early is missed). Goes with that worker."""
-        try:
-            self.redis.xgroup_create(keys.docs, CONSUMER_GROUP, id="0", mkstream=True)
-        except redis.ResponseError as exc:
-            if "BUSYGROUP" not in str(exc):
-                raise
 
     def list(self) -> list[str]:
         """Names of every registered model, sorted."""

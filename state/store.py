@@ -25,7 +25,7 @@ from mixture.stats import MixtureState
 from state.drift_history import DriftHistory
 from state.errors import ModelNotFoundError
 from state.handle import ModelHandle
-from state.keys import CONSUMER_GROUP, ModelKeys, validate_model_name
+from state.keys import ModelKeys, validate_model_name
 from state.labels import GroupLabels
 from state.lease import Lease, default_worker_name
 from state.options import ModelOptions
@@ -45,7 +45,7 @@ from state.records import (
 from state.registry import ModelInfo, parse_model_info
 from state.rollback import Rollbacks
 from state.snapshots import Snapshots
-from state.stream import ZERO_ID, SkipRanges
+from state.stream import SkipRanges
 from state.versions import Checkpoint, Versions
 
 __all__ = ["MAX_CLIENT_ID_LENGTH", "Checkpoint", "ModelStore", "default_worker_name"]
@@ -239,27 +239,3 @@ class ModelStore:
     def set_group_label(self, group: int, label: str | None, destination: str | None) -> GroupLabel:
         """Set (or, with both None, clear) the label and destination of one group."""
         return self.labels.set(group, label, destination)
-
-    # -- temporary: the consumer-group worker's bookkeeping ----------------------------------
-    # Reads become plain XREAD from the watermark; these two go with the worker that calls them.
-    def ensure_group(self) -> None:
-        """Create the consumer group (reading from the stream's start) if it is missing."""
-        try:
-            self.redis.xgroup_create(self.keys.docs, CONSUMER_GROUP, id="0", mkstream=True)
-        except redis.ResponseError as exc:
-            if "BUSYGROUP" not in str(exc):
-                raise
-
-    def acknowledge_up_to(self, watermark: str, count: int = 10_000) -> int:
-        """XACK every pending entry at or below ``watermark`` (any consumer's)."""
-        done = 0
-        while watermark != ZERO_ID:
-            pending = self.redis.xpending_range(
-                self.keys.docs, CONSUMER_GROUP, min="-", max=watermark, count=count
-            )
-            if pending:
-                ids = [p["message_id"] for p in pending]
-                done += int(self.redis.xack(self.keys.docs, CONSUMER_GROUP, *ids))
-            if len(pending) < count:
-                break
-        return done

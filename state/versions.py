@@ -24,7 +24,6 @@ from mixture.serialize import checksum, state_from_bytes, state_to_bytes
 from mixture.stats import MixtureState
 from state.errors import VersionConflictError
 from state.handle import ModelHandle, loads_or_none
-from state.keys import CONSUMER_GROUP
 from state.records import CurrentState, HistoryRow, SnapshotInfo, VersionRecord, dumps
 from state.snapshots import Snapshots
 from state.stream import ZERO_ID, Undecodable, parse_stream_id
@@ -35,15 +34,13 @@ class Checkpoint:
     """Everything one checkpoint writes (built by the worker, committed by the store).
 
     ``state.metadata["entries_read"]`` (when the worker counts it) is copied into
-    ``state_meta``. ``ack_ids`` is temporary: the consumer-group worker still passes the ids
-    it read; they are acknowledged in the same MULTI until that worker is gone.
+    ``state_meta``.
     """
 
     worker: str
     expected_version: int
     state: MixtureState
     watermark: str
-    ack_ids: list[bytes | str] = field(default_factory=list)
     dead_letters: list[Undecodable] = field(default_factory=list)
     batch_documents: int = 0
     log_likelihood_per_token: float = float("nan")
@@ -251,8 +248,6 @@ class Versions:
     ) -> None:
         """Dead letters, the due automatic snapshot and retention, alerts, the stream trim."""
         keys, options = self.handle.keys, self.handle.options
-        for start in range(0, len(cp.ack_ids), 10_000):  # temporary: the consumer-group worker
-            pipe.xack(keys.docs, CONSUMER_GROUP, *cp.ack_ids[start : start + 10_000])
         for letter in cp.dead_letters:
             pipe.xadd(
                 keys.dead_letters, letter.dead_letter_fields(), maxlen=100_000, approximate=True

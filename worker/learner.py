@@ -1,31 +1,57 @@
-"""The learning loop: one consumer-group learner per model.
+"""The learning loop: one reader per model, reading its stream from the watermark.
 
-How it reads (exactly-once effect from at-least-once delivery)
--------------------------------------------------------------
+How it reads (exactly-once effect, one read path)
+-------------------------------------------------
 The worker holds the model's lease (the ``heartbeat`` key, a TTL naming it) or waits on
 standby. Holding it, it loads the current checkpoint; its *cursor* starts at the checkpoint's
-watermark. It learns strictly in stream order after the cursor:
+watermark. Every step reads ONE page, ``XREAD COUNT read_count BLOCK read_block_ms STREAMS
+docs <cursor>`` (:class:`state.reader.PageReader`), and learns it strictly in stream order:
 
-1. XREADGROUP ``>`` (count, block) delivers new entries. With a backlog (a full reply) the next
-   XREADGROUP is sent before the current entries are learned, so Redis prepares it meanwhile;
-   a read-ahead that is dropped (reload, error, shutdown) is covered by step 2.
-2. If entries exist between the cursor and the first delivered one (delivered earlier to a
-   consumer that died, read before an aborted checkpoint, or to be replayed after a rollback),
-   they are fetched first with XRANGE ``(cursor, first)``. With nothing delivered, XRANGE
-   ``(cursor, +]`` catches up the same way, so a replay needs no new traffic.
-3. Entries at or below the cursor are acknowledged and never learned again.
-4. Undecodable entries become dead letters; entries inside a rollback's skip ranges are passed
-   over; both are acknowledged.
-5. Documents are learned in units of ``batch_size`` (``OnlineLearner.learn``); a partial unit is
-   learned after ``flush_partial_seconds`` without new traffic (or never, when None).
+1. Live traffic, the catch-up after a restart and the replay after a rollback (which moves the
+   watermark back to the snapshot's) are the same read: pages after the cursor.
+2. A reload (a rollback, the lease regained), an error or a shutdown drops nothing that
+   matters: the next read starts from the cursor of the state loaded.
+3. Undecodable entries become dead letters; entries inside a rollback's skip ranges
+   (``ModelStore.replay_ranges``) are passed over, entry by entry.
+4. Documents are learned in units of ``batch_size`` (``OnlineLearner.learn``); a partial unit is
+   learned after ``flush_partial_seconds`` without new traffic (or never, when None: then the
+   state is a function of the stream alone).
+5. Each step renews the lease when a third of it has passed and checkpoints when the policy
+   says so (``checkpoint_documents`` / ``checkpoint_seconds``), so a catch-up or a replay of
+   a million entries holds the lease and commits its progress page after page instead of
+   being taken over by the standby and thrown away.
 
 The watermark is the last entry such that every entry up to it is handled. A checkpoint
-(``ModelStore.commit_checkpoint``) writes state, version + 1, watermark, history row, lineage
-record and the XACK of the handled entries in one MULTI under WATCH of version and lease. When
-the WATCH fails (a rollback, or the lease moved) the in-memory work is dropped and the worker
-reloads: nothing was acknowledged and the watermark did not move, so the entries are re-read.
-Recovery never depends on the pending-entries list: XAUTOCLAIM and the XPENDING sweep only keep
-it tidy, the XRANGE from the watermark is what guarantees that nothing is lost.
+(``ModelStore.commit_checkpoint``) writes state, version + 1, watermark, history row and
+lineage record in one MULTI under WATCH of version and lease. When the WATCH fails (a
+rollback, or the lease moved) the in-memory work is dropped and the worker reloads: the
+watermark did not move, so the entries are read again.
+
+Entries counter and gaps
+------------------------
+``state.metadata["entries_read"]`` counts the stream entries at or below the watermark that
+this state's line has passed (learned, skipped, dead-lettered, or recorded as lost), so lag is
+``entries-added - entries_read`` (``XINFO STREAM``, Redis >= 7). A state without the counter
+(written before it existed, or whose watermark was moved by a rollback without replay) gets
+it once at load: entries-added minus the entries after the watermark still in the stream.
+At load and every ``checkpoint_seconds`` the worker notes the stream's (entries-added,
+last id); once it has read past every entry present up to that id, entries-added minus its
+own count up to that id is the number of entries removed before they were read (an XDEL or a
+trim outside mixroute; ``max-deleted-entry-id`` past the watermark is the sign). A positive
+difference is recorded as lost: an alert of kind ``stream-gap`` with the count, the count
+added to ``entries_read`` and to ``metadata["entries_lost"]`` (the
+``mixroute_stream_lost_entries_total`` metric), and the worker carries on. Before Redis 7 the
+counters do not exist: the counter is then seeded from XLEN and gaps are not detected.
+
+Why no consumer group
+---------------------
+A consumer group would give a pending-entries list and XINFO lag, at the price of three read
+paths (XREADGROUP for new entries, an XRANGE to fill what a dead consumer or an aborted
+checkpoint left behind, an XRANGE to replay after a rollback) and bookkeeping to keep tidy
+(XACK in every checkpoint, XAUTOCLAIM of dead consumers, removing idle ones). None of it was
+needed for correctness: the lease already makes one reader per model, and recovery always
+depended only on the watermark, never on the pending list. Reading from the watermark
+cursor with XREAD is one path for every case, and the lag comes from the entries counter.
 """
 
 from __future__ import annotations
@@ -48,11 +74,17 @@ from mixture.online import BatchReport, OnlineLearner
 from mixture.serialize import state_from_bytes
 from state.connection import redis_from_url
 from state.errors import ModelNotFoundError, VersionConflictError
-from state.keys import CONSUMER_GROUP
 from state.options import ModelOptions
-from state.records import WorkerStatus
+from state.reader import (
+    PageReader,
+    count_entries_after,
+    count_through,
+    last_id_of,
+    stream_counts,
+)
+from state.records import CurrentState, WorkerStatus
 from state.store import Checkpoint, ModelStore, default_worker_name
-from state.stream import ZERO_ID, Document, SkipRanges, Undecodable, decode_entry, parse_stream_id
+from state.stream import ZERO_ID, Document, SkipRanges, Undecodable, decode_entry
 
 log = logging.getLogger(__name__)
 
@@ -90,7 +122,7 @@ class Worker:
     model : str
         Registered model name.
     name : str, optional
-        Consumer and lease name (default ``<host>:<pid>:<random>``).
+        Lease name (default ``<host>:<pid>:<random>``).
     options : ModelOptions, optional
         Override the model's stored options (tests, benchmarks).
 
@@ -124,15 +156,20 @@ class Worker:
         self._committed = ZERO_ID  # the watermark of the last checkpoint
         self.skip = SkipRanges()
         self._pending = _Pending()
-        self._prefetch: Any = None  # a connection whose XREADGROUP reply is not read yet
-        self._ack_ids: list[bytes | str] = []
+        self.reader = PageReader(self.redis, self.store.keys.docs, self.options.read_count)
         self._dead: list[Undecodable] = []
+        # entries passed up to the cursor (handled + pending + recorded lost); see _entries_read
+        self._entries_seen = 0
+        self._entries_lost = 0  # this state's line: entries recorded as lost in gaps
+        self._gap_probe: tuple[int, str] | None = None  # (entries-added, last id) to check
+        self._gap_alerts: list[dict[str, object]] = []
+        self._last_gap_check = 0.0
+        self._counts_known = True  # False before Redis 7 (no entries-added)
         self._report = BatchReport()
         self._documents_since_checkpoint = 0
         self._last_checkpoint = time.monotonic()
         self._last_arrival = time.monotonic()
         self._last_lease = 0.0
-        self._last_claim = time.monotonic()
         self._recent_weights: deque[list[float]] = deque(maxlen=self.options.drift_window)
         self._last_auto_snapshot_docs = 0
         self._last_auto_snapshot_time = time.time()
@@ -179,7 +216,7 @@ class Worker:
                 backoff = min(backoff * 2, 5.0)
             except Exception:
                 # a bug or a Redis-side surprise must not kill the loop silently: log it,
-                # drop the uncommitted work (nothing was acknowledged) and start over
+                # drop the uncommitted work (the watermark did not move) and start over
                 self.errors += 1
                 log.exception(
                     "worker %s: unexpected error; reloading in %.1fs",
@@ -204,21 +241,18 @@ class Worker:
             self._load()
         if self.deleted:
             return 0
-        learned = self._read_and_learn()
+        learned = self._read_page()
+        if time.monotonic() - self._last_gap_check >= self.options.checkpoint_seconds:
+            self._check_for_gap()
         if self._checkpoint_due():
             self.checkpoint()
-        self._maybe_tidy_pending()
         return learned
 
     def checkpoint(self) -> bool:
         """Commit what was handled since the last checkpoint. False if nothing to write."""
         if self.learner is None:
             return False
-        if self.handled == self._committed and not self._dead:
-            # only redeliveries at or below the watermark: acknowledge, no new version
-            if self._ack_ids:
-                self.redis.xack(self.store.keys.docs, CONSUMER_GROUP, *self._ack_ids)
-                self._ack_ids.clear()
+        if self.handled == self._committed and not self._dead and not self._gap_alerts:
             self._last_checkpoint = time.monotonic()
             return False
         state = self.learner.state
@@ -235,14 +269,16 @@ class Worker:
             self._drop_work()
             return False
         self._last_lease = time.monotonic()
-        alerts = self._drift_alerts(state)
+        alerts = self._drift_alerts(state) + self._gap_alerts
         snapshot_reason = self._snapshot_due(state)
+        state.metadata["entries_read"] = self._entries_read()
+        state.metadata["entries_read_watermark"] = self.handled
+        state.metadata["entries_lost"] = self._entries_lost
         cp = Checkpoint(
             worker=self.name,
             expected_version=self.version,
             state=state,
             watermark=self.handled,
-            ack_ids=list(self._ack_ids),
             dead_letters=list(self._dead),
             batch_documents=self._documents_since_checkpoint,
             log_likelihood_per_token=self._report.log_likelihood_per_token,
@@ -269,8 +305,8 @@ class Worker:
         if snapshot_reason:
             self._last_auto_snapshot_docs = state.documents_learned
             self._last_auto_snapshot_time = time.time()
-        self._ack_ids.clear()
         self._dead.clear()
+        self._gap_alerts.clear()
         self._report = BatchReport()
         self._documents_since_checkpoint = 0
         self._last_checkpoint = time.monotonic()
@@ -349,7 +385,6 @@ class Worker:
         if not self.redis.exists(self.store.keys.config):
             self._stop_for_deletion()
             return
-        self.store.ensure_group()
         current = self.store.current()
         if current is None:
             self.learner = OnlineLearner(self.config, seed=self.options.seed)
@@ -365,10 +400,12 @@ class Worker:
         self._committed = self.cursor
         self.skip = self.store.replay_ranges()
         self._pending.clear()
-        self._ack_ids.clear()
+        self.reader.drop()
         self._dead.clear()
+        self._gap_alerts.clear()
         self._report = BatchReport()
         self._documents_since_checkpoint = 0
+        self._load_counters(current)
         self._recent_weights.clear()
         # the drift window never reaches back across a rollback (the spoiled state's weights)
         rollbacks = [r.version for r in self.store.lineage(1000) if r.kind == "rollback"]
@@ -386,7 +423,6 @@ class Worker:
                 self.learner.state.documents_learned if current is not None else 0
             )
             self._last_auto_snapshot_time = time.time()
-        self.store.acknowledge_up_to(self.cursor)
         self._loaded = True
         log.info(
             "worker %s loaded model %r at version %d, watermark %s",
@@ -396,34 +432,68 @@ class Worker:
             self.cursor,
             extra=self._log_fields(),
         )
+        self._check_for_gap()
+
+    def _load_counters(self, current: CurrentState | None) -> None:
+        """Set the entries counter (D2) and the lost count from the loaded state."""
+        self._gap_probe = None
+        if current is None or self.learner is None:
+            self._entries_seen = 0
+            self._entries_lost = 0
+            return
+        metadata = self.learner.state.metadata
+        self._entries_lost = int(metadata.get("entries_lost", 0))
+        summary = self.store.summary() or {}
+        known = summary.get("entries_read")
+        if summary.get("version") == current.version and isinstance(known, int):
+            self._entries_seen = known  # the state layer's copy (also set by a rollback)
+            return
+        known = metadata.get("entries_read")
+        if metadata.get("entries_read_watermark") == current.watermark and isinstance(known, int):
+            self._entries_seen = known
+            return
+        # an older state, or a watermark moved without us (rollback without replay): count once
+        counts = stream_counts(self.redis, self.store.keys.docs)
+        added = counts.entries_added if counts.entries_added is not None else counts.length
+        after = count_entries_after(
+            self.redis, self.store.keys.docs, current.watermark, counts.last_generated_id
+        )
+        self._entries_seen = max(added - after, 0)
+        log.info(
+            "worker %s: model %r state has no entries counter at watermark %s; set to %d",
+            self.name,
+            self.model,
+            current.watermark,
+            self._entries_seen,
+            extra=self._log_fields(),
+        )
+
+    def _entries_read(self) -> int:
+        """Entries at or below the watermark to write (those read but pending are not)."""
+        return self._entries_seen - len(self._pending.ids)
 
     def _drop_work(self) -> None:
         """Forget everything not checkpointed; the next step reloads from Redis."""
         self._loaded = False
         self.learner = None
-        self._drop_prefetch()
+        self.reader.drop()
         self._pending.clear()
-        self._ack_ids.clear()
         self._dead.clear()
+        self._gap_alerts.clear()
 
     # -- reading -----------------------------------------------------------------------------
-    def _read_and_learn(self) -> int:
+    def _read_page(self) -> int:
+        """Read one page after the cursor, learn its full units."""
         opts = self.options
         block = opts.read_block_ms
         if self._pending.documents and opts.flush_partial_seconds is not None:
             block = min(block, max(int(opts.flush_partial_seconds * 1000), 1))
-        delivered = self._xreadgroup(block)
+        entries = self.reader.read(self.cursor, block)
         learned = 0
-        if delivered:
-            first = delivered[0][0].decode()
-            learned += self._catch_up(until=first)
-            if len(delivered) >= opts.read_count and not self._stop.is_set():
-                # Only now: Redis runs commands in order, and the XRANGE above would otherwise
-                # wait behind this read instead of the read running beside the learning below.
-                self._send_prefetch(block)
-            learned += self._take(delivered)
-        else:
-            learned += self._catch_up(until=None)
+        if entries:
+            learned += self._take(entries, complete=len(entries) < opts.read_count)
+        elif self._gap_probe is not None:
+            self._settle_gap(self._entries_seen)  # nothing after the cursor: all was read
         if (
             self._pending.documents
             and opts.flush_partial_seconds is not None
@@ -432,114 +502,103 @@ class Worker:
             learned += self._learn_units(flush=True)
         return learned
 
-    def _catch_up(self, until: str | None) -> int:
-        """XRANGE the entries after the cursor and before ``until`` (or to the end)."""
-        learned = 0
-        maximum = "+" if until is None else f"({until}"
-        while not self._stop.is_set():
-            entries = self.redis.xrange(
-                self.store.keys.docs,
-                min=f"({self.cursor}",
-                max=maximum,
-                count=self.options.read_count,
-            )
-            if not entries:
-                return learned
-            learned += self._take(entries)
-            if len(entries) < self.options.read_count or until is None:
-                return learned
-        return learned
+    # -- gaps --------------------------------------------------------------------------------
+    def _check_for_gap(self) -> None:
+        """Note the stream's counters, to be compared with ours once we have read that far.
 
-    def _xreadgroup(self, block: int) -> list[Any]:
-        """XREADGROUP ``>`` with the reply left as Redis sent it: ``[[id, [f, v, ...]], ...]``.
-
-        redis-py's reply conversion (a dict per entry) costs more than the read itself, so the
-        command goes over a pooled connection without it. Works with RESP2 and RESP3 replies.
-
-        When a reply is full (a backlog), the caller sends the next XREADGROUP before learning
-        this one (:meth:`_send_prefetch`) and its reply is read here on the next call: Redis
-        prepares it on its own core while this one learns. Its entries are in this consumer's
-        pending list; if the reply is ever dropped (reload, error, shutdown) they are not
-        lost, because reading always catches up from the cursor with XRANGE (step 2 of the
-        module docstring).
+        Every entry ever added up to the stream's last id is either passed by this line
+        (learned, skipped, dead-lettered) or was removed before it was read: once the cursor
+        has passed every entry present up to that id, the difference between entries-added
+        and our count is the number lost. Checked at load and every ``checkpoint_seconds``
+        (one XINFO STREAM; Redis >= 7).
         """
-        pool = self.redis.connection_pool
-        connection = self._prefetch
-        self._prefetch = None
-        try:
-            if connection is None:
-                connection = pool.get_connection()
-                connection.send_command(*self._xreadgroup_args(block))
-            reply = connection.read_response()
-        except BaseException:
-            if connection is not None:
-                connection.disconnect()  # a half-read reply must not reach the next user
-            raise
-        finally:
-            if connection is not None:
-                pool.release(connection)
-        if not reply:
-            return []
-        # RESP3: {stream: entries}; RESP2: [[stream, entries]]
-        return next(iter(reply.values())) if isinstance(reply, dict) else reply[0][1]
-
-    def _xreadgroup_args(self, block: int) -> list[Any]:
-        args: list[Any] = [
-            "XREADGROUP",
-            "GROUP",
-            CONSUMER_GROUP,
-            self.name,
-            "COUNT",
-            self.options.read_count,
-        ]
-        if block > 0:
-            args += ["BLOCK", block]
-        args += ["STREAMS", self.store.keys.docs, ">"]
-        return args
-
-    def _send_prefetch(self, block: int) -> None:
-        pool = self.redis.connection_pool
-        connection = pool.get_connection()
-        try:
-            connection.send_command(*self._xreadgroup_args(block))
-        except _RETRYABLE:
-            connection.disconnect()
-            pool.release(connection)  # no prefetch this time; the next read sends its own
+        self._last_gap_check = time.monotonic()
+        if not self._counts_known or self._gap_probe is not None:
             return
-        self._prefetch = connection
+        counts = stream_counts(self.redis, self.store.keys.docs)
+        if counts.entries_added is None:
+            self._counts_known = False
+            log.info(
+                "worker %s: this Redis reports no entries-added (before 7.0); stream gaps "
+                "cannot be detected",
+                self.name,
+                extra=self._log_fields(),
+            )
+            return
+        self._gap_probe = (counts.entries_added, counts.last_generated_id)
 
-    def _drop_prefetch(self) -> None:
-        """Forget a read in flight (its entries are re-read by the XRANGE catch-up)."""
-        connection, self._prefetch = self._prefetch, None
-        if connection is not None:
-            connection.disconnect()
-            self.redis.connection_pool.release(connection)
+    def _settle_gap(self, seen_through_probe: int) -> None:
+        """Compare the entries passed up to the probe's id with those ever added up to it."""
+        assert self._gap_probe is not None
+        added, through = self._gap_probe
+        self._gap_probe = None
+        lost = added - seen_through_probe
+        if lost < 0:  # our count was too high (a foreign state): trust the stream's
+            log.warning(
+                "worker %s: entries counter %d above entries-added %d at %s; corrected",
+                self.name,
+                seen_through_probe,
+                added,
+                through,
+                extra=self._log_fields(),
+            )
+        elif lost == 0:
+            return
+        self._entries_seen += lost
+        if lost < 0:
+            return
+        self._entries_lost += lost
+        log.warning(
+            "worker %s: model %r lost %d stream entries up to %s before they were learned "
+            "(removed outside mixroute)",
+            self.name,
+            self.model,
+            lost,
+            through,
+            extra=self._log_fields(),
+        )
+        self._gap_alerts.append(
+            {
+                "time": time.time(),
+                "kind": "stream-gap",
+                "reason": (
+                    f"{lost} stream entries up to {through} were removed before they were "
+                    f"learned (after watermark {self.handled})"
+                ),
+                "value": lost,
+                "threshold": 0,
+                "version": self.version + 1,
+            }
+        )
 
-    def _take(self, entries: list[Any]) -> int:
-        """Queue entries after the cursor, acknowledge the rest, learn full units."""
-        # entries come sorted by id: only a leading run can be at or below the cursor
-        cursor = parse_stream_id(self.cursor)
-        start = 0
-        while start < len(entries) and parse_stream_id(entries[start][0]) <= cursor:
-            self._ack_ids.append(entries[start][0].decode())  # redelivered: already handled
-            start += 1
-        fresh = start < len(entries)
+    def _take(self, entries: list[Any], complete: bool = False) -> int:
+        """Queue a page's entries (all after the cursor), learn full units.
+
+        ``complete``: the page holds every entry after the cursor that existed when the read
+        ran (a short page; reads always follow the gap probe they are compared with).
+        """
+        if self._gap_probe is not None:
+            through = count_through(entries, self._gap_probe[1])
+            # an entry past the probe's last id was added after the probe: so was the read
+            if through < len(entries) or complete:
+                self._settle_gap(self._entries_seen + through)
+        self._entries_seen += len(entries)
+        self.cursor = last_id_of(entries)
+        self._last_arrival = time.monotonic()
         skip = self.skip
         skipping = bool(skip)
         pending = self._pending
-        if fresh and not skipping:
-            rest = entries[start:] if start else entries
-            texts = _plain_texts(rest)
+        if not skipping:
+            texts = _plain_texts(entries)
             if texts is not None:  # the common case, in three list comprehensions
-                pending.ids.extend([entry[0] for entry in rest])
+                pending.ids.extend([entry[0] for entry in entries])
                 pending.items.extend(texts)
                 pending.documents += len(texts)
-                self.cursor = entries[-1][0].decode()
-                self._last_arrival = time.monotonic()
                 return self._learn_units(flush=False)
         add_id, add_item = pending.ids.append, pending.items.append
         documents = others = 0
-        for raw_id, fields in entries[start:]:
+        for raw_id, raw_fields in entries:
+            fields = raw_fields
             if type(fields) is list:  # a raw reply: [field, value, ...]
                 if (
                     len(fields) == 8
@@ -558,8 +617,6 @@ class Worker:
                         documents += 1
                         continue
                 fields = dict(zip(fields[::2], fields[1::2], strict=False))
-            elif fields is None:  # an entry deleted after delivery
-                fields = {}
             raw_text = fields.get(b"text")
             raw_meta = fields.get(b"metadata")
             if raw_text is not None and not skipping and (not raw_meta or raw_meta == b"{}"):
@@ -585,10 +642,6 @@ class Worker:
                 others += 1
         pending.documents += documents
         pending.others += others
-        if fresh:
-            self.cursor = entries[-1][0].decode()
-        if fresh:
-            self._last_arrival = time.monotonic()
         return self._learn_units(flush=False)
 
     def _learn_units(self, flush: bool) -> int:
@@ -625,9 +678,8 @@ class Worker:
         return learned
 
     def _handle(self, cut: int) -> None:
-        """Mark the first ``cut`` pending entries handled: to acknowledge, dead letters out."""
+        """Mark the first ``cut`` pending entries handled (dead letters set aside)."""
         pending = self._pending
-        self._ack_ids.extend(pending.ids[:cut])
         if pending.others:
             for stream_id, item in zip(pending.ids[:cut], pending.items[:cut], strict=True):
                 if isinstance(item, str):
@@ -649,7 +701,7 @@ class Worker:
 
     # -- checkpoint policy -------------------------------------------------------------------
     def _checkpoint_due(self) -> bool:
-        if len(self._ack_ids) == 0 and not self._dead:
+        if self.handled == self._committed and not self._dead and not self._gap_alerts:
             return False
         if self._documents_since_checkpoint >= self.options.checkpoint_documents:
             return True
@@ -706,49 +758,10 @@ class Worker:
             learner_state.metadata["drift_alarm"] = False
         return alerts
 
-    # -- housekeeping ------------------------------------------------------------------------
-    def _maybe_tidy_pending(self) -> None:
-        """Claim a dead consumer's idle entries and acknowledge what the watermark covers."""
-        idle = self.options.claim_idle_seconds
-        if time.monotonic() - self._last_claim < max(idle / 2, 1.0):
-            return
-        self._last_claim = time.monotonic()
-        keys = self.store.keys
-        watermark = parse_stream_id(self.handled)
-        start = "0-0"
-        while True:
-            reply = self.redis.xautoclaim(
-                keys.docs,
-                CONSUMER_GROUP,
-                self.name,
-                min_idle_time=int(idle * 1000),
-                start_id=start,
-                count=1000,
-            )
-            # [next start, [(id, fields), ...]] (+ deleted ids on Redis 7)
-            next_start, claimed = reply[0], reply[1]
-            covered = [entry[0] for entry in claimed if parse_stream_id(entry[0]) <= watermark]
-            if covered:
-                self.redis.xack(keys.docs, CONSUMER_GROUP, *covered)
-            start = next_start.decode() if isinstance(next_start, bytes) else str(next_start)
-            if start == "0-0":
-                break
-        try:
-            for consumer in self.redis.xinfo_consumers(keys.docs, CONSUMER_GROUP):
-                name = consumer["name"]
-                name = name.decode() if isinstance(name, bytes) else str(name)
-                if (
-                    name != self.name
-                    and int(consumer["pending"]) == 0
-                    and int(consumer["idle"]) > idle * 1000
-                ):
-                    self.redis.xgroup_delconsumer(keys.docs, CONSUMER_GROUP, name)
-        except redis.ResponseError:
-            pass
-
+    # -- shutdown --------------------------------------------------------------------------
     def _shutdown(self) -> None:
         """Finish: learn a partial unit when latency mode is on, checkpoint, release the lease."""
-        self._drop_prefetch()
+        self.reader.close()
         if self.deleted:
             with contextlib.suppress(*_RETRYABLE):
                 self.store.release_lease(self.name)  # leave no key of a deleted model behind
@@ -765,8 +778,8 @@ class Worker:
                 self.holding = False
         except _RETRYABLE as exc:
             log.warning(
-                "worker %s could not checkpoint at shutdown (%s); the entries stay "
-                "unacknowledged and will be learned by the next worker",
+                "worker %s could not checkpoint at shutdown (%s); the watermark did not "
+                "move, so the next worker learns the entries",
                 self.name,
                 exc,
                 extra=self._log_fields(),

@@ -1,0 +1,168 @@
+"""Reading a model's stream after a cursor: pages by XREAD.
+
+The learning worker is the only reader of a model's stream (the lease makes it so), and it
+knows exactly where it is: its cursor, the last entry it has taken. So it reads with plain
+``XREAD COUNT n BLOCK ms STREAMS docs <cursor>``; the next page starts after the last id of
+the current one.
+
+:class:`PageReader` keeps its own connection, made from the client pool's connection class
+and arguments (``pool.connection_class(**pool.connection_kwargs)``): it needs no
+``get_connection`` call, whose signature changed across redis-py 5.x, and its replies are
+read as Redis sent them (``[[id, [field, value, ...]], ...]``): redis-py's conversion to a
+dict per entry costs more than the read itself.
+
+A read sent ahead (the next page requested before the current one is learned) paid while the
+worker read through a consumer group, whose XREADGROUP + XACK cost Redis real work; with
+XREAD it measured no gain (bench/bench_worker.py, six runs each way: median 60,000 documents
+a second with and without), so there is none.
+
+:func:`stream_counts` reads ``XINFO STREAM``'s counters (``entries-added`` and
+``max-deleted-entry-id`` exist from Redis 7 on; None before), which tell whether entries
+were removed after a position and how many entries the stream ever held.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import redis
+
+from state.stream import ZERO_ID, parse_stream_id
+
+RawEntry = tuple[bytes, list[bytes]]  # really [id, [field, value, ...]] as sent by Redis
+
+
+@dataclass(frozen=True)
+class StreamCounts:
+    """A stream's counters at one moment (``XINFO STREAM``).
+
+    Attributes
+    ----------
+    length : int
+        Entries in the stream now.
+    last_generated_id : str
+        The newest id ever added ("0-0" for a stream never written).
+    entries_added : int or None
+        Entries ever added (Redis >= 7; None before).
+    max_deleted_id : str or None
+        The largest id ever removed by XDEL or a trim (Redis >= 7; None before).
+    """
+
+    length: int
+    last_generated_id: str
+    entries_added: int | None
+    max_deleted_id: str | None
+
+
+def _text(value: Any) -> str:
+    return value.decode() if isinstance(value, bytes) else str(value)
+
+
+def stream_counts(client: redis.Redis, key: str) -> StreamCounts:
+    """``XINFO STREAM`` of ``key`` as :class:`StreamCounts` (zeros for a missing stream)."""
+    try:
+        raw = client.xinfo_stream(key)
+    except redis.ResponseError as exc:
+        if "no such key" in str(exc).lower():
+            return StreamCounts(0, ZERO_ID, 0, ZERO_ID)
+        raise
+    info = {_text(k): v for k, v in raw.items()}
+    added = info.get("entries-added")
+    deleted = info.get("max-deleted-entry-id")
+    return StreamCounts(
+        length=int(info.get("length", 0)),
+        last_generated_id=_text(info.get("last-generated-id", ZERO_ID)),
+        entries_added=None if added is None else int(added),
+        max_deleted_id=None if deleted is None else _text(deleted),
+    )
+
+
+def count_entries_after(
+    client: redis.Redis, key: str, after: str, through: str = "+", page: int = 10_000
+) -> int:
+    """Entries with ids in ``(after, through]`` (XRANGE page by page; O(entries counted))."""
+    total = 0
+    start = f"({after}"
+    while True:
+        entries = client.xrange(key, min=start, max=through, count=page)
+        total += len(entries)
+        if len(entries) < page:
+            return total
+        start = f"({_text(entries[-1][0])}"
+
+
+class PageReader:
+    """XREAD pages after a cursor over a dedicated connection.
+
+    Parameters
+    ----------
+    client : redis.Redis
+        The client whose pool's connection class and arguments the reader copies.
+    key : str
+        The stream.
+    count : int
+        Entries per page (XREAD COUNT).
+
+    Notes
+    -----
+    Any failure, and :meth:`drop`, disconnect the connection, so a half-read reply never
+    reaches a later read (the next command reconnects).
+    """
+
+    def __init__(self, client: redis.Redis, key: str, count: int) -> None:
+        pool = client.connection_pool
+        self._connection = pool.connection_class(**pool.connection_kwargs)
+        self.key = key
+        self.count = int(count)
+
+    def read(self, after: str, block: int) -> list[RawEntry]:
+        """The next page after ``after`` (waiting up to ``block`` ms; [] when none came)."""
+        args: list[Any] = ["XREAD", "COUNT", self.count]
+        if block > 0:
+            args += ["BLOCK", block]
+        args += ["STREAMS", self.key, after]
+        try:
+            self._connection.send_command(*args)
+            reply = self._connection.read_response()
+        except BaseException:
+            self.drop()
+            raise
+        if not reply:
+            return []
+        # RESP3: {stream: entries}; RESP2: [[stream, entries]]
+        return next(iter(reply.values())) if isinstance(reply, dict) else reply[0][1]
+
+    def close(self) -> None:
+        """Disconnect (the next read reconnects)."""
+        self._connection.disconnect()
+
+    drop = close
+
+
+def last_id_of(entries: list[RawEntry]) -> str:
+    """The id of a page's last entry, as text."""
+    return _text(entries[-1][0])
+
+
+def count_through(entries: list[RawEntry], through: str) -> int:
+    """How many of a page's entries (sorted by id) have ids at or below ``through``."""
+    limit = parse_stream_id(through)
+    low, high = 0, len(entries)
+    while low < high:
+        middle = (low + high) // 2
+        if parse_stream_id(entries[middle][0]) <= limit:
+            low = middle + 1
+        else:
+            high = middle
+    return low
+
+
+__all__ = [
+    "PageReader",
+    "StreamCounts",
+    "count_entries_after",
+    "count_through",
+    "last_id_of",
+    "stream_counts",
+]
