@@ -36,7 +36,7 @@ from dataclasses import asdict, dataclass, field, fields
 from typing import Any
 
 from mixture.errors import ConfigError
-from mixture.text import TokenizerConfig
+from mixture.tokenizer import TokenizerConfig
 
 
 @dataclass(frozen=True)

@@ -405,7 +405,7 @@ def fit_texts(
         Warmed up; ready for routing or for stepwise learning.
     report : FitReport
     """
-    from mixture.text import count_texts
+    from mixture.counting import count_texts
 
     state = MixtureState.empty(config, seed)
     batch = count_texts(texts, state.tokenizer, state.vocabulary, grow=True)

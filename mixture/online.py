@@ -25,11 +25,11 @@ import numpy as np
 import scipy.sparse as sp
 
 from mixture.config import MixtureConfig
+from mixture.counting import count_texts
 from mixture.em import fit_pending, validate_counts
 from mixture.errors import InputError
 from mixture.kernels import softmax_rows
 from mixture.stats import MixtureState
-from mixture.text import count_texts
 
 
 @dataclass

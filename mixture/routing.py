@@ -14,11 +14,11 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
+from mixture.counting import count_texts
 from mixture.errors import InputError
 from mixture.kernels import softmax_rows
 from mixture.stats import MixtureState, Parameters
 from mixture.sweep import blocked_product
-from mixture.text import count_texts
 
 
 @dataclass

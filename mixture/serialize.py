@@ -27,7 +27,7 @@ import scipy.sparse as sp
 from mixture.config import MixtureConfig
 from mixture.errors import ConfigError, StateFormatError
 from mixture.stats import MixtureState
-from mixture.text import Vocabulary
+from mixture.vocabulary import Vocabulary
 
 MAGIC = b"MXRSTATE"
 FORMAT_VERSION = 1

@@ -40,7 +40,8 @@ import scipy.sparse as sp
 from mixture.config import MixtureConfig
 from mixture.errors import InputError
 from mixture.kernels import smoothed_log_weights, smoothed_log_word_prob
-from mixture.text import Tokenizer, Vocabulary
+from mixture.tokenizer import Tokenizer
+from mixture.vocabulary import Vocabulary
 
 __all__ = ["MixtureState", "Parameters", "derive_parameters", "warm_start_step"]
 

@@ -17,7 +17,7 @@ from mixture.online import OnlineLearner, stepwise_update
 from mixture.routing import route_counts, route_texts
 from mixture.serialize import state_from_bytes, state_to_bytes
 from mixture.stats import MixtureState, derive_parameters, warm_start_step
-from mixture.text import Vocabulary
+from mixture.vocabulary import Vocabulary
 
 THEMES = [
     "ferry ticket booking refund price card seat fare",
@@ -317,8 +317,8 @@ def test_fit_is_reproducible_and_rejects_bad_input():
 def test_few_document_path_equals_the_sparse_path():
     """route_texts takes a direct path for a handful of documents; it must give route_counts's
     answer (the sparse products) to rounding."""
+    from mixture.counting import count_texts
     from mixture.routing import SMALL_BATCH
-    from mixture.text import count_texts
 
     texts, _ = _themed_texts(400, seed=8)
     state, _ = fit_texts(texts, MixtureConfig(n_groups=3, n_restarts=1))

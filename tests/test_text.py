@@ -1,4 +1,4 @@
-"""Tests of mixture.text: tokenizer, vocabulary, and batch counts."""
+"""Tests of the text modules: tokenizer, vocabulary, and batch counts."""
 
 from __future__ import annotations
 
@@ -13,18 +13,17 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from sklearn.feature_extraction.text import CountVectorizer
 
+from mixture.counting import CountBatch, count_texts, token_id_cache, token_ids_text_by_text
 from mixture.errors import ConfigError, InputError, StateFormatError
-from mixture.text import (
+from mixture.tokenizer import (
     EMAIL_TOKEN,
     ENGLISH_STOP_WORDS,
     NUMBER_TOKEN,
     URL_TOKEN,
-    CountBatch,
     Tokenizer,
     TokenizerConfig,
-    Vocabulary,
-    count_texts,
 )
+from mixture.vocabulary import Vocabulary
 
 # Invented ferry-inbox snippets (made up for these tests).
 INBOX = [
@@ -569,13 +568,11 @@ _TEXTS = st.lists(st.lists(_PIECES, max_size=12).map("".join), max_size=8)
 
 
 def _assert_same_as_text_by_text(texts: list[str]) -> None:
-    from mixture.text import _token_ids_per_text
-
     tokenizer = Tokenizer()
     joined_vocab, single_vocab = Vocabulary(), Vocabulary()
     batch = count_texts(texts, tokenizer, joined_vocab, grow=True)
-    lookup = single_vocab._id_cache(tokenizer, True).__getitem__
-    ids, ends = _token_ids_per_text(texts, tokenizer, lookup)
+    lookup = token_id_cache(single_vocab, tokenizer, True).__getitem__
+    ids, ends = token_ids_text_by_text(texts, tokenizer, lookup)
     assert joined_vocab.words() == single_vocab.words()
     starts = np.concatenate([[0], ends])[:-1]
     for row, (start, stop) in enumerate(zip(starts, ends, strict=True)):
