@@ -479,3 +479,41 @@ def test_stepwise_update_with_far_more_documents_than_batch_size_is_units_of_it(
         state.expected_word_counts(), units.expected_word_counts(), rtol=1e-12
     )
     np.testing.assert_allclose(state.effective_documents, units.effective_documents)
+
+
+def test_drift_and_descriptions_of_an_emptied_group_without_word_smoothing():
+    """An emptied group under beta = 0 is uniform over the active words (the limit of its
+    Lidstone smoothing, as in derive_parameters), so its JS divergence to another group is
+    scipy's jensenshannon(uniform, other, base=2) ** 2. Before: 0 / 0 = nan distributions,
+    and js_divergence refused them."""
+    vocab = Vocabulary(["ferry", "ticket", "storm", "wave"])
+    config = _without_word_smoothing(MixtureConfig(n_groups=2, batch_size=4, warmup_documents=2))
+    counts = np.array([[4.0, 0.0], [2.0, 0.0], [1.0, 0.0], [1.0, 0.0]])
+    emptied = MixtureState.from_counts(config, vocab, counts, np.array([3.0, 0.0]), 3)
+    other_counts = np.array([[4.0, 1.0], [2.0, 0.0], [1.0, 3.0], [1.0, 1.0]])
+    other = MixtureState.from_counts(config, vocab.copy(), other_counts, np.array([3.0, 2.0]), 5)
+    drift = word_drift(emptied, other, aligned=False)
+    assert np.isfinite(drift).all()
+    theirs = other_counts[:, 1] / other_counts[:, 1].sum()
+    assert drift[1] == pytest.approx(jensenshannon(np.full(4, 0.25), theirs, base=2) ** 2)
+    summaries = describe_groups(emptied, top_n=2, min_count=0.0)
+    assert [p for _, p in summaries[1].top_terms] == pytest.approx([0.25, 0.25])
+
+
+def test_js_divergence_is_zero_where_scipy_rounds_below_zero():
+    """scipy's jensenshannon takes the square root of a sum that rounding can leave below
+    zero (nan) for distributions one ulp apart; the divergence of such a pair is 0."""
+    from scipy.spatial.distance import jensenshannon as scipy_js
+
+    rng = np.random.default_rng(0)
+    for _ in range(20_000):
+        p = rng.dirichlet(np.ones(rng.integers(2, 50)))
+        q = p.copy()
+        j = rng.integers(p.size)
+        q[j] = np.nextafter(q[j], 1.0)
+        with np.errstate(invalid="ignore"):
+            if np.isnan(scipy_js(p, q, base=2)):
+                break
+    else:
+        pytest.fail("no rounding case found")
+    assert js_divergence(p, q) == pytest.approx(0.0, abs=1e-15)
