@@ -33,8 +33,9 @@ pseudo-count falls to zero, never nan:
   log normaliser is ``-inf``, which callers use to flag it. Batch EM never meets such a row
   (each document is possible in the groups it was assigned to).
 
-The configuration requires ``word_pseudocount > 0`` for the service (a model that calls every
-new word impossible learns nothing from it); the kernels stay correct at zero regardless.
+Whether a configuration may set ``word_pseudocount = 0`` is mixture.config's decision (under
+zero, every document with a new word is impossible in every group, so stepwise EM learns it
+with the prior as its responsibilities); the kernels stay exact at zero regardless.
 """
 
 from __future__ import annotations
