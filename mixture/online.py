@@ -7,7 +7,8 @@ sufficient statistics s_batch, and the running statistics move towards them,
 
 optionally with eta floored (exponential forgetting, so the model follows drift). k counts units
 of ``batch_size`` documents: a batch of m documents moves it by m / batch_size and takes the step
-1 - (1 - eta_k) ** (m / batch_size), so partial units do not shorten the memory. The update
+1 - (1 - eta_k) ** (m / batch_size), so partial units do not shorten the memory; a batch of
+more than ``batch_size`` documents is applied as consecutive units of it. The update
 touches only the rows of the words in the batch plus O(K) numbers: the uniform shrink by
 (1 - eta) is a change of the running scale factor (see mixture.stats).
 
