@@ -609,3 +609,40 @@ def test_joined_batch_pass_at_text_edges(texts: list[str]) -> None:
     # URLs and addresses at the end or start of a text must not run into the next one; a
     # text holding the separator itself takes the per-text path.
     _assert_same_as_text_by_text(texts)
+
+
+def test_attached_caches_hear_of_every_change_to_the_ids() -> None:
+    # The vocabulary's public seam for lookup caches (no outside source: a protocol check).
+    class Recorder:
+        def __init__(self) -> None:
+            self.events: list[tuple[str, str]] = []
+
+        def word_issued(self, word: str) -> None:
+            self.events.append(("issued", word))
+
+        def word_removed(self, word: str) -> None:
+            self.events.append(("removed", word))
+
+        def ids_renumbered(self) -> None:
+            self.events.append(("renumbered", ""))
+
+    vocabulary = Vocabulary(["harbour"])
+    recorder = vocabulary.attach_cache("recorder", Recorder)
+    assert vocabulary.attach_cache("recorder", Recorder) is recorder
+    vocabulary.add("ferry")
+    vocabulary.retire(np.array([0]))
+    vocabulary.compact()
+    assert recorder.events == [("issued", "ferry"), ("removed", "harbour"), ("renumbered", "")]
+    assert vocabulary.copy().attach_cache("recorder", Recorder) is not recorder
+
+
+def test_routing_counts_forget_a_retired_word_and_learn_a_new_one() -> None:
+    tokenizer = Tokenizer()
+    vocabulary = Vocabulary()
+    count_texts(["harbour ferry"], tokenizer, vocabulary, grow=True)
+    assert count_texts(["ferry storm"], tokenizer, vocabulary, grow=False).unknown_tokens[0] == 1
+    vocabulary.retire(np.array([vocabulary.lookup("ferry")]))
+    count_texts(["storm"], tokenizer, vocabulary, grow=True)
+    routed = count_texts(["ferry storm"], tokenizer, vocabulary, grow=False)
+    assert routed.unknown_tokens[0] == 1 and routed.known_tokens[0] == 1
+    assert routed.counts.indices.tolist() == [vocabulary.lookup("storm")]
