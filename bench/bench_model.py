@@ -38,7 +38,7 @@ from mixture.online import stepwise_update
 from mixture.routing import route_counts
 from mixture.stats import MixtureState, derive_parameters
 from mixture.sweep import set_worker_threads, worker_threads
-from mixture.text import Vocabulary
+from mixture.vocabulary import Vocabulary
 
 
 def timed_pair(
@@ -127,7 +127,8 @@ def bench_routing(n_docs: int, n_words: int, n_groups: int, repeats: int) -> dic
 
 def bbc_counts() -> sp.csr_matrix | None:
     """The BBC corpus as our counts (None when the corpus is not installed)."""
-    from mixture.text import Tokenizer, count_texts
+    from mixture.counting import count_texts
+    from mixture.tokenizer import Tokenizer
     from tests.corpora import CorpusMissingError, load_bbc
 
     try:

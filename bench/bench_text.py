@@ -22,7 +22,9 @@ from collections.abc import Callable, Sequence
 import numpy as np
 from sklearn.feature_extraction.text import CountVectorizer
 
-from mixture.text import Tokenizer, Vocabulary, count_texts
+from mixture.counting import count_texts
+from mixture.tokenizer import Tokenizer
+from mixture.vocabulary import Vocabulary
 
 # Syllables for invented content words; the function words are real English.
 _SYLLABLES = [

@@ -36,7 +36,7 @@ from mixture.config import MixtureConfig
 from mixture.online import OnlineLearner
 from mixture.serialize import state_from_bytes, state_to_bytes
 from mixture.stats import MixtureState
-from mixture.text import Vocabulary
+from mixture.vocabulary import Vocabulary
 from state.connection import EmbeddedRedis
 from state.options import ModelOptions
 from state.records import WorkerStatus

@@ -37,7 +37,7 @@ from typing import Any
 
 from mixture.errors import ConfigError
 from mixture.lifecycle_config import LifecycleConfig
-from mixture.text import TokenizerConfig
+from mixture.tokenizer import TokenizerConfig
 
 
 @dataclass(frozen=True)

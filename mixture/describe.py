@@ -7,6 +7,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.optimize import linear_sum_assignment
 
+from mixture.kernels import smoothed_log_word_prob
 from mixture.stats import MixtureState
 
 
@@ -61,8 +62,15 @@ def describe_groups(
     prob = np.exp(params.log_word_prob[active])  # (V_active, K)
     counts = state.expected_word_counts()[active]
     pooled_counts = counts.sum(axis=1)
-    beta = state.config.word_pseudocount
-    pooled = (pooled_counts + beta) / (pooled_counts.sum() + active.size * beta)
+    # The pooled (one-group) distribution, smoothed like the groups' own.
+    pooled = np.exp(
+        smoothed_log_word_prob(
+            pooled_counts[:, None],
+            pooled_counts.sum(keepdims=True),
+            active.size,
+            state.config.word_pseudocount,
+        )[:, 0]
+    )
     out: list[GroupSummary] = []
     n = min(top_n, active.size)
     for k in range(state.n_groups):
@@ -121,13 +129,18 @@ def _on_union(state: MixtureState, words: dict[str, int], index: dict[str, int])
     if not words or not state.warmed_up:
         out[:] = 1.0 / max(len(index), 1)
         return out
-    counts = state.expected_word_counts()
-    beta = state.config.word_pseudocount
-    floor = beta if beta > 0 else 1e-12
-    out[:] = floor
+    params = state.parameters()
     ids = np.fromiter(words.values(), dtype=np.int64, count=len(words))
     rows = np.fromiter((index[w] for w in words), dtype=np.int64, count=len(words))
-    out[rows] = counts[ids] + beta
+    # An unknown word: the smoothed probability of a word with no count (the same kernel).
+    unseen = smoothed_log_word_prob(
+        np.zeros((1, k)),
+        state.unscaled_total * state.count_scale,
+        state.vocabulary.n_active,
+        state.config.word_pseudocount,
+    )
+    out[:] = np.exp(unseen)
+    out[rows] = np.exp(params.log_word_prob[ids])
     out /= out.sum(axis=0, keepdims=True)
     return out
 

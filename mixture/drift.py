@@ -1,4 +1,7 @@
-"""Drift measures between distributions and between two model states."""
+"""Drift measures between distributions and between two model states.
+
+``js_divergence`` is the kernel's (:func:`mixture.kernels.js_divergence`, from scipy).
+"""
 
 from __future__ import annotations
 
@@ -7,44 +10,18 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 from mixture.errors import InputError
+from mixture.kernels import as_distribution, js_divergence
+
+__all__ = ["js_divergence", "total_variation", "weight_drift", "word_drift"]
 
 if TYPE_CHECKING:
     from mixture.stats import MixtureState
 
 
-def _as_distribution(p: np.ndarray, name: str) -> np.ndarray:
-    arr = np.asarray(p, dtype=np.float64)
-    if arr.ndim != 1 or arr.size == 0:
-        raise InputError(f"{name} must be a non-empty 1-D distribution")
-    if not np.all(np.isfinite(arr)) or arr.min() < 0:
-        raise InputError(f"{name} must be finite and non-negative")
-    total = arr.sum()
-    if total <= 0:
-        raise InputError(f"{name} sums to zero")
-    return arr / total
-
-
-def js_divergence(p: np.ndarray, q: np.ndarray) -> float:
-    """Jensen-Shannon divergence in bits (base 2), in [0, 1].
-
-    Both inputs are normalised first. Equal to ``scipy.spatial.distance.jensenshannon(p, q,
-    base=2) ** 2``.
-    """
-    p = _as_distribution(p, "p")
-    q = _as_distribution(q, "q")
-    if p.shape != q.shape:
-        raise InputError(f"distributions differ in length: {p.size} and {q.size}")
-    m = 0.5 * (p + q)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        kl_p = np.where(p > 0, p * np.log2(p / m), 0.0).sum()
-        kl_q = np.where(q > 0, q * np.log2(q / m), 0.0).sum()
-    return float(min(max(0.5 * (kl_p + kl_q), 0.0), 1.0))
-
-
 def total_variation(p: np.ndarray, q: np.ndarray) -> float:
     """Total variation distance, half the L1 distance, in [0, 1]."""
-    p = _as_distribution(p, "p")
-    q = _as_distribution(q, "q")
+    p = as_distribution(p, "p")
+    q = as_distribution(q, "q")
     if p.shape != q.shape:
         raise InputError(f"distributions differ in length: {p.size} and {q.size}")
     return float(0.5 * np.abs(p - q).sum())

@@ -1,7 +1,8 @@
 """Batch MAP-EM for a mixture of unigram language models.
 
 E-step: responsibilities r_dk = p(k | d) from log pi_k + sum_w c_dw log theta_k(w), normalised
-with log-sum-exp so that documents of 100k tokens neither underflow nor overflow.
+with log-sum-exp (mixture.kernels.softmax_rows) so that documents of 100k tokens neither
+underflow nor overflow.
 M-step: expected counts N_k = sum_d r_dk and C_wk = sum_d r_dk c_dw, then MAP parameters by
 additive smoothing (mixture.stats.derive_parameters).
 
@@ -32,6 +33,7 @@ import scipy.sparse as sp
 
 from mixture.config import MixtureConfig
 from mixture.errors import ConfigError, InputError
+from mixture.kernels import softmax_rows
 from mixture.restarts import (
     ANNEALED,
     PLAIN,
@@ -41,7 +43,7 @@ from mixture.restarts import (
     iteration_bound,
     restart_kinds,
 )
-from mixture.stats import MixtureState, Parameters, derive_parameters, parallel_rows
+from mixture.stats import MixtureState, Parameters, derive_parameters
 
 __all__ = ["FitReport", "RestartSummary"]
 
@@ -80,24 +82,6 @@ def _log_joint(counts: sp.csr_matrix, params: Parameters) -> np.ndarray:
     return np.asarray(log_joint)
 
 
-def normalise_log_rows(
-    log_joint: np.ndarray, overwrite: bool = False
-) -> tuple[np.ndarray, np.ndarray]:
-    """Row-wise softmax in log space: returns (probabilities, log-sum-exp per row).
-
-    With ``overwrite`` the probabilities are computed in the input's memory (no temporaries).
-    """
-    row_max = log_joint.max(axis=1, keepdims=True)
-    row_max[~np.isfinite(row_max)] = 0.0
-    prob = np.subtract(log_joint, row_max, out=log_joint if overwrite else None)
-    parallel_rows(np.exp, prob)
-    row_sum = prob.sum(axis=1, keepdims=True)
-    prob /= row_sum
-    log_norm = np.log(row_sum, out=row_sum).ravel()
-    log_norm += row_max.ravel()
-    return prob, log_norm
-
-
 def e_step(counts: sp.csr_matrix, params: Parameters) -> tuple[np.ndarray, float]:
     """Responsibilities and the log-likelihood (without multinomial coefficients).
 
@@ -106,7 +90,8 @@ def e_step(counts: sp.csr_matrix, params: Parameters) -> tuple[np.ndarray, float
     resp : ndarray of shape (n_docs, K)
     log_likelihood : float
     """
-    resp, log_norm = normalise_log_rows(_log_joint(counts, params), overwrite=True)
+    resp = _log_joint(counts, params)
+    log_norm = softmax_rows(resp)
     return resp, float(log_norm.sum())
 
 
@@ -328,7 +313,7 @@ def fit_texts(
         Warmed up; ready for routing or for stepwise learning.
     report : FitReport
     """
-    from mixture.text import count_texts
+    from mixture.counting import count_texts
 
     state = MixtureState.empty(config, seed)
     batch = count_texts(texts, state.tokenizer, state.vocabulary, grow=True)

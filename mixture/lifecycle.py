@@ -51,8 +51,9 @@ import numpy as np
 import scipy.sparse as sp
 from scipy.spatial.distance import jensenshannon
 
-from mixture.em import e_step, fit_batch_em, normalise_log_rows
+from mixture.em import e_step, fit_batch_em
 from mixture.errors import InputError
+from mixture.kernels import softmax_rows
 from mixture.lifecycle_config import LifecycleConfig
 from mixture.novelty import (
     GroupEvidence,
@@ -166,7 +167,8 @@ def birth(
     # Take the documents out of the groups that claim them now (their current posteriors).
     scale = state.count_scale
     log_joint = np.asarray(local_counts @ state.log_word_prob_rows(used)) + state.log_weights()
-    resp, _ = normalise_log_rows(log_joint, overwrite=True)
+    softmax_rows(log_joint)
+    resp = log_joint
     taken_word = np.minimum(np.asarray(local_counts.T @ resp), state.unscaled_word[used] * scale)
     taken_docs = np.minimum(resp.sum(axis=0), state.unscaled_docs * scale)
     state.unscaled_word[used] -= taken_word / scale
@@ -402,7 +404,7 @@ def birth_log_bayes_factor(
     weight = n / span
     weight_terms = n * np.log(weight) + ((span - n) * np.log1p(-weight) if span > n else 0.0)
     log_joint = np.asarray(local @ state.log_word_prob_rows(used)) + state.log_weights()
-    _, log_norm = normalise_log_rows(log_joint, overwrite=True)
+    log_norm = softmax_rows(log_joint)
     return float(new_group + weight_terms - log_norm.sum() - 0.5 * np.log(span))
 
 

@@ -7,7 +7,8 @@ sufficient statistics s_batch, and the running statistics move towards them,
 
 optionally with eta floored (exponential forgetting, so the model follows drift). k counts units
 of ``batch_size`` documents: a batch of m documents moves it by m / batch_size and takes the step
-1 - (1 - eta_k) ** (m / batch_size), so partial units do not shorten the memory. The update
+1 - (1 - eta_k) ** (m / batch_size), so partial units do not shorten the memory; a batch of
+more than ``batch_size`` documents is applied as consecutive units of it. The update
 touches only the rows of the words in the batch plus O(K) numbers: the uniform shrink by
 (1 - eta) is a change of the running scale factor (see mixture.stats).
 
@@ -25,11 +26,12 @@ import numpy as np
 import scipy.sparse as sp
 
 from mixture.config import MixtureConfig
-from mixture.em import fit_pending, normalise_log_rows, validate_counts
+from mixture.counting import count_texts
+from mixture.em import fit_pending, validate_counts
 from mixture.errors import InputError
+from mixture.kernels import softmax_rows
 from mixture.lifecycle import GroupEvent, run_due_decisions, unit_observer
 from mixture.stats import MixtureState
-from mixture.text import count_texts
 
 
 @dataclass
@@ -74,7 +76,13 @@ def stepwise_update(
     *,
     observe: Callable[[np.ndarray, np.ndarray, np.ndarray], None] | None = None,
 ) -> BatchReport:
-    """Apply one stepwise EM update with a mini-batch of counts.
+    """Apply stepwise EM updates with a mini-batch of counts.
+
+    A batch of at most ``batch_size`` documents is one update (a fraction of a unit when
+    smaller). A larger batch is applied as consecutive units of ``batch_size`` rows, each with
+    its own E-step and step, exactly as :meth:`OnlineLearner.learn` cuts its texts: the
+    schedule counts units, and one step over many units would give the batch a step size that
+    rounds to 1 (the whole memory replaced by one E-step, and a running scale of zero).
 
     Parameters
     ----------
@@ -84,14 +92,17 @@ def stepwise_update(
         Word counts of the batch over the state's vocabulary ids.
     observe : callable (evidence, resp, log_norm), optional
         Called with the E-step before the state changes: which rows had tokens (bool, (m,)),
-        their posteriors and their log p(d) (the group lifecycle's evidence).
+        their posteriors and their log p(d) (the group lifecycle's evidence). Only for a batch
+        of at most ``batch_size`` rows (one update), since it is built for one unit.
 
     Returns
     -------
     BatchReport
         Documents (all rows), tokens, rows without any token (they carry no evidence and are
-        left out of the update), and the batch log-likelihood per token under the parameters
-        before the update.
+        left out of the update), the number of updates, and the batch log-likelihood per token
+        under the parameters before each update (over the documents the model finds possible;
+        a document impossible under every group, which only zero pseudo-counts allow, learns
+        with the prior as its responsibilities).
     """
     if not state.warmed_up:
         raise InputError("stepwise_update needs a warmed-up state (fit the warm-up first)")
@@ -100,6 +111,23 @@ def stepwise_update(
         raise InputError(
             f"counts have {matrix.shape[1]} columns but the vocabulary has {state.capacity} ids"
         )
+    size = state.config.batch_size
+    if matrix.shape[0] <= size:
+        return _update_unit(state, matrix, observe)
+    if observe is not None:
+        raise InputError(f"observe is for one unit: at most batch_size ({size}) rows")
+    report = BatchReport(warmed_up=True)
+    for start in range(0, matrix.shape[0], size):
+        report = report.merge(_update_unit(state, matrix[start : start + size]))
+    return report
+
+
+def _update_unit(
+    state: MixtureState,
+    matrix: sp.csr_matrix,
+    observe: Callable[[np.ndarray, np.ndarray, np.ndarray], None] | None = None,
+) -> BatchReport:
+    """One stepwise update with at most ``batch_size`` validated rows."""
     # Row sums from the raw arrays (scipy's sum costs more than the rest of a small update).
     token_rows = np.repeat(np.arange(matrix.shape[0]), np.diff(matrix.indptr))
     lengths = np.bincount(token_rows, weights=matrix.data, minlength=matrix.shape[0])
@@ -114,6 +142,7 @@ def stepwise_update(
         return report
     if not evidence.all():
         matrix = matrix[evidence]
+        lengths = lengths[evidence]
     m = matrix.shape[0]
 
     # Restrict to the words in the batch: O(nnz log nnz + unique words x K).
@@ -122,10 +151,15 @@ def stepwise_update(
         (matrix.data, local.astype(np.int32), matrix.indptr), shape=(m, rows.size)
     )
     log_word_prob = state.log_word_prob_rows(rows)
-    log_joint = np.asarray(local_counts @ log_word_prob)
-    log_joint += state.log_weights()
-    resp, log_norm = normalise_log_rows(log_joint, overwrite=True)
-    report.log_likelihood_per_token = float(log_norm.sum() / lengths.sum())
+    resp = np.asarray(local_counts @ log_word_prob)
+    log_weights = state.log_weights()
+    resp += log_weights
+    log_norm = softmax_rows(resp, fallback_log=log_weights)
+    possible = np.isfinite(log_norm)
+    if possible.all():
+        report.log_likelihood_per_token = float(log_norm.sum() / lengths.sum())
+    elif possible.any():
+        report.log_likelihood_per_token = float(log_norm[possible].sum() / lengths[possible].sum())
     if observe is not None:
         observe(evidence, resp, log_norm)
 
@@ -136,11 +170,11 @@ def stepwise_update(
     # flushed for latency, a trickle of single messages) is that fraction of a step: eta is
     # what applying eta_k over the whole unit gives to its share of the documents, and the
     # counter moves by the same fraction, so the memory in documents does not depend on how
-    # the traffic was cut.
+    # the traffic was cut. With m <= batch_size, eta <= eta_k <= 2 ** -alpha < 1.
     fraction = m / state.config.batch_size
     eta = state.config.step_size(state.step)
     if fraction != 1.0:
-        eta = -float(np.expm1(fraction * np.log1p(-eta))) if eta < 1.0 else 1.0
+        eta = -float(np.expm1(fraction * np.log1p(-eta)))
     state.running_scale *= 1.0 - eta
     gain = eta / state.running_scale
     state.unscaled_word[rows] += gain * batch_word
@@ -204,7 +238,8 @@ class OnlineLearner:
         size = self.config.batch_size
         lifecycle = self.config.lifecycle.enabled
         for start in range(0, counts.shape[0], size):
-            # A worker hands over one unit at a time: no copy when it is the whole batch.
+            # Units of batch_size documents, one update each; the lifecycle observes each unit
+            # and decides between them. No copy when the batch is one unit (the worker's case).
             whole = start == 0 and counts.shape[0] <= size
             unit = counts if whole else counts[start : start + size]
             observe = unit_observer(state, unit) if lifecycle else None

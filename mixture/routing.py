@@ -8,18 +8,17 @@ never routed as if the text had spoken.
 
 from __future__ import annotations
 
-import math
 from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
 import scipy.sparse as sp
 
-from mixture.em import normalise_log_rows
+from mixture.counting import count_texts
 from mixture.errors import InputError
-from mixture.stats import MixtureState, Parameters, parallel_rows
+from mixture.kernels import softmax_rows
+from mixture.stats import MixtureState, Parameters
 from mixture.sweep import blocked_product
-from mixture.text import count_texts
 
 
 @dataclass
@@ -98,30 +97,29 @@ def _answer(
     """Posterior, MAP group, margin and typicality from per-group document log-likelihoods.
 
     ``known`` may be fractional (weighted counts); the per-token figure divides by it as is.
-    The softmax is done in place around the MAP entry: it is shifted to 0 (probability 1
-    before normalising), masked while the runner-up is found, so one exponential pass gives
-    the posterior, the MAP group and the margin together.
+    A document that every group finds impossible (log-likelihood
+    ``-inf`` everywhere: counts of retired words, or a word unseen in every group under zero
+    pseudo-counts) gets the prior as its posterior and is flagged ``no_evidence``, like a
+    document without known words (mixture.kernels.softmax_rows).
     """
     n_docs, k = log_lik.shape
     rows = np.arange(n_docs)
-    joint = log_lik + log_weights
+    joint = np.add(log_lik, log_weights)
     group = joint.argmax(axis=1)
-    top = joint[rows, group]
-    if not np.all(np.isfinite(top)):
-        posterior, _ = normalise_log_rows(joint, overwrite=True)
-        ordered = np.sort(posterior, axis=1)
-        margin = ordered[:, -1] - ordered[:, -2] if k > 1 else np.ones(n_docs)
+    log_norm = softmax_rows(joint, fallback_log=log_weights)
+    posterior = joint
+    impossible = np.isneginf(log_norm)
+    if impossible.any():
+        group[impossible] = posterior[impossible].argmax(axis=1)
+    top = posterior[rows, group]
+    if k > 1:
+        # The runner-up: mask the MAP entry for one max pass, then put it back.
+        posterior[rows, group] = -1.0
+        margin = top - posterior.max(axis=1)
+        posterior[rows, group] = top
     else:
-        joint -= top[:, None]
-        joint[rows, group] = -np.inf
-        parallel_rows(np.exp, joint)
-        runner_up = joint.max(axis=1) if k > 1 else np.zeros(n_docs)
-        joint[rows, group] = 1.0
-        total = joint.sum(axis=1)
-        joint /= total[:, None]
-        posterior = joint
-        margin = (1.0 - runner_up) / total
-    no_evidence = known == 0
+        margin = np.ones(n_docs)
+    no_evidence = (known == 0) | impossible
     per_token = log_lik[rows, group] / np.where(no_evidence, 1.0, known)
     per_token[no_evidence] = np.nan
     return Routing(
@@ -144,8 +142,8 @@ def route_texts(state: MixtureState, texts: Sequence[str]) -> Routing:
     """Tokenise texts with the state's tokenizer (no vocabulary growth) and route them.
 
     A handful of documents (the service's one-message requests) takes a direct path that
-    sums the words' ``log_word_prob`` rows; it gives the answer of :func:`route_counts` to
-    rounding.
+    sums the words' ``log_word_prob`` rows and shares the batch path's posterior code; it
+    gives the answer of :func:`route_counts` to rounding.
     """
     if len(texts) <= SMALL_BATCH:
         return _route_few(state, texts)
@@ -154,50 +152,24 @@ def route_texts(state: MixtureState, texts: Sequence[str]) -> Routing:
 
 
 def _route_few(state: MixtureState, texts: Sequence[str]) -> Routing:
-    # Document by document in plain floats: at this size numpy's per-call overhead, not the
-    # arithmetic, is the cost (one gather-and-sum per document stays in numpy).
+    # Document by document: at this size building sparse matrices, not the arithmetic, is the
+    # cost. Each document's log-likelihoods are one gather-and-sum of log_word_prob rows; the
+    # posterior then comes from the same code as the batch path (_answer).
     params = state.parameters()
     log_word_prob = params.log_word_prob
-    log_weights = params.log_weights.tolist()
     tokenize, lookup = state.tokenizer.tokenize, state.vocabulary.lookup
-    k = len(log_weights)
-    posteriors: list[list[float]] = []
-    groups: list[int] = []
-    margins: list[float] = []
-    per_token: list[float] = []
-    known: list[int] = []
-    unknown: list[int] = []
+    n_docs, k = len(texts), params.n_groups
+    log_lik = np.zeros((n_docs, k))
+    known = np.zeros(n_docs)
+    unknown = np.zeros(n_docs, dtype=np.int64)
     for index, text in enumerate(texts):
         if not isinstance(text, str):
             raise InputError(f"document {index} is {type(text).__name__}, not str")
         tokens = tokenize(text)
         ids = [word_id for word_id in map(lookup, tokens) if word_id >= 0]
-        known.append(len(ids))
-        unknown.append(len(tokens) - len(ids))
-        # A repeated word adds its row again: the same sum as counts @ log_word_prob.
-        log_lik = log_word_prob[ids].sum(axis=0).tolist() if ids else [0.0] * k
-        joint = [a + b for a, b in zip(log_lik, log_weights, strict=True)]
-        top = max(joint)
-        shift = top if math.isfinite(top) else 0.0
-        weights = [math.exp(v - shift) for v in joint]
-        total = sum(weights)
-        probability = [w / total for w in weights]
-        best = max(range(k), key=probability.__getitem__)  # first maximum, like argmax
-        posteriors.append(probability)
-        groups.append(best)
-        if k > 1:
-            ordered = sorted(probability)
-            margins.append(ordered[-1] - ordered[-2])
-        else:
-            margins.append(1.0)
-        per_token.append(log_lik[best] / len(ids) if ids else math.nan)
-    known_array = np.array(known, dtype=np.int64)
-    return Routing(
-        group=np.array(groups, dtype=np.int64),
-        posterior=np.array(posteriors, dtype=np.float64).reshape(len(texts), k),
-        margin=np.array(margins),
-        log_likelihood_per_token=np.array(per_token),
-        known_tokens=known_array,
-        unknown_tokens=np.array(unknown, dtype=np.int64),
-        no_evidence=known_array == 0,
-    )
+        known[index] = len(ids)
+        unknown[index] = len(tokens) - len(ids)
+        if ids:
+            # A repeated word adds its row again: the same sum as counts @ log_word_prob.
+            log_word_prob[ids].sum(axis=0, out=log_lik[index])
+    return _answer(log_lik, params.log_weights, known, unknown)

@@ -32,7 +32,7 @@ from mixture.config import MixtureConfig
 from mixture.errors import ConfigError, StateFormatError
 from mixture.novelty import GroupEvidence
 from mixture.stats import MixtureState
-from mixture.text import Vocabulary
+from mixture.vocabulary import Vocabulary
 
 MAGIC = b"MXRSTATE"
 FORMAT_VERSION = 2

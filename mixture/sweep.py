@@ -7,8 +7,8 @@ into document blocks (for the E-step) and word blocks (for the M-step with its l
 about equal work, and each block's whole chain runs in one thread: product, then softmax, or
 smoothing and logarithm, then partial sums. No block waits on another inside a step, and the
 per-row arithmetic is that of the single-threaded building blocks (mixture.em.e_step, m_step
-and mixture.stats.derive_parameters), so the results agree with them up to the rounding of
-sums taken in another order.
+and mixture.stats.derive_parameters): every block calls the same kernels (mixture.kernels),
+so the results agree with them up to the rounding of sums taken in another order.
 """
 
 from __future__ import annotations
@@ -19,6 +19,12 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.sparse as sp
 
+from mixture.kernels import (
+    smoothed_log_weights,
+    smoothed_log_word_prob,
+    softmax_rows,
+    word_log_normaliser,
+)
 from mixture.stats import Parameters
 from mixture.threads import run_blocks, set_worker_threads, worker_threads
 
@@ -180,27 +186,27 @@ class EMSweep:
         """
         beta, a = self.word_pseudocount, self.weight_pseudocount
         self.doc_counts = resp.sum(axis=0)
-        with np.errstate(divide="ignore"):
-            self.log_weights = np.log(self.doc_counts + a) - np.log(
-                self.doc_counts.sum() + self.n_groups * a
-            )
-            log_norm = np.log(resp.T @ self._active_lengths + self.n_active * beta)
+        self.log_weights = smoothed_log_weights(self.doc_counts, a)
+        totals = resp.T @ self._active_lengths
+        log_norm = word_log_normaliser(totals, self.n_active, beta)
         self._turn ^= 1
         log_word_prob = self._buffers[self._turn]
 
         def block(i: int) -> tuple[np.ndarray, float]:
             part = self.word_blocks[i]
             expected = np.asarray(part.matrix @ resp)
-            out = log_word_prob[part.start : part.stop]
-            np.add(expected, beta, out=out)
-            with np.errstate(divide="ignore"):
-                np.log(out, out=out)
-            out -= log_norm
-            if self.active is None:
-                return expected, float(out.sum())
-            active = self.active[part.start : part.stop]
-            out[~active] = -np.inf
-            return expected, float(out[active].sum())
+            active = None if self.active is None else self.active[part.start : part.stop]
+            out = smoothed_log_word_prob(
+                expected,
+                totals,
+                self.n_active,
+                beta,
+                active=active,
+                out=log_word_prob[part.start : part.stop],
+            )
+            if active is None:
+                return expected, float(out.sum()) if beta > 0 else 0.0
+            return expected, float(out[active].sum()) if beta > 0 else 0.0
 
         results = run_blocks(block, len(self.word_blocks))
         self._expected = [expected for expected, _ in results]
@@ -253,16 +259,7 @@ class EMSweep:
             joint += log_weights
             if temperature != 1.0:
                 joint *= temperature
-            row_max = joint.max(axis=1, keepdims=True)
-            row_max[~np.isfinite(row_max)] = 0.0
-            out = resp[part.start : part.stop]
-            np.subtract(joint, row_max, out=out)
-            np.exp(out, out=out)
-            row_sum = out.sum(axis=1, keepdims=True)
-            out /= row_sum
-            log_norm = np.log(row_sum, out=row_sum).ravel()
-            log_norm += row_max.ravel()
-            return log_norm
+            return softmax_rows(joint, out=resp[part.start : part.stop], parallel=False)
 
         parts = run_blocks(block, len(self.doc_blocks))
         return resp, np.concatenate(parts) if len(parts) > 1 else parts[0]

@@ -129,7 +129,7 @@ def test_the_scored_pass_watches_the_warm_up_without_changing_the_learning() -> 
     from mixture.config import MixtureConfig
     from mixture.online import OnlineLearner
     from mixture.routing import route_texts
-    from mixture.text import Tokenizer
+    from mixture.tokenizer import Tokenizer
 
     order = np.random.default_rng(1).permutation(len(corpus))
     plain = OnlineLearner(MixtureConfig(n_groups=2, warmup_documents=300), seed=1)

@@ -36,7 +36,7 @@ from mixture.online import OnlineLearner
 from mixture.routing import route_counts, route_texts
 from mixture.serialize import MAGIC, state_from_bytes, state_to_bytes
 from mixture.stats import MixtureState
-from mixture.text import Vocabulary
+from mixture.vocabulary import Vocabulary
 from tests.lifecycle_streams import TopicStream
 
 LIFECYCLE_ON = LifecycleConfig(enabled=True)

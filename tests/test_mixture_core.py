@@ -17,7 +17,7 @@ from mixture.online import OnlineLearner, stepwise_update
 from mixture.routing import route_counts, route_texts
 from mixture.serialize import state_from_bytes, state_to_bytes
 from mixture.stats import MixtureState, derive_parameters, warm_start_step
-from mixture.text import Vocabulary
+from mixture.vocabulary import Vocabulary
 
 THEMES = [
     "ferry ticket booking refund price card seat fare",
@@ -317,8 +317,8 @@ def test_fit_is_reproducible_and_rejects_bad_input():
 def test_few_document_path_equals_the_sparse_path():
     """route_texts takes a direct path for a handful of documents; it must give route_counts's
     answer (the sparse products) to rounding."""
+    from mixture.counting import count_texts
     from mixture.routing import SMALL_BATCH
-    from mixture.text import count_texts
 
     texts, _ = _themed_texts(400, seed=8)
     state, _ = fit_texts(texts, MixtureConfig(n_groups=3, n_restarts=1))
@@ -340,3 +340,180 @@ def test_few_document_path_equals_the_sparse_path():
     assert len(route_texts(state, probes[: SMALL_BATCH + 1])) == SMALL_BATCH + 1
     with pytest.raises(InputError, match="document 1"):
         route_texts(state, ["ok", 3])
+
+
+# ---- zero pseudo-counts and huge batches (regressions) ----------------------------------------
+def _without_word_smoothing(config: MixtureConfig) -> MixtureConfig:
+    """The config with word_pseudocount = 0, past validation (the service requires > 0; the
+    kernels must stay exact at zero whatever the configuration accepts)."""
+    object.__setattr__(config, "word_pseudocount", 0.0)
+    return config
+
+
+def test_zero_word_pseudocount_gives_the_mle_and_a_uniform_emptied_group():
+    """With beta = 0 the word distributions are the maximum-likelihood relative frequencies
+    C_wk / sum_v C_vk (the textbook multinomial MLE) and -inf for unseen words; an emptied
+    group (no mass) gets the limit of Lidstone smoothing as beta -> 0, which is exactly 1 / V
+    for every beta > 0 (beta / (V beta)). Before: nan parameters for the emptied group."""
+    counts = np.array([[3.0, 0.0, 0.0], [1.0, 2.0, 0.0], [0.0, 2.0, 0.0], [0.0, 0.0, 0.0]])
+    docs = np.array([2.0, 1.0, 0.0])
+    params = derive_parameters(counts, docs, None, 0.0, 0.0)
+    assert not np.isnan(params.log_word_prob).any() and not np.isnan(params.log_weights).any()
+    with np.errstate(divide="ignore"):
+        mle = np.log(counts[:, :2] / counts[:, :2].sum(axis=0))
+    np.testing.assert_array_equal(np.isneginf(params.log_word_prob[:, :2]), np.isneginf(mle))
+    finite = np.isfinite(mle)
+    np.testing.assert_allclose(params.log_word_prob[:, :2][finite], mle[finite], rtol=1e-12)
+    np.testing.assert_allclose(params.log_word_prob[:, 2], np.log(0.25), rtol=1e-12)
+    smoothed = derive_parameters(counts, docs, None, 1e-3, 0.0)
+    np.testing.assert_allclose(smoothed.log_word_prob[:, 2], params.log_word_prob[:, 2])
+    # Weights: a = 0 is the MLE N_k / N, and a group without documents has weight zero.
+    np.testing.assert_allclose(np.exp(params.log_weights), [2 / 3, 1 / 3, 0.0], atol=1e-15)
+    # Retired words stay -inf, and the emptied group is uniform over the active ones.
+    active = np.array([True, True, True, False])
+    masked = derive_parameters(counts, docs, active, 0.0, 1.0)
+    assert np.isneginf(masked.log_word_prob[3]).all()
+    np.testing.assert_allclose(masked.log_word_prob[:3, 2], np.log(1 / 3), rtol=1e-12)
+
+
+def _zero_smoothing_state() -> MixtureState:
+    vocab = Vocabulary(["ferry", "ticket", "storm", "wave"])
+    config = _without_word_smoothing(MixtureConfig(n_groups=2, batch_size=4, warmup_documents=2))
+    # Group 0 has seen only ferry/ticket, group 1 only storm/wave.
+    counts = np.array([[4.0, 0.0], [2.0, 0.0], [0.0, 3.0], [0.0, 1.0]])
+    return MixtureState.from_counts(config, vocab, counts, np.array([3.0, 1.0]), 4)
+
+
+@pytest.mark.parametrize("n_copies", [1, 3])  # few-documents path (<= 8 texts) and batch path
+def test_a_document_impossible_in_every_group_gets_the_prior_on_both_paths(n_copies):
+    """Zero likelihood under every group has no posterior (Bayes' rule divides by zero); the
+    rule for a document without evidence applies: the prior, flagged. A document impossible
+    in one group only has posterior 1 for the other (scipy.special.softmax of the joint, as
+    the reference). Before: nan posteriors on the batch path, ZeroDivisionError on the
+    few-documents path."""
+    from scipy.special import softmax
+
+    state = _zero_smoothing_state()
+    texts = ["ferry storm", "ferry ticket ferry", "nothing known here"] * n_copies
+    if n_copies > 1:
+        texts += ["wave"] * 4  # past the few-documents path's size
+    routing = route_texts(state, texts)
+    assert not np.isnan(routing.posterior).any()
+    prior = state.weights()
+    np.testing.assert_allclose(routing.posterior[0], prior, rtol=1e-12)
+    assert routing.no_evidence[0] and routing.group[0] == int(np.argmax(prior))
+    assert np.isnan(routing.log_likelihood_per_token[0])
+    params = state.parameters()
+    ids = [state.vocabulary.lookup(w) for w in ("ferry", "ticket", "ferry")]
+    joint = params.log_word_prob[ids].sum(axis=0) + params.log_weights
+    np.testing.assert_allclose(routing.posterior[1], softmax(joint), atol=1e-15)
+    assert routing.posterior[1].tolist() == [1.0, 0.0] and not routing.no_evidence[1]
+    np.testing.assert_allclose(routing.posterior[2], prior, rtol=1e-12)
+    assert routing.no_evidence[2]
+
+
+def test_both_routing_paths_agree_on_impossible_documents():
+    state = _zero_smoothing_state()
+    texts = ["ferry storm", "wave ticket", "storm wave", "ferry", "unknown words"]
+    few = route_texts(state, texts)
+    batch = route_texts(state, texts * 2)  # more than eight documents: the sparse path
+    np.testing.assert_allclose(batch.posterior[:5], few.posterior, rtol=1e-12, atol=1e-15)
+    np.testing.assert_array_equal(batch.group[:5], few.group)
+    np.testing.assert_array_equal(batch.no_evidence[:5], few.no_evidence)
+    np.testing.assert_allclose(batch.margin[:5], few.margin, rtol=1e-12)
+
+
+def test_counts_on_retired_words_do_not_give_nan_posteriors():
+    """Even with smoothing, a retired word's row is -inf in every group: counts given to
+    route_counts on such a column made the whole row nan before."""
+    state = _random_state(6, 3)
+    state.vocabulary.retire(np.array([5]))
+    state.touch()
+    counts = sp.csr_matrix(np.array([[0, 0, 0, 0, 0, 2.0], [1.0, 0, 0, 0, 0, 0]]))
+    routing = route_counts(state.parameters(), counts)
+    assert not np.isnan(routing.posterior).any()
+    np.testing.assert_allclose(routing.posterior[0], state.weights(), rtol=1e-12)
+    assert routing.no_evidence.tolist() == [True, False]
+
+
+def test_stepwise_learning_without_word_smoothing_stays_finite():
+    """New words arrive with zero counts in every group, so under beta = 0 every document with
+    a new word is impossible in every group: it learns with the prior as responsibilities
+    instead of turning the statistics into nan."""
+    texts, _ = _themed_texts(60, seed=3)
+    learner = OnlineLearner(
+        _without_word_smoothing(MixtureConfig(n_groups=3, batch_size=8, warmup_documents=20))
+    )
+    learner.learn(texts[:30])
+    report = learner.learn([*texts[30:], "entirely novel words arrive", "more novel words"])
+    state = learner.state
+    assert not np.isnan(state.unscaled_word).any() and not np.isnan(state.unscaled_docs).any()
+    params = state.parameters()
+    assert not np.isnan(params.log_word_prob).any() and not np.isnan(params.log_weights).any()
+    assert np.isfinite(report.log_likelihood_per_token)
+    novel = state.vocabulary.lookup("novel")
+    np.testing.assert_allclose(
+        state.expected_word_counts()[novel] / state.expected_word_counts()[novel].sum(),
+        np.ones(3) / 3,
+        atol=0.5,  # learned from the prior (responsibilities = weights), spread over groups
+    )
+    assert (state.expected_word_counts()[novel] > 0).all()
+
+
+def test_stepwise_update_with_far_more_documents_than_batch_size_is_units_of_it():
+    """The schedule counts units of batch_size documents (Liang and Klein 2009 apply one step
+    per mini-batch): 40 units given at once are 40 updates, the same as the units given one by
+    one. Before: eta rounded to 1 for the whole batch, the running scale to 0 and the gain to
+    infinity (nan statistics)."""
+    state = _random_state(40, 3)
+    units = state.copy()
+    batch = sp.vstack([_random_batch(16, 40, seed=s) for s in range(40)], format="csr")
+    report = stepwise_update(state, batch)
+    assert report.steps == 40 and report.documents == 640
+    assert np.isfinite(state.running_scale) and state.running_scale > 0
+    assert np.isfinite(state.unscaled_word).all()
+    for start in range(0, 640, 16):
+        stepwise_update(units, batch[start : start + 16])
+    assert state.step == pytest.approx(units.step)
+    np.testing.assert_allclose(
+        state.expected_word_counts(), units.expected_word_counts(), rtol=1e-12
+    )
+    np.testing.assert_allclose(state.effective_documents, units.effective_documents)
+
+
+def test_drift_and_descriptions_of_an_emptied_group_without_word_smoothing():
+    """An emptied group under beta = 0 is uniform over the active words (the limit of its
+    Lidstone smoothing, as in derive_parameters), so its JS divergence to another group is
+    scipy's jensenshannon(uniform, other, base=2) ** 2. Before: 0 / 0 = nan distributions,
+    and js_divergence refused them."""
+    vocab = Vocabulary(["ferry", "ticket", "storm", "wave"])
+    config = _without_word_smoothing(MixtureConfig(n_groups=2, batch_size=4, warmup_documents=2))
+    counts = np.array([[4.0, 0.0], [2.0, 0.0], [1.0, 0.0], [1.0, 0.0]])
+    emptied = MixtureState.from_counts(config, vocab, counts, np.array([3.0, 0.0]), 3)
+    other_counts = np.array([[4.0, 1.0], [2.0, 0.0], [1.0, 3.0], [1.0, 1.0]])
+    other = MixtureState.from_counts(config, vocab.copy(), other_counts, np.array([3.0, 2.0]), 5)
+    drift = word_drift(emptied, other, aligned=False)
+    assert np.isfinite(drift).all()
+    theirs = other_counts[:, 1] / other_counts[:, 1].sum()
+    assert drift[1] == pytest.approx(jensenshannon(np.full(4, 0.25), theirs, base=2) ** 2)
+    summaries = describe_groups(emptied, top_n=2, min_count=0.0)
+    assert [p for _, p in summaries[1].top_terms] == pytest.approx([0.25, 0.25])
+
+
+def test_js_divergence_is_zero_where_scipy_rounds_below_zero():
+    """scipy's jensenshannon takes the square root of a sum that rounding can leave below
+    zero (nan) for distributions one ulp apart; the divergence of such a pair is 0."""
+    from scipy.spatial.distance import jensenshannon as scipy_js
+
+    rng = np.random.default_rng(0)
+    for _ in range(20_000):
+        p = rng.dirichlet(np.ones(rng.integers(2, 50)))
+        q = p.copy()
+        j = rng.integers(p.size)
+        q[j] = np.nextafter(q[j], 1.0)
+        with np.errstate(invalid="ignore"):
+            if np.isnan(scipy_js(p, q, base=2)):
+                break
+    else:
+        pytest.fail("no rounding case found")
+    assert js_divergence(p, q) == pytest.approx(0.0, abs=1e-15)

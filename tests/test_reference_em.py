@@ -16,12 +16,13 @@ import pytest
 import scipy.sparse as sp
 
 from mixture.config import MixtureConfig
+from mixture.counting import count_texts
 from mixture.drift import total_variation
 from mixture.em import e_step, fit_batch_em, fit_texts, m_step, map_objective
 from mixture.online import OnlineLearner
 from mixture.routing import route_counts
 from mixture.stats import MixtureState, derive_parameters
-from mixture.text import Tokenizer, count_texts
+from mixture.tokenizer import Tokenizer
 
 # Relative slack for float noise in the monotonicity checks (common practice, no source).
 FLOAT_SLACK = 1e-9

@@ -9,8 +9,8 @@ from collections.abc import Iterator
 import numpy as np
 import pytest
 
+from mixture.counting import count_texts
 from mixture.routing import route_texts
-from mixture.text import count_texts
 from service.app import create_app
 from service.demo_data import default_days, fresh_examples, generate_day
 from service.runner import WorkerPool

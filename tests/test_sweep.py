@@ -17,11 +17,12 @@ from collections.abc import Iterator
 import numpy as np
 import pytest
 import scipy.sparse as sp
+import scipy.special
 from sklearn.naive_bayes import MultinomialNB
 
 from mixture import sweep as sweep_module
 from mixture.config import MixtureConfig
-from mixture.em import e_step, fit_batch_em, log_prior, m_step, normalise_log_rows
+from mixture.em import e_step, fit_batch_em, log_prior, m_step
 from mixture.stats import derive_parameters
 from mixture.sweep import EMSweep, row_blocks, set_worker_threads
 
@@ -124,7 +125,9 @@ def test_sweep_equals_the_single_threaded_building_blocks(
 
     swept, swept_norm = sweep.e_step(temperature)
     joint = np.asarray(counts @ params.log_word_prob) + params.log_weights
-    expected, expected_norm = normalise_log_rows(joint * temperature)
+    # Reference: scipy.special.softmax and logsumexp.
+    expected = scipy.special.softmax(joint * temperature, axis=1)
+    expected_norm = scipy.special.logsumexp(joint * temperature, axis=1)
     np.testing.assert_allclose(swept, expected, rtol=0, atol=1e-10)
     np.testing.assert_allclose(swept_norm, expected_norm, rtol=1e-12)
     if temperature == 1.0:

@@ -1,4 +1,4 @@
-"""Tests of mixture.text: tokenizer, vocabulary, and batch counts."""
+"""Tests of the text modules: tokenizer, vocabulary, and batch counts."""
 
 from __future__ import annotations
 
@@ -13,18 +13,17 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from sklearn.feature_extraction.text import CountVectorizer
 
+from mixture.counting import CountBatch, count_texts, token_id_cache, token_ids_text_by_text
 from mixture.errors import ConfigError, InputError, StateFormatError
-from mixture.text import (
+from mixture.tokenizer import (
     EMAIL_TOKEN,
     ENGLISH_STOP_WORDS,
     NUMBER_TOKEN,
     URL_TOKEN,
-    CountBatch,
     Tokenizer,
     TokenizerConfig,
-    Vocabulary,
-    count_texts,
 )
+from mixture.vocabulary import Vocabulary
 
 # Invented ferry-inbox snippets (made up for these tests).
 INBOX = [
@@ -569,13 +568,11 @@ _TEXTS = st.lists(st.lists(_PIECES, max_size=12).map("".join), max_size=8)
 
 
 def _assert_same_as_text_by_text(texts: list[str]) -> None:
-    from mixture.text import _token_ids_per_text
-
     tokenizer = Tokenizer()
     joined_vocab, single_vocab = Vocabulary(), Vocabulary()
     batch = count_texts(texts, tokenizer, joined_vocab, grow=True)
-    lookup = single_vocab._id_cache(tokenizer, True).__getitem__
-    ids, ends = _token_ids_per_text(texts, tokenizer, lookup)
+    lookup = token_id_cache(single_vocab, tokenizer, True).__getitem__
+    ids, ends = token_ids_text_by_text(texts, tokenizer, lookup)
     assert joined_vocab.words() == single_vocab.words()
     starts = np.concatenate([[0], ends])[:-1]
     for row, (start, stop) in enumerate(zip(starts, ends, strict=True)):
@@ -612,3 +609,40 @@ def test_joined_batch_pass_at_text_edges(texts: list[str]) -> None:
     # URLs and addresses at the end or start of a text must not run into the next one; a
     # text holding the separator itself takes the per-text path.
     _assert_same_as_text_by_text(texts)
+
+
+def test_attached_caches_hear_of_every_change_to_the_ids() -> None:
+    # The vocabulary's public seam for lookup caches (no outside source: a protocol check).
+    class Recorder:
+        def __init__(self) -> None:
+            self.events: list[tuple[str, str]] = []
+
+        def word_issued(self, word: str) -> None:
+            self.events.append(("issued", word))
+
+        def word_removed(self, word: str) -> None:
+            self.events.append(("removed", word))
+
+        def ids_renumbered(self) -> None:
+            self.events.append(("renumbered", ""))
+
+    vocabulary = Vocabulary(["harbour"])
+    recorder = vocabulary.attach_cache("recorder", Recorder)
+    assert vocabulary.attach_cache("recorder", Recorder) is recorder
+    vocabulary.add("ferry")
+    vocabulary.retire(np.array([0]))
+    vocabulary.compact()
+    assert recorder.events == [("issued", "ferry"), ("removed", "harbour"), ("renumbered", "")]
+    assert vocabulary.copy().attach_cache("recorder", Recorder) is not recorder
+
+
+def test_routing_counts_forget_a_retired_word_and_learn_a_new_one() -> None:
+    tokenizer = Tokenizer()
+    vocabulary = Vocabulary()
+    count_texts(["harbour ferry"], tokenizer, vocabulary, grow=True)
+    assert count_texts(["ferry storm"], tokenizer, vocabulary, grow=False).unknown_tokens[0] == 1
+    vocabulary.retire(np.array([vocabulary.lookup("ferry")]))
+    count_texts(["storm"], tokenizer, vocabulary, grow=True)
+    routed = count_texts(["ferry storm"], tokenizer, vocabulary, grow=False)
+    assert routed.unknown_tokens[0] == 1 and routed.known_tokens[0] == 1
+    assert routed.counts.indices.tolist() == [vocabulary.lookup("storm")]
