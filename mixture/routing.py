@@ -4,12 +4,20 @@ p(k | d) is proportional to pi_k * prod_w theta_k(w) ** c(w, d), computed in log
 normalised with log-sum-exp. Words the model does not know are ignored (and counted). A
 document with no known word has no evidence: its posterior is the prior and it is flagged,
 never routed as if the text had spoken.
+
+Review reasons
+--------------
+:data:`REVIEW_REASONS` is the one table of the reasons a routing answer asks a person to look
+at, with the words the dashboard and the README show. The offline command line, the API's
+``review_reasons`` and its JSON schema all take their names from it: a new reason is one row
+here (and the rule that fires it).
 """
 
 from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
@@ -19,6 +27,90 @@ from mixture.errors import InputError
 from mixture.kernels import softmax_rows
 from mixture.stats import MixtureState, Parameters
 from mixture.sweep import blocked_product
+
+LOW_POSTERIOR = "low_posterior"
+NO_KNOWN_WORDS = "no_known_words"
+MOSTLY_UNKNOWN_WORDS = "mostly_unknown_words"
+ATYPICAL = "atypical"
+
+# name -> what it means, in words (the dashboard's text, the README's table)
+REVIEW_REASONS: dict[str, str] = {
+    LOW_POSTERIOR: "the MAP posterior is under the review threshold",
+    NO_KNOWN_WORDS: "no word of the message is in the vocabulary; the posterior is the prior",
+    MOSTLY_UNKNOWN_WORDS: "most of the message's words are unknown to the model",
+    ATYPICAL: "far less typical of its group than the group's recent messages",
+}
+
+
+def review_reasons(
+    routing: Routing,
+    threshold: float,
+    unknown_share: float,
+    atypical: np.ndarray | None = None,
+) -> list[list[str]]:
+    """The review reasons of every routed document, in the table's order.
+
+    Parameters
+    ----------
+    routing : Routing
+    threshold : float
+        MAP posterior under which ``low_posterior`` fires.
+    unknown_share : float
+        Share of unknown tokens above which ``mostly_unknown_words`` fires (a document without
+        known words has ``no_known_words`` instead).
+    atypical : ndarray of bool (n,), optional
+        The typicality rule's verdicts (the API keeps the statistics; offline has none).
+
+    Returns
+    -------
+    list of list of str
+        Names from :data:`REVIEW_REASONS`; an empty list means no review.
+    """
+    n_docs = len(routing)
+    best = routing.posterior[np.arange(n_docs), routing.group].tolist()
+    no_evidence = routing.no_evidence.tolist()
+    known = routing.known_tokens.tolist()
+    unknown = routing.unknown_tokens.tolist()
+    flagged = [False] * n_docs if atypical is None else np.asarray(atypical).tolist()
+    answers: list[list[str]] = []
+    for i in range(n_docs):
+        reasons = []
+        if best[i] < threshold:
+            reasons.append(LOW_POSTERIOR)
+        if no_evidence[i]:
+            reasons.append(NO_KNOWN_WORDS)
+        elif unknown[i] > unknown_share * (known[i] + unknown[i]):
+            reasons.append(MOSTLY_UNKNOWN_WORDS)
+        if flagged[i]:
+            reasons.append(ATYPICAL)
+        answers.append(reasons)
+    return answers
+
+
+def posterior_entries(posterior: np.ndarray, top: int | None = None) -> list[list[dict[str, Any]]]:
+    """Posteriors as lists of ``{"group", "probability"}``, most probable first.
+
+    The one posterior shape of every output (API and command line). Ties keep the lower
+    group id first.
+
+    Parameters
+    ----------
+    posterior : ndarray (n, K)
+    top : int, optional
+        Keep only the ``top`` most probable groups.
+
+    Returns
+    -------
+    list of list of dict
+    """
+    order = np.argsort(-posterior, axis=1, kind="stable")
+    if top is not None:
+        order = order[:, :top]
+    rows = posterior.tolist()
+    return [
+        [{"group": k, "probability": row[k]} for k in ranked]
+        for row, ranked in zip(rows, order.tolist(), strict=True)
+    ]
 
 
 @dataclass

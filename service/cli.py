@@ -3,20 +3,28 @@
 Offline commands work on model files and JSON-lines files with the model core alone::
 
     mixroute fit DOCS.jsonl --groups K --out MODEL
-    mixroute route MODEL DOCS.jsonl            # MODEL is a file written by `fit`
-    mixroute describe MODEL
+    mixroute route DOCS.jsonl --model-file MODEL    # MODEL is a file written by `fit`
+    mixroute describe --model-file MODEL
 
-Service commands talk to Redis or to a running API (``--api``, default from the settings)::
+Service commands talk to a running API: ``--api URL``, else ``MIXROUTE_API_URL``, else the
+address file a running ``serve`` wrote in its data folder, else MIXROUTE_HOST/PORT. Without
+``--model`` they use the default model (MIXROUTE_DEFAULT_MODEL)::
 
     mixroute serve                              # API + worker; embedded Redis without REDIS_URL
-    mixroute work --model NAME                  # one worker alone (needs REDIS_URL)
+    mixroute work --model NAME                  # workers alone (REDIS_URL, or serve's Redis)
     mixroute models create NAME --groups K      # also: models list, models delete NAME
-    mixroute feed FILE.jsonl --model NAME
-    mixroute route --model NAME DOCS.jsonl      # through the API
-    mixroute snapshot create|list --model NAME
-    mixroute rollback SNAPSHOT --model NAME [--replay] [--skip FIRST..LAST]
-    mixroute drift --model NAME [--plot weights.png]
+    mixroute feed FILE.jsonl [--wait]           # prints the stream ids it queued
+    mixroute route DOCS.jsonl [--model NAME]    # through the API
+    mixroute describe [--model NAME]
+    mixroute label GROUP --label TEXT [--destination TEXT]
+    mixroute flagged
+    mixroute snapshot create|list|delete [ID]
+    mixroute rollback SNAPSHOT [--replay] [--skip FIRST..LAST] [--skip-received FROM..TO]
+    mixroute drift [--reference SNAPSHOT] [--plot weights.png]
     mixroute demo                               # the invented ferry-inbox demo, < 1 minute
+
+Offline and API answers share their names: the posterior is ``[{"group", "probability"}]``,
+most probable first, and ``review_reasons`` come from :data:`mixture.routing.REVIEW_REASONS`.
 
 JSON-lines input: one ``{"id": ..., "text": ...}`` a line. Invalid lines are reported on
 standard error with their line number and skipped; ``--strict`` rejects the whole file instead
@@ -120,6 +128,23 @@ def _read_model_file(path: str) -> Any:
     except OSError as exc:
         raise CommandError(f"cannot read model {path}: {exc.strerror or exc}") from None
     return state_from_bytes(data)
+
+
+def format_probability(value: float) -> str:
+    """A probability for people: three decimals, and never a 1.000 or 0.000 that is not exact.
+
+    >>> format_probability(0.9999996), format_probability(8.4e-39), format_probability(0.25)
+    ('>0.999', '<0.001', '0.250')
+    """
+    if value >= 1.0:
+        return "1"
+    if value <= 0.0:
+        return "0"
+    if value > 0.999:
+        return ">0.999"
+    if value < 0.001:
+        return "<0.001"
+    return f"{value:.3f}"
 
 
 def _finite(value: float) -> float | None:
@@ -242,19 +267,23 @@ def route_records(
     *,
     threshold: float,
     top: int | None,
+    unknown_share: float | None = None,
     chunk: int = 2000,
     progress: Callable[[int], None] | None = None,
 ) -> list[dict[str, Any]]:
-    """Route documents offline; one JSON-able record per document.
+    """Route documents offline; one JSON-able record per document, in the API's shape.
 
     Parameters
     ----------
     state : MixtureState
     batch : JsonlBatch
     threshold : float
-        MAP posterior below which the ``low_posterior`` flag is set.
+        MAP posterior below which the ``low_posterior`` review reason fires.
     top : int or None
         Keep only the ``top`` most probable groups of each posterior (None: all groups).
+    unknown_share : float, optional
+        Share of unknown tokens above which ``mostly_unknown_words`` fires (default: the
+        service's ``review_unknown_share``).
     chunk : int
         Documents routed per call of ``route_texts``.
     progress : callable, optional
@@ -263,40 +292,36 @@ def route_records(
     Returns
     -------
     list of dict
-        ``id``, ``group``, ``posterior`` (list over groups, or ``{group: p}`` for the top n),
-        ``margin``, ``log_likelihood_per_token``, ``known_tokens``, ``unknown_tokens``, ``flags``.
+        ``id``, ``group``, ``posterior`` (``[{"group", "probability"}]``, most probable
+        first), ``margin``, ``log_likelihood_per_token``, ``known_tokens``, ``unknown_tokens``,
+        ``review`` and ``review_reasons``: the fields of the API's answer that need no service
+        (the typicality rule, ``atypical``, needs the service's recent statistics).
     """
-    import numpy as np
+    from mixture.routing import posterior_entries, review_reasons, route_texts
 
-    from mixture.routing import route_texts
+    if unknown_share is None:
+        from service.settings import Settings
 
+        unknown_share = float(Settings.model_fields["review_unknown_share"].default)
     records: list[dict[str, Any]] = []
     docs = batch.documents
     for start in range(0, len(docs), chunk):
         part = docs[start : start + chunk]
         routing = route_texts(state, [doc.text for doc in part])
+        posteriors = posterior_entries(routing.posterior, top)
+        reasons = review_reasons(routing, threshold, unknown_share)
         for i, doc in enumerate(part):
-            posterior = routing.posterior[i]
-            flags: list[str] = []
-            if routing.no_evidence[i]:
-                flags.append("no_evidence")
-            if posterior[routing.group[i]] < threshold:
-                flags.append("low_posterior")
-            if top is None:
-                shown: Any = [float(p) for p in posterior]
-            else:
-                order = np.argsort(-posterior, kind="stable")[:top]
-                shown = {str(int(k)): float(posterior[k]) for k in order}
             records.append(
                 {
                     "id": doc.id,
                     "group": int(routing.group[i]),
-                    "posterior": shown,
+                    "posterior": posteriors[i],
                     "margin": float(routing.margin[i]),
                     "log_likelihood_per_token": _finite(routing.log_likelihood_per_token[i]),
                     "known_tokens": int(routing.known_tokens[i]),
                     "unknown_tokens": int(routing.unknown_tokens[i]),
-                    "flags": flags,
+                    "review": bool(reasons[i]),
+                    "review_reasons": reasons[i],
                 }
             )
         if progress is not None:
@@ -314,16 +339,15 @@ def _write_lines(records: Sequence[dict[str, Any]], out: str | None) -> None:
 
 
 def cmd_route(args: argparse.Namespace) -> int:
-    if args.docs is None:
-        # `mixroute route DOCS.jsonl --model NAME` : one positional, the documents.
-        args.docs, args.model_file = args.model_file, None
-    if args.model_file is not None and args.api is None and args.model is None:
-        return _route_offline(args)
+    # --model-file routes offline with the model core; otherwise the API's model answers.
     if args.model_file is not None:
-        raise CommandError(
-            "give either a model file (offline) or --model NAME (through the API), not both",
-            EXIT_BAD_INPUT,
-        )
+        if args.model is not None or args.api is not None or args.learn:
+            raise CommandError(
+                "--model-file routes offline; --model, --api and --learn are for routing "
+                "through the API: give one or the other",
+                EXIT_BAD_INPUT,
+            )
+        return _route_offline(args)
     return _route_online(args)
 
 
@@ -333,12 +357,20 @@ def _route_offline(args: argparse.Namespace) -> int:
     bar = _progress_bar(len(batch.documents), "routing", "doc")
     try:
         records = route_records(
-            state, batch, threshold=args.threshold, top=args.top, progress=bar.update
+            state, batch, threshold=_threshold(args), top=args.top, progress=bar.update
         )
     finally:
         bar.close()
     _write_lines(records, args.out)
     return EXIT_OK
+
+
+def _threshold(args: argparse.Namespace) -> float:
+    if args.threshold is not None:
+        return float(args.threshold)
+    from state.options import ModelOptions
+
+    return float(ModelOptions().review_threshold)  # the service's default
 
 
 def describe_lines(state: Any, top_n: int = 10) -> list[str]:
@@ -368,19 +400,14 @@ def _summary_dict(summary: Any) -> dict[str, Any]:
 
 
 def cmd_describe(args: argparse.Namespace) -> int:
-    if args.model is not None or args.model_file is None:
-        client = ApiClient(args.api or default_api_url())
-        name = args.model or args.model_file
-        groups = client.get(f"/models/{name}/groups", params={"top": args.top})
-        if args.json:
-            print(json.dumps(groups, indent=2))
-            return EXIT_OK
-        for group in groups["groups"]:
-            label = f"  [{group['label']}]" if group.get("label") else ""
-            print(f"group {group['group']}  weight {group['weight']:.3f}{label}")
-            print("  top:         " + ", ".join(t["term"] for t in group["top_terms"]))
-            print("  distinctive: " + ", ".join(t["term"] for t in group["distinctive_terms"]))
-        return EXIT_OK
+    if args.model_file is None:
+        return _describe_online(args)
+    if args.model is not None or args.api is not None:
+        raise CommandError(
+            "--model-file describes a model file; --model and --api a model of the API: "
+            "give one or the other",
+            EXIT_BAD_INPUT,
+        )
     state = _read_model_file(args.model_file)
     if args.json:
         from mixture.describe import describe_groups
@@ -393,14 +420,44 @@ def cmd_describe(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
+def _describe_online(args: argparse.Namespace) -> int:
+    client = ApiClient(args.api or default_api_url())
+    name = _model_name(args)
+    groups = client.get(f"/models/{name}/groups", params={"top": args.top})
+    if args.json:
+        print(json.dumps(groups, indent=2))
+        return EXIT_OK
+    print(f"model {groups['model']}, version {groups['version']}: {len(groups['groups'])} groups")
+    for group in groups["groups"]:
+        label = f"  [{group['label']}]" if group.get("label") else ""
+        destination = f" -> {group['destination']}" if group.get("destination") else ""
+        print(f"group {group['group']}  weight {group['weight']:.3f}{label}{destination}")
+        print("  top:         " + ", ".join(t["term"] for t in group["top_terms"]))
+        print("  distinctive: " + ", ".join(t["term"] for t in group["distinctive_terms"]))
+    return EXIT_OK
+
+
 # -- talking to the API ---------------------------------------------------------------------
 
 
 def default_api_url() -> str:
+    """The API the client commands talk to when ``--api`` is not given.
+
+    In order: ``MIXROUTE_API_URL``; the address file of a ``serve`` running on the data folder
+    (``MIXROUTE_DATA_DIR``; see :mod:`service.address`), so ``serve --port X`` is found; the
+    settings' host and port.
+    """
+    from service.address import api_url_for, read_address
     from service.settings import load_settings
 
+    explicit = os.environ.get("MIXROUTE_API_URL")
+    if explicit:
+        return explicit
     settings = load_settings()
-    return os.environ.get("MIXROUTE_API", f"http://{settings.host}:{settings.port}")
+    address = read_address(settings.data_dir)
+    if address is not None:
+        return address.api_url
+    return api_url_for(settings.host, settings.port)
 
 
 class ApiClient:
@@ -424,7 +481,8 @@ class ApiClient:
         except httpx.TransportError as exc:
             raise CommandError(
                 f"cannot reach the mixroute API at {self.base_url} ({exc.__class__.__name__}); "
-                "start it with `mixroute serve` or pass --api URL"
+                "start it with `mixroute serve`, or give its address with --api URL or "
+                "MIXROUTE_API_URL"
             ) from None
         if response.status_code in (401, 403):
             raise CommandError(
@@ -464,13 +522,22 @@ def _model_name(args: argparse.Namespace) -> str:
     return load_settings().default_model
 
 
+def _learned_or_warming(model: dict[str, Any]) -> str:
+    """Documents learned, or the warm-up's progress while nothing can be routed yet."""
+    if model.get("warmed_up", True):
+        return f"{model['documents_learned']:,} documents learned"
+    target = model.get("config", {}).get("warmup_documents")
+    of = f" of {target:,}" if isinstance(target, int) else ""
+    return f"warming up: {model['documents_learned']:,}{of} buffered"
+
+
 def cmd_models(args: argparse.Namespace) -> int:
     client = ApiClient(args.api or default_api_url())
     if args.action == "list":
         for model in client.get("/models")["models"]:
             print(
-                f"{model['name']}\tversion {model['version']}\t"
-                f"{model['documents_learned']} documents learned\t{model['n_groups']} groups"
+                f"{model['name']}\tversion {model['version']}\t{_learned_or_warming(model)}\t"
+                f"{model['n_groups']} groups"
             )
     elif args.action == "create":
         try:
@@ -497,6 +564,8 @@ def cmd_feed(args: argparse.Namespace) -> int:
     name = _model_name(args)
     bar = _progress_bar(len(batch.documents), f"queueing to {name}", "doc")
     queued = duplicates = 0
+    first_id: str | None = None
+    last_id: str | None = None
     try:
         for start in range(0, len(batch.documents), args.batch):
             part = batch.documents[start : start + args.batch]
@@ -506,11 +575,47 @@ def cmd_feed(args: argparse.Namespace) -> int:
             )
             queued += answer["queued"]
             duplicates += answer["duplicates"]
+            ids = [i for i in answer["stream_ids"] if i is not None]
+            if ids:
+                first_id = first_id or ids[0]
+                last_id = ids[-1]
             bar.update(len(part))
     finally:
         bar.close()
-    print(f"queued {queued} documents to {name} ({duplicates} already seen, not queued again)")
+    span = f"; stream ids {first_id} .. {last_id}" if first_id is not None else ""
+    print(
+        f"queued {queued:,} documents to {name}{span} "
+        f"({duplicates:,} already seen, not queued again)"
+    )
+    if args.wait and last_id is not None:
+        _wait_learned(client, name, last_id, args.wait_timeout)
     return EXIT_OK
+
+
+def _stream_position(stream_id: str) -> tuple[int, int]:
+    milliseconds, _, sequence = stream_id.partition("-")
+    return int(milliseconds), int(sequence or 0)
+
+
+def _wait_learned(client: ApiClient, name: str, last_id: str, timeout: float) -> None:
+    """Poll the model until its watermark reaches ``last_id`` (learned and checkpointed)."""
+    import time
+
+    deadline = time.monotonic() + timeout
+    target = _stream_position(last_id)
+    while True:
+        model = client.get(f"/models/{name}")
+        watermark = (model.get("stream") or {}).get("watermark") or "0-0"
+        if _stream_position(watermark) >= target:
+            print(f"learned through {last_id}: model {name} at version {model['version']}")
+            return
+        if time.monotonic() >= deadline:
+            state = _learned_or_warming(model)
+            raise CommandError(
+                f"not learned within {timeout:g} s: watermark {watermark}, {state} "
+                f"(waiting for {last_id})"
+            )
+        time.sleep(0.5)
 
 
 def _route_online(args: argparse.Namespace) -> int:
@@ -542,17 +647,21 @@ def _route_online(args: argparse.Namespace) -> int:
 def cmd_snapshot(args: argparse.Namespace) -> int:
     client = ApiClient(args.api or default_api_url())
     name = _model_name(args)
+    if args.action != "list" and args.action != "create" and not args.snapshot_id:
+        raise CommandError(f"snapshot {args.action} needs the snapshot's id", EXIT_BAD_INPUT)
     if args.action == "create":
         snap = client.post(f"/models/{name}/snapshots", json={"reason": args.reason})
         print(f"snapshot {snap['id']} of version {snap['version']} ({snap['reason']})")
+    elif args.action == "delete":
+        client.delete(f"/models/{name}/snapshots/{args.snapshot_id}")
+        print(f"deleted snapshot {args.snapshot_id} of {name}")
     else:
         snaps = client.get(f"/models/{name}/snapshots")["snapshots"]
-        print(f"{'id':<14}{'version':>8}{'documents':>11}  {'kind':<10}reason")
+        print(f"{'id':<14}{'version':>8}{'documents':>11}  {'kind':<13}reason")
         for snap in snaps:
-            kind = "automatic" if snap["automatic"] else "requested"
             print(
                 f"{snap['id']:<14}{snap['version']:>8}{snap['documents_learned']:>11}  "
-                f"{kind:<10}{snap['reason']}"
+                f"{snap['kind']:<13}{snap['reason']}"
             )
     return EXIT_OK
 
@@ -567,10 +676,44 @@ def _parse_skip(values: Sequence[str]) -> list[list[str]]:
     return ranges
 
 
+def parse_time(value: str) -> float:
+    """Unix seconds, or an ISO 8601 time (UTC when it names no zone), as unix seconds."""
+    from datetime import UTC, datetime
+
+    try:
+        return float(value)
+    except ValueError:
+        pass
+    try:
+        moment = datetime.fromisoformat(value)
+    except ValueError:
+        raise CommandError(
+            f"not a time: {value!r} (unix seconds or ISO 8601, e.g. 2026-05-03T14:00)",
+            EXIT_BAD_INPUT,
+        ) from None
+    if moment.tzinfo is None:
+        moment = moment.replace(tzinfo=UTC)
+    return moment.timestamp()
+
+
+def _parse_received(values: Sequence[str]) -> list[list[float]]:
+    ranges = []
+    for value in values:
+        first, sep, last = value.partition("..")
+        if not sep or not first or not last:
+            raise CommandError(f"--skip-received wants FROM..TO times, got {value!r}", 2)
+        ranges.append([parse_time(first), parse_time(last)])
+    return ranges
+
+
 def cmd_rollback(args: argparse.Namespace) -> int:
     client = ApiClient(args.api or default_api_url())
     name = _model_name(args)
-    body = {"replay": bool(args.replay), "skip_ids": _parse_skip(args.skip or [])}
+    skips = _parse_skip(args.skip or [])
+    received = _parse_received(args.skip_received or [])
+    if (skips or received) and not args.replay:
+        raise CommandError("--skip and --skip-received only apply with --replay", EXIT_BAD_INPUT)
+    body = {"replay": bool(args.replay), "skip_ids": skips, "skip_received": received}
     result = client.post(f"/models/{name}/snapshots/{args.snapshot}/restore", json=body)
     print(
         f"restored snapshot {result['snapshot_id']}: now version {result['version']} "
@@ -584,7 +727,10 @@ def cmd_drift(args: argparse.Namespace) -> int:
     client = ApiClient(args.api or default_api_url())
     name = _model_name(args)
     history = client.get(f"/models/{name}/drift/history", params={"limit": args.limit})["rows"]
-    report = client.get(f"/models/{name}/drift")
+    params = {"reference": args.reference, "window": args.window}
+    report = client.get(
+        f"/models/{name}/drift", params={k: v for k, v in params.items() if v is not None}
+    )
     alerts = client.get(f"/models/{name}/drift/alerts")["alerts"]
     print(format_drift_table(history))
     state = "ALERT" if report["alert"] else "ok"
@@ -594,6 +740,9 @@ def cmd_drift(args: argparse.Namespace) -> int:
     )
     for alert in alerts[-10:]:
         print(f"alert at version {alert['version']}: {alert['reason']}")
+    if report.get("word_divergence"):
+        words = ", ".join(f"g{g} {value:.3f}" for g, value in enumerate(report["word_divergence"]))
+        print(f"word divergence per group vs {report['reference']}: {words}")
     if args.plot:
         plot_weights(history, args.plot, title=f"mixture weights of {name}")
         print(f"wrote {args.plot}")
@@ -642,6 +791,50 @@ def plot_weights(rows: Sequence[dict[str, Any]], path: str, title: str) -> None:
     plt.close(fig)
 
 
+def cmd_label(args: argparse.Namespace) -> int:
+    if args.label is None and args.destination is None:
+        raise CommandError("give --label and/or --destination", EXIT_BAD_INPUT)
+    client = ApiClient(args.api or default_api_url())
+    name = _model_name(args)
+    body = {key: getattr(args, key) for key in ("label", "destination")}
+    group = client.request(
+        "PUT",
+        f"/models/{name}/groups/{args.group}/label",
+        json={k: v for k, v in body.items() if v is not None},
+    )
+    print(
+        f"group {group['group']} of {name}: label {group['label'] or '-'}, "
+        f"destination {group['destination'] or '-'}"
+    )
+    return EXIT_OK
+
+
+def cmd_flagged(args: argparse.Namespace) -> int:
+    from mixture.routing import REVIEW_REASONS
+
+    client = ApiClient(args.api or default_api_url())
+    name = _model_name(args)
+    answer = client.get(f"/models/{name}/flagged", params={"count": args.count})
+    if args.json:
+        print(json.dumps(answer, indent=2))
+        return EXIT_OK
+    documents = answer["documents"]
+    if not documents:
+        print(f"no flagged messages held for {name} (this API process keeps {answer['kept']})")
+        return EXIT_OK
+    for doc in documents:
+        label = f" '{doc['label']}'" if doc.get("label") else ""
+        probability = doc.get("probability")
+        shown = "" if probability is None else f"  p {format_probability(probability)}"
+        print(
+            f"{doc.get('id') or '-'}  group {doc['group']}{label}{shown}  version {doc['version']}"
+        )
+        for reason in doc["reasons"]:
+            print(f"  {reason}: {REVIEW_REASONS.get(reason, reason)}")
+        print(f"  {doc['text']}")
+    return EXIT_OK
+
+
 # -- processes ------------------------------------------------------------------------------
 
 
@@ -672,7 +865,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
 
 
 def build_parser() -> argparse.ArgumentParser:
-    """The argument parser of every subcommand."""
+    """The argument parser of every subcommand; every option says what it does."""
     parser = argparse.ArgumentParser(
         prog="mixroute",
         description="Route unlabelled messages with an online mixture of unigram language models.",
@@ -680,95 +873,210 @@ def build_parser() -> argparse.ArgumentParser:
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     def api_options(p: argparse.ArgumentParser, model: bool = True) -> None:
-        p.add_argument("--api", help="base URL of the API (default from MIXROUTE_HOST/PORT)")
+        p.add_argument(
+            "--api",
+            metavar="URL",
+            help="base URL of the API (default: MIXROUTE_API_URL, else the address a running "
+            "`mixroute serve` wrote in its data folder, else MIXROUTE_HOST/MIXROUTE_PORT)",
+        )
         if model:
-            p.add_argument("--model", help="model name (default MIXROUTE_DEFAULT_MODEL)")
+            p.add_argument(
+                "--model", metavar="NAME", help="model name (default: MIXROUTE_DEFAULT_MODEL)"
+            )
+
+    def strict_option(p: argparse.ArgumentParser) -> None:
+        p.add_argument(
+            "--strict", action="store_true", help="refuse the whole file if any line is invalid"
+        )
 
     p = sub.add_parser("fit", help="fit a model file with batch EM (offline)")
     p.add_argument("docs", help="JSON-lines documents ({'id', 'text'} a line; - for stdin)")
     p.add_argument("--groups", "-k", type=int, required=True, help="number of groups K")
     p.add_argument("--out", "-o", required=True, help="model file to write")
-    p.add_argument("--seed", type=int, default=0)
-    p.add_argument("--n-restarts", dest="n_restarts", type=int, default=None)
-    p.add_argument("--max-iter", dest="max_iter", type=int, default=None)
+    p.add_argument("--seed", type=int, default=0, help="random seed of the restarts (default 0)")
+    p.add_argument(
+        "--n-restarts",
+        dest="n_restarts",
+        type=int,
+        default=None,
+        help="EM restarts; the best is kept (default: MixtureConfig's)",
+    )
+    p.add_argument(
+        "--max-iter",
+        dest="max_iter",
+        type=int,
+        default=None,
+        help="EM iterations per restart at most (default: MixtureConfig's)",
+    )
     p.add_argument("--config", help="further MixtureConfig fields as a JSON object")
-    p.add_argument("--strict", action="store_true", help="reject the file on any invalid line")
+    strict_option(p)
     p.set_defaults(func=cmd_fit)
 
-    p = sub.add_parser("route", help="route documents with a model file or through the API")
-    p.add_argument("model_file", metavar="MODEL", help="model file (offline) or the documents")
-    p.add_argument("docs", nargs="?", help="JSON-lines documents")
+    p = sub.add_parser(
+        "route",
+        help="route documents: with a model file (--model-file) or through the API (--model)",
+    )
+    p.add_argument("docs", help="JSON-lines documents ({'id', 'text'} a line; - for stdin)")
+    p.add_argument(
+        "--model-file", metavar="PATH", help="route offline with this model file (from `fit`)"
+    )
     p.add_argument("--out", "-o", help="write JSON lines here instead of standard output")
-    p.add_argument("--top", type=int, default=None, help="keep only the top n posteriors")
-    p.add_argument("--threshold", type=float, default=0.6, help="offline: low_posterior flag")
+    p.add_argument(
+        "--top", type=int, default=None, help="keep only the n most probable groups per document"
+    )
+    p.add_argument(
+        "--threshold",
+        type=float,
+        default=None,
+        help="with --model-file: MAP posterior under which low_posterior asks for review "
+        "(default: the service's 0.6; through the API the model's own threshold applies)",
+    )
     p.add_argument("--learn", action="store_true", help="API: also queue them for learning")
-    p.add_argument("--strict", action="store_true", help="reject the file on any invalid line")
+    strict_option(p)
     api_options(p)
     p.set_defaults(func=cmd_route)
 
     p = sub.add_parser("describe", help="top and distinctive terms of every group")
-    p.add_argument("model_file", metavar="MODEL", nargs="?", help="model file (offline)")
-    p.add_argument("--top", type=int, default=10)
-    p.add_argument("--json", action="store_true")
+    p.add_argument(
+        "--model-file", metavar="PATH", help="describe this model file (offline) instead"
+    )
+    p.add_argument("--top", type=int, default=10, help="terms listed per group (default 10)")
+    p.add_argument("--json", action="store_true", help="print JSON instead of text")
     api_options(p)
     p.set_defaults(func=cmd_describe)
 
-    p = sub.add_parser("serve", help="run the API (and a worker) on Redis or embedded Redis")
-    p.add_argument("--host")
-    p.add_argument("--port", type=int)
-    p.add_argument("--data-dir", dest="data_dir", help="embedded Redis folder")
-    p.add_argument("--no-worker", dest="no_worker", action="store_true")
+    p = sub.add_parser(
+        "serve", help="run the API (and a worker) on REDIS_URL or on an embedded Redis"
+    )
+    p.add_argument("--host", help="address to listen on (default: MIXROUTE_HOST, 127.0.0.1)")
+    p.add_argument("--port", type=int, help="port to listen on (default: MIXROUTE_PORT, 8000)")
+    p.add_argument(
+        "--data-dir",
+        dest="data_dir",
+        help="folder of the embedded Redis and of the address file the client commands read "
+        "(default: MIXROUTE_DATA_DIR)",
+    )
+    p.add_argument(
+        "--no-worker",
+        dest="no_worker",
+        action="store_true",
+        help="serve the API only; run learning with `mixroute work` elsewhere",
+    )
     p.set_defaults(func=cmd_serve)
 
-    p = sub.add_parser("work", help="run one learning worker (needs REDIS_URL)")
+    p = sub.add_parser(
+        "work",
+        help="run learning workers alone (on REDIS_URL, or on the Redis of a running serve)",
+    )
     p.add_argument("--model", help="model to learn (default: every model, one thread each)")
-    p.add_argument("--data-dir", dest="data_dir", help="embedded Redis folder")
+    p.add_argument(
+        "--data-dir",
+        dest="data_dir",
+        help="without REDIS_URL: the data folder of the running `mixroute serve` whose "
+        "embedded Redis to use (default: MIXROUTE_DATA_DIR)",
+    )
     p.set_defaults(func=cmd_work)
 
     p = sub.add_parser("models", help="create, list or delete models on the API")
-    msub = p.add_subparsers(dest="action", required=True)
-    mp = msub.add_parser("list")
+    msub = p.add_subparsers(dest="action", required=True, metavar="ACTION")
+    mp = msub.add_parser("list", help="every model with its version and documents learned")
     api_options(mp, model=False)
-    mp = msub.add_parser("create")
-    mp.add_argument("name")
-    mp.add_argument("--groups", "-k", type=int, required=True)
+    mp = msub.add_parser("create", help="register a new model")
+    mp.add_argument("name", help="model name (letters, digits, '_', '.', '-')")
+    mp.add_argument("--groups", "-k", type=int, required=True, help="number of groups K")
     mp.add_argument("--config", help="further MixtureConfig fields as a JSON object")
     mp.add_argument("--options", help="model options (checkpointing, retention...) as JSON")
     api_options(mp, model=False)
-    mp = msub.add_parser("delete")
-    mp.add_argument("name")
+    mp = msub.add_parser("delete", help="delete a model and everything it stored")
+    mp.add_argument("name", help="model name")
     api_options(mp, model=False)
     p.set_defaults(func=cmd_models)
 
     p = sub.add_parser("feed", help="queue a JSON-lines file for learning")
-    p.add_argument("file")
-    p.add_argument("--batch", type=int, default=500, help="documents per request")
-    p.add_argument("--strict", action="store_true")
+    p.add_argument("file", help="JSON-lines documents ({'id', 'text'} a line; - for stdin)")
+    p.add_argument("--batch", type=int, default=500, help="documents per request (default 500)")
+    p.add_argument(
+        "--wait", action="store_true", help="then wait until the worker has learned them"
+    )
+    p.add_argument(
+        "--wait-timeout",
+        dest="wait_timeout",
+        type=float,
+        default=600.0,
+        metavar="SECONDS",
+        help="give up waiting after this long (default 600)",
+    )
+    strict_option(p)
     api_options(p)
     p.set_defaults(func=cmd_feed)
 
-    p = sub.add_parser("snapshot", help="create or list snapshots")
-    p.add_argument("action", choices=("create", "list"))
-    p.add_argument("--reason", default="requested from the command line")
+    p = sub.add_parser("snapshot", help="create, list or delete snapshots")
+    p.add_argument("action", choices=("create", "list", "delete"), help="what to do")
+    p.add_argument("snapshot_id", nargs="?", metavar="ID", help="the snapshot to delete")
+    p.add_argument(
+        "--reason",
+        default="requested from the command line",
+        help="create: why the snapshot is taken (shown in the list)",
+    )
     api_options(p)
     p.set_defaults(func=cmd_snapshot)
 
     p = sub.add_parser("rollback", help="restore a snapshot, optionally replaying the stream")
-    p.add_argument("snapshot")
+    p.add_argument("snapshot", help="id of the snapshot to restore (see `snapshot list`)")
     p.add_argument("--replay", action="store_true", help="relearn the stream after it")
-    p.add_argument("--skip", action="append", metavar="FIRST..LAST", help="stream ids to skip")
+    p.add_argument(
+        "--skip",
+        action="append",
+        metavar="FIRST..LAST",
+        help="with --replay: leave out this inclusive stream-id range (as `feed` prints it); "
+        "repeatable",
+    )
+    p.add_argument(
+        "--skip-received",
+        dest="skip_received",
+        action="append",
+        metavar="FROM..TO",
+        help="with --replay: leave out messages received in this time range (unix seconds or "
+        "ISO 8601, UTC unless a zone is given); repeatable",
+    )
     api_options(p)
     p.set_defaults(func=cmd_rollback)
 
     p = sub.add_parser("drift", help="weights over time, divergence and alerts")
-    p.add_argument("--limit", type=int, default=1000)
+    p.add_argument("--limit", type=int, default=1000, help="newest checkpoints read (default 1000)")
+    p.add_argument(
+        "--reference",
+        metavar="SNAPSHOT",
+        help="compare with this snapshot (adds each group's word divergence)",
+    )
+    p.add_argument(
+        "--window",
+        type=int,
+        metavar="N",
+        help="compare with the checkpoint N back (default: the model's drift_window)",
+    )
     p.add_argument("--plot", metavar="PNG", help="also plot the weights into this file")
     api_options(p)
     p.set_defaults(func=cmd_drift)
 
+    p = sub.add_parser("label", help="name a group and say where its messages go")
+    p.add_argument("group", type=int, help="group id (see `describe`)")
+    p.add_argument("--label", help="the group's name, e.g. 'lost property'")
+    p.add_argument("--destination", help="where its messages go, e.g. an address or queue")
+    api_options(p)
+    p.set_defaults(func=cmd_label)
+
+    p = sub.add_parser("flagged", help="recent messages routed with a review reason")
+    p.add_argument(
+        "--count", type=int, default=20, help="newest flagged messages shown (default 20)"
+    )
+    p.add_argument("--json", action="store_true", help="print JSON instead of text")
+    api_options(p)
+    p.set_defaults(func=cmd_flagged)
+
     p = sub.add_parser("demo", help="the invented ferry-inbox demo (embedded Redis, < 1 min)")
     p.add_argument("--scale", type=float, default=1.0, help="multiply the messages per day")
-    p.add_argument("--seed", type=int, default=0)
+    p.add_argument("--seed", type=int, default=0, help="random seed of the invented inbox")
     p.add_argument("--plot", metavar="PNG", help="also plot the weights into this file")
     p.set_defaults(func=cmd_demo)
     return parser

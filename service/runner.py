@@ -10,12 +10,14 @@ from __future__ import annotations
 
 import contextlib
 import logging
+import os
 import signal
 import threading
 from pathlib import Path
 from types import FrameType
 from typing import Any
 
+from service.address import ServeAddress, api_url_for, read_address, remove_address, write_address
 from service.settings import Settings, load_settings
 
 log = logging.getLogger(__name__)
@@ -179,6 +181,19 @@ def serve(
             url = settings.redis_url
             factories.append(lambda _runtime: WorkerPool(url))
         app = create_app(settings, background_factories=factories)
+        address = ServeAddress(
+            api_url=api_url_for(settings.host, settings.port),
+            redis_url=embedded.url if embedded is not None else None,
+            pid=os.getpid(),
+        )
+        written = write_address(settings.data_dir, address)
+        print(
+            f"mixroute API   {address.api_url}\n"
+            f"API docs       {address.docs_url}\n"
+            f"dashboard      {address.dashboard_url}\n"
+            f"(the client commands find this API through {written})",
+            flush=True,
+        )
         # log_config=None keeps our handlers; RequestContext writes the access lines
         uvicorn.run(
             app,
@@ -191,6 +206,7 @@ def serve(
     except _StopSignal as stop:
         log.info("signal %d: stopped", stop.signum)
     finally:
+        remove_address(settings.data_dir, os.getpid())
         if embedded is not None:
             embedded.stop()
         for sig, handler in previous.items():
@@ -202,14 +218,23 @@ def serve(
 
 
 def work(model: str | None = None, data_dir: str | Path | None = None) -> int:
-    """Run learning workers against ``REDIS_URL`` until SIGTERM/SIGINT; exit status."""
+    """Run learning workers until SIGTERM/SIGINT; exit status.
+
+    The Redis is ``REDIS_URL``, or else the embedded one of a ``serve`` running on
+    ``data_dir`` (read from its address file, :mod:`service.address`).
+    """
     from service.cli import CommandError
 
     settings = load_settings(data_dir=data_dir)
     if not settings.redis_url:
+        # the embedded Redis of a `serve` running on the same data folder
+        address = read_address(settings.data_dir)
+        settings.redis_url = address.redis_url if address is not None else None
+    if not settings.redis_url:
         raise CommandError(
-            "`mixroute work` needs a shared Redis: set REDIS_URL (or MIXROUTE_REDIS_URL). "
-            "With the embedded Redis, `mixroute serve` runs the worker itself.",
+            "`mixroute work` needs a Redis: set REDIS_URL (or MIXROUTE_REDIS_URL), or start "
+            f"`mixroute serve` on the data folder {settings.data_dir} (--data-dir) first; "
+            "that serve already runs a worker unless given --no-worker.",
             2,
         )
     _configure_logging(settings)  # only once the command is really going to run

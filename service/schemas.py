@@ -24,7 +24,9 @@ from typing import Annotated, Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, create_model, model_validator
 
 from mixture.config import MixtureConfig
+from mixture.routing import REVIEW_REASONS
 from state.options import ModelOptions
+from state.records import SNAPSHOT_KINDS
 
 STRICT_INPUT = ConfigDict(extra="forbid", strict=True)
 
@@ -135,10 +137,31 @@ class DocumentIn(StrictIn):
     text: str = Field(description="The message text (UTF-8; not empty).")
 
 
-class DocumentsIn(StrictIn):
-    """Documents to queue for learning."""
+class OneOrManyIn(StrictIn):
+    """Either ``text`` (one document, with an optional ``id``) or ``documents`` (many): the
+    same two forms for queueing and for routing."""
 
-    documents: list[DocumentIn]
+    text: str | None = Field(default=None, description="A single document's text.")
+    id: str | None = Field(default=None, min_length=1, max_length=200)
+    documents: list[DocumentIn] | None = None
+
+    @model_validator(mode="after")
+    def _one_form(self) -> OneOrManyIn:
+        if (self.text is None) == (self.documents is None):
+            raise ValueError('give either "text" (one document) or "documents" (a list)')
+        if self.documents is not None and self.id is not None:
+            raise ValueError('"id" goes inside each entry of "documents"')
+        return self
+
+    def as_documents(self) -> list[DocumentIn]:
+        """The documents of either form, as a list."""
+        if self.documents is not None:
+            return self.documents
+        return [DocumentIn(id=self.id, text=self.text or "")]
+
+
+class DocumentsIn(OneOrManyIn):
+    """Documents to queue for learning: ``text`` (one) or ``documents`` (many)."""
 
 
 class QueuedOut(BaseModel):
@@ -153,29 +176,17 @@ class QueuedOut(BaseModel):
 # -- routing --------------------------------------------------------------------------------
 
 
-class RouteIn(StrictIn):
+class RouteIn(OneOrManyIn):
     """Documents to route: either ``text`` (one document) or ``documents`` (many)."""
 
-    text: str | None = Field(default=None, description="A single document's text.")
-    id: str | None = Field(default=None, min_length=1, max_length=200)
-    documents: list[DocumentIn] | None = None
     top: int | None = Field(
         default=None, ge=1, le=10_000, description="Return only the n most probable groups."
     )
     learn: bool = Field(default=False, description="Also queue the documents for learning.")
 
-    @model_validator(mode="after")
-    def _one_form(self) -> RouteIn:
-        if (self.text is None) == (self.documents is None):
-            raise ValueError('give either "text" (one document) or "documents" (a list)')
-        if self.documents is not None and self.id is not None:
-            raise ValueError('"id" goes inside each entry of "documents"')
-        return self
 
-    def as_documents(self) -> list[DocumentIn]:
-        if self.documents is not None:
-            return self.documents
-        return [DocumentIn(id=self.id, text=self.text or "")]
+# The names come from the one table in mixture.routing; a new reason is a row there.
+ReviewReason = Literal[tuple(REVIEW_REASONS)]  # type: ignore[valid-type]
 
 
 class GroupProbability(BaseModel):
@@ -200,9 +211,9 @@ class RouteResult(BaseModel):
     known_tokens: int
     unknown_tokens: int
     review: bool = Field(description="A person should look at this routing decision.")
-    review_reasons: list[
-        Literal["low_posterior", "no_known_words", "mostly_unknown_words", "atypical"]
-    ]
+    review_reasons: list[ReviewReason] = Field(  # type: ignore[valid-type]
+        description="Every review rule that fired (mixture.routing.REVIEW_REASONS)."
+    )
     queued: bool = Field(
         default=False,
         description="True when this document was added to the stream for learning (false for "
@@ -304,6 +315,9 @@ class LabelIn(StrictIn):
 # -- snapshots ------------------------------------------------------------------------------
 
 
+SnapshotKind = Literal[SNAPSHOT_KINDS]  # type: ignore[valid-type]
+
+
 class SnapshotIn(StrictIn):
     reason: str = Field(default="requested", min_length=1, max_length=500)
 
@@ -311,7 +325,10 @@ class SnapshotIn(StrictIn):
 class SnapshotOut(BaseModel):
     id: str
     reason: str
-    kind: str
+    kind: SnapshotKind = Field(  # type: ignore[valid-type]
+        description="requested (kept until deleted), automatic (pruned by retention) or "
+        "pre-rollback (the copy a rollback took of the state it replaced)."
+    )
     automatic: bool
     created: float
     version: int

@@ -43,13 +43,20 @@ class CurrentState:
     checksum: str
 
 
+# The snapshot kinds, the one set of names in every output (API, command line, dashboard).
+REQUESTED = "requested"  # asked for by a person or a client; kept until deleted
+AUTOMATIC = "automatic"  # taken on the worker's schedule; retention prunes these only
+PRE_ROLLBACK = "pre-rollback"  # the safety copy a rollback takes of the state it replaces
+SNAPSHOT_KINDS: tuple[str, ...] = (REQUESTED, AUTOMATIC, PRE_ROLLBACK)
+
+
 @dataclass(frozen=True)
 class SnapshotInfo:
     """Metadata of one immutable snapshot (its state bytes live beside it in Redis)."""
 
     id: str
     reason: str
-    kind: str  # "requested", "automatic" or "pre-rollback"
+    kind: str  # one of SNAPSHOT_KINDS
     created: float
     version: int
     documents_learned: int
@@ -61,7 +68,7 @@ class SnapshotInfo:
     @property
     def automatic(self) -> bool:
         """True for snapshots taken by the worker's schedule (the only ones retention prunes)."""
-        return self.kind == "automatic"
+        return self.kind == AUTOMATIC
 
     def to_dict(self) -> dict[str, Any]:
         d = asdict(self)

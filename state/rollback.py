@@ -28,7 +28,7 @@ from mixture.stats import MixtureState
 from state.errors import OptionsError, VersionConflictError
 from state.handle import ModelHandle, loads_or_none
 from state.queueing import DocumentQueue
-from state.records import RollbackResult, SnapshotInfo, dumps
+from state.records import PRE_ROLLBACK, RollbackResult, SnapshotInfo, dumps
 from state.snapshots import Snapshots, decode_snapshot
 from state.stream import SkipRanges, max_stream_id
 from state.versions import VersionWrite, write_version
@@ -169,7 +169,7 @@ class Rollbacks:
         info = SnapshotInfo(
             id=self.snapshots.next_id(),
             reason=f"before rollback to {snapshot_id}",
-            kind="pre-rollback",
+            kind=PRE_ROLLBACK,
             created=time.time(),
             version=current_version,
             documents_learned=int(current_meta["documents_learned"]),

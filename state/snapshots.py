@@ -20,7 +20,7 @@ from state.errors import (
     VersionConflictError,
 )
 from state.handle import ModelHandle
-from state.records import SnapshotInfo, dumps
+from state.records import AUTOMATIC, REQUESTED, SnapshotInfo, dumps
 
 Client = redis.Redis | redis.client.Pipeline
 
@@ -64,7 +64,7 @@ class Snapshots:
 
     def to_prune(self, client: Client, extra: int) -> list[str]:
         """Automatic snapshots beyond ``snapshot_keep`` (counting ``extra`` about to be added)."""
-        automatic = [s for s in self.listed(client) if s.kind == "automatic"]
+        automatic = [s for s in self.listed(client) if s.kind == AUTOMATIC]
         keep = max(self.handle.options.snapshot_keep - extra, 0)
         if len(automatic) <= keep:
             return []
@@ -82,7 +82,7 @@ class Snapshots:
         out.sort(key=lambda s: (s.version, s.created, s.id))
         return out
 
-    def create(self, reason: str, *, kind: str = "requested", attempts: int = 20) -> SnapshotInfo:
+    def create(self, reason: str, *, kind: str = REQUESTED, attempts: int = 20) -> SnapshotInfo:
         """Copy the current state into a new immutable snapshot.
 
         Parameters
@@ -101,7 +101,7 @@ class Snapshots:
         """
         if not isinstance(reason, str) or not reason.strip() or len(reason) > 500:
             raise OptionsError("snapshot reason must be 1-500 characters")
-        if kind not in ("requested", "automatic"):
+        if kind not in (REQUESTED, AUTOMATIC):
             raise OptionsError(f"snapshot kind must be 'requested' or 'automatic', got {kind!r}")
         snapshot_id = self.next_id()
         for _ in range(attempts):
@@ -138,7 +138,7 @@ class Snapshots:
             watermark=str(meta["watermark"]),
             size=len(data),
         )
-        expired = self.to_prune(pipe, 1) if kind == "automatic" else []
+        expired = self.to_prune(pipe, 1) if kind == AUTOMATIC else []
         pipe.multi()
         self.write(pipe, info, data)
         self.prune(pipe, expired)

@@ -31,6 +31,7 @@ from state.lease import Lease, default_worker_name
 from state.options import ModelOptions
 from state.queueing import MAX_CLIENT_ID_LENGTH, DocumentQueue
 from state.records import (
+    REQUESTED,
     Alert,
     CurrentState,
     DriftReport,
@@ -159,7 +160,7 @@ class ModelStore:
         return self.lease.worker_status()
 
     # -- snapshots and rollback (state.snapshots, state.rollback) ----------------------------
-    def create_snapshot(self, reason: str, *, kind: str = "requested") -> SnapshotInfo:
+    def create_snapshot(self, reason: str, *, kind: str = REQUESTED) -> SnapshotInfo:
         """Copy the current state into a new immutable snapshot."""
         return self.snapshots.create(reason, kind=kind)
 

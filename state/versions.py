@@ -24,7 +24,14 @@ from mixture.serialize import checksum, state_from_bytes, state_to_bytes
 from mixture.stats import MixtureState
 from state.errors import VersionConflictError
 from state.handle import ModelHandle, loads_or_none
-from state.records import CurrentState, HistoryRow, SnapshotInfo, VersionRecord, dumps
+from state.records import (
+    AUTOMATIC,
+    CurrentState,
+    HistoryRow,
+    SnapshotInfo,
+    VersionRecord,
+    dumps,
+)
 from state.snapshots import Snapshots
 from state.stream import ZERO_ID, Undecodable, parse_stream_id
 
@@ -257,7 +264,7 @@ class Versions:
             info = SnapshotInfo(
                 id=snapshot_id,
                 reason=cp.snapshot_reason or "automatic",
-                kind="automatic",
+                kind=AUTOMATIC,
                 created=write.time,
                 version=write.version,
                 documents_learned=summary["documents_learned"],

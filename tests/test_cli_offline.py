@@ -75,7 +75,12 @@ def test_strict_rejects_the_file_and_writes_nothing(corpus, model_file, tmp_path
     out = tmp_path / "never.model"
     assert main(["fit", str(path), "--groups", "8", "--out", str(out), "--strict"]) == 2
     routed = tmp_path / "never.jsonl"
-    assert main(["route", str(model_file), str(path), "--out", str(routed), "--strict"]) == 2
+    assert (
+        main(
+            ["route", str(path), "--model-file", str(model_file), "--out", str(routed), "--strict"]
+        )
+        == 2
+    )
     err = capsys.readouterr().err
     assert "--strict given, nothing done" in err and f"line {bad_numbers[0]}:" in err
     assert not out.exists() and not routed.exists()
@@ -87,20 +92,23 @@ def test_route_writes_one_line_per_valid_document(corpus, model_file, tmp_path) 
 
     path, records, _ = corpus
     out = tmp_path / "routed.jsonl"
-    assert main(["route", str(model_file), str(path), "--out", str(out)]) == 0
+    assert main(["route", str(path), "--model-file", str(model_file), "--out", str(out)]) == 0
     rows = [json.loads(line) for line in out.read_text().splitlines()]
     assert [row["id"] for row in rows] == [r["id"] for r in records]
     state = state_from_bytes(model_file.read_bytes())
     reference = route_texts(state, [r["text"] for r in records])
-    posterior = np.array([row["posterior"] for row in rows])
+    posterior = np.zeros_like(reference.posterior)
+    for i, row in enumerate(rows):
+        for entry in row["posterior"]:
+            posterior[i, entry["group"]] = entry["probability"]
     np.testing.assert_allclose(posterior, reference.posterior, rtol=0, atol=1e-12)
     assert [row["group"] for row in rows] == reference.group.tolist()
     for row in rows:
         assert set(row) == {
             "id", "group", "posterior", "margin", "log_likelihood_per_token",
-            "known_tokens", "unknown_tokens", "flags",
+            "known_tokens", "unknown_tokens", "review", "review_reasons",
         }  # fmt: skip
-        assert row["group"] == int(np.argmax(row["posterior"]))
+        assert row["group"] == row["posterior"][0]["group"]  # most probable first
     # Against the invented ground truth, scored by scikit-learn's NMI
     # (sklearn.metrics.normalized_mutual_info_score). The 0.8 floor is ours (common practice
     # for "the groups are the themes", no source); the themes are generated to be separable.
@@ -110,7 +118,7 @@ def test_route_writes_one_line_per_valid_document(corpus, model_file, tmp_path) 
     assert nmi >= 0.8, nmi
 
 
-def test_route_top_n_and_flags(model_file, tmp_path, capsys) -> None:
+def test_route_top_n_and_review_reasons(model_file, tmp_path, capsys) -> None:
     docs = tmp_path / "two.jsonl"
     docs.write_text(
         json.dumps({"id": 1, "text": "zzzz qqqq xxyyzz"})
@@ -118,20 +126,31 @@ def test_route_top_n_and_flags(model_file, tmp_path, capsys) -> None:
         + json.dumps({"id": "b", "text": "my dog and the cafe on the ferry"})
         + "\n"
     )
-    assert main(["route", str(model_file), str(docs), "--top", "2", "--threshold", "0.99"]) == 0
+    argv = [
+        "route",
+        str(docs),
+        "--model-file",
+        str(model_file),
+        "--top",
+        "2",
+        "--threshold",
+        "0.99",
+    ]
+    assert main(argv) == 0
     rows = [json.loads(line) for line in capsys.readouterr().out.splitlines()]
-    assert rows[0]["id"] == "1" and "no_evidence" in rows[0]["flags"]
+    assert rows[0]["id"] == "1" and "no_known_words" in rows[0]["review_reasons"]
+    assert rows[0]["review"] is True
     assert rows[0]["known_tokens"] == 0 and rows[0]["log_likelihood_per_token"] is None
     assert all(len(row["posterior"]) == 2 for row in rows)
-    top = list(rows[1]["posterior"].values())
+    top = [entry["probability"] for entry in rows[1]["posterior"]]
     assert top == sorted(top, reverse=True)
 
 
 def test_describe_lists_every_group(model_file, capsys) -> None:
-    assert main(["describe", str(model_file), "--top", "5"]) == 0
+    assert main(["describe", "--model-file", str(model_file), "--top", "5"]) == 0
     out = capsys.readouterr().out
     assert out.count("\ngroup ") == 8 and "top:" in out and "distinctive:" in out
-    assert main(["describe", str(model_file), "--json"]) == 0
+    assert main(["describe", "--model-file", str(model_file), "--json"]) == 0
     summaries = json.loads(capsys.readouterr().out)
     assert len(summaries) == 8
     assert sum(s["weight"] for s in summaries) == pytest.approx(1.0)
@@ -144,8 +163,8 @@ def test_describe_lists_every_group(model_file, capsys) -> None:
         (["fit", "{tmp}/missing.jsonl", "--groups", "3", "--out", "{tmp}/m"], "cannot read"),
         (["fit", "{docs}", "--groups", "3", "--out", "{tmp}/m", "--config", "{{"], "--config"),
         (["fit", "{docs}", "--groups", "3", "--out", "{tmp}/m", "--config", '{{"x": 1}}'], "x"),
-        (["route", "{tmp}/garbage.model", "{docs}"], "state"),
-        (["describe", "{tmp}/missing.model"], "cannot read model"),
+        (["route", "{docs}", "--model-file", "{tmp}/garbage.model"], "state"),
+        (["describe", "--model-file", "{tmp}/missing.model"], "cannot read model"),
     ],
 )
 def test_errors_are_one_line_and_exit_non_zero(corpus, tmp_path, capsys, argv, message) -> None:

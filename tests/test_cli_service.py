@@ -110,7 +110,7 @@ def test_work_without_redis_url_explains(monkeypatch, capsys) -> None:
     monkeypatch.delenv("REDIS_URL", raising=False)
     monkeypatch.delenv("MIXROUTE_REDIS_URL", raising=False)
     assert main(["work"]) == 2
-    assert "needs a shared Redis" in capsys.readouterr().err
+    assert "needs a Redis" in capsys.readouterr().err
 
 
 def test_command_line_sends_the_configured_key(redis_url: str, monkeypatch, capsys) -> None:

@@ -29,14 +29,18 @@ def queue_documents(
 ) -> dict[str, Any]:
     """Append the documents to the model's stream; the worker learns them.
 
+    The body is ``{"text": ..., "id": ...}`` for one document or ``{"documents": [...]}`` for
+    many, as for routing.
+
     A document whose ``id`` was queued within the model's idempotency window is not added again
     (its stream id is null and it counts as a duplicate), so retrying a failed request with
     the same ids never queues a document twice.
     """
-    check_documents(body.documents, runtime.settings)
+    documents = body.as_documents()
+    check_documents(documents, runtime.settings)
     loaded = runtime.model(model)
-    texts = [doc.text for doc in body.documents]
-    ids = [doc.id for doc in body.documents]
+    texts = [doc.text for doc in documents]
+    ids = [doc.id for doc in documents]
     metadata = request_metadata(len(texts))  # the request id travels with each entry
     result = runtime.call(lambda: loaded.store.enqueue(texts, ids=ids, metadata=metadata))
     stream_ids = list(result.stream_ids)

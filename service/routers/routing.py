@@ -15,6 +15,7 @@ from pydantic import ValidationError
 from starlette.concurrency import run_in_threadpool
 from starlette.routing import Route as StarletteRoute
 
+from mixture.routing import posterior_entries, review_reasons
 from service.app import DEGRADED_HEADER
 from service.logs import request_metadata
 from service.routers import COMMON_RESPONSES, check_documents, get_runtime, loads_strict
@@ -36,35 +37,20 @@ def build_results(
     stream_ids: list[str | None] | None,
 ) -> list[dict[str, Any]]:
     """Per-document answers as plain dicts (serialised without a second validation pass)."""
-    posterior = routing.posterior
-    order = np.argsort(-posterior, axis=1, kind="stable")
-    if top is not None:
-        order = order[:, :top]
-    order_list = order.tolist()
-    post_list = posterior.tolist()
+    posteriors = posterior_entries(routing.posterior, top)
+    all_reasons = review_reasons(
+        routing, loaded.review_threshold, loaded.review_unknown_share, atypical
+    )
     groups = routing.group.tolist()
     margins = routing.margin.tolist()
     llpt = routing.log_likelihood_per_token.tolist()
     known = routing.known_tokens.tolist()
     unknown = routing.unknown_tokens.tolist()
-    no_evidence = routing.no_evidence.tolist()
-    flagged = atypical.tolist()
-    threshold = loaded.review_threshold
-    unknown_share = loaded.review_unknown_share
     labels = loaded.labels
     results = []
     for i, doc in enumerate(documents):
         g = groups[i]
-        row = post_list[i]
-        reasons = []
-        if row[g] < threshold:
-            reasons.append("low_posterior")
-        if no_evidence[i]:
-            reasons.append("no_known_words")
-        elif unknown[i] > unknown_share * (known[i] + unknown[i]):
-            reasons.append("mostly_unknown_words")
-        if flagged[i]:
-            reasons.append("atypical")
+        reasons = all_reasons[i]
         label = labels.get(g)
         value = llpt[i]
         stream_id = stream_ids[i] if stream_ids is not None else None
@@ -74,7 +60,7 @@ def build_results(
                 "group": g,
                 "label": label["label"] if label else None,
                 "destination": label["destination"] if label else None,
-                "posterior": [{"group": k, "probability": row[k]} for k in order_list[i]],
+                "posterior": posteriors[i],
                 "margin": margins[i],
                 "log_likelihood_per_token": value if math.isfinite(value) else None,
                 "known_tokens": known[i],
