@@ -15,7 +15,8 @@ from service.cli import main
 from service.demo_data import default_days, generate_day
 from service.runner import WorkerPool
 from service.settings import Settings
-from service.testing import QUICK_OPTIONS, learned, uvicorn_thread, wait_until
+from service.testing import QUICK_OPTIONS, learned, uvicorn_thread
+from state.keys import ModelKeys
 
 pytestmark = pytest.mark.redis
 
@@ -33,7 +34,7 @@ def write_jsonl(path: Path, records: list[dict]) -> Path:
     return path
 
 
-def test_service_commands(live: str, model_name: str, tmp_path: Path, capsys) -> None:
+def test_service_commands(live: str, model_name: str, redis_client, tmp_path: Path, capsys) -> None:
     api = ["--api", live]
     config = json.dumps({"warmup_documents": 120, "n_restarts": 1, "batch_size": 60})
     options = json.dumps(QUICK_OPTIONS)
@@ -50,6 +51,10 @@ def test_service_commands(live: str, model_name: str, tmp_path: Path, capsys) ->
     captured = capsys.readouterr()
     assert f"queued {len(day1)} documents" in captured.out
     assert f"line {len(day1) + 1}: not valid JSON" in captured.err
+    # the stream ids it queued, as `rollback --skip` wants them: the stream's own first and last
+    first_id, last_id = captured.out.split("stream ids ")[1].split(" (")[0].split(" .. ")
+    entries = redis_client.xrange(ModelKeys(model_name).docs)
+    assert (first_id, last_id) == (entries[0][0].decode(), entries[-1][0].decode())
     # feeding the same ids again queues nothing twice (idempotent client ids)
     assert main(["feed", str(feed_file), "--model", model_name, *api]) == 0
     assert (
@@ -57,7 +62,11 @@ def test_service_commands(live: str, model_name: str, tmp_path: Path, capsys) ->
     )
 
     http = httpx.Client(base_url=live)
-    wait_until(lambda: learned(http, model_name, len(day1)), what="day 1", timeout=90)
+    day2 = [m.to_json() for m in generate_day(plans[1], 7)]
+    day2_file = write_jsonl(tmp_path / "day2.jsonl", day2)
+    assert main(["feed", str(day2_file), "--model", model_name, "--wait", *api]) == 0
+    assert "learned through " in capsys.readouterr().out
+    assert learned(http, model_name, len(day1) + len(day2))  # --wait returned once learned
 
     probe = write_jsonl(tmp_path / "probe.jsonl", day1[:5])
     assert main(["route", str(probe), "--model", model_name, "--top", "2", *api]) == 0
@@ -76,8 +85,25 @@ def test_service_commands(live: str, model_name: str, tmp_path: Path, capsys) ->
     assert snap_id in capsys.readouterr().out
 
     assert main(["rollback", snap_id, "--model", model_name, *api]) == 0
+    assert "replay off" in capsys.readouterr().out
+    assert main(["rollback", snap_id, "--skip", f"{first_id}..{last_id}", *api]) == 2
+    assert "only apply with --replay" in capsys.readouterr().err
+    skip = ["--skip", f"{first_id}..{last_id}", "--skip-received", "2026-05-03T14:00..1e10"]
+    assert main(["rollback", snap_id, "--replay", *skip, "--model", model_name, *api]) == 0
     assert f"restored snapshot {snap_id}" in capsys.readouterr().out
-    assert main(["rollback", snap_id, "--skip", "nonsense", "--model", model_name, *api]) == 2
+    assert main(["drift", "--reference", snap_id, "--model", model_name, *api]) == 0
+    assert f"vs snapshot:{snap_id}" in capsys.readouterr().out
+
+    assert main(["label", "1", "--label", "lost property", "--model", model_name, *api]) == 0
+    assert "label lost property" in capsys.readouterr().out
+    assert http.get(f"/models/{model_name}/groups/1").json()["label"] == "lost property"
+    nonsense = write_jsonl(tmp_path / "nonsense.jsonl", [{"id": "zz", "text": "qqzx vvkq"}])
+    assert main(["route", str(nonsense), "--model", model_name, *api]) == 0
+    capsys.readouterr()
+    assert main(["flagged", "--model", model_name, *api]) == 0
+    flagged = capsys.readouterr().out
+    assert flagged.startswith("zz") and "no_known_words: no word of the message" in flagged
+    assert main(["rollback", snap_id, "--replay", "--skip", "x", "--model", model_name, *api]) == 2
     assert "FIRST..LAST" in capsys.readouterr().err
 
     png = tmp_path / "weights.png"
