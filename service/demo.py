@@ -24,7 +24,7 @@ from collections import Counter
 from collections.abc import Iterator
 from typing import Any, TextIO
 
-from service.cli import CommandError
+from service.cli import CommandError, format_probability
 from service.demo_data import (
     INVENTED_NOTICE,
     JUNK_WORDS,
@@ -36,6 +36,7 @@ from service.demo_data import (
 )
 
 MODEL = "ferry-inbox"
+RULER_WIDTH = 80  # every section ruler, and no header line wider
 
 # Demo model: one group per invented theme, a short warm-up (day 1) and a memory of about two
 # days so the storm shows up in the weights; checkpoints every 150 documents.
@@ -127,8 +128,11 @@ class Demo:
     def rule(self, title: str) -> None:
         """A section header; every one says the data are invented."""
         self.say()
-        title = f"{title} [invented data]"
-        self.say(f"== {title} " + "=" * max(0, 76 - len(title)))
+        header = f"== {title} [invented data] "
+        if len(header) + 2 > RULER_WIDTH:  # too long for one ruler: the title above it
+            self.say(f"{title} [invented data]")
+            header = ""
+        self.say(header + "=" * (RULER_WIDTH - len(header)))
 
     # -- API helpers -------------------------------------------------------------------------
     def call(self, method: str, path: str, **kwargs: Any) -> Any:
@@ -313,17 +317,15 @@ class Demo:
         )
         for message, result in zip(examples, answer["results"], strict=True):
             text = message.text if len(message.text) <= 96 else message.text[:93] + "..."
+            # the margin is the first two of these minus each other: not printed again
             posterior = "  ".join(
-                f"g{p['group']}={p['probability']:.3f}" for p in result["posterior"]
+                f"g{p['group']}={format_probability(p['probability'])}" for p in result["posterior"]
             )
             review = (
                 "REVIEW (" + ", ".join(result["review_reasons"]) + ")" if result["review"] else ""
             )
             self.say(f"- [{message.theme}] {text}")
-            self.say(
-                f"    -> group {result['group']} '{result['label']}'  {posterior}  "
-                f"margin {result['margin']:.3f}  {review}"
-            )
+            self.say(f"    -> group {result['group']} '{result['label']}'  {posterior}  {review}")
 
     def agreement(self) -> None:
         """Route the last day again and compare with the invented ground truth (purity)."""
