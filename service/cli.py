@@ -18,9 +18,12 @@ Service commands talk to Redis or to a running API (``--api``, default from the 
     mixroute drift --model NAME [--plot weights.png]
     mixroute demo                               # the invented ferry-inbox demo, < 1 minute
 
-JSON-lines input: one ``{"id": ..., "text": ...}`` a line. Invalid lines are reported on
-standard error with their line number and skipped; ``--strict`` rejects the whole file instead
-(exit status 2, nothing written or queued). Errors never end in a traceback.
+Input (``fit``, ``route``, ``feed``): JSON lines, one ``{"id": ..., "text": ...}`` a line, or
+mail (an mbox file, a Maildir, a folder of .eml files, one message) or CSV with a text column;
+the format is told from the content (``--format`` forces it; see :mod:`intake.sources`).
+Invalid lines (messages) are reported on standard error with their position and skipped;
+``--strict`` rejects the whole file instead (exit status 2, nothing written or queued).
+Errors never end in a traceback.
 """
 
 from __future__ import annotations
@@ -35,7 +38,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
-from service.jsonl import JsonlBatch, read_jsonl
+from intake.sources import DocumentBatch
 
 EXIT_OK = 0
 EXIT_FAILURE = 1
@@ -57,25 +60,55 @@ def _err(message: str) -> None:
     print(f"mixroute: {message}", file=sys.stderr)
 
 
-def _load_documents(path: str, strict: bool, max_text_bytes: int | None = None) -> JsonlBatch:
+def _load_documents(
+    path: str,
+    strict: bool,
+    max_text_bytes: int | None = None,
+    *,
+    format: str | None = None,
+    keep_quotes: bool = False,
+) -> DocumentBatch:
+    from intake.sources import SourceError, read_documents
+
     try:
-        batch = read_jsonl(path, max_text_bytes=max_text_bytes)
+        batch = read_documents(
+            path, format, strip_quotes=not keep_quotes, max_text_bytes=max_text_bytes
+        )
     except OSError as exc:
         raise CommandError(f"cannot read {path}: {exc.strerror or exc}", EXIT_BAD_INPUT) from None
+    except SourceError as exc:
+        raise CommandError(str(exc), EXIT_BAD_INPUT) from None
+    what = "invalid line" if batch.unit == "line" else f"unreadable {batch.unit}"
     for problem in batch.problems[:50]:
         _err(f"{path}: {problem}")
     if len(batch.problems) > 50:
-        _err(f"{path}: ... and {len(batch.problems) - 50} more invalid lines")
+        _err(f"{path}: ... and {len(batch.problems) - 50} more {what}s")
     if batch.problems and strict:
         raise CommandError(
-            f"{path}: {len(batch.problems)} invalid line(s); --strict given, nothing done",
+            f"{path}: {len(batch.problems)} {what}(s); --strict given, nothing done",
             EXIT_BAD_INPUT,
         )
     if batch.problems:
-        _err(f"{path}: skipped {len(batch.problems)} invalid line(s)")
+        _err(f"{path}: skipped {len(batch.problems)} {what}(s)")
+    if batch.attachments_skipped:
+        _err(f"{path}: {batch.attachments_skipped} attachment(s) skipped (not read as text)")
     if not batch.documents:
         raise CommandError(f"{path}: no valid documents", EXIT_BAD_INPUT)
     return batch
+
+
+def _source_options(p: argparse.ArgumentParser) -> None:
+    from intake.sources import FORMATS
+
+    p.add_argument(
+        "--format", choices=FORMATS, help="input format (default: told from the content)"
+    )
+    p.add_argument(
+        "--keep-quotes",
+        dest="keep_quotes",
+        action="store_true",
+        help="mail: keep quoted replies and signatures (cut by default)",
+    )
 
 
 def _progress_bar(total: int, desc: str, unit: str) -> Any:
@@ -129,7 +162,9 @@ def cmd_fit(args: argparse.Namespace) -> int:
     from mixture.em import fit_texts
     from mixture.serialize import state_to_bytes
 
-    batch = _load_documents(args.docs, args.strict)
+    batch = _load_documents(
+        args.docs, args.strict, format=args.format, keep_quotes=args.keep_quotes
+    )
     config_fields: dict[str, Any] = {}
     if args.config:
         try:
@@ -171,7 +206,7 @@ def cmd_fit(args: argparse.Namespace) -> int:
 
 def route_records(
     state: Any,
-    batch: JsonlBatch,
+    batch: DocumentBatch,
     *,
     threshold: float,
     top: int | None,
@@ -183,7 +218,7 @@ def route_records(
     Parameters
     ----------
     state : MixtureState
-    batch : JsonlBatch
+    batch : DocumentBatch
     threshold : float
         MAP posterior below which the ``low_posterior`` flag is set.
     top : int or None
@@ -262,7 +297,9 @@ def cmd_route(args: argparse.Namespace) -> int:
 
 def _route_offline(args: argparse.Namespace) -> int:
     state = _read_model_file(args.model_file)
-    batch = _load_documents(args.docs, args.strict)
+    batch = _load_documents(
+        args.docs, args.strict, format=args.format, keep_quotes=args.keep_quotes
+    )
     bar = _progress_bar(len(batch.documents), "routing", "doc")
     try:
         records = route_records(
@@ -425,7 +462,9 @@ def cmd_models(args: argparse.Namespace) -> int:
 
 
 def cmd_feed(args: argparse.Namespace) -> int:
-    batch = _load_documents(args.file, args.strict)
+    batch = _load_documents(
+        args.file, args.strict, format=args.format, keep_quotes=args.keep_quotes
+    )
     client = ApiClient(args.api or default_api_url())
     name = _model_name(args)
     bar = _progress_bar(len(batch.documents), f"queueing to {name}", "doc")
@@ -447,7 +486,9 @@ def cmd_feed(args: argparse.Namespace) -> int:
 
 
 def _route_online(args: argparse.Namespace) -> int:
-    batch = _load_documents(args.docs, args.strict)
+    batch = _load_documents(
+        args.docs, args.strict, format=args.format, keep_quotes=args.keep_quotes
+    )
     client = ApiClient(args.api or default_api_url())
     name = _model_name(args)
     records: list[dict[str, Any]] = []
@@ -626,6 +667,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--max-iter", dest="max_iter", type=int, default=None)
     p.add_argument("--config", help="further MixtureConfig fields as a JSON object")
     p.add_argument("--strict", action="store_true", help="reject the file on any invalid line")
+    _source_options(p)
     p.set_defaults(func=cmd_fit)
 
     p = sub.add_parser("route", help="route documents with a model file or through the API")
@@ -636,6 +678,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--threshold", type=float, default=0.6, help="offline: low_posterior flag")
     p.add_argument("--learn", action="store_true", help="API: also queue them for learning")
     p.add_argument("--strict", action="store_true", help="reject the file on any invalid line")
+    _source_options(p)
     api_options(p)
     p.set_defaults(func=cmd_route)
 
@@ -677,6 +720,7 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("file")
     p.add_argument("--batch", type=int, default=500, help="documents per request")
     p.add_argument("--strict", action="store_true")
+    _source_options(p)
     api_options(p)
     p.set_defaults(func=cmd_feed)
 
