@@ -4,7 +4,7 @@ VENV := .venv
 PY := $(VENV)/bin/python
 STAMP := $(VENV)/.installed
 
-.PHONY: install corpora browser test test-fast demo bench lint format clean
+.PHONY: install corpora browser imap-server test test-fast demo bench lint format clean
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -24,7 +24,11 @@ corpora: $(STAMP)
 browser:
 	test -x /usr/bin/chromium -a -x /usr/bin/chromedriver || (apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium chromium-driver >/dev/null)
 
-test: $(STAMP) corpora browser
+# A real IMAP server for the intake tests (they start their own dovecot on a free port).
+imap-server:
+	test -x /usr/sbin/dovecot || (apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq dovecot-imapd >/dev/null)
+
+test: $(STAMP) corpora browser imap-server
 	$(PY) -m pytest -q
 
 test-fast: $(STAMP)

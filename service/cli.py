@@ -17,6 +17,7 @@ Service commands talk to Redis or to a running API (``--api``, default from the 
     mixroute rollback SNAPSHOT --model NAME [--replay] [--skip FIRST..LAST]
     mixroute drift --model NAME [--plot weights.png]
     mixroute demo                               # the invented ferry-inbox demo, < 1 minute
+    mixroute intake --model NAME [--once]       # file an IMAP folder's mail (needs REDIS_URL)
 
 Input (``fit``, ``route``, ``feed``): JSON lines, one ``{"id": ..., "text": ...}`` a line, or
 mail (an mbox file, a Maildir, a folder of .eml files, one message) or CSV with a text column;
@@ -636,6 +637,12 @@ def cmd_work(args: argparse.Namespace) -> int:
     return work(model=args.model, data_dir=args.data_dir)
 
 
+def cmd_intake(args: argparse.Namespace) -> int:
+    from service.intake_command import run_intake
+
+    return run_intake(model=args.model, once=args.once)
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
     from service.demo import run_demo
 
@@ -700,6 +707,13 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--model", help="model to learn (default: every model, one thread each)")
     p.add_argument("--data-dir", dest="data_dir", help="embedded Redis folder")
     p.set_defaults(func=cmd_work)
+
+    p = sub.add_parser(
+        "intake", help="route and file the mail of an IMAP folder (MIXROUTE_INTAKE_*)"
+    )
+    p.add_argument("--model", help="model that routes the mail (default MIXROUTE_DEFAULT_MODEL)")
+    p.add_argument("--once", action="store_true", help="file what is there now, then exit")
+    p.set_defaults(func=cmd_intake)
 
     p = sub.add_parser("models", help="create, list or delete models on the API")
     msub = p.add_subparsers(dest="action", required=True)

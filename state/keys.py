@@ -36,6 +36,9 @@ replay             string      JSON replay record: the last rollback and the ski
 notify             channel     pub/sub: the new version after each checkpoint / rollback
 labels             hash        operator labels per group: field = group id, value = JSON
 labels_version     string      counter bumped by every label change (cheap change check)
+intake:<source>    hash        IMAP intake watermark of one mailbox folder: ``uidvalidity``,
+                               ``last_uid`` (the last message filed), ``source`` (label),
+                               ``updated``; ``<source>`` is a digest of user, host, folder
 =================  ==========  ===========================================================
 """
 
@@ -170,6 +173,10 @@ class ModelKeys:
     def snapshot(self, snapshot_id: str) -> str:
         """Key of the hash holding one snapshot."""
         return f"{self.base}snapshot:{snapshot_id}"
+
+    def intake_mark(self, source_id: str) -> str:
+        """Key of the IMAP intake watermark of one mailbox folder (see state.intake_marks)."""
+        return f"{self.base}intake:{source_id}"
 
     def client_id(self, client_id: str) -> str:
         """Key marking one client-given document id as seen."""
