@@ -48,9 +48,10 @@ from typing import Any
 import redis
 
 from intake.config import ImapConfig
-from intake.decide import Decision, decide, folder_name
+from intake.decide import Decision, folder_name
 from intake.folders import keyword, quote_mailbox
 from intake.message import MailDocument, MessageError, parse_message
+from intake.model_view import ModelView
 from mixture.errors import MixrouteError
 from mixture.stats import MixtureState
 from state.errors import ModelNotFoundError, StateError
@@ -148,10 +149,7 @@ class ImapIntake:
         self.waiting_for_model = False
         self.idling = threading.Event()
         self._stop = threading.Event()
-        self._state: MixtureState | None = None
-        self._state_version = -1
-        self._labels: dict[int, Any] = {}
-        self._labels_version = -1
+        self.view = ModelView(self.store, config.review_unknown_share)
         self._folders: set[str] = set()
         self._queued_waiting: set[str] = set()
         self._idle_tag = 0
@@ -313,14 +311,7 @@ class ImapIntake:
             )
             self.marks.advance(self.uidvalidity, uid)
             return
-        options = self.store.options
-        decision = decide(
-            state,
-            mail.text,
-            self._labels,
-            threshold=options.review_threshold,
-            unknown_share=self.config.review_unknown_share,
-        )
+        decision = self.view.decide(mail.text, state)
         self._queue(mail, uid)
         target = self._file(uid, mail, decision, flags)
         self.marks.advance(self.uidvalidity, uid)
@@ -367,23 +358,16 @@ class ImapIntake:
                 self._queued_waiting.add(mail.id)
 
     def _current_state(self) -> MixtureState | None:
-        version = self.store.version()
-        if version != self._state_version:
-            self._state = self.store.load_state() if version > 0 else None
-            self._state_version = version
-        labels_version = self.store.labels_version()
-        if labels_version != self._labels_version:
-            self._labels = self.store.group_labels()
-            self._labels_version = labels_version
-        return self._state
+        return self.view.refresh()
 
     # -- filing -------------------------------------------------------------------------------
 
     def destination_folders(self) -> dict[int, str]:
         """The folder per group this intake files into (the seam for hand-move corrections)."""
         out = {}
-        for group in range(self._state.n_groups if self._state is not None else 0):
-            entry = self._labels.get(group)
+        state = self.view.state
+        for group in range(state.n_groups if state is not None else 0):
+            entry = self.view.labels.get(group)
             decision = Decision(
                 group, 1.0, False, (), getattr(entry, "label", None),
                 getattr(entry, "destination", None),

@@ -18,6 +18,7 @@ Service commands talk to Redis or to a running API (``--api``, default from the 
     mixroute drift --model NAME [--plot weights.png]
     mixroute demo                               # the invented ferry-inbox demo, < 1 minute
     mixroute intake --model NAME [--once]       # file an IMAP folder's mail (needs REDIS_URL)
+    mixroute intake --smtp --model NAME         # the SMTP door: route and forward
 
 Input (``fit``, ``route``, ``feed``): JSON lines, one ``{"id": ..., "text": ...}`` a line, or
 mail (an mbox file, a Maildir, a folder of .eml files, one message) or CSV with a text column;
@@ -638,8 +639,10 @@ def cmd_work(args: argparse.Namespace) -> int:
 
 
 def cmd_intake(args: argparse.Namespace) -> int:
-    from service.intake_command import run_intake
+    from service.intake_command import run_intake, run_smtp_door
 
+    if args.smtp:
+        return run_smtp_door(model=args.model)
     return run_intake(model=args.model, once=args.once)
 
 
@@ -713,6 +716,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--model", help="model that routes the mail (default MIXROUTE_DEFAULT_MODEL)")
     p.add_argument("--once", action="store_true", help="file what is there now, then exit")
+    p.add_argument("--smtp", action="store_true", help="run the SMTP door instead (aiosmtpd)")
     p.set_defaults(func=cmd_intake)
 
     p = sub.add_parser("models", help="create, list or delete models on the API")

@@ -11,6 +11,7 @@ import signal
 from types import FrameType
 
 from intake.config import ImapConfig
+from intake.smtp_door import SmtpDoorConfig
 from service.logs import configure_logging
 from service.settings import IntakeSettings, load_settings
 
@@ -37,6 +38,58 @@ def imap_config_from_settings(settings: IntakeSettings, review_unknown_share: fl
         strip_quotes=not settings.keep_quotes,
         review_unknown_share=review_unknown_share,
     )
+
+
+def smtp_config_from_settings(
+    settings: IntakeSettings, review_unknown_share: float
+) -> SmtpDoorConfig:
+    """The SMTP door's configuration from the settings (ConfigError if bad)."""
+    return SmtpDoorConfig(
+        listen_host=settings.smtp_listen_host,
+        listen_port=settings.smtp_listen_port,
+        relay_host=settings.smtp_relay_host,
+        relay_port=settings.smtp_relay_port,
+        relay_security=settings.smtp_relay_security,
+        relay_user=settings.smtp_relay_user,
+        relay_password=settings.smtp_relay_password.get_secret_value(),
+        review_address=settings.smtp_review_address or None,
+        fallback_address=settings.smtp_fallback_address or None,
+        strip_quotes=not settings.keep_quotes,
+        review_unknown_share=review_unknown_share,
+    )
+
+
+def run_smtp_door(model: str | None = None) -> int:
+    """Run the SMTP door until SIGTERM/SIGINT; exit status."""
+    import threading
+
+    from intake.smtp_door import start_door
+    from service.cli import CommandError
+    from state.connection import redis_from_url
+    from state.registry import Registry
+
+    settings = load_settings()
+    intake_settings = IntakeSettings()
+    if not settings.redis_url:
+        raise CommandError("`mixroute intake --smtp` needs the model's Redis: set REDIS_URL", 2)
+    config = smtp_config_from_settings(intake_settings, settings.review_unknown_share)
+    secrets = [config.relay_password] if config.relay_password else []
+    configure_logging(settings.log_level, settings.log_format, secrets)
+    name = model or intake_settings.model or settings.default_model
+    client = redis_from_url(settings.redis_url)
+    Registry(client).get(name)
+    controller = start_door(client, name, config)
+    done = threading.Event()
+
+    def on_signal(signum: int, frame: FrameType | None) -> None:
+        log.info("signal %d: closing the SMTP door", signum)
+        done.set()
+
+    signal.signal(signal.SIGTERM, on_signal)
+    signal.signal(signal.SIGINT, on_signal)
+    done.wait()
+    controller.stop()
+    return 0
 
 
 def run_intake(model: str | None = None, *, once: bool = False) -> int:

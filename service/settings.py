@@ -185,6 +185,21 @@ class IntakeSettings(BaseSettings):
     keep_quotes: bool = Field(
         default=False, description="Keep quoted replies and signatures in what is learned."
     )
+    smtp_listen_host: str = Field(default="127.0.0.1", description="SMTP door: listen address.")
+    smtp_listen_port: int = Field(default=8025, ge=1, le=65535, description="SMTP door: port.")
+    smtp_relay_host: str = Field(default="127.0.0.1", description="Relay the door forwards to.")
+    smtp_relay_port: int = Field(default=25, ge=1, le=65535, description="Relay port.")
+    smtp_relay_security: Literal["starttls", "tls", "plain"] = Field(
+        default="starttls", description="How the door talks to the relay."
+    )
+    smtp_relay_user: str = Field(default="", description="Relay account (empty: no login).")
+    smtp_relay_password: SecretStr = Field(default=SecretStr(""), description="Relay password.")
+    smtp_review_address: str = Field(
+        default="", description="Where messages routed with review true are forwarded."
+    )
+    smtp_fallback_address: str = Field(
+        default="", description="Where a message goes when its group has no address."
+    )
 
     def password(self) -> str:
         """The IMAP password, from the file when one is named, else from the variable."""
