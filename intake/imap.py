@@ -56,6 +56,7 @@ from mixture.errors import MixrouteError
 from mixture.stats import MixtureState
 from state.errors import ModelNotFoundError, StateError
 from state.intake_marks import IntakeMarks
+from state.routed_log import RoutedLog, RoutedRecord
 from state.store import ModelStore
 
 log = logging.getLogger(__name__)
@@ -139,6 +140,7 @@ class ImapIntake:
         self.config = config
         self.store = ModelStore(client, model)
         self.marks = IntakeMarks(client, model, config.label)
+        self.routed = RoutedLog(client, model)
         self._connect_fn = connect or open_connection
         self.conn: imaplib.IMAP4 | None = None
         self.capabilities: frozenset[str] = frozenset()
@@ -316,6 +318,7 @@ class ImapIntake:
         target = self._file(uid, mail, decision, flags)
         self.marks.advance(self.uidvalidity, uid)
         self.filed += 1
+        self._record(mail, decision, target)
         log.info(
             "intake: filed message %s",
             mail.id,
@@ -329,6 +332,20 @@ class ImapIntake:
                 "posterior": round(decision.posterior, 4),
                 "review": decision.review,
             },
+        )
+
+    def _record(self, mail: MailDocument, decision: Decision, target: str) -> None:
+        # after the mark: a crash here loses one export row, never files twice
+        self.routed.record(
+            RoutedRecord(
+                mail.id,
+                mail.received or time.time(),
+                decision.group,
+                decision.label,
+                decision.posterior,
+                decision.review,
+                target,
+            )
         )
 
     def _queue(self, mail: MailDocument, uid: int) -> None:

@@ -24,6 +24,7 @@ import asyncio
 import logging
 import smtplib
 import ssl
+import time
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -34,6 +35,7 @@ from intake.message import MessageError, parse_message
 from intake.model_view import ModelView
 from mixture.errors import ConfigError
 from state.errors import ModelNotFoundError, StateError
+from state.routed_log import RoutedLog, RoutedRecord
 from state.store import ModelStore
 
 log = logging.getLogger(__name__)
@@ -78,6 +80,7 @@ class RoutingDoor:
         self.config = config
         self.store = ModelStore(client, model)
         self.view = ModelView(self.store, config.review_unknown_share)
+        self.routed = RoutedLog(client, model)
         self.forwarded = 0
         self.deferred = 0
         self._lock = asyncio.Lock()
@@ -123,7 +126,22 @@ class RoutingDoor:
             target = address_of(decision) or self.config.fallback_address
         if target is None:
             return f"451 4.3.0 group {decision.group} has no destination address; try again later"
-        return self._forward(raw, mail_from, target, decision, mail.id)
+        reply = self._forward(raw, mail_from, target, decision, mail.id)
+        if reply.startswith("250"):
+            record = RoutedRecord(
+                mail.id,
+                mail.received or time.time(),
+                decision.group,
+                decision.label,
+                decision.posterior,
+                decision.review,
+                target,
+            )
+            try:
+                self.routed.record(record)
+            except (redis.ConnectionError, redis.TimeoutError):
+                log.warning("smtp door: routed record of %s not kept (Redis away)", mail.id)
+        return reply
 
     def _forward(
         self, raw: bytes, mail_from: str, target: str, decision: Decision | None, message_id: str

@@ -19,6 +19,7 @@ Service commands talk to Redis or to a running API (``--api``, default from the 
     mixroute demo                               # the invented ferry-inbox demo, < 1 minute
     mixroute intake --model NAME [--once]       # file an IMAP folder's mail (needs REDIS_URL)
     mixroute intake --smtp --model NAME         # the SMTP door: route and forward
+    mixroute export --model NAME [--format csv|jsonl] [--out FILE]   # what the intake routed
 
 Input (``fit``, ``route``, ``feed``): JSON lines, one ``{"id": ..., "text": ...}`` a line, or
 mail (an mbox file, a Maildir, a folder of .eml files, one message) or CSV with a text column;
@@ -638,6 +639,40 @@ def cmd_work(args: argparse.Namespace) -> int:
     return work(model=args.model, data_dir=args.data_dir)
 
 
+EXPORT_FIELDS = ("id", "time", "group", "label", "posterior", "review", "filed_to")
+
+
+def cmd_export(args: argparse.Namespace) -> int:
+    """Write the messages the intake routed as CSV or JSON lines (pages of the API)."""
+    import csv
+    import io
+
+    client = ApiClient(args.api or default_api_url())
+    name = _model_name(args)
+    rows: list[dict[str, Any]] = []
+    after = "-"
+    while True:
+        page = client.get(f"/models/{name}/routed", params={"after": after, "limit": 5000})
+        records = page["records"]
+        rows += [{key: record[key] for key in EXPORT_FIELDS} for record in records]
+        if len(records) < 5000:
+            break
+        after = records[-1]["stream_id"]
+    if args.format == "jsonl":
+        _write_lines(rows, args.out)
+    else:
+        buffer = io.StringIO()
+        writer = csv.DictWriter(buffer, fieldnames=EXPORT_FIELDS, lineterminator="\n")
+        writer.writeheader()
+        writer.writerows(rows)
+        if args.out in (None, "-"):
+            sys.stdout.write(buffer.getvalue())
+        else:
+            _write_atomic(Path(args.out), buffer.getvalue().encode("utf-8"))
+    _err(f"exported {len(rows)} routed message(s) of {name}")
+    return EXIT_OK
+
+
 def cmd_intake(args: argparse.Namespace) -> int:
     from service.intake_command import run_intake, run_smtp_door
 
@@ -718,6 +753,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--once", action="store_true", help="file what is there now, then exit")
     p.add_argument("--smtp", action="store_true", help="run the SMTP door instead (aiosmtpd)")
     p.set_defaults(func=cmd_intake)
+
+    p = sub.add_parser("export", help="messages the intake routed, as CSV or JSON lines")
+    p.add_argument("--format", choices=("csv", "jsonl"), default="csv")
+    p.add_argument("--out", "-o", help="file to write (default: standard output)")
+    api_options(p)
+    p.set_defaults(func=cmd_export)
 
     p = sub.add_parser("models", help="create, list or delete models on the API")
     msub = p.add_subparsers(dest="action", required=True)

@@ -363,3 +363,59 @@ def test_intake_marks_move_forward_only_and_not_into_a_deleted_model(
     assert marks.get() is None  # deleted with the model
     with pytest.raises(ModelNotFoundError):
         marks.advance(8, 1)
+
+
+def test_export_and_daily_counts_show_what_the_intake_filed(
+    dovecot, redis_client, redis_url, model_name, fitted, tmp_path: Path
+) -> None:
+    import csv
+
+    import httpx
+
+    from service.app import create_app
+    from service.cli import main
+    from service.settings import Settings
+    from service.testing import uvicorn_thread
+
+    store = store_model(redis_client, model_name, fitted)
+    mail = invented_mail(15)
+    dovecot.append(raw for raw, _ in mail)
+    config = config_for(dovecot.port)
+    assert ImapIntake(redis_client, model_name, config).run_until_idle() == 15
+    server_side = {
+        message_id: decode_mailbox(folder)
+        for folder, items in dovecot.everything().items()
+        for message_id, _ in items
+    }
+    with uvicorn_thread(create_app(Settings(redis_url=redis_url))) as url:
+        out = tmp_path / "routed.csv"
+        args = ["export", "--api", url, "--model", model_name, "--out", str(out)]
+        assert main(args) == 0
+        daily = httpx.get(f"{url}/models/{model_name}/routed/daily", params={"days": 3}).json()
+        lines = tmp_path / "routed.jsonl"
+        args = [
+            "export",
+            "--api",
+            url,
+            "--model",
+            model_name,
+            "--format",
+            "jsonl",
+            "-o",
+            str(lines),
+        ]
+        assert main(args) == 0
+    rows = list(csv.DictReader(out.open()))
+    assert [r["id"] for r in rows] == [parse_message(raw).id for raw, _ in mail]
+    assert {r["id"]: r["filed_to"] for r in rows} == server_side  # as the IMAP server says
+    labels = store.group_labels()
+    for row in rows:
+        assert row["label"] == labels[int(row["group"])].label
+        assert 0.0 < float(row["posterior"]) <= 1.0 and row["review"] in ("True", "False")
+        assert (row["filed_to"] == "Review") == (row["review"] == "True")
+    assert len(lines.read_text().splitlines()) == 15
+    today = list(daily["days"])[-1]
+    assert list(daily["days"]) == sorted(daily["days"]) and len(daily["days"]) == 3
+    assert daily["days"][today] == {
+        str(g): n for g, n in sorted(Counter(int(r["group"]) for r in rows).items())
+    }
