@@ -28,6 +28,7 @@ class MailDraft:
     received: float
     sender: str = "passenger@example.invalid"
     to: str = "inbox@example.invalid"
+    extra_headers: tuple[tuple[str, str], ...] = ()
 
 
 def split_subject(text: str) -> tuple[str, str]:
@@ -51,6 +52,8 @@ def compose(draft: MailDraft) -> EmailMessage:
     message["Subject"] = subject
     message["Date"] = format_datetime(datetime.fromtimestamp(draft.received, tz=UTC))
     message["Message-ID"] = f"<{draft.id}>"
+    for name, value in draft.extra_headers:
+        message[name] = value
     message.set_content(body + "\n" if body else "\n")
     return message
 

@@ -11,6 +11,7 @@ import csv
 import io
 import mailbox
 import os
+import re
 import sys
 import tempfile
 from collections.abc import Iterator
@@ -292,11 +293,16 @@ def _mail_items(fmt: str, path: Path) -> Iterator[tuple[str, bytes]]:
         if not (path / "cur").is_dir():
             raise SourceError(f"{path}: not a Maildir (no cur/new/tmp folders)")
         box = mailbox.Maildir(path, factory=None, create=False)
-        # Maildir keys start with the delivery time: sorted keys are (about) arrival order
-        for key in sorted(box.iterkeys()):
+        # Maildir keys are "<seconds>.M<microseconds>P<pid>Q<count>.<host>" (or similar):
+        # their numbers compared as numbers give the delivery order
+        for key in sorted(box.iterkeys(), key=_natural_key):
             yield f"message {os.path.basename(key)}", box.get_bytes(key)
     else:  # pragma: no cover - callers check the format
         raise SourceError(f"not a mail format: {fmt}")
+
+
+def _natural_key(text: str) -> list[tuple[int, int | str]]:
+    return [(0, int(part)) if part.isdigit() else (1, part) for part in re.split(r"(\d+)", text)]
 
 
 def _read_mail(

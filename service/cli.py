@@ -682,6 +682,12 @@ def cmd_intake(args: argparse.Namespace) -> int:
 
 
 def cmd_demo(args: argparse.Namespace) -> int:
+    if args.write_mail:
+        from service.demo_data import INVENTED_NOTICE, write_demo_mail
+
+        mbox, maildir = write_demo_mail(args.write_mail, scale=args.scale, seed=args.seed)
+        print(f"{INVENTED_NOTICE}\nwrote {mbox} and {maildir}")
+        return EXIT_OK
     from service.demo import run_demo
 
     return run_demo(scale=args.scale, seed=args.seed, plot=args.plot, out=sys.stdout)
@@ -806,6 +812,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--scale", type=float, default=1.0, help="multiply the messages per day")
     p.add_argument("--seed", type=int, default=0)
     p.add_argument("--plot", metavar="PNG", help="also plot the weights into this file")
+    p.add_argument(
+        "--write-mail",
+        dest="write_mail",
+        metavar="FOLDER",
+        help="only write the invented inbox as FOLDER/inbox.mbox and FOLDER/Maildir",
+    )
     p.set_defaults(func=cmd_demo)
     return parser
 

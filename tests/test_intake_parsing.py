@@ -488,3 +488,34 @@ def test_cli_keep_quotes_switch(tmp_path: Path, capsys) -> None:
 def test_naive_date_is_utc() -> None:
     mail = parse_message(b"Subject: s\r\nDate: Fri, 21 Nov 1997 09:55:06 -0000\r\n\r\nx\r\n")
     assert mail.received == datetime(1997, 11, 21, 9, 55, 6, tzinfo=UTC).timestamp()
+
+
+def test_demo_writes_the_invented_inbox_as_mbox_and_maildir_in_the_same_order(
+    tmp_path: Path,
+) -> None:
+    from service.demo_data import INVENTED_NOTICE, write_demo_mail
+
+    mbox, maildir = write_demo_mail(tmp_path, scale=0.05, seed=2)
+    from_mbox, from_maildir = read_documents(mbox), read_documents(maildir)
+    assert from_mbox.format == "mbox" and from_maildir.format == "maildir"
+    assert len(from_mbox.ids) > 30 and not from_mbox.problems
+    # Maildir keys compared as text put "Q10" before "Q2": delivery order needs numbers
+    assert from_maildir.ids == from_mbox.ids
+    assert from_maildir.texts == from_mbox.texts
+    first = mailbox.mbox(mbox)
+    assert next(iter(first))["X-Invented-Data"] == INVENTED_NOTICE
+    first.close()
+    times = [d.received for d in from_mbox.documents]
+    assert times == sorted(times)
+
+
+def test_maildir_order_compares_the_numbers_in_its_file_names(tmp_path: Path) -> None:
+    # Python's mailbox names deliveries "<s>.M<us>P<pid>Q<n>.<host>": as text, M10 < M9
+    box = tmp_path / "md"
+    for sub in ("cur", "new", "tmp"):
+        (box / sub).mkdir(parents=True)
+    names = ["1700000000.M9P1Q1.h", "1700000000.M10P1Q2.h", "1700000000.M100P1Q3.h"]
+    names += ["1700000001.M5P1Q10.h"]
+    for i, name in enumerate(names):
+        (box / "new" / name).write_bytes(_msg_bytes(f"o{i}@x.invalid", f"Order {i}. Text."))
+    assert read_documents(box).ids == [f"o{i}@x.invalid" for i in range(4)]
