@@ -419,3 +419,85 @@ def test_export_and_daily_counts_show_what_the_intake_filed(
     assert daily["days"][today] == {
         str(g): n for g, n in sorted(Counter(int(r["group"]) for r in rows).items())
     }
+
+
+def test_a_new_uidvalidity_starts_the_folder_over(dovecot, redis_client, model_name, fitted):
+    store = store_model(redis_client, model_name, fitted)
+    mail = invented_mail(5)
+    dovecot.append(raw for raw, _ in mail)
+    config = config_for(dovecot.port)
+    marks = IntakeMarks(redis_client, model_name, config.label)
+    # a mark left by the folder's previous numbering (RFC 3501 2.3.1.1: UIDs of another
+    # UIDVALIDITY mean nothing now), far above every current UID
+    marks.reset(1)
+    marks.advance(1, 999)
+    assert ImapIntake(redis_client, model_name, config).run_until_idle() == 5
+    assert_filed_once(dovecot, store, expected_folders(store, mail, config))
+    assert marks.get().uidvalidity != 1 and marks.get().last_uid == 5
+
+
+class _NoMoveIntake(ImapIntake):
+    """A server without MOVE (RFC 6851): COPY, then flag deleted and expunge."""
+
+    fail_first_delete = True
+
+    def connect(self) -> None:
+        super().connect()
+        self.capabilities = self.capabilities - {"MOVE"}
+        conn, intake = self.conn, self
+        real_uid = conn.uid
+
+        def uid(command, *args):
+            if command == "STORE" and "Deleted" in args[-1] and intake.fail_first_delete:
+                intake.fail_first_delete = False
+                raise OSError("connection lost between COPY and delete (simulated)")
+            return real_uid(command, *args)
+
+        conn.uid = uid
+
+
+def test_without_move_a_crash_between_copy_and_delete_copies_once(
+    dovecot, redis_client, model_name, fitted
+) -> None:
+    store = store_model(redis_client, model_name, fitted)
+    mail = invented_mail(6)
+    dovecot.append(raw for raw, _ in mail)
+    config = config_for(dovecot.port)
+    intake = _NoMoveIntake(redis_client, model_name, config)
+    with pytest.raises(OSError, match="simulated"):
+        intake.run_until_idle()
+    assert len(dovecot.message_ids("INBOX")) == 6  # the first one copied, not yet deleted
+    again = _NoMoveIntake(redis_client, model_name, config)
+    again.fail_first_delete = False
+    assert again.run_until_idle() == 6
+    assert_filed_once(dovecot, store, expected_folders(store, mail, config))
+
+
+def test_redis_away_files_nothing_then_everything_once(dovecot, tmp_path, fitted) -> None:
+    from state.connection import EmbeddedRedis
+
+    server = EmbeddedRedis(tmp_path / "redis", appendfsync="always").start()
+    client = server.client(socket_timeout=2)
+    try:
+        store = store_model(client, "away", fitted)
+        mail = invented_mail(20)
+        dovecot.append(raw for raw, _ in mail[:10])
+        config = config_for(dovecot.port, use_idle=False)
+        intake = ImapIntake(client, "away", config)
+        thread = threading.Thread(target=intake.run, daemon=True)
+        thread.start()
+        try:
+            wait_until(lambda: not dovecot.message_ids("INBOX"), timeout=60, what="first ten")
+            server.stop()
+            dovecot.append(raw for raw, _ in mail[10:])
+            wait_until(lambda: intake.reconnects >= 2, timeout=60, what="failed rounds")
+            assert len(dovecot.message_ids("INBOX")) == 10  # nothing filed without Redis
+            server.start()
+            wait_until(lambda: not dovecot.message_ids("INBOX"), timeout=60, what="the rest")
+        finally:
+            intake.stop()
+            thread.join(30)
+        assert_filed_once(dovecot, store, expected_folders(store, mail, config))
+    finally:
+        client.close()
+        server.stop()
