@@ -64,6 +64,9 @@ class ImapConfig:
         minutes).
     batch
         Messages handled per round before the folder is checked again.
+    ca_file
+        PEM file of the certificate authorities to trust instead of the system's (a private
+        CA); the server's certificate and host name are always checked.
     """
 
     host: str
@@ -86,6 +89,7 @@ class ImapConfig:
     backoff_max: float = 60.0
     strip_quotes: bool = True
     review_unknown_share: float = 0.5
+    ca_file: str | None = None
 
     def __post_init__(self) -> None:
         if not self.host or not self.user:

@@ -96,14 +96,13 @@ def open_connection(config: ImapConfig) -> imaplib.IMAP4:
     """
     host, port, timeout = config.host, config.effective_port, config.timeout_seconds
     conn: imaplib.IMAP4
+    context = ssl.create_default_context(cafile=config.ca_file)  # verifies certificate and name
     if config.security == "tls":
-        conn = imaplib.IMAP4_SSL(
-            host, port, ssl_context=ssl.create_default_context(), timeout=timeout
-        )
+        conn = imaplib.IMAP4_SSL(host, port, ssl_context=context, timeout=timeout)
     else:
         conn = imaplib.IMAP4(host, port, timeout=timeout)
         if config.security == "starttls":
-            conn.starttls(ssl.create_default_context())
+            conn.starttls(context)
     try:
         conn.login(config.user, config.password)
     except imaplib.IMAP4.abort:

@@ -37,6 +37,7 @@ def imap_config_from_settings(settings: IntakeSettings, review_unknown_share: fl
         use_idle=settings.use_idle,
         strip_quotes=not settings.keep_quotes,
         review_unknown_share=review_unknown_share,
+        ca_file=str(settings.imap_ca_file) if settings.imap_ca_file else None,
     )
 
 

@@ -160,6 +160,9 @@ class IntakeSettings(BaseSettings):
         description="tls (implicit, port 993), starttls, or plain (loopback only unless "
         "imap_allow_plain).",
     )
+    imap_ca_file: Path | None = Field(
+        default=None, description="PEM file of the CAs to trust instead of the system's."
+    )
     imap_allow_plain: bool = Field(
         default=False, description="Allow plain IMAP (password unencrypted) to a remote host."
     )

@@ -37,7 +37,8 @@ def dovecot_missing() -> str | None:
 class Dovecot:
     """One private dovecot: ``start()``, ``stop()``, and IMAP helpers for the tests."""
 
-    def __init__(self) -> None:
+    def __init__(self, tls: bool = False) -> None:
+        self.tls = tls
         # not under pytest's tmp folder: dovecot's unprivileged processes must reach it
         self.root = Path(tempfile.mkdtemp(prefix="mixroute-imap-"))
         self.root.chmod(0o755)
@@ -50,6 +51,18 @@ class Dovecot:
         os.chown(home, MAIL_UID, MAIL_UID)
         (self.root / "passwd").write_text(f"{USER}:{{PLAIN}}{PASSWORD}\n")
         config = self.root / "dovecot.conf"
+        plain_port, tls_port = (0, self.port) if self.tls else (self.port, 0)
+        ssl_lines = "ssl = no"
+        if self.tls:
+            self.cert = self.root / "cert.pem"
+            key = self.root / "key.pem"
+            subprocess.run(
+                ["openssl", "req", "-x509", "-newkey", "rsa:2048", "-nodes", "-days", "2",
+                 "-keyout", str(key), "-out", str(self.cert), "-subj", "/CN=localhost",
+                 "-addext", "subjectAltName=DNS:localhost,IP:127.0.0.1"],
+                check=True, capture_output=True,
+            )  # fmt: skip
+            ssl_lines = f"ssl = required\nssl_cert = <{self.cert}\nssl_key = <{key}"
         config.write_text(
             f"""
 base_dir = {self.root}/run
@@ -57,7 +70,7 @@ state_dir = {self.root}/state
 log_path = {self.root}/dovecot.log
 protocols = imap
 listen = 127.0.0.1
-ssl = no
+{ssl_lines}
 disable_plaintext_auth = no
 auth_mechanisms = plain login
 mail_location = maildir:~/Maildir
@@ -73,10 +86,11 @@ userdb {{
 service imap-login {{
   inet_listener imap {{
     address = 127.0.0.1
-    port = {self.port}
+    port = {plain_port}
   }}
   inet_listener imaps {{
-    port = 0
+    address = 127.0.0.1
+    port = {tls_port}
   }}
 }}
 service anvil {{
@@ -114,7 +128,15 @@ service anvil {{
     # -- IMAP helpers -------------------------------------------------------------------------
 
     def client(self) -> imaplib.IMAP4:
-        conn = imaplib.IMAP4("127.0.0.1", self.port, timeout=30)
+        if self.tls:
+            import ssl
+
+            context = ssl.create_default_context(cafile=str(self.cert))
+            conn: imaplib.IMAP4 = imaplib.IMAP4_SSL(
+                "127.0.0.1", self.port, ssl_context=context, timeout=30
+            )
+        else:
+            conn = imaplib.IMAP4("127.0.0.1", self.port, timeout=30)
         conn.login(USER, PASSWORD)
         return conn
 

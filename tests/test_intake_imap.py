@@ -8,6 +8,7 @@ from __future__ import annotations
 import logging
 import os
 import signal
+import ssl
 import subprocess
 import sys
 import threading
@@ -500,4 +501,22 @@ def test_redis_away_files_nothing_then_everything_once(dovecot, tmp_path, fitted
         assert_filed_once(dovecot, store, expected_folders(store, mail, config))
     finally:
         client.close()
+        server.stop()
+
+
+def test_tls_by_default_checks_the_server_certificate(redis_client, model_name, fitted) -> None:
+    server = Dovecot(tls=True).start()
+    try:
+        store = store_model(redis_client, model_name, fitted)
+        mail = invented_mail(4)
+        server.append(raw for raw, _ in mail)
+        values = dict(host="127.0.0.1", port=server.port, user=USER, password=PASSWORD)
+        untrusted = ImapConfig(**values)  # security="tls" is the default
+        with pytest.raises(ssl.SSLCertVerificationError):
+            ImapIntake(redis_client, model_name, untrusted).run_until_idle()
+        assert len(server.message_ids("INBOX")) == 4
+        trusted = ImapConfig(**values, ca_file=str(server.cert))
+        assert ImapIntake(redis_client, model_name, trusted).run_until_idle() == 4
+        assert_filed_once(server, store, expected_folders(store, mail, trusted))
+    finally:
         server.stop()
