@@ -152,7 +152,7 @@ class ImapIntake:
         self._stop = threading.Event()
         self.view = ModelView(self.store, config.review_unknown_share)
         self._folders: set[str] = set()
-        self._queued_waiting: set[str] = set()
+        self._queued_waiting: set[tuple[int, int]] = set()
         self._idle_tag = 0
 
     # -- running ------------------------------------------------------------------------------
@@ -203,7 +203,8 @@ class ImapIntake:
             self.close()
 
     def run_until_idle(self) -> int:
-        """Connect, file everything new, and return the number filed (``--once``)."""
+        """Connect, handle everything new, and return the number handled (``--once``): filed
+        ones (:attr:`filed`) and unreadable ones left in place (:attr:`unreadable`)."""
         total = 0
         try:
             self.connect()
@@ -362,6 +363,8 @@ class ImapIntake:
         for uid in uids:
             if self.stopping:
                 return
+            if (self.uidvalidity, uid) in self._queued_waiting:
+                continue
             raw, _ = self._fetch(uid)
             if raw is None:
                 continue
@@ -369,9 +372,8 @@ class ImapIntake:
                 mail = parse_message(raw, strip_quotes=self.config.strip_quotes)
             except MessageError:
                 continue  # reported when it is filed
-            if mail.id not in self._queued_waiting:
-                self._queue(mail, uid)
-                self._queued_waiting.add(mail.id)
+            self._queue(mail, uid)
+            self._queued_waiting.add((self.uidvalidity, uid))
 
     def _current_state(self) -> MixtureState | None:
         return self.view.refresh()

@@ -123,8 +123,13 @@ def run_intake(model: str | None = None, *, once: bool = False) -> int:
     Registry(client).get(name)  # ModelNotFoundError: a one-line error
     intake = ImapIntake(client, name, config)
     if once:
-        filed = intake.run_until_idle()
-        print(f"filed {filed} message(s) from {config.label}")
+        intake.run_until_idle()
+        note = ""
+        if intake.unreadable:
+            note += f", {intake.unreadable} unreadable left in place"
+        if intake.waiting_for_model:
+            note += "; the model has no checkpoint yet: new mail queued for learning, not filed"
+        print(f"filed {intake.filed} message(s) from {config.label}{note}")
         return 0
 
     def on_signal(signum: int, frame: FrameType | None) -> None:

@@ -520,3 +520,23 @@ def test_tls_by_default_checks_the_server_certificate(redis_client, model_name, 
         assert_filed_once(server, store, expected_folders(store, mail, trusted))
     finally:
         server.stop()
+
+
+def test_intake_settings_password_file_and_one_line_errors(tmp_path, monkeypatch, capsys) -> None:
+    from service.cli import main
+    from service.intake_command import imap_config_from_settings
+    from service.settings import IntakeSettings
+
+    secret = tmp_path / "imap-password"
+    secret.write_text("from-a-file-secret\n")
+    monkeypatch.setenv("MIXROUTE_INTAKE_IMAP_HOST", "127.0.0.1")
+    monkeypatch.setenv("MIXROUTE_INTAKE_IMAP_USER", "ferry")
+    monkeypatch.setenv("MIXROUTE_INTAKE_IMAP_PASSWORD", "from-the-variable")
+    monkeypatch.setenv("MIXROUTE_INTAKE_IMAP_PASSWORD_FILE", str(secret))
+    config = imap_config_from_settings(IntakeSettings(), 0.5)
+    assert config.password == "from-a-file-secret" and config.security == "tls"
+    monkeypatch.delenv("REDIS_URL", raising=False)
+    monkeypatch.delenv("MIXROUTE_REDIS_URL", raising=False)
+    assert main(["intake"]) == 2
+    err = capsys.readouterr().err
+    assert "needs the model's Redis" in err and "Traceback" not in err
