@@ -13,7 +13,7 @@ FLOOR_TESTS := tests/test_mixture_core.py tests/test_text.py tests/test_state_ke
 	tests/test_service_units.py tests/test_service_api.py tests/test_runtime_reload.py \
 	tests/test_embedded_lifecycle.py
 
-.PHONY: install corpora browser test test-fast test-floors demo bench lint format clean
+.PHONY: install corpora browser imap-server test test-fast test-floors demo bench lint format clean
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -33,7 +33,11 @@ corpora: $(STAMP)
 browser:
 	test -x /usr/bin/chromium -a -x /usr/bin/chromedriver || (apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq chromium chromium-driver >/dev/null)
 
-test: $(STAMP) corpora browser
+# A real IMAP server for the intake tests (they start their own dovecot on a free port).
+imap-server:
+	test -x /usr/sbin/dovecot || (apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq dovecot-imapd >/dev/null)
+
+test: $(STAMP) corpora browser imap-server
 	$(PY) -m pytest -q
 
 test-fast: $(STAMP)

@@ -244,7 +244,14 @@ def default_routers() -> list[APIRouter]:
         groups.router,
         snapshots.router,
         drift.router,
+        _routed_router(),
     ]
+
+
+def _routed_router() -> APIRouter:
+    from service.routers import routed
+
+    return routed.router
 
 
 def create_app(

@@ -22,13 +22,19 @@ address file a running ``serve`` wrote in its data folder, else MIXROUTE_HOST/PO
     mixroute rollback SNAPSHOT [--replay] [--skip FIRST..LAST] [--skip-received FROM..TO]
     mixroute drift [--reference SNAPSHOT] [--plot weights.png]
     mixroute demo                               # the invented ferry-inbox demo, < 1 minute
+    mixroute intake --model NAME [--once]       # file an IMAP folder's mail (needs REDIS_URL)
+    mixroute intake --smtp --model NAME         # the SMTP door: route and forward
+    mixroute export --model NAME [--format csv|jsonl] [--out FILE]   # what the intake routed
 
 Offline and API answers share their names: the posterior is ``[{"group", "probability"}]``,
 most probable first, and ``review_reasons`` come from :data:`mixture.routing.REVIEW_REASONS`.
 
-JSON-lines input: one ``{"id": ..., "text": ...}`` a line. Invalid lines are reported on
-standard error with their line number and skipped; ``--strict`` rejects the whole file instead
-(exit status 2, nothing written or queued). Errors never end in a traceback.
+Input (``fit``, ``route``, ``feed``): JSON lines, one ``{"id": ..., "text": ...}`` a line, or
+mail (an mbox file, a Maildir, a folder of .eml files, one message) or CSV with a text column;
+the format is told from the content (``--format`` forces it; see :mod:`intake.sources`).
+Invalid lines (messages) are reported on standard error with their position and skipped;
+``--strict`` rejects the whole file instead (exit status 2, nothing written or queued).
+Errors never end in a traceback.
 """
 
 from __future__ import annotations
@@ -43,7 +49,7 @@ from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
-from service.jsonl import JsonlBatch, read_jsonl
+from intake.sources import DocumentBatch
 
 if TYPE_CHECKING:
     import numpy as np
@@ -70,25 +76,55 @@ def _err(message: str) -> None:
     print(f"mixroute: {message}", file=sys.stderr)
 
 
-def _load_documents(path: str, strict: bool, max_text_bytes: int | None = None) -> JsonlBatch:
+def _load_documents(
+    path: str,
+    strict: bool,
+    max_text_bytes: int | None = None,
+    *,
+    format: str | None = None,
+    keep_quotes: bool = False,
+) -> DocumentBatch:
+    from intake.sources import SourceError, read_documents
+
     try:
-        batch = read_jsonl(path, max_text_bytes=max_text_bytes)
+        batch = read_documents(
+            path, format, strip_quotes=not keep_quotes, max_text_bytes=max_text_bytes
+        )
     except OSError as exc:
         raise CommandError(f"cannot read {path}: {exc.strerror or exc}", EXIT_BAD_INPUT) from None
+    except SourceError as exc:
+        raise CommandError(str(exc), EXIT_BAD_INPUT) from None
+    what = "invalid line" if batch.unit == "line" else f"unreadable {batch.unit}"
     for problem in batch.problems[:50]:
         _err(f"{path}: {problem}")
     if len(batch.problems) > 50:
-        _err(f"{path}: ... and {len(batch.problems) - 50} more invalid lines")
+        _err(f"{path}: ... and {len(batch.problems) - 50} more {what}s")
     if batch.problems and strict:
         raise CommandError(
-            f"{path}: {len(batch.problems)} invalid line(s); --strict given, nothing done",
+            f"{path}: {len(batch.problems)} {what}(s); --strict given, nothing done",
             EXIT_BAD_INPUT,
         )
     if batch.problems:
-        _err(f"{path}: skipped {len(batch.problems)} invalid line(s)")
+        _err(f"{path}: skipped {len(batch.problems)} {what}(s)")
+    if batch.attachments_skipped:
+        _err(f"{path}: {batch.attachments_skipped} attachment(s) skipped (not read as text)")
     if not batch.documents:
         raise CommandError(f"{path}: no valid documents", EXIT_BAD_INPUT)
     return batch
+
+
+def _source_options(p: argparse.ArgumentParser) -> None:
+    from intake.sources import FORMATS
+
+    p.add_argument(
+        "--format", choices=FORMATS, help="input format (default: told from the content)"
+    )
+    p.add_argument(
+        "--keep-quotes",
+        dest="keep_quotes",
+        action="store_true",
+        help="mail: keep quoted replies and signatures (cut by default)",
+    )
 
 
 def _progress_bar(total: int, desc: str, unit: str) -> Any:
@@ -160,7 +196,9 @@ def cmd_fit(args: argparse.Namespace) -> int:
     from mixture.restarts import iteration_bound, restart_kinds
     from mixture.serialize import state_to_bytes
 
-    batch = _load_documents(args.docs, args.strict)
+    batch = _load_documents(
+        args.docs, args.strict, format=args.format, keep_quotes=args.keep_quotes
+    )
     config_fields: dict[str, Any] = {}
     if args.config:
         try:
@@ -263,7 +301,7 @@ def fit_summary_lines(report: FitReport, weights: np.ndarray) -> list[str]:
 
 def route_records(
     state: Any,
-    batch: JsonlBatch,
+    batch: DocumentBatch,
     *,
     threshold: float,
     top: int | None,
@@ -276,7 +314,7 @@ def route_records(
     Parameters
     ----------
     state : MixtureState
-    batch : JsonlBatch
+    batch : DocumentBatch
     threshold : float
         MAP posterior below which the ``low_posterior`` review reason fires.
     top : int or None
@@ -353,7 +391,9 @@ def cmd_route(args: argparse.Namespace) -> int:
 
 def _route_offline(args: argparse.Namespace) -> int:
     state = _read_model_file(args.model_file)
-    batch = _load_documents(args.docs, args.strict)
+    batch = _load_documents(
+        args.docs, args.strict, format=args.format, keep_quotes=args.keep_quotes
+    )
     bar = _progress_bar(len(batch.documents), "routing", "doc")
     try:
         records = route_records(
@@ -559,7 +599,9 @@ def cmd_models(args: argparse.Namespace) -> int:
 
 
 def cmd_feed(args: argparse.Namespace) -> int:
-    batch = _load_documents(args.file, args.strict)
+    batch = _load_documents(
+        args.file, args.strict, format=args.format, keep_quotes=args.keep_quotes
+    )
     client = ApiClient(args.api or default_api_url())
     name = _model_name(args)
     bar = _progress_bar(len(batch.documents), f"queueing to {name}", "doc")
@@ -619,7 +661,9 @@ def _wait_learned(client: ApiClient, name: str, last_id: str, timeout: float) ->
 
 
 def _route_online(args: argparse.Namespace) -> int:
-    batch = _load_documents(args.docs, args.strict)
+    batch = _load_documents(
+        args.docs, args.strict, format=args.format, keep_quotes=args.keep_quotes
+    )
     client = ApiClient(args.api or default_api_url())
     name = _model_name(args)
     records: list[dict[str, Any]] = []
@@ -855,7 +899,55 @@ def cmd_work(args: argparse.Namespace) -> int:
     return work(model=args.model, data_dir=args.data_dir)
 
 
+EXPORT_FIELDS = ("id", "time", "group", "label", "posterior", "review", "filed_to")
+
+
+def cmd_export(args: argparse.Namespace) -> int:
+    """Write the messages the intake routed as CSV or JSON lines (pages of the API)."""
+    import csv
+    import io
+
+    client = ApiClient(args.api or default_api_url())
+    name = _model_name(args)
+    rows: list[dict[str, Any]] = []
+    after = "-"
+    while True:
+        page = client.get(f"/models/{name}/routed", params={"after": after, "limit": 5000})
+        records = page["records"]
+        rows += [{key: record[key] for key in EXPORT_FIELDS} for record in records]
+        if len(records) < 5000:
+            break
+        after = records[-1]["stream_id"]
+    if args.format == "jsonl":
+        _write_lines(rows, args.out)
+    else:
+        buffer = io.StringIO()
+        writer = csv.DictWriter(buffer, fieldnames=EXPORT_FIELDS, lineterminator="\n")
+        writer.writeheader()
+        writer.writerows(rows)
+        if args.out in (None, "-"):
+            sys.stdout.write(buffer.getvalue())
+        else:
+            _write_atomic(Path(args.out), buffer.getvalue().encode("utf-8"))
+    _err(f"exported {len(rows)} routed message(s) of {name}")
+    return EXIT_OK
+
+
+def cmd_intake(args: argparse.Namespace) -> int:
+    from service.intake_command import run_intake, run_smtp_door
+
+    if args.smtp:
+        return run_smtp_door(model=args.model)
+    return run_intake(model=args.model, once=args.once)
+
+
 def cmd_demo(args: argparse.Namespace) -> int:
+    if args.write_mail:
+        from service.demo_data import INVENTED_NOTICE, write_demo_mail
+
+        mbox, maildir = write_demo_mail(args.write_mail, scale=args.scale, seed=args.seed)
+        print(f"{INVENTED_NOTICE}\nwrote {mbox} and {maildir}")
+        return EXIT_OK
     from service.demo import run_demo
 
     return run_demo(scale=args.scale, seed=args.seed, plot=args.plot, out=sys.stdout)
@@ -890,7 +982,7 @@ def build_parser() -> argparse.ArgumentParser:
         )
 
     p = sub.add_parser("fit", help="fit a model file with batch EM (offline)")
-    p.add_argument("docs", help="JSON-lines documents ({'id', 'text'} a line; - for stdin)")
+    p.add_argument("docs", help="documents: JSON lines ({'id', 'text'} a line), mail or CSV")
     p.add_argument("--groups", "-k", type=int, required=True, help="number of groups K")
     p.add_argument("--out", "-o", required=True, help="model file to write")
     p.add_argument("--seed", type=int, default=0, help="random seed of the restarts (default 0)")
@@ -910,13 +1002,14 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--config", help="further MixtureConfig fields as a JSON object")
     strict_option(p)
+    _source_options(p)
     p.set_defaults(func=cmd_fit)
 
     p = sub.add_parser(
         "route",
         help="route documents: with a model file (--model-file) or through the API (--model)",
     )
-    p.add_argument("docs", help="JSON-lines documents ({'id', 'text'} a line; - for stdin)")
+    p.add_argument("docs", help="documents: JSON lines ({'id', 'text'} a line), mail or CSV")
     p.add_argument(
         "--model-file", metavar="PATH", help="route offline with this model file (from `fit`)"
     )
@@ -933,6 +1026,7 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--learn", action="store_true", help="API: also queue them for learning")
     strict_option(p)
+    _source_options(p)
     api_options(p)
     p.set_defaults(func=cmd_route)
 
@@ -977,6 +1071,22 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.set_defaults(func=cmd_work)
 
+    p = sub.add_parser(
+        "intake", help="route and file the mail of an IMAP folder (MIXROUTE_INTAKE_*)"
+    )
+    p.add_argument("--model", help="model that routes the mail (default MIXROUTE_DEFAULT_MODEL)")
+    p.add_argument("--once", action="store_true", help="file what is there now, then exit")
+    p.add_argument("--smtp", action="store_true", help="run the SMTP door instead (aiosmtpd)")
+    p.set_defaults(func=cmd_intake)
+
+    p = sub.add_parser("export", help="messages the intake routed, as CSV or JSON lines")
+    p.add_argument(
+        "--format", choices=("csv", "jsonl"), default="csv", help="output format (default csv)"
+    )
+    p.add_argument("--out", "-o", help="file to write (default: standard output)")
+    api_options(p)
+    p.set_defaults(func=cmd_export)
+
     p = sub.add_parser("models", help="create, list or delete models on the API")
     msub = p.add_subparsers(dest="action", required=True, metavar="ACTION")
     mp = msub.add_parser("list", help="every model with its version and documents learned")
@@ -992,8 +1102,8 @@ def build_parser() -> argparse.ArgumentParser:
     api_options(mp, model=False)
     p.set_defaults(func=cmd_models)
 
-    p = sub.add_parser("feed", help="queue a JSON-lines file for learning")
-    p.add_argument("file", help="JSON-lines documents ({'id', 'text'} a line; - for stdin)")
+    p = sub.add_parser("feed", help="queue a file of documents for learning")
+    p.add_argument("file", help="documents: JSON lines ({'id', 'text'} a line), mail or CSV")
     p.add_argument("--batch", type=int, default=500, help="documents per request (default 500)")
     p.add_argument(
         "--wait", action="store_true", help="then wait until the worker has learned them"
@@ -1007,6 +1117,7 @@ def build_parser() -> argparse.ArgumentParser:
         help="give up waiting after this long (default 600)",
     )
     strict_option(p)
+    _source_options(p)
     api_options(p)
     p.set_defaults(func=cmd_feed)
 
@@ -1078,6 +1189,12 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--scale", type=float, default=1.0, help="multiply the messages per day")
     p.add_argument("--seed", type=int, default=0, help="random seed of the invented inbox")
     p.add_argument("--plot", metavar="PNG", help="also plot the weights into this file")
+    p.add_argument(
+        "--write-mail",
+        dest="write_mail",
+        metavar="FOLDER",
+        help="only write the invented inbox as FOLDER/inbox.mbox and FOLDER/Maildir",
+    )
     p.set_defaults(func=cmd_demo)
     return parser
 

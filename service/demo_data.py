@@ -20,6 +20,8 @@ from __future__ import annotations
 import random
 from collections.abc import Sequence
 from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
 
 INVENTED_NOTICE = (
     "INVENTED DATA: Saltgrass Island Ferries and every message below are made up by "
@@ -634,3 +636,48 @@ def fresh_examples(seed: int = 12345) -> list[DemoMessage]:
     ]
     out.append(DemoMessage(id="fresh-junk", day=0, theme="junk", text=compose_junk(rng)))
     return out
+
+
+# The invented inbox's simulated first day (2025-06-02, a Monday), for mail Date headers.
+MAIL_EPOCH = 1_748_822_400.0
+INVENTED_SENDER_DOMAIN = "passengers.saltgrass-ferries.invalid"  # RFC 2606: .invalid
+
+
+def mail_drafts(days: Sequence[Sequence[DemoMessage]]) -> list[Any]:
+    """The invented messages as mail drafts (:class:`intake.compose.MailDraft`): one day of
+    simulated time per day, the messages spread over it, each marked as invented."""
+    from intake.compose import MailDraft
+
+    drafts = []
+    for messages in days:
+        for i, message in enumerate(messages):
+            moment = MAIL_EPOCH + (message.day - 1) * 86400 + 21600 + i * 43200 / len(messages)
+            drafts.append(
+                MailDraft(
+                    id=f"{message.id}@{INVENTED_SENDER_DOMAIN}",
+                    text=message.text,
+                    received=moment,
+                    sender=f"passenger-{message.id}@{INVENTED_SENDER_DOMAIN}",
+                    to="inbox@saltgrass-ferries.invalid",
+                    extra_headers=(("X-Invented-Data", INVENTED_NOTICE),),
+                )
+            )
+    return drafts
+
+
+def write_demo_mail(folder: str | Path, scale: float = 1.0, seed: int = 0) -> tuple[Path, Path]:
+    """Write the invented ferry inbox as ``inbox.mbox`` and the Maildir ``Maildir/`` in
+    ``folder`` (both INVENTED data); returns their paths."""
+    from intake.compose import write_maildir, write_mbox
+
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    drafts = mail_drafts(generate_days(default_days(scale), seed))
+    mbox, maildir = folder / "inbox.mbox", folder / "Maildir"
+    write_mbox(mbox, drafts)
+    if maildir.exists():
+        import shutil
+
+        shutil.rmtree(maildir)
+    write_maildir(maildir, drafts)
+    return mbox, maildir

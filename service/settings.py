@@ -136,3 +136,82 @@ def load_settings(**overrides: object) -> Settings:
     """Settings from the environment, with explicit overrides (command-line flags) on top."""
     values = {key: value for key, value in overrides.items() if value is not None}
     return Settings(**values)
+
+
+class IntakeSettings(BaseSettings):
+    """Settings of ``mixroute intake`` (environment prefix ``MIXROUTE_INTAKE_``).
+
+    The password comes from ``MIXROUTE_INTAKE_IMAP_PASSWORD`` or from the file named by
+    ``MIXROUTE_INTAKE_IMAP_PASSWORD_FILE`` (e.g. a container secret); it is never logged.
+    """
+
+    model_config = SettingsConfigDict(env_prefix="MIXROUTE_INTAKE_", extra="ignore")
+
+    model: str | None = Field(
+        default=None, description="Model that routes the mail (unset: MIXROUTE_DEFAULT_MODEL)."
+    )
+    imap_host: str = Field(default="", description="IMAP server.")
+    imap_port: int | None = Field(
+        default=None, ge=1, le=65535, description="IMAP port (unset: 993 with TLS, else 143)."
+    )
+    imap_user: str = Field(default="", description="IMAP account name.")
+    imap_password: SecretStr = Field(default=SecretStr(""), description="IMAP password.")
+    imap_password_file: Path | None = Field(
+        default=None, description="File holding the IMAP password (first line)."
+    )
+    imap_folder: str = Field(default="INBOX", description="Folder watched for new mail.")
+    imap_security: Literal["tls", "starttls", "plain"] = Field(
+        default="tls",
+        description="tls (implicit, port 993), starttls, or plain (loopback only unless "
+        "imap_allow_plain).",
+    )
+    imap_ca_file: Path | None = Field(
+        default=None, description="PEM file of the CAs to trust instead of the system's."
+    )
+    imap_allow_plain: bool = Field(
+        default=False, description="Allow plain IMAP (password unencrypted) to a remote host."
+    )
+    filing: Literal["move", "keyword", "none"] = Field(
+        default="move",
+        description="move: into a folder per group (created when missing); keyword: a "
+        "keyword per group on the message; none: leave it where it is.",
+    )
+    review_folder: str = Field(
+        default="Review",
+        description="Folder (or keyword name) for messages routed with review true; empty: "
+        "file them like the others.",
+    )
+    folder_prefix: str = Field(default="", description="Put before every destination folder.")
+    keyword_prefix: str = Field(default="mixroute-", description="Put before every keyword.")
+    poll_seconds: float = Field(
+        default=30.0, gt=0.0, description="Seconds between checks when IDLE is not offered."
+    )
+    idle_seconds: float = Field(
+        default=300.0, gt=0.0, le=1740.0, description="Longest IDLE before it is renewed."
+    )
+    use_idle: bool = Field(default=True, description="Use IDLE when the server offers it.")
+    keep_quotes: bool = Field(
+        default=False, description="Keep quoted replies and signatures in what is learned."
+    )
+    smtp_listen_host: str = Field(default="127.0.0.1", description="SMTP door: listen address.")
+    smtp_listen_port: int = Field(default=8025, ge=1, le=65535, description="SMTP door: port.")
+    smtp_relay_host: str = Field(default="127.0.0.1", description="Relay the door forwards to.")
+    smtp_relay_port: int = Field(default=25, ge=1, le=65535, description="Relay port.")
+    smtp_relay_security: Literal["starttls", "tls", "plain"] = Field(
+        default="starttls", description="How the door talks to the relay."
+    )
+    smtp_relay_user: str = Field(default="", description="Relay account (empty: no login).")
+    smtp_relay_password: SecretStr = Field(default=SecretStr(""), description="Relay password.")
+    smtp_review_address: str = Field(
+        default="", description="Where messages routed with review true are forwarded."
+    )
+    smtp_fallback_address: str = Field(
+        default="", description="Where a message goes when its group has no address."
+    )
+
+    def password(self) -> str:
+        """The IMAP password, from the file when one is named, else from the variable."""
+        if self.imap_password_file is not None:
+            lines = self.imap_password_file.read_text(encoding="utf-8").splitlines()
+            return lines[0] if lines else ""
+        return self.imap_password.get_secret_value()

@@ -36,6 +36,13 @@ replay             string      JSON replay record: the last rollback and the ski
 notify             channel     pub/sub: the new version after each checkpoint / rollback
 labels             hash        operator labels per group: field = group id, value = JSON
 labels_version     string      counter bumped by every label change (cheap change check)
+routed             stream      messages routed by the intake doors (IMAP, SMTP): id, time,
+                               group, label, posterior, review, filed_to (no text; capped)
+routed_day:<date>  hash        messages routed that UTC day per group (field = group id;
+                               expires after 400 days)
+intake:<source>    hash        IMAP intake watermark of one mailbox folder: ``uidvalidity``,
+                               ``last_uid`` (the last message filed), ``source`` (label),
+                               ``updated``; ``<source>`` is a digest of user, host, folder
 =================  ==========  ===========================================================
 """
 
@@ -110,6 +117,7 @@ class ModelKeys:
         "model",
         "notify",
         "replay",
+        "routed",
         "snapshot_seq",
         "snapshots",
         "state",
@@ -142,6 +150,7 @@ class ModelKeys:
         self.notify = b + "notify"
         self.labels = b + "labels"
         self.labels_version = b + "labels_version"
+        self.routed = b + "routed"
 
     def fixed(self) -> list[str]:
         """Every key of the model whose name does not depend on an id (not the channel)."""
@@ -164,11 +173,20 @@ class ModelKeys:
             self.replay,
             self.labels,
             self.labels_version,
+            self.routed,
         ]
 
     def snapshot(self, snapshot_id: str) -> str:
         """Key of the hash holding one snapshot."""
         return f"{self.base}snapshot:{snapshot_id}"
+
+    def routed_day(self, day: str) -> str:
+        """Key of the per-group count of messages routed on one UTC day (``YYYY-MM-DD``)."""
+        return f"{self.base}routed_day:{day}"
+
+    def intake_mark(self, source_id: str) -> str:
+        """Key of the IMAP intake watermark of one mailbox folder (see state.intake_marks)."""
+        return f"{self.base}intake:{source_id}"
 
     def client_id(self, client_id: str) -> str:
         """Key marking one client-given document id as seen."""
