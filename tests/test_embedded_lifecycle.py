@@ -156,6 +156,40 @@ def test_stopping_serve_never_leaves_its_redis(
         assert process.returncode == (-stop_signal if stop_signal == signal.SIGTERM else 130)
 
 
+def test_serve_prints_its_addresses_and_the_client_commands_find_it(
+    serve_process: tuple[subprocess.Popen[bytes], Path, str], tmp_path: Path, monkeypatch, capsys
+) -> None:
+    from service.cli import main
+
+    process, data, url = serve_process
+    http = httpx.Client(base_url=url, timeout=30)
+    wait_until(lambda: (data / "serve.json").exists() or process.poll() is not None,
+               timeout=60, what="the address file")  # fmt: skip
+
+    def answers() -> bool:
+        try:
+            return http.get("/health").status_code == 200
+        except httpx.HTTPError:
+            return process.poll() is not None
+
+    wait_until(answers, timeout=60, what="mixroute serve")
+    assert process.poll() is None, "mixroute serve exited at start"
+    printed = (tmp_path / "serve.log").read_text()
+    for address in (url, f"{url}/docs", f"{url}/dashboard"):
+        assert address in printed
+    assert http.post("/models", json={"name": "ferry", "config": {"n_groups": 2}}).is_success
+    http.close()
+    # no --api, no MIXROUTE_API_URL, a port that is not the default: found through serve.json
+    monkeypatch.delenv("MIXROUTE_API_URL", raising=False)
+    monkeypatch.delenv("MIXROUTE_PORT", raising=False)
+    monkeypatch.setenv("MIXROUTE_DATA_DIR", str(data))
+    assert main(["models", "list"]) == 0
+    assert capsys.readouterr().out.startswith("ferry\t")
+    process.send_signal(signal.SIGTERM)
+    process.wait(timeout=60)
+    assert not (data / "serve.json").exists()  # a stopped serve is not found any more
+
+
 def test_a_start_stops_a_stale_server_of_its_folder(tmp_path: Path) -> None:
     folder = (tmp_path / "data").resolve()
     first = EmbeddedRedis(folder).start()
