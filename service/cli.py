@@ -167,13 +167,14 @@ def _read_model_file(path: str) -> Any:
 
 
 def format_probability(value: float) -> str:
-    """A probability for people: three decimals, and never a 1.000 or 0.000 that is not exact.
+    """A probability for people: three decimals, and never a 1.000 or 0.000 that is not one.
+
+    A posterior of exactly 1.0 in floating point still means "the others are under 1e-16", not
+    certainty, so it is shown as ``>0.999`` too; only an exact 0 (an impossible group) is "0".
 
     >>> format_probability(0.9999996), format_probability(8.4e-39), format_probability(0.25)
     ('>0.999', '<0.001', '0.250')
     """
-    if value >= 1.0:
-        return "1"
     if value <= 0.0:
         return "0"
     if value > 0.999:

@@ -167,7 +167,13 @@ def test_work_uses_the_redis_of_a_running_serve(tmp_path: Path, monkeypatch) -> 
 
 @pytest.mark.parametrize(
     ("value", "shown"),
-    [(8.441629290931999e-39, "<0.001"), (0.99999993, ">0.999"), (0.5, "0.500"), (1.0, "1")],
+    [
+        (8.441629290931999e-39, "<0.001"),
+        (0.99999993, ">0.999"),
+        (0.5, "0.500"),
+        (1.0, ">0.999"),
+        (0.0, "0"),
+    ],
 )
 def test_probabilities_for_people(value: float, shown: str) -> None:
     assert cli.format_probability(value) == shown
@@ -180,3 +186,10 @@ def test_rollback_times_read_as_iso_or_unix() -> None:
     assert cli.parse_time("1777816800") == 1777816800.0
     with pytest.raises(cli.CommandError):
         cli.parse_time("yesterday")
+
+
+def test_models_list_is_honest_before_the_warm_up() -> None:
+    warming = {"warmed_up": False, "documents_learned": 512, "config": {"warmup_documents": 1000}}
+    assert cli._learned_or_warming(warming) == "warming up: 512 of 1,000 buffered"
+    ready = {"warmed_up": True, "documents_learned": 12345, "config": {}}
+    assert cli._learned_or_warming(ready) == "12,345 documents learned"
