@@ -27,7 +27,7 @@ import scipy.sparse as sp
 from mixture.config import MixtureConfig
 from mixture.em import fit_pending, normalise_log_rows, validate_counts
 from mixture.errors import InputError
-from mixture.lifecycle import GroupEvent, run_due_decisions, unit_observer
+from mixture.lifecycle import GroupEvent, run_due_decisions, seed_typicality, unit_observer
 from mixture.stats import MixtureState
 from mixture.text import count_texts
 
@@ -245,7 +245,10 @@ class OnlineLearner:
         state.touch()
         if have + int((lengths > 0).sum()) < need:
             return None
+        warmup, generation = state.pending, state.vocabulary.generation
         fit_pending(state)
+        if self.config.lifecycle.enabled and state.vocabulary.generation == generation:
+            seed_typicality(state, warmup)  # (a compaction renumbered the ids: start empty)
         report.warmed_up = True
         return cut
 

@@ -240,6 +240,25 @@ def test_two_new_topics_at_once_are_born_at_one_decision():
         assert hits.max() / hits.sum() >= 0.9
 
 
+def test_the_warm_up_documents_start_each_groups_typicality():
+    """Right after the warm-up fit every group's typicality holds its warm-up documents: the
+    count, mean and spread of their per-token log-likelihood under their MAP group, as the
+    routing path reports it for the same documents."""
+    stream = TopicStream(3, seed=8)
+    texts = stream.messages(stream.labels(1000, [0, 1, 2]))
+    config = MixtureConfig(n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
+    learner = OnlineLearner(config, seed=0)
+    learner.learn(texts)
+    state = learner.state
+    assert state.warmed_up and state.evidence is not None
+    routed = route_texts(state, texts)
+    for g in range(3):
+        mine = routed.log_likelihood_per_token[routed.group == g]
+        assert state.evidence.typical_weight[g] == pytest.approx(mine.size)
+        assert state.evidence.typical_mean()[g] == pytest.approx(mine.mean(), rel=1e-9)
+        assert state.evidence.typical_std()[g] == pytest.approx(mine.std(), rel=1e-6)
+
+
 # ---- configuration ---------------------------------------------------------------------------
 def test_lifecycle_settings_are_validated_and_nested():
     with pytest.raises(ConfigError, match=r"lifecycle\.novelty_z"):

