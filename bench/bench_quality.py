@@ -23,8 +23,20 @@ invented corpus of 150 small topics (tests/corpora.py ``invented_small_topics``)
 NMI, the kept run's MAP objective, groups under 1/(10K), and seconds; the last column is the
 default's time over the annealed run's (the cost of the plain runs and the revival).
 
-Run ``python -m bench.bench_quality [--seed N] [--sweep-seeds N] [--no-kinds]``
-(``--sweep-seeds 0`` skips the second table, ``--no-kinds`` the third).
+A fourth table follows topics that come and go: drift streams built the published way (sorted
+by topic, cut into 16 parts, each part shuffled; Yin et al., KDD 2018) from WordNet's 26 noun
+files and all 45 files (at most 1,000 synsets a file) and from BBC by category. Each unit of
+``batch_size`` messages is routed at arrival with the current state, then learned
+(tests/corpora.py ``drift_pass``). Columns: arrival NMI (each message's group when it
+arrived), end NMI and ARI (every message routed again at the end), live groups at the end,
+the lifecycle's events, and batch EM on all documents (K = the true count) beside them; rows
+with K given and with K unknown (2 groups at the start, max_groups twice the true count), each
+with the lifecycle off and on. Last, the lifecycle's cost: learn time over the same stream at
+the same K with it off and on (best of three), as the share of the bare learner kept.
+
+Run ``python -m bench.bench_quality [--seed N] [--sweep-seeds N] [--no-kinds] [--no-drift]
+[--drift-only]`` (``--sweep-seeds 0`` skips the second table, ``--no-kinds`` the third,
+``--no-drift`` the fourth; ``--drift-only`` prints the fourth alone).
 """
 
 from __future__ import annotations
@@ -150,6 +162,97 @@ def kinds_table(seed: int) -> None:
             )
 
 
+DRIFT_PER_FILE = 1000
+DRIFT_START_GROUPS = 2  # "K unknown": a new inbox starts small and grows by births
+
+
+def drift_streams() -> list[corpora.LabelledCorpus]:
+    """The drift streams of the fourth table (those installed; a note for each missing one)."""
+    streams: list[corpora.LabelledCorpus] = []
+    try:
+        nouns = corpora.load_wordnet_files(
+            list(corpora.NOUN_LEXNAMES.values()), DRIFT_PER_FILE, seed=0
+        )
+        every = corpora.load_wordnet_files(None, DRIFT_PER_FILE, seed=0)
+        nouns.name, every.name = "wordnet-26", "wordnet-45"
+        streams += [corpora.drift_stream(nouns), corpora.drift_stream(every)]
+    except corpora.CorpusMissingError as exc:
+        print(f"skipped: {exc}")
+    try:
+        streams.append(corpora.drift_stream(corpora.load_bbc()))
+    except corpora.CorpusMissingError as exc:
+        print(f"skipped: {exc}")
+    return streams
+
+
+def drift_table(seed: int) -> None:
+    """Print arrival and end scores on drift streams, and the lifecycle's learn-time cost."""
+    from mixture.config import MixtureConfig
+    from mixture.em import fit_texts
+    from mixture.lifecycle_config import LifecycleConfig
+    from mixture.routing import route_texts
+
+    streams = drift_streams()
+    print(
+        f"{'stream':<24} {'K':>3} {'start':>5} {'lifecycle':<9} {'arrival':>7} {'end':>6} "
+        f"{'ARI':>6} {'live':>5} {'events':<28} {'gap arr':>7} {'gap end':>7}"
+    )
+    costs = []
+    for stream in streams:
+        k = len(stream.label_names)
+        label = f"{stream.name} ({len(stream)})"
+        state, _ = fit_texts(stream.texts, MixtureConfig(n_groups=k), seed=seed)
+        batch = route_texts(state, stream.texts).group
+        batch_nmi = normalized_mutual_info_score(stream.labels, batch)
+        print(
+            f"{label:<24} {k:>3} {'all':>5} {'batch EM':<9} {'':>7} {batch_nmi:6.3f} "
+            f"{adjusted_rand_score(stream.labels, batch):6.3f} {k:>5}",
+            flush=True,
+        )
+        for start in (k, DRIFT_START_GROUPS):
+            for enabled in (False, True):
+                lifecycle = LifecycleConfig(enabled=enabled, max_groups=2 * k)
+                config = MixtureConfig(n_groups=start, lifecycle=lifecycle)
+                run = corpora.drift_pass(stream, config, seed=seed)
+                arrival = normalized_mutual_info_score(stream.labels, run.arrival)
+                end = normalized_mutual_info_score(stream.labels, run.final)
+                events = ", ".join(f"{n} {kind}" for kind, n in run.event_counts().items())
+                print(
+                    f"{label:<24} {k:>3} {start:>5} {'on' if enabled else 'off':<9} "
+                    f"{arrival:7.3f} {end:6.3f} "
+                    f"{adjusted_rand_score(stream.labels, run.final):6.3f} "
+                    f"{run.live_groups:>5} {events or '-':<28} {arrival - batch_nmi:7.3f} "
+                    f"{end - batch_nmi:7.3f}",
+                    flush=True,
+                )
+        costs.append((label, k, *learn_seconds(stream, k, seed)))
+    print()
+    print(f"{'stream':<24} {'K':>3} {'learn off s':>11} {'learn on s':>10} {'kept':>6}")
+    for label, k, off, on in costs:
+        print(f"{label:<24} {k:>3} {off:11.2f} {on:10.2f} {off / on:6.2f}")
+
+
+def learn_seconds(stream: corpora.LabelledCorpus, k: int, seed: int) -> tuple[float, float]:
+    """Best-of-three learn time over the stream at K groups, lifecycle off and on."""
+    from mixture.config import MixtureConfig
+    from mixture.lifecycle_config import LifecycleConfig
+    from mixture.online import OnlineLearner
+
+    best = []
+    for enabled in (False, True):
+        config = MixtureConfig(n_groups=k, lifecycle=LifecycleConfig(enabled=enabled))
+        times = []
+        for _ in range(3):
+            learner = OnlineLearner(config, seed=seed)
+            size = config.batch_size
+            began = time.perf_counter()
+            for start in range(0, len(stream), size):
+                learner.learn(stream.texts[start : start + size])
+            times.append(time.perf_counter() - began)
+        best.append(min(times))
+    return best[0], best[1]
+
+
 def main(argv: list[str] | None = None) -> None:
     """Print a table of NMI, ARI and wall time per corpus and method, then the warm-up sweep."""
     parser = argparse.ArgumentParser(prog="python -m bench.bench_quality", description=__doc__)
@@ -158,7 +261,12 @@ def main(argv: list[str] | None = None) -> None:
         "--sweep-seeds", type=int, default=5, help="seeds of the warm-up sweep (0 skips it)"
     )
     parser.add_argument("--no-kinds", action="store_true", help="skip the kinds table")
+    parser.add_argument("--no-drift", action="store_true", help="skip the drift-stream table")
+    parser.add_argument("--drift-only", action="store_true", help="only the drift-stream table")
     args = parser.parse_args(argv)
+    if args.drift_only:
+        drift_table(args.seed)
+        return
     loaded = load_corpora()
     print(f"{'corpus':<22} {'method':<28} {'NMI':>6} {'ARI':>6} {'seconds':>8}")
     for corpus in loaded:
@@ -177,6 +285,9 @@ def main(argv: list[str] | None = None) -> None:
     if not args.no_kinds:
         print()
         kinds_table(args.seed)
+    if not args.no_drift:
+        print()
+        drift_table(args.seed)
 
 
 if __name__ == "__main__":

@@ -35,7 +35,9 @@ birth_min_documents = 20
     topic; rule of thumb, no source).
 birth_log_bayes_factor = 5.0
     A birth needs ln BF > 5 for "one new Dirichlet-multinomial group" against "each from the
-    current mixture": Kass and Raftery (1995) call 2 ln BF > 10 very strong evidence.
+    mixture as it stood when the document arrived": Kass and Raftery (1995) call 2 ln BF > 10
+    very strong evidence. Several components of one buffer may pass at one decision; each is
+    born (up to the ceiling).
 merge_overlap = 0.5
     Two groups merge only when at least half of the smaller group's posterior mass in the last
     window is shared with the other (overlap coefficient of the soft memberships): for most of

@@ -21,7 +21,7 @@ birth test uses.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.sparse as sp
@@ -91,6 +91,11 @@ class GroupEvidence:
         Counts of the buffered novel documents (columns may lag the vocabulary's capacity).
     buffer_ordinals : ndarray (B,) int64
         Stream position of each buffered document (0-based: documents learned before it).
+    buffer_log_lik : ndarray (B,)
+        log p(d) of each buffered document under the mixture it arrived at (before the model
+        learned it): the prequential score of the "no new group" side of the birth test. NaN
+        for documents buffered by a state that did not record it (scored under the current
+        mixture instead).
     """
 
     typical_weight: np.ndarray
@@ -104,6 +109,7 @@ class GroupEvidence:
     born_at: np.ndarray
     buffer: sp.csr_matrix
     buffer_ordinals: np.ndarray
+    buffer_log_lik: np.ndarray = field(default_factory=lambda: np.zeros(0))
 
     @classmethod
     def empty(cls, n_groups: int, capacity: int, start: int = 0) -> GroupEvidence:
@@ -121,6 +127,7 @@ class GroupEvidence:
             born_at=np.zeros(k, dtype=np.int64),
             buffer=sp.csr_matrix((0, capacity)),
             buffer_ordinals=np.zeros(0, dtype=np.int64),
+            buffer_log_lik=np.zeros(0),
         )
 
     @property
@@ -158,24 +165,38 @@ class GroupEvidence:
         )
 
     # ---- the novelty buffer ---------------------------------------------------------------
-    def push(self, rows: sp.csr_matrix, ordinals: np.ndarray, config: LifecycleConfig) -> None:
-        """Append novel documents; the oldest go first when the buffer is over capacity."""
+    def push(
+        self,
+        rows: sp.csr_matrix,
+        ordinals: np.ndarray,
+        config: LifecycleConfig,
+        log_lik: np.ndarray | None = None,
+    ) -> None:
+        """Append novel documents; the oldest go first when the buffer is over capacity.
+
+        ``log_lik`` is each document's log p(d) under the mixture it arrived at (NaN: unknown).
+        """
         if rows.shape[0] == 0:
             return
         width = max(self.buffer.shape[1], rows.shape[1])
         stacked = sp.vstack([_widen(self.buffer, width), _widen(rows, width)], format="csr")
         ordinals = np.concatenate([self.buffer_ordinals, np.asarray(ordinals, dtype=np.int64)])
+        arrived = np.full(rows.shape[0], np.nan) if log_lik is None else np.asarray(log_lik, float)
+        scores = np.concatenate([self.buffer_log_lik, arrived])
         over = stacked.shape[0] - config.buffer_documents
         if over > 0:
             stacked = stacked[over:]
             ordinals = ordinals[over:]
+            scores = scores[over:]
         self.buffer = stacked
         self.buffer_ordinals = ordinals
+        self.buffer_log_lik = scores
 
     def keep_buffered(self, keep: np.ndarray) -> None:
         """Keep only the buffered documents where ``keep`` (bool, shape (B,)) is true."""
         self.buffer = self.buffer[np.flatnonzero(keep)]
         self.buffer_ordinals = self.buffer_ordinals[keep]
+        self.buffer_log_lik = self.buffer_log_lik[keep]
 
     def forget_older_than(self, position: int) -> None:
         """Drop buffered documents whose stream position is below ``position``."""
@@ -194,7 +215,12 @@ class GroupEvidence:
         retired = np.zeros(max(self.buffer.shape[1], int(word_ids.max(initial=-1)) + 1), bool)
         retired[word_ids] = True
         buffer = self.buffer.copy()
-        buffer.data[retired[buffer.indices]] = 0.0
+        hit = retired[buffer.indices]
+        # A document that lost words no longer matches its arrival score: score it anew.
+        rows = np.repeat(np.arange(buffer.shape[0]), np.diff(buffer.indptr))
+        self.buffer_log_lik = self.buffer_log_lik.copy()
+        self.buffer_log_lik[np.unique(rows[hit])] = np.nan
+        buffer.data[hit] = 0.0
         buffer.eliminate_zeros()
         self.buffer = buffer
 
@@ -267,6 +293,7 @@ class GroupEvidence:
             "buffer.indptr": buffer.indptr.astype(np.int64),
             "buffer.shape": np.asarray(buffer.shape, dtype=np.int64),
             "buffer_ordinals": self.buffer_ordinals.astype(np.int64),
+            "buffer_log_lik": self.buffer_log_lik.astype(np.float64),
         }
 
     @classmethod
@@ -290,6 +317,10 @@ class GroupEvidence:
             born_at=np.array(arrays["born_at"], dtype=np.int64),
             buffer=buffer,
             buffer_ordinals=np.array(arrays["buffer_ordinals"], dtype=np.int64),
+            # States written before the arrival scores were kept: unknown (NaN).
+            buffer_log_lik=np.array(
+                arrays.get("buffer_log_lik", np.full(shape[0], np.nan)), dtype=np.float64
+            ),
         )
         k = n_groups
         for name in ("typical_weight", "typical_sum", "typical_square", "window_mass"):
@@ -297,7 +328,11 @@ class GroupEvidence:
                 raise ValueError(f"lifecycle evidence {name} does not have {k} groups")
         if evidence.window_shared.shape != (k, k) or evidence.quiet_windows.shape != (k,):
             raise ValueError(f"lifecycle window evidence does not have {k} groups")
-        if evidence.born_at.shape != (k,) or buffer.shape[0] != evidence.buffer_ordinals.size:
+        if (
+            evidence.born_at.shape != (k,)
+            or buffer.shape[0] != evidence.buffer_ordinals.size
+            or buffer.shape[0] != evidence.buffer_log_lik.size
+        ):
             raise ValueError("lifecycle evidence is inconsistent")
         return evidence
 
@@ -369,7 +404,7 @@ def observe_unit(
 
     chosen = np.flatnonzero(novel)
     if chosen.size:
-        evidence.push(counts[chosen], ordinals[chosen], config)
+        evidence.push(counts[chosen], ordinals[chosen], config, log_norm[chosen])
     return int(chosen.size)
 
 

@@ -30,7 +30,7 @@ from mixture.counting import count_texts
 from mixture.em import fit_pending, validate_counts
 from mixture.errors import InputError
 from mixture.kernels import softmax_rows
-from mixture.lifecycle import GroupEvent, run_due_decisions, unit_observer
+from mixture.lifecycle import GroupEvent, run_due_decisions, seed_typicality, unit_observer
 from mixture.stats import MixtureState
 
 
@@ -280,7 +280,10 @@ class OnlineLearner:
         state.touch()
         if have + int((lengths > 0).sum()) < need:
             return None
+        warmup, generation = state.pending, state.vocabulary.generation
         fit_pending(state)
+        if self.config.lifecycle.enabled and state.vocabulary.generation == generation:
+            seed_typicality(state, warmup)  # (a compaction renumbered the ids: start empty)
         report.warmed_up = True
         return cut
 

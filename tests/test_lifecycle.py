@@ -15,10 +15,11 @@ import struct
 import numpy as np
 import pytest
 import scipy.sparse as sp
-from scipy.special import gammaln
+from scipy.special import gammaln, logsumexp
 from scipy.stats import dirichlet_multinomial
 
 from mixture.config import MixtureConfig
+from mixture.counting import count_texts
 from mixture.errors import ConfigError, InputError
 from mixture.lifecycle import (
     BIRTH,
@@ -163,6 +164,102 @@ def test_bayes_factor_prefers_a_coherent_cluster_to_strays():
     assert birth_log_bayes_factor(state, strays, ordinals) < 0.0
 
 
+def test_bayes_factor_matches_scipy_with_arrival_scores():
+    """With arrival scores given, ln BF is scipy's Dirichlet-multinomial log pmf of the pooled
+    counts (over the active vocabulary, minus its multinomial coefficient) plus the weight
+    terms, minus the arrival scores, minus (1/2) ln S."""
+    state = _random_state(n_words=80, k=3)
+    founders = _founders(25, np.arange(70, 80), 80)
+    span = 400
+    ordinals = np.arange(state.documents_learned - span, state.documents_learned - span + 25)
+    arrival = np.random.default_rng(2).uniform(-60.0, -30.0, size=25)
+    pooled = np.asarray(founders.sum(axis=0)).ravel()
+    total = int(pooled.sum())
+    coefficient = gammaln(total + 1) - gammaln(pooled + 1).sum()
+    beta = state.config.word_pseudocount
+    marginal = dirichlet_multinomial.logpmf(pooled, np.full(80, beta), total) - coefficient
+    weight = 25 / span
+    expected = (
+        marginal
+        + 25 * np.log(weight)
+        + (span - 25) * np.log1p(-weight)
+        - arrival.sum()
+        - 0.5 * np.log(span)
+    )
+    ours = birth_log_bayes_factor(state, founders, ordinals, arrival)
+    assert ours == pytest.approx(float(expected), rel=1e-10)
+    # NaN arrival scores fall back to the current mixture (what a state of before holds).
+    assert birth_log_bayes_factor(state, founders, ordinals, np.full(25, np.nan)) == pytest.approx(
+        birth_log_bayes_factor(state, founders, ordinals), rel=1e-12
+    )
+
+
+def test_the_buffer_keeps_each_documents_score_at_arrival():
+    """A buffered document carries log p(d) under the mixture before the model learned it
+    (scipy's logsumexp over the parameters of a copy taken before the unit), not under the
+    mixture that has since absorbed it."""
+    stream = TopicStream(4, seed=7)
+    config = MixtureConfig(n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
+    learner = OnlineLearner(config, seed=0)
+    _learn(learner, stream.messages(stream.labels(2560, [0, 1, 2])))
+    before = learner.state.copy()
+    already = learner.state.evidence.buffer_ordinals.size
+    unit = stream.messages(stream.labels(256, [3]))
+    learner.learn(unit)
+    evidence = learner.state.evidence
+    fresh = evidence.buffer_ordinals >= before.documents_learned
+    assert fresh.sum() >= 100 and evidence.buffer_log_lik.size >= already + fresh.sum() - 500
+    counts = count_texts(unit, before.tokenizer, before.vocabulary, grow=True).counts
+    before.ensure_capacity()
+    before.touch()
+    params = before.parameters()
+    log_p = logsumexp(np.asarray(counts @ params.log_word_prob) + params.log_weights, axis=1)
+    rows = evidence.buffer_ordinals[fresh] - before.documents_learned
+    np.testing.assert_allclose(evidence.buffer_log_lik[fresh], log_p[rows], rtol=1e-9)
+    now = learner.state.parameters()
+    log_p_now = logsumexp(np.asarray(counts @ now.log_word_prob) + now.log_weights, axis=1)
+    assert (log_p_now[rows] - log_p[rows]).mean() > 1.0  # the unit taught the model its words
+
+
+def test_two_new_topics_at_once_are_born_at_one_decision():
+    """Two topics appear together at message 4,000: both get a group at the same decision
+    (each component of the buffer's fit is tested on its own documents), not one a window
+    after the other."""
+    stream = TopicStream(6, seed=4)
+    labels = np.concatenate([stream.labels(4000, [0, 1, 2]), stream.labels(4000, [0, 1, 2, 3, 4])])
+    texts = stream.messages(labels)
+    learner = OnlineLearner(MixtureConfig(n_groups=3, lifecycle=LIFECYCLE_ON), seed=0)
+    events = _learn(learner, texts)
+    births = [e for e in events if e.kind == BIRTH]
+    assert len(births) == 2
+    assert births[0].position == births[1].position <= 5500
+    later = np.arange(6000, 8000)
+    routed = learner.state.group_ids[route_texts(learner.state, [texts[i] for i in later]).group]
+    for topic in (3, 4):
+        ids, hits = np.unique(routed[labels[later] == topic], return_counts=True)
+        assert ids[hits.argmax()] in {b.groups[0] for b in births}
+        assert hits.max() / hits.sum() >= 0.9
+
+
+def test_the_warm_up_documents_start_each_groups_typicality():
+    """Right after the warm-up fit every group's typicality holds its warm-up documents: the
+    count, mean and spread of their per-token log-likelihood under their MAP group, as the
+    routing path reports it for the same documents."""
+    stream = TopicStream(3, seed=8)
+    texts = stream.messages(stream.labels(1000, [0, 1, 2]))
+    config = MixtureConfig(n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
+    learner = OnlineLearner(config, seed=0)
+    learner.learn(texts)
+    state = learner.state
+    assert state.warmed_up and state.evidence is not None
+    routed = route_texts(state, texts)
+    for g in range(3):
+        mine = routed.log_likelihood_per_token[routed.group == g]
+        assert state.evidence.typical_weight[g] == pytest.approx(mine.size)
+        assert state.evidence.typical_mean()[g] == pytest.approx(mine.mean(), rel=1e-9)
+        assert state.evidence.typical_std()[g] == pytest.approx(mine.std(), rel=1e-6)
+
+
 # ---- configuration ---------------------------------------------------------------------------
 def test_lifecycle_settings_are_validated_and_nested():
     with pytest.raises(ConfigError, match=r"lifecycle\.novelty_z"):
@@ -226,6 +323,27 @@ def test_state_bytes_keep_ids_and_evidence_and_read_version_1():
     np.testing.assert_array_equal(
         route_texts(read, texts[:50]).posterior, route_texts(fresh.state, texts[:50]).posterior
     )
+
+
+def test_a_buffer_saved_without_arrival_scores_reads_them_as_unknown():
+    """Version-2 bytes written before the arrival scores were kept: the buffer loads with
+    NaN scores (the birth test then scores those documents under the current mixture)."""
+    stream = TopicStream(4, seed=5)
+    labels = np.concatenate([stream.labels(2600, [0, 1, 2]), stream.labels(300, [3])])
+    config = MixtureConfig(n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
+    learner = OnlineLearner(config, seed=0)
+    _learn(learner, stream.messages(labels))
+    data = state_to_bytes(learner.state)
+    with np.load(io.BytesIO(data[42:]), allow_pickle=False) as archive:
+        arrays = {name: archive[name] for name in archive.files if name != "life.buffer_log_lik"}
+    buffer = io.BytesIO()
+    np.savez(buffer, allow_pickle=False, **arrays)
+    payload = buffer.getvalue()
+    older = struct.pack("<8sH32s", MAGIC, 2, hashlib.sha256(payload).digest()) + payload
+    read = state_from_bytes(older)
+    size = learner.state.evidence.buffer_ordinals.size
+    assert size > 0 and read.evidence.buffer_log_lik.shape == (size,)
+    assert np.isnan(read.evidence.buffer_log_lik).all()
 
 
 def test_the_lifecycle_is_a_function_of_the_stream():
