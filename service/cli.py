@@ -468,9 +468,14 @@ def cmd_models(args: argparse.Namespace) -> int:
     client = ApiClient(args.api or default_api_url())
     if args.action == "list":
         for model in client.get("/models")["models"]:
+            learned = (
+                f"{model['documents_learned']} documents learned"
+                if model["warmed_up"]
+                else model["status"]  # "warming up: N of M tokens buffered (...)"
+            )
             print(
-                f"{model['name']}\tversion {model['version']}\t"
-                f"{model['documents_learned']} documents learned\t{model['n_groups']} groups"
+                f"{model['name']}\tversion {model['version']}\t{learned}\t"
+                f"{model['n_groups']} groups"
             )
     elif args.action == "create":
         try:

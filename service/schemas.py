@@ -201,7 +201,13 @@ class RouteResult(BaseModel):
     unknown_tokens: int
     review: bool = Field(description="A person should look at this routing decision.")
     review_reasons: list[
-        Literal["low_posterior", "no_known_words", "mostly_unknown_words", "atypical"]
+        Literal[
+            "low_posterior",
+            "no_known_words",
+            "mostly_unknown_words",
+            "atypical",
+            "provisional_model",
+        ]
     ]
     queued: bool = Field(
         default=False,
@@ -253,6 +259,15 @@ class ModelOut(BaseModel):
     version: int = Field(description="0 until the first checkpoint.")
     documents_learned: int
     warmed_up: bool
+    provisional: bool = Field(
+        default=False,
+        description="True while routing answers come from a provisional fit of the warm-up.",
+    )
+    status: str = Field(
+        default="",
+        description='"warmed up", or the warm-up\'s progress: "warming up: N of M tokens '
+        'buffered (...)".',
+    )
     weights: list[float]
     review_threshold: float
     created: float

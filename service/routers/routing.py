@@ -52,6 +52,7 @@ def build_results(
     threshold = loaded.review_threshold
     unknown_share = loaded.review_unknown_share
     labels = loaded.labels
+    provisional = loaded.provisional
     results = []
     for i, doc in enumerate(documents):
         g = groups[i]
@@ -65,6 +66,8 @@ def build_results(
             reasons.append("mostly_unknown_words")
         if flagged[i]:
             reasons.append("atypical")
+        if provisional:
+            reasons.append("provisional_model")
         label = labels.get(g)
         value = llpt[i]
         stream_id = stream_ids[i] if stream_ids is not None else None
@@ -169,7 +172,10 @@ async def parse_route_body(request: Request) -> RouteIn:
     openapi_extra={"requestBody": _request_body_schema()},
     responses={
         404: {"model": Problem, "description": "Unknown model"},
-        409: {"model": Problem, "description": "Model still in warm-up"},
+        409: {
+            "model": Problem,
+            "description": "Model in warm-up with too few documents for a provisional fit",
+        },
         413: {"model": Problem, "description": "Too many documents or a text too long"},
         503: {"model": Problem, "description": "Redis unreachable and model not in memory"},
     },
@@ -178,7 +184,9 @@ async def route_documents(model: str, request: Request) -> Response:
     """MAP group, posterior, margin, typicality and ``review`` for each document.
 
     Answers from the parameters in memory; with ``learn: true`` the documents are also queued.
-    When Redis is unreachable the answer carries ``degraded: true`` and the header
+    While the model warms up, a provisional fit of the documents buffered so far answers,
+    every result marked for review with ``provisional_model``. When Redis is unreachable the
+    answer carries ``degraded: true`` and the header
     ``X-Mixroute-Degraded``; documents are then not queued (``queued: false``).
     """
     body = await parse_route_body(request)
