@@ -18,7 +18,7 @@ from starlette.routing import Route as StarletteRoute
 from service.app import DEGRADED_HEADER
 from service.logs import request_metadata
 from service.routers import COMMON_RESPONSES, check_documents, get_runtime, loads_strict
-from service.runtime import LoadedModel, RedisUnavailableError, ServiceRuntime
+from service.runtime import LoadedModel, ModelNotReadyError, RedisUnavailableError, ServiceRuntime
 from service.schemas import DocumentIn, Problem, RouteIn, RouteOut
 
 router = APIRouter(tags=["routing"], responses=COMMON_RESPONSES)
@@ -97,15 +97,21 @@ def route_now(runtime: ServiceRuntime, model: str, body: RouteIn) -> tuple[dict[
     check_documents(documents, runtime.settings)
     loaded = runtime.model(model)
     texts = [doc.text for doc in documents]
-    routing, atypical = runtime.route(loaded, texts)
+    try:
+        routing, atypical = runtime.route(loaded, texts)
+    except ModelNotReadyError as exc:
+        if not body.learn:
+            raise
+        # too early to answer, but the documents are what the warm-up waits for: queue them
+        # (a client that only routes with learn: true would otherwise never warm a model up)
+        queued_ids = _queue(runtime, loaded, documents)
+        queued = sum(1 for s in queued_ids if s is not None)
+        raise ModelNotReadyError(f"{exc}; {queued} documents queued for learning") from None
     stream_ids: list[str | None] | None = None
     notice: str | None = None
     if body.learn:
-        ids = [doc.id for doc in documents]
         try:
-            metadata = request_metadata(len(texts))
-            result = runtime.call(lambda: loaded.store.enqueue(texts, ids=ids, metadata=metadata))
-            stream_ids = list(result.stream_ids)
+            stream_ids = _queue(runtime, loaded, documents)
         except RedisUnavailableError:
             notice = "Redis is unreachable: the documents were routed but NOT queued for learning"
     degraded = not runtime.redis_ok
@@ -125,6 +131,17 @@ def route_now(runtime: ServiceRuntime, model: str, body: RouteIn) -> tuple[dict[
         "results": build_results(loaded, documents, routing, atypical, body.top, stream_ids),
     }
     return body_out, degraded
+
+
+def _queue(
+    runtime: ServiceRuntime, loaded: LoadedModel, documents: list[DocumentIn]
+) -> list[str | None]:
+    """Queue documents for learning; their stream ids (None for an id queued before)."""
+    texts = [doc.text for doc in documents]
+    ids = [doc.id for doc in documents]
+    metadata = request_metadata(len(texts))
+    result = runtime.call(lambda: loaded.store.enqueue(texts, ids=ids, metadata=metadata))
+    return list(result.stream_ids)
 
 
 def _request_body_schema() -> dict[str, Any]:
@@ -174,7 +191,8 @@ async def parse_route_body(request: Request) -> RouteIn:
         404: {"model": Problem, "description": "Unknown model"},
         409: {
             "model": Problem,
-            "description": "Model in warm-up with too few documents for a provisional fit",
+            "description": "Model in warm-up with too few documents for a provisional fit "
+            "(with learn: true the documents are queued all the same)",
         },
         413: {"model": Problem, "description": "Too many documents or a text too long"},
         503: {"model": Problem, "description": "Redis unreachable and model not in memory"},
