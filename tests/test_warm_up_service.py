@@ -27,6 +27,7 @@ from service.cli import build_parser, cmd_models
 from service.settings import Settings
 from service.testing import QUICK_OPTIONS, wait_until
 from state.connection import redis_from_url
+from state.keys import ModelKeys
 from tests.worker_support import (
     WorkerThread,
     assert_same_state,
@@ -140,6 +141,23 @@ def test_the_api_answers_provisionally_from_the_hundredth_message(
         answer = api.post(f"/models/{model_name}/route", json=probe)
         assert answer.status_code == 200
         assert not any("provisional_model" in r["review_reasons"] for r in answer.json()["results"])
+
+
+def test_route_with_learn_queues_its_documents_before_the_model_can_answer(
+    api: TestClient, redis_client: redis.Redis, model_name: str
+) -> None:
+    # An intake system that only calls route with learn: true must still warm a model up.
+    config = {"n_groups": 3, "warmup_documents": 60, "n_restarts": 1}
+    made = api.post("/models", json={"name": model_name, "config": config})
+    assert made.status_code == 201, made.text
+    documents = [{"id": f"early-{i}", "text": t} for i, t in enumerate(ferry_texts(5, seed=3))]
+    early = api.post(f"/models/{model_name}/route", json={"documents": documents, "learn": True})
+    assert early.status_code == 409
+    assert "5 documents queued" in early.json()["detail"], early.json()
+    assert redis_client.xlen(ModelKeys(model_name).docs) == 5
+    again = api.post(f"/models/{model_name}/route", json={"documents": documents, "learn": True})
+    assert again.status_code == 409 and "0 documents queued" in again.json()["detail"]
+    assert redis_client.xlen(ModelKeys(model_name).docs) == 5  # the ids were queued already
 
 
 def _start_worker(redis_url: str, model: str, name: str) -> subprocess.Popen[bytes]:
