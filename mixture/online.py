@@ -12,9 +12,15 @@ more than ``batch_size`` documents is applied as consecutive units of it. The up
 touches only the rows of the words in the batch plus O(K) numbers: the uniform shrink by
 (1 - eta) is a change of the running scale factor (see mixture.stats).
 
-Cold start: stepwise EM from random parameters is fragile, so the first ``warmup_documents``
-are buffered and fitted by batch EM with seeded restarts; stepwise learning then continues from
-those statistics with a step counter chosen so the next batch weighs as in a running average.
+Cold start: stepwise EM from random parameters is fragile, so the first documents are buffered
+until they hold ``warmup_tokens`` tokens (or ``warmup_documents`` documents, a cap) and fitted
+by batch EM with seeded restarts; stepwise learning then continues from those statistics with a
+step counter chosen so the next batch weighs as in a running average. Meanwhile a provisional
+fit of the buffer (at ``provisional_documents`` documents with tokens, then at every doubling)
+is kept in ``state.provisional`` for routing only. Each fit sees exactly the buffered prefix:
+the texts are cut at the document that reaches a fit and the vocabulary grows only with the
+texts before the cut, so the fits (and the state) do not depend on how the stream was cut
+into calls.
 """
 
 from __future__ import annotations
@@ -47,6 +53,7 @@ class BatchReport:
     new_words: int = 0
     steps: int = 0
     events: list[GroupEvent] = field(default_factory=list)  # births, merges, retirements
+    provisional_fits: int = 0  # provisional fits of the warm-up buffer
 
     def merge(self, other: BatchReport) -> BatchReport:
         # Token-weighted mean of the parts that measured a log-likelihood.
@@ -67,6 +74,7 @@ class BatchReport:
             new_words=self.new_words + other.new_words,
             steps=self.steps + other.steps,
             events=[*self.events, *other.events],
+            provisional_fits=self.provisional_fits + other.provisional_fits,
         )
 
 
@@ -218,23 +226,20 @@ class OnlineLearner:
         """Learn from texts in order; returns what was done.
 
         While warming up the documents are buffered (their counts, in the state, so that a
-        checkpoint keeps them); the buffer is fitted with batch EM once it holds
-        ``max(warmup_documents, n_groups)`` documents with tokens.
+        checkpoint keeps them); the buffer is fitted with batch EM at the first document that
+        ends the warm-up (see :func:`warm_up_progress`), and provisionally before that.
         """
         state = self.state
+        report = BatchReport(warmed_up=state.warmed_up)
+        if not state.warmed_up:
+            cut = self._warm_up(texts, report)
+            if cut == len(texts):
+                return report
+            texts = texts[cut:]
         batch = count_texts(texts, state.tokenizer, state.vocabulary, grow=True)
         state.ensure_capacity()
-        report = BatchReport(new_words=batch.new_words, warmed_up=state.warmed_up)
+        report.new_words += batch.new_words
         counts = batch.counts
-        if not state.warmed_up:
-            cut = self._buffer(counts, report)
-            if cut is None or cut == len(texts):
-                return report
-            # Warm-up pruning may have retired or renumbered words: count the rest anew.
-            rest = count_texts(texts[cut:], state.tokenizer, state.vocabulary, grow=True)
-            state.ensure_capacity()
-            report.new_words += rest.new_words
-            counts = rest.counts
         size = self.config.batch_size
         lifecycle = self.config.lifecycle.enabled
         for start in range(0, counts.shape[0], size):
@@ -252,40 +257,162 @@ class OnlineLearner:
             report.pruned_words += state.prune_vocabulary()
         return report
 
-    def _buffer(self, counts: sp.csr_matrix, report: BatchReport) -> int | None:
-        """Add rows to the warm-up buffer and fit it when full.
+    def _warm_up(self, texts: Sequence[str], report: BatchReport) -> int:
+        """Buffer texts up to the end of the warm-up, fitting where a fit is due.
 
-        Returns the number of rows consumed when the fit happened, else None.
+        Returns the number of texts consumed (all of them unless the warm-up ended).
         """
         state = self.state
+        tokenizer = state.tokenizer
+        # Tokens each text will count (count_texts with grow=True counts every token), so the
+        # fits' cuts are known before any word of a later text enters the vocabulary.
+        lengths = [len(tokenizer.tokenize(text)) for text in texts]
+        progress = warm_up_progress(state)
+        documents, tokens = progress.documents, progress.tokens
+        start = 0
+        for index, length in enumerate(lengths):
+            if not length:
+                continue
+            documents += 1
+            tokens += length
+            final = _warm_up_ends(self.config, documents, tokens)
+            if not final and not _provisional_due(self.config, documents):
+                continue
+            self._buffer(texts[start : index + 1], report)
+            start = index + 1
+            if final:
+                warmup, generation = state.pending, state.vocabulary.generation
+                fit_pending(state)
+                if self.config.lifecycle.enabled and state.vocabulary.generation == generation:
+                    seed_typicality(state, warmup)  # (a compaction renumbered the ids: start empty)
+                state.provisional = None
+                report.warmed_up = True
+                return start
+            self._fit_provisional()
+            report.provisional_fits += 1
+        if start < len(texts):
+            self._buffer(texts[start:], report)
+        return len(texts)
+
+    def _buffer(self, texts: Sequence[str], report: BatchReport) -> None:
+        """Count texts with a growing vocabulary and add them to the warm-up buffer."""
+        state = self.state
+        batch = count_texts(texts, state.tokenizer, state.vocabulary, grow=True)
+        state.ensure_capacity()
         capacity = state.capacity
-        need = max(self.config.warmup_documents, self.config.n_groups)
         pending = _widen(
             state.pending if state.pending is not None else sp.csr_matrix((0, capacity)), capacity
         )
-        counts = _widen(counts, capacity)
-        have = int(np.count_nonzero(np.diff(pending.indptr)))
-        filled = np.cumsum(np.diff(counts.indptr) > 0) + have
-        if filled.size and filled[-1] >= need:
-            cut = int(np.searchsorted(filled, need)) + 1
-        else:
-            cut = counts.shape[0]
-        taken = counts[:cut]
+        taken = _widen(batch.counts, capacity)
         state.pending = sp.vstack([pending, taken], format="csr")
         state.documents_learned += taken.shape[0]
-        lengths = np.asarray(taken.sum(axis=1)).ravel()
+        lengths = np.diff(taken.indptr)
         report.documents += taken.shape[0]
-        report.tokens += int(lengths.sum())
+        report.tokens += int(taken.sum())
         report.no_evidence += int((lengths == 0).sum())
+        report.new_words += batch.new_words
         state.touch()
-        if have + int((lengths > 0).sum()) < need:
-            return None
-        warmup, generation = state.pending, state.vocabulary.generation
-        fit_pending(state)
-        if self.config.lifecycle.enabled and state.vocabulary.generation == generation:
-            seed_typicality(state, warmup)  # (a compaction renumbered the ids: start empty)
-        report.warmed_up = True
-        return cut
+
+    def _fit_provisional(self) -> None:
+        """Batch EM on a copy of the buffer, kept in ``state.provisional`` for routing."""
+        state = self.state
+        state.provisional = None  # the copy must not carry the previous fit
+        trial = state.copy()
+        trial.metadata = {}
+        fit_pending(trial)
+        state.provisional = trial
+        state.touch()
+
+
+@dataclass(frozen=True)
+class WarmUpProgress:
+    """Where a state stands in its warm-up (all zero-need once warmed up).
+
+    Attributes
+    ----------
+    documents, tokens : int
+        Documents with tokens, and tokens, in the warm-up buffer.
+    warmup_tokens, warmup_documents : int
+        The configuration's token target (0: none) and document cap.
+    provisional_documents : int
+        Documents with tokens at which provisional answers start (0: never).
+    warmed_up, provisional : bool
+        The warm-up fit is done; a provisional fit is there to route with.
+    """
+
+    documents: int
+    tokens: int
+    warmup_tokens: int
+    warmup_documents: int
+    provisional_documents: int
+    warmed_up: bool
+    provisional: bool
+
+    @property
+    def documents_until_provisional(self) -> int:
+        """Documents with tokens still needed before provisional answers (0 when routable)."""
+        if self.warmed_up or self.provisional or not self.provisional_documents:
+            return 0
+        return max(self.provisional_documents - self.documents, 0)
+
+    def describe(self) -> str:
+        """One line for people: "warming up: N of M tokens buffered (...)"."""
+        if self.warmed_up:
+            return "warmed up"
+        if self.warmup_tokens:
+            line = f"warming up: {self.tokens} of {self.warmup_tokens} tokens buffered"
+            line += f" ({self.documents} documents, at most {self.warmup_documents})"
+        else:
+            line = (
+                f"warming up: {self.documents} of {self.warmup_documents} documents buffered"
+                f" ({self.tokens} tokens)"
+            )
+        if self.provisional:
+            line += "; routing with a provisional fit"
+        elif self.provisional_documents:
+            line += (
+                f"; provisional routing after {self.provisional_documents} documents"
+                f" ({self.documents_until_provisional} more)"
+            )
+        return line
+
+
+def warm_up_progress(state: MixtureState) -> WarmUpProgress:
+    """The warm-up's progress of ``state`` (documents and tokens buffered, what is needed)."""
+    config = state.config
+    pending = state.pending
+    documents = tokens = 0
+    if pending is not None and pending.shape[0]:
+        documents = int(np.count_nonzero(np.diff(pending.indptr)))
+        tokens = round(float(pending.data.sum()))
+    return WarmUpProgress(
+        documents=documents,
+        tokens=tokens,
+        warmup_tokens=config.warmup_tokens,
+        warmup_documents=max(config.warmup_documents, config.n_groups),
+        provisional_documents=config.provisional_documents,
+        warmed_up=state.warmed_up,
+        provisional=state.provisional is not None,
+    )
+
+
+def _warm_up_ends(config: MixtureConfig, documents: int, tokens: int) -> bool:
+    """The warm-up ends with this document: the token target or the document cap is reached
+    (and there are at least as many documents as groups)."""
+    if documents < config.n_groups:
+        return False
+    if documents >= config.warmup_documents:
+        return True
+    return bool(config.warmup_tokens) and tokens >= config.warmup_tokens
+
+
+def _provisional_due(config: MixtureConfig, documents: int) -> bool:
+    """A provisional fit is due at P, 2P, 4P, ... documents with tokens (and n_groups or more)."""
+    first = config.provisional_documents
+    if not first or documents < max(first, config.n_groups) or documents % first:
+        return False
+    multiple = documents // first
+    return multiple & (multiple - 1) == 0
 
 
 def _widen(matrix: sp.csr_matrix, columns: int) -> sp.csr_matrix:

@@ -32,6 +32,7 @@ LOW_POSTERIOR = "low_posterior"
 NO_KNOWN_WORDS = "no_known_words"
 MOSTLY_UNKNOWN_WORDS = "mostly_unknown_words"
 ATYPICAL = "atypical"
+PROVISIONAL_MODEL = "provisional_model"
 
 # name -> what it means, in words (the dashboard's text, the README's table)
 REVIEW_REASONS: dict[str, str] = {
@@ -39,6 +40,7 @@ REVIEW_REASONS: dict[str, str] = {
     NO_KNOWN_WORDS: "no word of the message is in the vocabulary; the posterior is the prior",
     MOSTLY_UNKNOWN_WORDS: "most of the message's words are unknown to the model",
     ATYPICAL: "far less typical of its group than the group's recent messages",
+    PROVISIONAL_MODEL: "answered by a provisional fit of the first messages (warm-up not done)",
 }
 
 
@@ -47,6 +49,8 @@ def review_reasons(
     threshold: float,
     unknown_share: float,
     atypical: np.ndarray | None = None,
+    *,
+    provisional: bool = False,
 ) -> list[list[str]]:
     """The review reasons of every routed document, in the table's order.
 
@@ -60,6 +64,8 @@ def review_reasons(
         known words has ``no_known_words`` instead).
     atypical : ndarray of bool (n,), optional
         The typicality rule's verdicts (the API keeps the statistics; offline has none).
+    provisional : bool
+        The answers come from a provisional fit of the warm-up buffer: every one is flagged.
 
     Returns
     -------
@@ -83,6 +89,8 @@ def review_reasons(
             reasons.append(MOSTLY_UNKNOWN_WORDS)
         if flagged[i]:
             reasons.append(ATYPICAL)
+        if provisional:
+            reasons.append(PROVISIONAL_MODEL)
         answers.append(reasons)
     return answers
 

@@ -81,6 +81,8 @@ def state_to_bytes(state: MixtureState) -> bytes:
         arrays["pending.indices"] = pending.indices.astype(np.int64)
         arrays["pending.indptr"] = pending.indptr.astype(np.int64)
         arrays["pending.shape"] = np.asarray(pending.shape, dtype=np.int64)
+    if state.provisional is not None:  # a whole state of its own (never nested further)
+        arrays["provisional"] = np.frombuffer(state_to_bytes(state.provisional), dtype=np.uint8)
     arrays["header"] = np.frombuffer(json.dumps(header).encode("utf-8"), dtype=np.uint8)
     buffer = io.BytesIO()
     np.savez(buffer, allow_pickle=False, **arrays)
@@ -187,4 +189,9 @@ def _build(header: dict[str, Any], arrays: dict[str, np.ndarray], version: int) 
         state.evidence = GroupEvidence.from_arrays(life, k)
     if not (state.running_scale > 0 and state.weight_square_sum > 0):
         raise StateFormatError("state scale factors must be positive")
+    if "provisional" in arrays:
+        provisional = state_from_bytes(arrays["provisional"].tobytes())
+        if not provisional.warmed_up or provisional.provisional is not None:
+            raise StateFormatError("a provisional fit must be a fitted state of its own")
+        state.provisional = provisional
     return state

@@ -140,6 +140,8 @@ class MixtureState:
     watermark: str = ""
     metadata: dict[str, Any] = field(default_factory=dict)
     pending: sp.csr_matrix | None = None  # warm-up buffer of counts
+    # While warming up: a batch fit of the buffer so far (its own vocabulary), routing only.
+    provisional: MixtureState | None = None
     # Stable group names: position -> id (None: 0..K-1); a birth takes next_group_id (-1: K),
     # and an id is never given to another group, even after its group was retired or merged.
     group_ids: np.ndarray | None = None

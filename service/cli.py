@@ -567,6 +567,8 @@ def _learned_or_warming(model: dict[str, Any]) -> str:
     """Documents learned, or the warm-up's progress while nothing can be routed yet."""
     if model.get("warmed_up", True):
         return f"{model['documents_learned']:,} documents learned"
+    if model.get("status"):  # "warming up: N of M tokens buffered (...)"
+        return str(model["status"])
     target = model.get("config", {}).get("warmup_documents")
     of = f" of {target:,}" if isinstance(target, int) else ""
     return f"warming up: {model['documents_learned']:,}{of} buffered"

@@ -22,7 +22,10 @@ When routing answers ``review: true``
 * ``mostly_unknown_words``: more than ``review_unknown_share`` (half) of its tokens are unknown,
   so the answer rests on a few words (typical of spam and of a new topic);
 * ``atypical``: the document is far less typical of its group than the group's recent
-  documents, by the rule below.
+  documents, by the rule below;
+* ``provisional_model``: the model is still in its warm-up and answered with the provisional
+  fit of the documents buffered so far (refitted at every doubling, so a group's number may
+  mean another topic after the next refit). The typicality rule is silent for such answers.
 
 The "far less typical" review rule
 ----------------------------------
@@ -53,6 +56,7 @@ from typing import Any, TypeVar
 import numpy as np
 import redis
 
+from mixture.online import warm_up_progress
 from mixture.routing import Routing, route_texts
 from mixture.serialize import state_from_bytes
 from mixture.stats import MixtureState
@@ -78,7 +82,7 @@ class RedisUnavailableError(Exception):
 
 
 class ModelNotReadyError(Exception):
-    """The model exists but has no checkpoint yet (still buffering its warm-up documents)."""
+    """The model exists but cannot route yet (too few warm-up documents for a provisional fit)."""
 
 
 class GroupNotFoundError(LookupError):
@@ -215,14 +219,37 @@ class LoadedModel:
     def n_groups(self) -> int:
         return self.info.config.n_groups
 
+    @property
+    def provisional(self) -> bool:
+        """True while the answers come from the warm-up's provisional fit."""
+        state = self.state
+        return state is not None and not state.warmed_up and state.provisional is not None
+
     def require_state(self) -> MixtureState:
-        """The state to route with, or :class:`ModelNotReadyError`."""
-        if self.state is None or not self.state.warmed_up:
-            raise ModelNotReadyError(
-                f"model {self.name!r} has no checkpoint yet: it learns its first "
-                f"{self.info.config.warmup_documents} documents (warm-up) before it can route"
+        """The state to route with (the provisional fit while warming up), or
+        :class:`ModelNotReadyError` saying how many more documents are needed."""
+        state = self.state
+        if state is not None and state.warmed_up:
+            return state
+        if state is not None and state.provisional is not None:
+            return state.provisional
+        config = self.info.config
+        if state is None:
+            buffered = "is in its warm-up with no checkpoint yet"
+            have = 0
+        else:
+            progress = warm_up_progress(state)
+            buffered = f"is in its warm-up ({progress.describe()})"
+            have = progress.documents
+        if config.provisional_documents:
+            need = max(config.provisional_documents, config.n_groups)
+            more = (
+                f"it answers with a provisional fit once {need} documents are learned: "
+                f"{max(need - have, 1)} more needed"
             )
-        return self.state
+        else:
+            more = "provisional answers are off (provisional_documents = 0)"
+        raise ModelNotReadyError(f"model {self.name!r} {buffered}; {more}")
 
     def check_group(self, group: int) -> None:
         if not 0 <= group < self.n_groups:
@@ -328,6 +355,8 @@ class ServiceRuntime:
             state = state_from_bytes(current.data)
             if state.warmed_up:
                 state.parameters()  # derive once here, not inside the first request
+            elif state.provisional is not None:
+                state.provisional.parameters()
             version, digest = current.version, current.checksum
         if previous is not None and previous.typicality.n_groups == info.config.n_groups:
             typicality = previous.typicality
@@ -531,6 +560,8 @@ class ServiceRuntime:
         """Route with the model's in-memory state; also return the atypical flags."""
         state = loaded.require_state()
         routing = route_texts(state, texts)
+        if loaded.provisional:  # groups of a provisional fit: no typicality to judge or keep
+            return routing, np.zeros(routing.group.shape[0], dtype=bool)
         atypical = loaded.typicality.check_and_update(
             routing.group,
             routing.log_likelihood_per_token,

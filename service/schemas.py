@@ -264,6 +264,15 @@ class ModelOut(BaseModel):
     version: int = Field(description="0 until the first checkpoint.")
     documents_learned: int
     warmed_up: bool
+    provisional: bool = Field(
+        default=False,
+        description="True while routing answers come from a provisional fit of the warm-up.",
+    )
+    status: str = Field(
+        default="",
+        description='"warmed up", or the warm-up\'s progress: "warming up: N of M tokens '
+        'buffered (...)".',
+    )
     weights: list[float]
     review_threshold: float
     created: float

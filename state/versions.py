@@ -81,6 +81,7 @@ def state_summary(state: MixtureState) -> dict[str, Any]:
         "documents_learned": int(state.documents_learned),
         "weights": [float(w) for w in weights],
         "warmed_up": bool(state.warmed_up),
+        "provisional": bool(not state.warmed_up and state.provisional is not None),
     }
     entries_read = state.metadata.get("entries_read")
     if isinstance(entries_read, int) and not isinstance(entries_read, bool):

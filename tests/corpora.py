@@ -405,38 +405,70 @@ class StepwisePass:
         MAP group of every document under the state at the end of the pass.
     warmup_tokens : int
         Tokens in the documents the warm-up fit saw.
+    warmup_documents : int
+        Documents the warm-up fit saw.
+    order : numpy.ndarray
+        The pass's order of the corpus (document indices).
+    provisional : dict of int to numpy.ndarray
+        For each provisional fit, keyed by the documents it saw: the MAP group of every
+        document under it.
     """
 
     warmup: np.ndarray
     final: np.ndarray
     warmup_tokens: int
+    warmup_documents: int = 0
+    order: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+    provisional: dict[int, np.ndarray] = field(default_factory=dict)
 
 
 def stepwise_pass(
-    corpus: LabelledCorpus, seed: int = 0, warmup_documents: int = STEPWISE_WARMUP
+    corpus: LabelledCorpus,
+    seed: int = 0,
+    warmup_documents: int = STEPWISE_WARMUP,
+    warmup_tokens: int = 0,
+    provisional_documents: int = 0,
 ) -> StepwisePass:
-    """One pass of the online learner in shuffled order, scored after the warm-up and at the end."""
+    """One pass of the online learner in shuffled order, scored after the warm-up and at the end.
+
+    By default the warm-up is ``warmup_documents`` documents (no token rule, no provisional
+    fits: the setting the figures in tests/test_corpora.py were measured with); pass
+    ``warmup_tokens`` and ``provisional_documents`` for the token-based warm-up.
+    """
     from mixture.config import MixtureConfig
     from mixture.online import BatchReport, OnlineLearner
     from mixture.routing import route_texts
 
     class WatchedLearner(OnlineLearner):
-        """Keeps a copy of the state right after the warm-up fit (nothing else changes)."""
+        """Keeps a copy of the state right after the warm-up fit, and every provisional fit."""
 
         warmup_state = None
         warmup_tokens = 0
+        provisional_states: dict[int, Any]  # set per pass below
 
-        def _buffer(self, counts: Any, report: BatchReport) -> int | None:
+        def _warm_up(self, texts: Any, report: BatchReport) -> int:
             tokens_before = report.tokens
-            cut = super()._buffer(counts, report)
+            cut = super()._warm_up(texts, report)
             self.warmup_tokens += report.tokens - tokens_before
-            if cut is not None:
+            if self.state.warmed_up and self.warmup_state is None:
                 self.warmup_state = self.state.copy()
             return cut
 
-    config = MixtureConfig(n_groups=len(corpus.label_names), warmup_documents=warmup_documents)
+        def _fit_provisional(self) -> None:
+            super()._fit_provisional()
+            fitted = self.state.provisional
+            assert fitted is not None
+            self.provisional_states[fitted.documents_learned] = fitted.copy()
+
+    config = MixtureConfig(
+        n_groups=len(corpus.label_names),
+        warmup_documents=warmup_documents,
+        warmup_tokens=warmup_tokens,
+        provisional_documents=provisional_documents,
+    )
     order = np.random.default_rng(seed).permutation(len(corpus))
     learner = WatchedLearner(config, seed=seed)
+    learner.provisional_states = {}
     for start in range(0, len(order), STEPWISE_CHUNK):
         learner.learn([corpus.texts[i] for i in order[start : start + STEPWISE_CHUNK]])
     if learner.warmup_state is None:
@@ -445,6 +477,12 @@ def stepwise_pass(
         warmup=route_texts(learner.warmup_state, corpus.texts).group,
         final=route_texts(learner.state, corpus.texts).group,
         warmup_tokens=learner.warmup_tokens,
+        warmup_documents=learner.warmup_state.documents_learned,
+        order=order,
+        provisional={
+            documents: route_texts(state, corpus.texts).group
+            for documents, state in learner.provisional_states.items()
+        },
     )
 
 

@@ -297,7 +297,7 @@ def _as_version_1(data: bytes) -> bytes:
 def test_state_bytes_keep_ids_and_evidence_and_read_version_1():
     stream = TopicStream(3, seed=5)
     texts = stream.messages(stream.labels(2600, [0, 1, 2]))
-    config = MixtureConfig(n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
+    config = MixtureConfig(n_groups=3, n_restarts=1, warmup_documents=1000, lifecycle=LIFECYCLE_ON)
     learner = OnlineLearner(config, seed=0)
     _learn(learner, texts)
     state = learner.state
@@ -354,7 +354,7 @@ def test_the_lifecycle_is_a_function_of_the_stream():
     stream = TopicStream(5, seed=6)
     labels = np.concatenate([stream.labels(2500, [0, 1, 2]), stream.labels(2500, [0, 1, 2, 3])])
     texts = stream.messages(labels)
-    config = MixtureConfig(n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
+    config = MixtureConfig(n_groups=3, n_restarts=1, warmup_documents=1000, lifecycle=LIFECYCLE_ON)
     whole = OnlineLearner(config, seed=0)
     events = _learn(whole, texts)
     assert any(e.kind == BIRTH for e in events)
@@ -453,7 +453,9 @@ def test_vocabulary_pruning_keeps_the_buffer_on_the_vocabulary():
     sit in the buffer; the buffer follows (no retired or out-of-range word ids)."""
     stream = TopicStream(5, seed=3)
     labels = np.concatenate([stream.labels(2500, [0, 1, 2]), stream.labels(4000, [0, 1, 2, 3])])
-    config = MixtureConfig(n_groups=3, vocabulary_limit=400, lifecycle=LIFECYCLE_ON)
+    config = MixtureConfig(
+        n_groups=3, vocabulary_limit=400, warmup_documents=1000, lifecycle=LIFECYCLE_ON
+    )
     learner = OnlineLearner(config, seed=0)
     _learn(learner, stream.messages(labels))
     state = learner.state

@@ -167,6 +167,7 @@ class Worker:
         self._counts_known = True  # False before Redis 7 (no entries-added)
         self._report = BatchReport()
         self._documents_since_checkpoint = 0
+        self._fit_to_serve = False  # a warm-up fit (provisional or final) not yet checkpointed
         self._last_checkpoint = time.monotonic()
         self._last_arrival = time.monotonic()
         self._last_lease = 0.0
@@ -309,6 +310,7 @@ class Worker:
         self._gap_alerts.clear()
         self._report = BatchReport()
         self._documents_since_checkpoint = 0
+        self._fit_to_serve = False
         self._last_checkpoint = time.monotonic()
         return True
 
@@ -480,6 +482,7 @@ class Worker:
         self._pending.clear()
         self._dead.clear()
         self._gap_alerts.clear()
+        self._fit_to_serve = False
 
     # -- reading -----------------------------------------------------------------------------
     def _read_page(self) -> int:
@@ -667,7 +670,10 @@ class Worker:
                 # entries that carry no learning right after the unit are handled with it
                 while cut < len(pending.items) and not isinstance(pending.items[cut], str):
                     cut += 1
+            warming = not self.learner.state.warmed_up
             report = self.learner.learn(texts)  # type: ignore[arg-type]
+            if report.provisional_fits or (warming and report.warmed_up):
+                self._fit_to_serve = True  # a provisional or the warm-up fit: serve it soon
             self._report = self._report.merge(report)
             self._documents_since_checkpoint += len(texts)
             learned += len(texts)
@@ -703,7 +709,10 @@ class Worker:
     def _checkpoint_due(self) -> bool:
         if self.handled == self._committed and not self._dead and not self._gap_alerts:
             return False
-        if self._documents_since_checkpoint >= self.options.checkpoint_documents:
+        if (
+            self._fit_to_serve
+            or self._documents_since_checkpoint >= self.options.checkpoint_documents
+        ):
             return True
         return time.monotonic() - self._last_checkpoint >= self.options.checkpoint_seconds
 

@@ -49,7 +49,7 @@ def ready(runtime: Runtime) -> JSONResponse:
                 status = None
             if status is not None:
                 age = max(0.0, now - status.time)
-        routable = loaded.state is not None and loaded.state.warmed_up
+        routable = loaded.state is not None and (loaded.state.warmed_up or loaded.provisional)
         models.append(
             {
                 "name": name,

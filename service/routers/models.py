@@ -7,6 +7,7 @@ from typing import Any
 from fastapi import APIRouter, Response, status
 
 from mixture.config import MixtureConfig
+from mixture.online import warm_up_progress
 from service.errors import InvalidFieldError
 from service.routers import COMMON_RESPONSES, Runtime, StrictJsonRoute
 from service.runtime import LoadedModel, RedisUnavailableError, ServiceRuntime
@@ -36,6 +37,8 @@ def model_out(runtime: ServiceRuntime, loaded: LoadedModel, with_stream: bool) -
         "version": loaded.version,
         "documents_learned": int(state.documents_learned) if state is not None else 0,
         "warmed_up": bool(state is not None and state.warmed_up),
+        "provisional": loaded.provisional,
+        "status": _status(loaded),
         "weights": [float(w) for w in state.weights()] if state is not None else [1.0 / k] * k,
         "review_threshold": loaded.review_threshold,
         "created": loaded.info.created,
@@ -43,6 +46,19 @@ def model_out(runtime: ServiceRuntime, loaded: LoadedModel, with_stream: bool) -
         "options": loaded.info.options.to_dict(),
         "stream": _jsonable(stream),
     }
+
+
+def _status(loaded: LoadedModel) -> str:
+    """ "warmed up", or where the warm-up stands (tokens or documents buffered, of how many)."""
+    if loaded.state is None:
+        config = loaded.info.config
+        target = (
+            f"0 of {config.warmup_tokens} tokens buffered"
+            if config.warmup_tokens
+            else f"0 of {max(config.warmup_documents, config.n_groups)} documents buffered"
+        )
+        return f"warming up: {target} (no checkpoint yet)"
+    return warm_up_progress(loaded.state).describe()
 
 
 def _jsonable(value: Any) -> Any:

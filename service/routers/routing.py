@@ -19,7 +19,7 @@ from mixture.routing import posterior_entries, review_reasons
 from service.app import DEGRADED_HEADER
 from service.logs import request_metadata
 from service.routers import COMMON_RESPONSES, check_documents, get_runtime, loads_strict
-from service.runtime import LoadedModel, RedisUnavailableError, ServiceRuntime
+from service.runtime import LoadedModel, ModelNotReadyError, RedisUnavailableError, ServiceRuntime
 from service.schemas import DocumentIn, Problem, RouteIn, RouteOut
 
 router = APIRouter(tags=["routing"], responses=COMMON_RESPONSES)
@@ -39,7 +39,11 @@ def build_results(
     """Per-document answers as plain dicts (serialised without a second validation pass)."""
     posteriors = posterior_entries(routing.posterior, top)
     all_reasons = review_reasons(
-        routing, loaded.review_threshold, loaded.review_unknown_share, atypical
+        routing,
+        loaded.review_threshold,
+        loaded.review_unknown_share,
+        atypical,
+        provisional=loaded.provisional,
     )
     groups = routing.group.tolist()
     margins = routing.margin.tolist()
@@ -80,15 +84,21 @@ def route_now(runtime: ServiceRuntime, model: str, body: RouteIn) -> tuple[dict[
     check_documents(documents, runtime.settings)
     loaded = runtime.model(model)
     texts = [doc.text for doc in documents]
-    routing, atypical = runtime.route(loaded, texts)
+    try:
+        routing, atypical = runtime.route(loaded, texts)
+    except ModelNotReadyError as exc:
+        if not body.learn:
+            raise
+        # too early to answer, but the documents are what the warm-up waits for: queue them
+        # (a client that only routes with learn: true would otherwise never warm a model up)
+        queued_ids = _queue(runtime, loaded, documents)
+        queued = sum(1 for s in queued_ids if s is not None)
+        raise ModelNotReadyError(f"{exc}; {queued} documents queued for learning") from None
     stream_ids: list[str | None] | None = None
     notice: str | None = None
     if body.learn:
-        ids = [doc.id for doc in documents]
         try:
-            metadata = request_metadata(len(texts))
-            result = runtime.call(lambda: loaded.store.enqueue(texts, ids=ids, metadata=metadata))
-            stream_ids = list(result.stream_ids)
+            stream_ids = _queue(runtime, loaded, documents)
         except RedisUnavailableError:
             notice = "Redis is unreachable: the documents were routed but NOT queued for learning"
     degraded = not runtime.redis_ok
@@ -108,6 +118,17 @@ def route_now(runtime: ServiceRuntime, model: str, body: RouteIn) -> tuple[dict[
         "results": build_results(loaded, documents, routing, atypical, body.top, stream_ids),
     }
     return body_out, degraded
+
+
+def _queue(
+    runtime: ServiceRuntime, loaded: LoadedModel, documents: list[DocumentIn]
+) -> list[str | None]:
+    """Queue documents for learning; their stream ids (None for an id queued before)."""
+    texts = [doc.text for doc in documents]
+    ids = [doc.id for doc in documents]
+    metadata = request_metadata(len(texts))
+    result = runtime.call(lambda: loaded.store.enqueue(texts, ids=ids, metadata=metadata))
+    return list(result.stream_ids)
 
 
 def _request_body_schema() -> dict[str, Any]:
@@ -155,7 +176,11 @@ async def parse_route_body(request: Request) -> RouteIn:
     openapi_extra={"requestBody": _request_body_schema()},
     responses={
         404: {"model": Problem, "description": "Unknown model"},
-        409: {"model": Problem, "description": "Model still in warm-up"},
+        409: {
+            "model": Problem,
+            "description": "Model in warm-up with too few documents for a provisional fit "
+            "(with learn: true the documents are queued all the same)",
+        },
         413: {"model": Problem, "description": "Too many documents or a text too long"},
         503: {"model": Problem, "description": "Redis unreachable and model not in memory"},
     },
@@ -164,7 +189,9 @@ async def route_documents(model: str, request: Request) -> Response:
     """MAP group, posterior, margin, typicality and ``review`` for each document.
 
     Answers from the parameters in memory; with ``learn: true`` the documents are also queued.
-    When Redis is unreachable the answer carries ``degraded: true`` and the header
+    While the model warms up, a provisional fit of the documents buffered so far answers,
+    every result marked for review with ``provisional_model``. When Redis is unreachable the
+    answer carries ``degraded: true`` and the header
     ``X-Mixroute-Degraded``; documents are then not queued (``queued: false``).
     """
     body = await parse_route_body(request)

@@ -314,7 +314,7 @@ async function refresh() {
     $("version").textContent = `version ${model.version}`;
     $("version").dataset.version = String(model.version);
     $("learned").textContent = `${model.documents_learned} documents learned`;
-    notice(model.warmed_up ? "" : `Model ${model.name} is still in warm-up: no checkpoint yet.`);
+    notice(model.warmed_up ? "" : `Model ${model.name}: ${model.status}.`);
     drawChart(history.rows, alerts.alerts, labels);
     drawGroups(groups.groups);
     drawFlagged(flagged.documents, labels);
