@@ -40,6 +40,8 @@ from mixture.stats import MixtureState
 from mixture.vocabulary import Vocabulary
 from tests.lifecycle_streams import TopicStream
 
+# These streams were designed with the warm-up of 1,000 documents (before the token rule).
+OLD_WARM_UP = {"warmup_documents": 1000, "warmup_tokens": 0}
 LIFECYCLE_ON = LifecycleConfig(enabled=True)
 
 
@@ -199,7 +201,7 @@ def test_the_buffer_keeps_each_documents_score_at_arrival():
     (scipy's logsumexp over the parameters of a copy taken before the unit), not under the
     mixture that has since absorbed it."""
     stream = TopicStream(4, seed=7)
-    config = MixtureConfig(n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
+    config = MixtureConfig(**OLD_WARM_UP, n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
     learner = OnlineLearner(config, seed=0)
     _learn(learner, stream.messages(stream.labels(2560, [0, 1, 2])))
     before = learner.state.copy()
@@ -228,7 +230,9 @@ def test_two_new_topics_at_once_are_born_at_one_decision():
     stream = TopicStream(6, seed=4)
     labels = np.concatenate([stream.labels(4000, [0, 1, 2]), stream.labels(4000, [0, 1, 2, 3, 4])])
     texts = stream.messages(labels)
-    learner = OnlineLearner(MixtureConfig(n_groups=3, lifecycle=LIFECYCLE_ON), seed=0)
+    learner = OnlineLearner(
+        MixtureConfig(**OLD_WARM_UP, n_groups=3, lifecycle=LIFECYCLE_ON), seed=0
+    )
     events = _learn(learner, texts)
     births = [e for e in events if e.kind == BIRTH]
     assert len(births) == 2
@@ -247,7 +251,7 @@ def test_the_warm_up_documents_start_each_groups_typicality():
     routing path reports it for the same documents."""
     stream = TopicStream(3, seed=8)
     texts = stream.messages(stream.labels(1000, [0, 1, 2]))
-    config = MixtureConfig(n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
+    config = MixtureConfig(**OLD_WARM_UP, n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
     learner = OnlineLearner(config, seed=0)
     learner.learn(texts)
     state = learner.state
@@ -270,7 +274,9 @@ def test_lifecycle_settings_are_validated_and_nested():
         MixtureConfig(n_groups=5, lifecycle=LifecycleConfig(max_groups=3))
     with pytest.raises(ConfigError, match="unknown lifecycle field"):
         MixtureConfig.from_dict({"lifecycle": {"births": True}})
-    config = MixtureConfig(n_groups=3, lifecycle=LifecycleConfig(enabled=True, max_groups=9))
+    config = MixtureConfig(
+        **OLD_WARM_UP, n_groups=3, lifecycle=LifecycleConfig(enabled=True, max_groups=9)
+    )
     assert MixtureConfig.from_dict(json.loads(json.dumps(config.to_dict()))) == config
     assert MixtureConfig.from_dict({"n_groups": 3}).lifecycle == LifecycleConfig()
     assert LifecycleConfig().ceiling(4) == 8
@@ -330,7 +336,7 @@ def test_a_buffer_saved_without_arrival_scores_reads_them_as_unknown():
     NaN scores (the birth test then scores those documents under the current mixture)."""
     stream = TopicStream(4, seed=5)
     labels = np.concatenate([stream.labels(2600, [0, 1, 2]), stream.labels(300, [3])])
-    config = MixtureConfig(n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
+    config = MixtureConfig(**OLD_WARM_UP, n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
     learner = OnlineLearner(config, seed=0)
     _learn(learner, stream.messages(labels))
     data = state_to_bytes(learner.state)
@@ -377,7 +383,9 @@ def test_a_new_topic_gets_a_group_and_its_messages_route_there():
     old = [0, 1, 2, 3]
     labels = np.concatenate([stream.labels(5000, old), stream.labels(10000, [*old, 4])])
     texts = stream.messages(labels)
-    learner = OnlineLearner(MixtureConfig(n_groups=4, lifecycle=LIFECYCLE_ON), seed=0)
+    learner = OnlineLearner(
+        MixtureConfig(**OLD_WARM_UP, n_groups=4, lifecycle=LIFECYCLE_ON), seed=0
+    )
     events = _learn(learner, texts)
     assert [e.kind for e in events] == [BIRTH]
     born = events[0]
@@ -397,7 +405,9 @@ def test_a_topic_that_stops_is_retired():
     stream = TopicStream(4, seed=1)
     labels = np.concatenate([stream.labels(5000, [0, 1, 2, 3]), stream.labels(6000, [0, 1, 2])])
     texts = stream.messages(labels)
-    learner = OnlineLearner(MixtureConfig(n_groups=4, lifecycle=LIFECYCLE_ON), seed=0)
+    learner = OnlineLearner(
+        MixtureConfig(**OLD_WARM_UP, n_groups=4, lifecycle=LIFECYCLE_ON), seed=0
+    )
     events = _learn(learner, texts)
     assert [e.kind for e in events] == [RETIRE]
     assert 5000 <= events[0].position <= 9000
@@ -414,7 +424,9 @@ def test_two_groups_started_on_one_topic_merge():
     stream = TopicStream(3, seed=2)
     labels = stream.labels(8000, [0, 1, 2])
     texts = stream.messages(labels)
-    learner = OnlineLearner(MixtureConfig(n_groups=4, lifecycle=LIFECYCLE_ON), seed=0)
+    learner = OnlineLearner(
+        MixtureConfig(**OLD_WARM_UP, n_groups=4, lifecycle=LIFECYCLE_ON), seed=0
+    )
     events = _learn(learner, texts)
     assert [e.kind for e in events] == [MERGE]
     assert events[0].position <= 6000
@@ -434,7 +446,9 @@ def test_a_stationary_stream_gets_no_events(seed):
     rng = np.random.default_rng(seed)
     labels = rng.choice(5, size=20000, p=[0.4, 0.25, 0.2, 0.1, 0.05])
     texts = stream.messages(labels, mean_length=8.0 if seed == 1 else 12.0)
-    learner = OnlineLearner(MixtureConfig(n_groups=5, lifecycle=LIFECYCLE_ON), seed=seed)
+    learner = OnlineLearner(
+        MixtureConfig(**OLD_WARM_UP, n_groups=5, lifecycle=LIFECYCLE_ON), seed=seed
+    )
     assert _learn(learner, texts) == []
     assert learner.state.evidence.buffer.shape[0] <= 500
 
@@ -443,7 +457,7 @@ def test_the_ceiling_stops_births():
     stream = TopicStream(6, seed=0)
     labels = np.concatenate([stream.labels(3000, [0, 1, 2]), stream.labels(4000, [0, 1, 2, 4])])
     capped = LifecycleConfig(enabled=True, max_groups=3)
-    learner = OnlineLearner(MixtureConfig(n_groups=3, lifecycle=capped), seed=0)
+    learner = OnlineLearner(MixtureConfig(**OLD_WARM_UP, n_groups=3, lifecycle=capped), seed=0)
     assert _learn(learner, stream.messages(labels)) == []
     assert learner.state.n_groups == 3
 
