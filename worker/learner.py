@@ -21,6 +21,18 @@ docs <cursor>`` (:class:`state.reader.PageReader`), and learns it strictly in st
    a million entries holds the lease and commits its progress page after page instead of
    being taken over by the standby and thrown away.
 
+Groups that change
+------------------
+A learning unit whose decisions changed the groups (``BatchReport.events``: births, merges,
+retirements) is checkpointed at once, right after the unit, so each change is a version of its
+own like any other checkpoint; the checkpoint carries the events, and the store writes the
+pre-change snapshot and the event records in the same MULTI (``state.versions``). A crash
+before that MULTI leaves nothing: the watermark did not move, the next worker learns the same
+units and makes the same change. Drift is compared by group id: the weights of groups present
+at both points, and each group's words against a compact reference (its top words, kept in the
+state's metadata, ``state.group_drift``), so both follow the line of versions a rollback
+returns to.
+
 The watermark is the last entry such that every entry up to it is handled. A checkpoint
 (``ModelStore.commit_checkpoint``) writes state, version + 1, watermark, history row and
 lineage record in one MULTI under WATCH of version and lease. When the WATCH fails (a
@@ -69,11 +81,11 @@ from typing import Any
 import numpy as np
 import redis
 
-from mixture.drift import js_divergence
 from mixture.online import BatchReport, OnlineLearner
 from mixture.serialize import state_from_bytes
 from state.connection import redis_from_url
 from state.errors import ModelNotFoundError, VersionConflictError
+from state.group_drift import compare_weights, content_divergence, group_ids_of, word_summary
 from state.options import ModelOptions
 from state.reader import (
     PageReader,
@@ -170,7 +182,11 @@ class Worker:
         self._last_checkpoint = time.monotonic()
         self._last_arrival = time.monotonic()
         self._last_lease = 0.0
-        self._recent_weights: deque[list[float]] = deque(maxlen=self.options.drift_window)
+        # (group ids, weights) of the last checkpoints on this line of versions
+        self._recent_weights: deque[tuple[list[int], list[float]]] = deque(
+            maxlen=self.options.drift_window
+        )
+        self._events: list[Any] = []  # group events learned since the last checkpoint
         self._last_auto_snapshot_docs = 0
         self._last_auto_snapshot_time = time.time()
         self.holding = False
@@ -252,7 +268,12 @@ class Worker:
         """Commit what was handled since the last checkpoint. False if nothing to write."""
         if self.learner is None:
             return False
-        if self.handled == self._committed and not self._dead and not self._gap_alerts:
+        if (
+            self.handled == self._committed
+            and not self._dead
+            and not self._gap_alerts
+            and not self._events
+        ):
             self._last_checkpoint = time.monotonic()
             return False
         state = self.learner.state
@@ -269,7 +290,7 @@ class Worker:
             self._drop_work()
             return False
         self._last_lease = time.monotonic()
-        alerts = self._drift_alerts(state) + self._gap_alerts
+        alerts = self._drift_alerts(state) + self._content_alerts() + self._gap_alerts
         snapshot_reason = self._snapshot_due(state)
         state.metadata["entries_read"] = self._entries_read()
         state.metadata["entries_read_watermark"] = self.handled
@@ -285,6 +306,7 @@ class Worker:
             no_evidence=self._report.no_evidence,
             snapshot_reason=snapshot_reason,
             alerts=alerts,
+            events=list(self._events),
         )
         try:
             self.version = self.store.commit_checkpoint(cp)
@@ -301,12 +323,13 @@ class Worker:
         self.checkpoints += 1
         self._committed = self.handled
         if state.warmed_up:
-            self._recent_weights.append([float(w) for w in state.weights()])
+            self._recent_weights.append((group_ids_of(state), [float(w) for w in state.weights()]))
         if snapshot_reason:
             self._last_auto_snapshot_docs = state.documents_learned
             self._last_auto_snapshot_time = time.time()
         self._dead.clear()
         self._gap_alerts.clear()
+        self._events.clear()
         self._report = BatchReport()
         self._documents_since_checkpoint = 0
         self._last_checkpoint = time.monotonic()
@@ -403,6 +426,7 @@ class Worker:
         self.reader.drop()
         self._dead.clear()
         self._gap_alerts.clear()
+        self._events.clear()
         self._report = BatchReport()
         self._documents_since_checkpoint = 0
         self._load_counters(current)
@@ -412,7 +436,7 @@ class Worker:
         since = max(rollbacks, default=0)
         for row in self.store.history(self.options.drift_window):
             if row.version >= since:
-                self._recent_weights.append(row.weights)
+                self._recent_weights.append((row.ids(), row.weights))
         autos = [s for s in self.store.list_snapshots() if s.automatic]
         if autos:
             last = max(autos, key=lambda s: s.created)
@@ -480,6 +504,7 @@ class Worker:
         self._pending.clear()
         self._dead.clear()
         self._gap_alerts.clear()
+        self._events.clear()
 
     # -- reading -----------------------------------------------------------------------------
     def _read_page(self) -> int:
@@ -673,6 +698,10 @@ class Worker:
             learned += len(texts)
             self._handle(cut)
             pending.documents -= len(texts)
+            if report.events:  # a change of the groups: a version of its own, at once
+                self._events.extend(report.events)
+                if not self.checkpoint() and self.learner is None:
+                    return learned  # the work was dropped (conflict, lease, delete)
         if not pending.documents and pending.ids:
             self._handle(len(pending.ids))
         return learned
@@ -701,8 +730,15 @@ class Worker:
 
     # -- checkpoint policy -------------------------------------------------------------------
     def _checkpoint_due(self) -> bool:
-        if self.handled == self._committed and not self._dead and not self._gap_alerts:
+        if (
+            self.handled == self._committed
+            and not self._dead
+            and not self._gap_alerts
+            and not self._events
+        ):
             return False
+        if self._events:
+            return True
         if self._documents_since_checkpoint >= self.options.checkpoint_documents:
             return True
         return time.monotonic() - self._last_checkpoint >= self.options.checkpoint_seconds
@@ -727,26 +763,28 @@ class Worker:
         learner_state = self.learner.state if self.learner is not None else None
         if learner_state is None or not learner_state.warmed_up or not self._recent_weights:
             return []
-        reference = np.asarray(self._recent_weights[0], dtype=float)
-        now = learner_state.weights()
-        if reference.shape != now.shape:
-            return []
-        value = float(js_divergence(now, reference))
+        ref_ids, ref_weights = self._recent_weights[0]
+        now_ids = group_ids_of(learner_state)
+        compared = compare_weights(
+            [float(w) for w in learner_state.weights()], now_ids, ref_weights, ref_ids
+        )
+        value = compared.js_divergence
         threshold = self.options.drift_threshold
         alarmed = bool(learner_state.metadata.get("drift_alarm", False))
         alerts: list[dict[str, object]] = []
         if value > threshold and not alarmed:
-            change = now - reference
-            group = int(np.argmax(np.abs(change)))
+            change = compared.now - compared.reference
+            at = int(np.argmax(np.abs(change)))
+            group = compared.common[at]
             alerts.append(
                 {
                     "time": time.time(),
                     "kind": "weight_drift",
                     "reason": (
                         f"JS divergence of the mixture weights over the last "
-                        f"{len(self._recent_weights)} checkpoints is {value:.4f} > {threshold}; "
-                        f"largest change: group {group} {reference[group]:.3f} -> "
-                        f"{now[group]:.3f}"
+                        f"{len(self._recent_weights)} checkpoints is {value:.4f} > {threshold} "
+                        f"(the {len(compared.common)} groups present at both); largest change: "
+                        f"group {group} {compared.reference[at]:.3f} -> {compared.now[at]:.3f}"
                     ),
                     "value": value,
                     "threshold": threshold,
@@ -756,6 +794,54 @@ class Worker:
             learner_state.metadata["drift_alarm"] = True
         elif value <= threshold and alarmed:
             learner_state.metadata["drift_alarm"] = False
+        return alerts
+
+    def _content_alerts(self) -> list[dict[str, object]]:
+        """Per-group word drift against the reference summary in the state's metadata.
+
+        The reference (each group's top words, ``state.group_drift.word_summary``) is taken at
+        a checkpoint and renewed every ``drift_window`` checkpoints, so a change is measured
+        over one to two windows; it lives in the state, so a rollback brings back the
+        reference of the line it returns to. One alert per group when its divergence crosses
+        ``word_drift_threshold`` (again only after it fell back below).
+        """
+        state = self.learner.state if self.learner is not None else None
+        if state is None or not state.warmed_up:
+            return []
+        metadata = state.metadata
+        reference = metadata.get("word_reference")
+        if not isinstance(reference, dict):
+            metadata["word_reference"] = {**word_summary(state), "checkpoints": 0}
+            return []
+        divergence = content_divergence(reference, state)
+        threshold = self.options.word_drift_threshold
+        alarmed = set(metadata.get("word_drift_alarm") or [])
+        alerts: list[dict[str, object]] = []
+        for group, value in sorted(divergence.items()):
+            if value > threshold and group not in alarmed:
+                alerts.append(
+                    {
+                        "time": time.time(),
+                        "kind": "word_drift",
+                        "reason": (
+                            f"group {group}: JS divergence of its words against the reference "
+                            f"({int(reference.get('checkpoints', 0)) + 1} checkpoints back) is "
+                            f"{value:.4f} > {threshold}"
+                        ),
+                        "value": value,
+                        "threshold": threshold,
+                        "version": self.version + 1,
+                    }
+                )
+                alarmed.add(group)
+            elif value <= threshold:
+                alarmed.discard(group)
+        metadata["word_drift_alarm"] = sorted(alarmed & set(divergence))
+        age = int(reference.get("checkpoints", 0)) + 1
+        if age >= self.options.drift_window:
+            metadata["word_reference"] = {**word_summary(state), "checkpoints": 0}
+        else:
+            reference["checkpoints"] = age
         return alerts
 
     # -- shutdown --------------------------------------------------------------------------
