@@ -19,14 +19,11 @@ reference's top words, which by construction carry little of the group's mass.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
 
 import numpy as np
 
 from mixture.kernels import js_divergence
 from mixture.stats import MixtureState
-
-SUMMARY_WORDS = 50  # top words per group in a content reference (rule of thumb, no source)
 
 
 def group_ids_of(state: MixtureState) -> list[int]:
@@ -35,44 +32,47 @@ def group_ids_of(state: MixtureState) -> list[int]:
     return [int(g) for g in ids]
 
 
-def word_summary(state: MixtureState, top_n: int = SUMMARY_WORDS) -> dict[str, Any]:
-    """Each group's ``top_n`` most probable words with their probabilities, keyed by id.
+@dataclass(frozen=True)
+class WordReference:
+    """Each group's word distribution at one checkpoint, for the content drift check.
 
-    Returns ``{"groups": {"<id>": [[word, p], ...]}}`` (JSON-able; ids as strings).
+    ``prob`` is (capacity, K) in float32 (half the memory; the divergence needs no more), rows
+    in vocabulary-id order of ``generation`` (a compaction renumbers the ids: a reference of
+    another generation is not comparable and is renewed).
     """
-    params = state.parameters()
-    prob = np.exp(params.log_word_prob)  # (capacity, K); retired rows are 0
-    vocab = state.vocabulary
-    out: dict[str, list[list[Any]]] = {}
-    n = min(top_n, prob.shape[0])
-    for position, group in enumerate(group_ids_of(state)):
-        column = prob[:, position]
-        top = np.argpartition(-column, n - 1)[:n] if n < column.size else np.arange(column.size)
-        top = top[np.argsort(-column[top], kind="stable")]
-        out[str(group)] = [[vocab.word(int(i)), float(column[i])] for i in top if column[i] > 0]
-    return {"groups": out}
+
+    version: int
+    group_ids: list[int]
+    generation: int
+    prob: np.ndarray
 
 
-def content_divergence(reference: dict[str, Any], state: MixtureState) -> dict[int, float]:
-    """JS divergence (bits) of each group's words now against the reference summary, for the
-    ids present in both (see the module docstring for the partition)."""
-    params = state.parameters()
-    vocab = state.vocabulary
+def word_reference(state: MixtureState, version: int) -> WordReference:
+    """The reference of ``state`` (its smoothed word probabilities; retired rows are 0)."""
+    prob = np.exp(state.parameters().log_word_prob).astype(np.float32)
+    return WordReference(version, group_ids_of(state), int(state.vocabulary.generation), prob)
+
+
+def content_divergence(reference: WordReference, state: MixtureState) -> dict[int, float]:
+    """JS divergence (bits) of each group's word distribution now against the reference's,
+    for the ids present in both (empty when the vocabulary was renumbered since).
+
+    Words issued after the reference have probability zero in it (they had not been seen);
+    both columns are renormalised by :func:`mixture.kernels.js_divergence`.
+    """
+    if int(state.vocabulary.generation) != reference.generation:
+        return {}
+    now = np.exp(state.parameters().log_word_prob)
+    rows = reference.prob.shape[0]
     positions = {g: p for p, g in enumerate(group_ids_of(state))}
     out: dict[int, float] = {}
-    for key, pairs in dict(reference.get("groups", {})).items():
-        group = int(key)
-        if group not in positions or not pairs:
+    for ref_position, group in enumerate(reference.group_ids):
+        if group not in positions:
             continue
-        ref = np.array([float(p) for _, p in pairs] + [0.0])
-        ref[-1] = max(1.0 - ref[:-1].sum(), 0.0)
-        ids = vocab.lookup_many([str(w) for w, _ in pairs])
-        column = params.log_word_prob[:, positions[group]]
-        now = np.zeros(ref.size)
-        known = ids >= 0
-        now[:-1][known] = np.exp(column[ids[known]])
-        now[-1] = max(1.0 - now[:-1].sum(), 0.0)
-        out[group] = float(js_divergence(now, ref))
+        p_now = now[:, positions[group]]
+        p_ref = np.zeros(p_now.shape[0])
+        p_ref[:rows] = reference.prob[:, ref_position]
+        out[group] = float(js_divergence(p_now, p_ref))
     return out
 
 

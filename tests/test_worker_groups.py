@@ -25,6 +25,7 @@ import redis
 from mixture.config import MixtureConfig
 from mixture.lifecycle_config import LifecycleConfig
 from mixture.online import OnlineLearner
+from mixture.routing import route_texts
 from state.connection import redis_from_url
 from state.store import ModelStore
 from tests.lifecycle_streams import TopicStream
@@ -212,3 +213,34 @@ def test_sigkill_around_a_birth_records_it_once_and_ends_in_the_uninterrupted_st
     assert store.event_counts() == {"birth": 1}
     assert min(learned_at_kill) < birth_at <= max(learned_at_kill)  # kills on both sides
     assert min(learned_at_kill) < birth_at <= max(learned_at_kill)  # kills on both sides
+
+
+def test_a_junk_burst_in_two_groups_raises_content_alerts_while_the_weights_stay(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    """Issue 11's measurement, invented here: a burst that fills two groups' messages with
+    junk words while the topic mix stays the same moves the weights little and the two groups'
+    words a lot. The weights alone raise no alert; the content check names both groups."""
+    stream = TopicStream(4, seed=5)
+    labels = stream.labels(6144, [0, 1, 2, 3])
+    texts = stream.messages(labels)
+    rng = np.random.default_rng(9)
+    junk = [f"junk{chr(97 + i)}{chr(97 + j)}" for i in range(10) for j in range(10)]
+    for i in range(3072, 6144):  # the burst: half of each topic-0/1 message is junk
+        if labels[i] in (0, 1):
+            words = texts[i].split()
+            words[: len(words) // 2 + 1] = rng.choice(junk, size=len(words) // 2 + 1).tolist()
+            texts[i] = " ".join(words)
+    config = MixtureConfig(n_groups=4, n_restarts=1)
+    options = fast_options(checkpoint_documents=512, drift_window=4, drift_threshold=0.05)
+    store = create_model(redis_client, model_name, config, options)
+    learn_all(redis_client, store, texts)
+    alerts = store.alerts()
+    assert [a for a in alerts if a.kind == "weight_drift"] == []
+    content = [a for a in alerts if a.kind == "word_drift"]
+    state = store.load_state()
+    routed = route_texts(state, texts[:3072]).group
+    homes = {int(np.bincount(routed[labels[:3072] == t]).argmax()) for t in (0, 1)}
+    alarmed = {int(a.reason.split(":")[0].removeprefix("group ")) for a in content}
+    assert alarmed == homes, [(a.kind, a.reason) for a in alerts]
+    assert all(a.value > options.word_drift_threshold for a in content)

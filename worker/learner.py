@@ -29,9 +29,9 @@ own like any other checkpoint; the checkpoint carries the events, and the store 
 pre-change snapshot and the event records in the same MULTI (``state.versions``). A crash
 before that MULTI leaves nothing: the watermark did not move, the next worker learns the same
 units and makes the same change. Drift is compared by group id: the weights of groups present
-at both points, and each group's words against a compact reference (its top words, kept in the
-state's metadata, ``state.group_drift``), so both follow the line of versions a rollback
-returns to.
+at both points, and each group's words against a reference (its word distribution, kept in the
+worker's memory, ``state.group_drift``), both within the current line of versions (a
+rollback reloads the worker, which starts both windows again from what it loaded).
 
 The watermark is the last entry such that every entry up to it is handled. A checkpoint
 (``ModelStore.commit_checkpoint``) writes state, version + 1, watermark, history row and
@@ -85,7 +85,13 @@ from mixture.online import BatchReport, OnlineLearner
 from mixture.serialize import state_from_bytes
 from state.connection import redis_from_url
 from state.errors import ModelNotFoundError, VersionConflictError
-from state.group_drift import compare_weights, content_divergence, group_ids_of, word_summary
+from state.group_drift import (
+    WordReference,
+    compare_weights,
+    content_divergence,
+    group_ids_of,
+    word_reference,
+)
 from state.options import ModelOptions
 from state.reader import (
     PageReader,
@@ -187,6 +193,10 @@ class Worker:
             maxlen=self.options.drift_window
         )
         self._events: list[Any] = []  # group events learned since the last checkpoint
+        # the older and the newer word reference (see _content_alerts)
+        self._word_references: deque[WordReference] = deque(maxlen=2)
+        self._word_reference_age = 0  # checkpoints since the newer was taken
+        self._word_alarms: set[int] = set()  # groups whose word-drift alert is standing
         self._last_auto_snapshot_docs = 0
         self._last_auto_snapshot_time = time.time()
         self.holding = False
@@ -431,6 +441,8 @@ class Worker:
         self._documents_since_checkpoint = 0
         self._load_counters(current)
         self._recent_weights.clear()
+        self._word_references.clear()
+        self._word_alarms.clear()
         # the drift window never reaches back across a rollback (the spoiled state's weights)
         rollbacks = [r.version for r in self.store.lineage(1000) if r.kind == "rollback"]
         since = max(rollbacks, default=0)
@@ -797,51 +809,45 @@ class Worker:
         return alerts
 
     def _content_alerts(self) -> list[dict[str, object]]:
-        """Per-group word drift against the reference summary in the state's metadata.
+        """Per-group word drift against the reference (``state.group_drift``).
 
-        The reference (each group's top words, ``state.group_drift.word_summary``) is taken at
-        a checkpoint and renewed every ``drift_window`` checkpoints, so a change is measured
-        over one to two windows; it lives in the state, so a rollback brings back the
-        reference of the line it returns to. One alert per group when its divergence crosses
-        ``word_drift_threshold`` (again only after it fell back below).
+        A reference is taken at the first checkpoint after a load and a new one every
+        ``drift_window`` checkpoints; the comparison is against the older of the last two, so
+        it spans between one and two windows (one reference alone, renewed in a tumbling
+        window, cut a burst in pieces and saw a third of it). One alert per group when its
+        divergence crosses ``word_drift_threshold`` (again only after it fell back below).
         """
         state = self.learner.state if self.learner is not None else None
         if state is None or not state.warmed_up:
             return []
-        metadata = state.metadata
-        reference = metadata.get("word_reference")
-        if not isinstance(reference, dict):
-            metadata["word_reference"] = {**word_summary(state), "checkpoints": 0}
-            return []
+        references = self._word_references
+        if not references or self._word_reference_age >= self.options.drift_window:
+            references.append(word_reference(state, self.version))
+            self._word_reference_age = 0
+        self._word_reference_age += 1
+        reference = references[0]
         divergence = content_divergence(reference, state)
         threshold = self.options.word_drift_threshold
-        alarmed = set(metadata.get("word_drift_alarm") or [])
         alerts: list[dict[str, object]] = []
         for group, value in sorted(divergence.items()):
-            if value > threshold and group not in alarmed:
+            if value > threshold and group not in self._word_alarms:
                 alerts.append(
                     {
                         "time": time.time(),
                         "kind": "word_drift",
                         "reason": (
-                            f"group {group}: JS divergence of its words against the reference "
-                            f"({int(reference.get('checkpoints', 0)) + 1} checkpoints back) is "
-                            f"{value:.4f} > {threshold}"
+                            f"group {group}: JS divergence of its words since version "
+                            f"{reference.version} is {value:.4f} > {threshold}"
                         ),
                         "value": value,
                         "threshold": threshold,
                         "version": self.version + 1,
                     }
                 )
-                alarmed.add(group)
+                self._word_alarms.add(group)
             elif value <= threshold:
-                alarmed.discard(group)
-        metadata["word_drift_alarm"] = sorted(alarmed & set(divergence))
-        age = int(reference.get("checkpoints", 0)) + 1
-        if age >= self.options.drift_window:
-            metadata["word_reference"] = {**word_summary(state), "checkpoints": 0}
-        else:
-            reference["checkpoints"] = age
+                self._word_alarms.discard(group)
+        self._word_alarms &= set(divergence)
         return alerts
 
     # -- shutdown --------------------------------------------------------------------------
