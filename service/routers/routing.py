@@ -42,7 +42,9 @@ def build_results(
         order = order[:, :top]
     order_list = order.tolist()
     post_list = posterior.tolist()
+    ids = loaded.group_ids  # answers name groups by id, never by array position
     groups = routing.group.tolist()
+    starting = loaded.starting_groups
     margins = routing.margin.tolist()
     llpt = routing.log_likelihood_per_token.tolist()
     known = routing.known_tokens.tolist()
@@ -55,6 +57,7 @@ def build_results(
     results = []
     for i, doc in enumerate(documents):
         g = groups[i]
+        group_id = ids[g]
         row = post_list[i]
         reasons = []
         if row[g] < threshold:
@@ -65,16 +68,18 @@ def build_results(
             reasons.append("mostly_unknown_words")
         if flagged[i]:
             reasons.append("atypical")
-        label = labels.get(g)
+        label = labels.get(group_id)
+        if group_id >= starting and not (label and (label["label"] or label["destination"])):
+            reasons.append("new_group")  # born while learning; nobody has named it yet
         value = llpt[i]
         stream_id = stream_ids[i] if stream_ids is not None else None
         results.append(
             {
                 "id": doc.id,
-                "group": g,
+                "group": group_id,
                 "label": label["label"] if label else None,
                 "destination": label["destination"] if label else None,
-                "posterior": [{"group": k, "probability": row[k]} for k in order_list[i]],
+                "posterior": [{"group": ids[k], "probability": row[k]} for k in order_list[i]],
                 "margin": margins[i],
                 "log_likelihood_per_token": value if math.isfinite(value) else None,
                 "known_tokens": known[i],
