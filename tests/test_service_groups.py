@@ -20,6 +20,7 @@ from mixture.config import MixtureConfig
 from mixture.routing import route_texts
 from service.app import create_app
 from service.settings import Settings
+from state.store import ModelStore
 from tests.test_worker_groups import LIFECYCLE_ON, birth_stream, learn_all, merge_stream
 from tests.worker_support import create_model, fast_options
 
@@ -129,3 +130,28 @@ def test_a_model_created_without_n_groups_starts_small_with_the_lifecycle_on(
     assert created["config"]["n_groups"] == 5
     assert created["config"]["lifecycle"]["enabled"] is False  # the default stays off
     assert np.isclose(sum(created["weights"]), 1.0) and created["group_ids"] == [0, 1, 2, 3, 4]
+
+
+def test_the_events_command_lists_the_changes_and_models_create_may_leave_out_groups(
+    redis_url: str, redis_client: redis.Redis, model_name: str, capsys
+) -> None:
+    from service.cli import main
+    from service.testing import uvicorn_thread
+
+    config = MixtureConfig(n_groups=4, lifecycle=LIFECYCLE_ON)
+    texts = merge_stream()
+    store = create_model(redis_client, model_name, config, fast_options(checkpoint_documents=500))
+    learn_all(redis_client, store, texts)
+    settings = Settings(redis_url=redis_url, reload_poll_interval=0.05)
+    with uvicorn_thread(create_app(settings)) as url:
+        api = ["--api", url]
+        assert main(["events", "--model", model_name, *api]) == 0
+        out = capsys.readouterr().out.splitlines()
+        event = store.events()[0]
+        assert out[0].startswith("version\tkind\tgroups")
+        assert out[1].startswith(f"{event.version}\tmerge\t{event.groups[0]},{event.groups[1]}\t")
+        other = model_name + "-k"
+        assert main(["models", "create", other, "--max-groups", "9", *api]) == 0
+        assert "with 2 groups" in capsys.readouterr().out
+        assert ModelStore(redis_client, other).info.config.lifecycle.max_groups == 9
+        assert main(["models", "delete", other, *api]) == 0
