@@ -104,6 +104,11 @@ def test_a_birth_is_a_version_with_a_pre_change_snapshot_an_event_and_an_alert(
     alerts = [a for a in store.alerts() if a.kind == "group-birth"]
     assert [a.version for a in alerts] == [record.version]
     assert store.event_counts() == {"birth": 1}
+    # drift against the pre-change snapshot: the newborn group is reported, not aligned
+    report = store.drift(reference=snapshot.id)
+    assert report.groups_born == [4] and report.groups_gone == []
+    assert report.group_ids == [0, 1, 2, 3] and len(report.weights_now) == 4
+    assert len(report.word_divergence) == 4 and all(v >= 0 for v in report.word_divergence)
     # a rollback to the pre-change snapshot undoes the birth (its version line)
     result = store.rollback(snapshot.id)
     assert store.load_state().n_groups == 4
