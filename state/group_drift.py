@@ -2,18 +2,17 @@
 
 Groups are compared by their stable ids, never by array position: weights and word
 distributions only for the groups present at both points; a group born or gone in between is
-reported, not aligned. The content reference is a compact summary of each group's word
-distribution (its ``top_n`` most probable words with their probabilities), small enough to
-ride in the state's metadata (so it follows the versions: a rollback restores the reference
-of the line it returns to, and the comparison never spans a rollback).
+reported, not aligned.
 
-Content divergence on a summary: the reference's top words plus one bucket "every other
-word"; the current group's distribution is read on the same partition (its probabilities of
-those words, the rest in the bucket). JS on a coarsened partition never exceeds JS on the full
-vocabulary (the data-processing inequality for f-divergences; Cover and Thomas, Elements of
-Information Theory, 2nd ed., 2.8), so an alert raised on the summary is one the full
-distributions would raise too; what it can miss is a change confined to words outside the
-reference's top words, which by construction carry little of the group's mass.
+The content reference (:class:`WordReference`) is each group's full word distribution at one
+checkpoint, held by the worker in memory: two (capacity, K) float32 copies taken a
+``drift_window`` apart (once per window the words are compared with the older one), no Redis
+traffic and no extra bytes in any version. They start at the worker's load, so the comparison
+never spans a rollback (a rollback reloads the worker); after a restart the window starts
+again from the loaded state. A summary of each group's top words riding in the state's
+metadata was tried first and rejected: on a coarsened partition JS can only shrink (the
+data-processing inequality; Cover and Thomas, Elements of Information Theory, 2nd ed., 2.8),
+and with 50 words plus an "other" bucket it saw 0.10 where the full distributions showed 0.19.
 """
 
 from __future__ import annotations
@@ -62,18 +61,29 @@ def content_divergence(reference: WordReference, state: MixtureState) -> dict[in
     """
     if int(state.vocabulary.generation) != reference.generation:
         return {}
-    now = np.exp(state.parameters().log_word_prob)
-    rows = reference.prob.shape[0]
     positions = {g: p for p, g in enumerate(group_ids_of(state))}
-    out: dict[int, float] = {}
-    for ref_position, group in enumerate(reference.group_ids):
-        if group not in positions:
-            continue
-        p_now = now[:, positions[group]]
-        p_ref = np.zeros(p_now.shape[0])
-        p_ref[:rows] = reference.prob[:, ref_position]
-        out[group] = float(js_divergence(p_now, p_ref))
-    return out
+    pairs = [(r, positions[g]) for r, g in enumerate(reference.group_ids) if g in positions]
+    if not pairs:
+        return {}
+    now = np.exp(state.parameters().log_word_prob[:, [p for _, p in pairs]])
+    ref = np.zeros_like(now)
+    rows = reference.prob.shape[0]
+    ref[:rows] = reference.prob[:, [r for r, _ in pairs]]
+    values = js_divergence_columns(now, ref)
+    return {reference.group_ids[r]: float(v) for (r, _), v in zip(pairs, values, strict=True)}
+
+
+def js_divergence_columns(p: np.ndarray, q: np.ndarray) -> np.ndarray:
+    """JS divergence in bits of each column pair of ``p`` and ``q`` (columns normalised), in
+    one vectorised pass: (KL(p || m) + KL(q || m)) / 2 with m = (p + q) / 2 (Lin 1991). Agrees
+    with :func:`mixture.kernels.js_divergence` (scipy) column by column (tested)."""
+    p = p / p.sum(axis=0, keepdims=True)
+    q = q / q.sum(axis=0, keepdims=True)
+    m = 0.5 * (p + q)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        kl_p = np.where(p > 0, p * np.log2(p / m), 0.0).sum(axis=0)
+        kl_q = np.where(q > 0, q * np.log2(q / m), 0.0).sum(axis=0)
+    return np.clip(0.5 * (kl_p + kl_q), 0.0, 1.0)
 
 
 def word_divergence_by_id(reference: MixtureState, state: MixtureState) -> list[float]:

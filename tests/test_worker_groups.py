@@ -249,3 +249,18 @@ def test_a_junk_burst_in_two_groups_raises_content_alerts_while_the_weights_stay
     alarmed = {int(a.reason.split(":")[0].removeprefix("group ")) for a in content}
     assert alarmed == homes, [(a.kind, a.reason) for a in alerts]
     assert all(a.value > options.word_drift_threshold for a in content)
+
+
+def test_the_vectorised_js_agrees_with_scipy_column_by_column() -> None:
+    """state.group_drift.js_divergence_columns against mixture.kernels.js_divergence (scipy's
+    jensenshannon, base 2, squared), zeros included."""
+    from mixture.kernels import js_divergence
+    from state.group_drift import js_divergence_columns
+
+    rng = np.random.default_rng(4)
+    p = rng.dirichlet(np.full(300, 0.2), size=5).T
+    q = rng.dirichlet(np.full(300, 0.2), size=5).T
+    p[:40, 0] = 0.0
+    values = js_divergence_columns(p, q)
+    expected = [js_divergence(p[:, k], q[:, k]) for k in range(5)]
+    np.testing.assert_allclose(values, expected, rtol=1e-9, atol=1e-12)
