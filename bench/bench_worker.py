@@ -8,6 +8,7 @@
    before it read with XREAD, for comparison with earlier figures; with the absolute figure
    (target >= 20,000 documents per second). The worker's figure includes decoding, the
    tokenizer, stepwise EM and its checkpoints (state bytes, history row in one MULTI).
+   The same again with the group lifecycle on (target: still >= 0.5 of the bare loop).
    For scale, mixture/ alone (``OnlineLearner.learn`` in the same units, no Redis) is timed
    on the same texts too: the worker can be no faster than that.
 2. One checkpoint for K = 50 groups and V = 100,000 words: seconds for ``state_to_bytes`` +
@@ -33,6 +34,7 @@ import time
 import numpy as np
 
 from mixture.config import MixtureConfig
+from mixture.lifecycle_config import LifecycleConfig
 from mixture.online import OnlineLearner
 from mixture.serialize import state_from_bytes, state_to_bytes
 from mixture.stats import MixtureState
@@ -160,7 +162,9 @@ def model_alone(store: ModelStore, texts: list[str]) -> float:
     return time.perf_counter() - began
 
 
-def throughput(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
+def throughput(server: EmbeddedRedis, n_docs: int, repeats: int, lifecycle: bool = False) -> None:
+    """The worker against the bare loops; with ``lifecycle`` the group lifecycle is on (its
+    evidence per unit, decisions every 1,000 documents, each change a checkpoint of its own)."""
     client = server.client()
     config = MixtureConfig(
         n_groups=8,
@@ -169,6 +173,7 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
         n_restarts=2,
         max_iter=50,
         vocabulary_limit=100_000,
+        lifecycle=LifecycleConfig(enabled=lifecycle),
     )
     options = ModelOptions(
         checkpoint_documents=5000,
@@ -181,8 +186,9 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
         stream_max_length=None,
         stream_max_age_seconds=None,
     )
-    Registry(client).create("bench", config, options)
-    store = ModelStore(client, "bench")
+    name = "bench-lifecycle" if lifecycle else "bench"
+    Registry(client).create(name, config, options)
+    store = ModelStore(client, name)
     warm = short_messages(config.warmup_documents, seed=1)
     store.enqueue(warm)
     worker_run(store, options, len(warm))  # cold start done outside the measurement
@@ -210,7 +216,8 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
         group_ratios.append(group / model)
     print(
         f"short messages (5-8 tokens), K={config.n_groups}, batch {config.batch_size}, "
-        f"{n_docs} documents x {repeats} runs, checkpoint every {options.checkpoint_documents}"
+        f"{n_docs} documents x {repeats} runs, checkpoint every {options.checkpoint_documents}, "
+        f"lifecycle {'on' if lifecycle else 'off'} ({len(store.events(10_000))} group events)"
     )
     print(f"  bare XREAD loop           : {statistics.median(bare_rates):12,.0f} entries/s")
     print(f"  same, reply unconverted   : {statistics.median(raw_rates):12,.0f} entries/s")
@@ -374,6 +381,7 @@ def main(argv: list[str] | None = None) -> None:
     n_docs, repeats = (20_000, 1) if args.quick else (60_000, 3)
     with tempfile.TemporaryDirectory() as folder, EmbeddedRedis(folder) as server:
         throughput(server, n_docs, repeats)
+        throughput(server, n_docs, repeats, lifecycle=True)
         checkpoint_cost(server, 2 if args.quick else 3)
         replay_under_traffic(server, 100_000 if args.quick else 1_000_000, 1000.0)
 

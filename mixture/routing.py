@@ -33,6 +33,7 @@ NO_KNOWN_WORDS = "no_known_words"
 MOSTLY_UNKNOWN_WORDS = "mostly_unknown_words"
 ATYPICAL = "atypical"
 PROVISIONAL_MODEL = "provisional_model"
+NEW_GROUP = "new_group"
 
 # name -> what it means, in words (the dashboard's text, the README's table)
 REVIEW_REASONS: dict[str, str] = {
@@ -41,6 +42,7 @@ REVIEW_REASONS: dict[str, str] = {
     MOSTLY_UNKNOWN_WORDS: "most of the message's words are unknown to the model",
     ATYPICAL: "far less typical of its group than the group's recent messages",
     PROVISIONAL_MODEL: "answered by a provisional fit of the first messages (warm-up not done)",
+    NEW_GROUP: "the group was born while learning and nobody has named it yet",
 }
 
 
@@ -51,6 +53,7 @@ def review_reasons(
     atypical: np.ndarray | None = None,
     *,
     provisional: bool = False,
+    new_group: np.ndarray | None = None,
 ) -> list[list[str]]:
     """The review reasons of every routed document, in the table's order.
 
@@ -66,6 +69,9 @@ def review_reasons(
         The typicality rule's verdicts (the API keeps the statistics; offline has none).
     provisional : bool
         The answers come from a provisional fit of the warm-up buffer: every one is flagged.
+    new_group : ndarray of bool (n,), optional
+        The MAP group was born while learning and has no label or destination (the API knows
+        the labels; offline has none).
 
     Returns
     -------
@@ -78,6 +84,7 @@ def review_reasons(
     known = routing.known_tokens.tolist()
     unknown = routing.unknown_tokens.tolist()
     flagged = [False] * n_docs if atypical is None else np.asarray(atypical).tolist()
+    newborn = [False] * n_docs if new_group is None else np.asarray(new_group).tolist()
     answers: list[list[str]] = []
     for i in range(n_docs):
         reasons = []
@@ -91,21 +98,27 @@ def review_reasons(
             reasons.append(ATYPICAL)
         if provisional:
             reasons.append(PROVISIONAL_MODEL)
+        if newborn[i]:
+            reasons.append(NEW_GROUP)
         answers.append(reasons)
     return answers
 
 
-def posterior_entries(posterior: np.ndarray, top: int | None = None) -> list[list[dict[str, Any]]]:
+def posterior_entries(
+    posterior: np.ndarray, top: int | None = None, group_ids: Sequence[int] | None = None
+) -> list[list[dict[str, Any]]]:
     """Posteriors as lists of ``{"group", "probability"}``, most probable first.
 
     The one posterior shape of every output (API and command line). Ties keep the lower
-    group id first.
+    position first.
 
     Parameters
     ----------
     posterior : ndarray (n, K)
     top : int, optional
         Keep only the ``top`` most probable groups.
+    group_ids : sequence of int, optional
+        The stable id of each position (``state.group_ids``); positions when omitted.
 
     Returns
     -------
@@ -115,8 +128,9 @@ def posterior_entries(posterior: np.ndarray, top: int | None = None) -> list[lis
     if top is not None:
         order = order[:, :top]
     rows = posterior.tolist()
+    ids = list(range(posterior.shape[1])) if group_ids is None else list(group_ids)
     return [
-        [{"group": k, "probability": row[k]} for k in ranked]
+        [{"group": ids[k], "probability": row[k]} for k in ranked]
         for row, ranked in zip(rows, order.tolist(), strict=True)
     ]
 

@@ -232,7 +232,16 @@ def install_error_handlers(app: FastAPI) -> None:
 
 def default_routers() -> list[APIRouter]:
     """One router per resource (also their order in the OpenAPI document)."""
-    from service.routers import documents, drift, groups, health, models, routing, snapshots
+    from service.routers import (
+        documents,
+        drift,
+        events,
+        groups,
+        health,
+        models,
+        routing,
+        snapshots,
+    )
 
     # routing and queueing first: a request is matched against the routes in order, and these
     # two carry nearly all the traffic
@@ -245,6 +254,7 @@ def default_routers() -> list[APIRouter]:
         snapshots.router,
         drift.router,
         _routed_router(),
+        events.router,
     ]
 
 

@@ -589,8 +589,11 @@ def cmd_models(args: argparse.Namespace) -> int:
                 json.loads(args.options)
         except json.JSONDecodeError as exc:
             raise CommandError(f"--config/--options is not valid JSON: {exc.msg}", 2) from None
-        config["n_groups"] = args.groups
+        if args.groups is not None:  # left out: the model starts small and grows by births
+            config["n_groups"] = args.groups
         body: dict[str, Any] = {"name": args.name, "config": config}
+        if args.max_groups is not None:
+            body["max_groups"] = args.max_groups
         if args.options:
             body["options"] = json.loads(args.options)
         created = client.post("/models", json=body)
@@ -885,6 +888,30 @@ def cmd_flagged(args: argparse.Namespace) -> int:
 # -- processes ------------------------------------------------------------------------------
 
 
+def format_events(events: list[dict[str, Any]]) -> str:
+    """Group events as a table, newest first (the API's order)."""
+    lines = ["version\tkind\tgroups\tdocuments learned\tsnapshot before\treason"]
+    for event in events:
+        undone = " (undone by a rollback)" if event.get("undone") else ""
+        groups = ",".join(str(g) for g in event["groups"])
+        lines.append(
+            f"{event['version']}\t{event['kind']}{undone}\t{groups}\t{event['position']}\t"
+            f"{event.get('snapshot_id') or '-'}\t{event['reason']}"
+        )
+    return "\n".join(lines)
+
+
+def cmd_events(args: argparse.Namespace) -> int:
+    client = ApiClient(args.api or default_api_url())
+    name = _model_name(args)
+    events = client.get(f"/models/{name}/events", params={"limit": args.limit})["events"]
+    if not events:
+        print(f"model {name} has had no births, merges or retirements")
+        return EXIT_OK
+    print(format_events(events))
+    return EXIT_OK
+
+
 def cmd_serve(args: argparse.Namespace) -> int:
     from service.runner import serve
 
@@ -1096,7 +1123,10 @@ def build_parser() -> argparse.ArgumentParser:
     api_options(mp, model=False)
     mp = msub.add_parser("create", help="register a new model")
     mp.add_argument("name", help="model name (letters, digits, '_', '.', '-')")
-    mp.add_argument("--groups", "-k", type=int, required=True, help="number of groups K")
+    mp.add_argument(
+        "--groups", "-k", type=int, help="starting groups (left out: 2, growing by births)"
+    )
+    mp.add_argument("--max-groups", type=int, help="ceiling on the number of groups")
     mp.add_argument("--config", help="further MixtureConfig fields as a JSON object")
     mp.add_argument("--options", help="model options (checkpointing, retention...) as JSON")
     api_options(mp, model=False)
@@ -1187,6 +1217,11 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print JSON instead of text")
     api_options(p)
     p.set_defaults(func=cmd_flagged)
+
+    p = sub.add_parser("events", help="births, merges and retirements of the groups")
+    p.add_argument("--limit", type=int, default=100, help="newest events shown (default 100)")
+    api_options(p)
+    p.set_defaults(func=cmd_events)
 
     p = sub.add_parser("demo", help="the invented ferry-inbox demo (embedded Redis, < 1 min)")
     p.add_argument("--scale", type=float, default=1.0, help="multiply the messages per day")

@@ -257,6 +257,12 @@ class ModelCollector(Collector):
             key: family(name, documentation, labels=["model"])
             for key, (family, name, documentation) in _REDIS_FAMILIES.items()
         }
+        group_events = CounterMetricFamily(
+            "mixroute_group_events",
+            "Group events written (births, merges, retirements), by kind.",
+            labels=["model", "kind"],
+        )
+        from_redis["group_events"] = group_events
         redis_up = GaugeMetricFamily(
             "mixroute_redis_up", "1 when Redis answered this scrape, else 0 (degraded)."
         )
@@ -266,9 +272,10 @@ class ModelCollector(Collector):
             version.add_metric([name], loaded.version)
             state = loaded.state
             learned.add_metric([name], state.documents_learned if state is not None else 0)
-            k = loaded.n_groups
+            ids = loaded.group_ids  # the label is the stable group id, not the position
+            k = len(ids)
             weights = state.weights().tolist() if state is not None else [1.0 / k] * k
-            for group, value in enumerate(weights):
+            for group, value in zip(ids, weights, strict=True):
                 weight.add_metric([name, str(group)], value)
             if not reachable:
                 continue
@@ -310,6 +317,9 @@ class ModelCollector(Collector):
         with contextlib.suppress(StateError):  # no checkpoint yet: no divergence to report
             add("divergence", store.drift().js_divergence)
         add("alerts", store.alert_count())
+        counts = store.event_counts()
+        for kind in ("birth", "merge", "retire"):
+            families["group_events"].add_metric([name, kind], counts.get(kind, 0))  # type: ignore[attr-defined]
         status = store.worker_status()
         if status is not None:
             add("heartbeat", max(0.0, now - status.time))

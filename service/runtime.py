@@ -62,6 +62,7 @@ from mixture.serialize import state_from_bytes
 from mixture.stats import MixtureState
 from service.settings import Settings
 from state.errors import ModelNotFoundError
+from state.group_drift import group_ids_of
 from state.keys import NOTIFY_PATTERN, ModelKeys, model_of_notify_channel
 from state.registry import ModelInfo, Registry
 from state.store import ModelStore
@@ -86,7 +87,7 @@ class ModelNotReadyError(Exception):
 
 
 class GroupNotFoundError(LookupError):
-    """A group id outside [0, K)."""
+    """A group id that no current group has."""
 
 
 class Typicality:
@@ -101,13 +102,38 @@ class Typicality:
         Effective documents a group needs before it flags anything.
     """
 
-    def __init__(self, n_groups: int, half_life: float, min_documents: float) -> None:
+    def __init__(
+        self,
+        n_groups: int,
+        half_life: float,
+        min_documents: float,
+        group_ids: list[int] | None = None,
+    ) -> None:
         self.decay = 0.5 ** (1.0 / half_life)
+        self.half_life = half_life
         self.min_documents = min_documents
+        # position -> group id, in the order of the state's groups (the arrays' order)
+        self.group_ids = list(range(n_groups)) if group_ids is None else list(group_ids)
         self.weight = np.zeros(n_groups)
         self.mean = np.zeros(n_groups)
         self.square_sum = np.zeros(n_groups)  # weighted sum of squared deviations
         self._lock = threading.Lock()
+
+    def resized(self, group_ids: list[int]) -> Typicality:
+        """This typicality for a state whose groups are ``group_ids`` (position order): the
+        groups present in both keep their statistics, matched by id; a newborn group starts
+        empty; a group gone is dropped. ``self`` when the ids are the same."""
+        if group_ids == self.group_ids:
+            return self
+        out = Typicality(len(group_ids), self.half_life, self.min_documents, group_ids)
+        old = {g: p for p, g in enumerate(self.group_ids)}
+        with self._lock:
+            for position, group in enumerate(group_ids):
+                if group in old:
+                    out.weight[position] = self.weight[old[group]]
+                    out.mean[position] = self.mean[old[group]]
+                    out.square_sum[position] = self.square_sum[old[group]]
+        return out
 
     @property
     def n_groups(self) -> int:
@@ -217,6 +243,19 @@ class LoadedModel:
 
     @property
     def n_groups(self) -> int:
+        """The current number of groups (the starting count before the first checkpoint)."""
+        return len(self.group_ids)
+
+    @property
+    def group_ids(self) -> list[int]:
+        """Group id of each position of the state (0..K-1 before the first checkpoint)."""
+        if self.state is None:
+            return list(range(self.info.config.n_groups))
+        return group_ids_of(self.state)
+
+    @property
+    def starting_groups(self) -> int:
+        """Ids below this were given at creation; the others were born since."""
         return self.info.config.n_groups
 
     @property
@@ -224,6 +263,15 @@ class LoadedModel:
         """True while the answers come from the warm-up's provisional fit."""
         state = self.state
         return state is not None and not state.warmed_up and state.provisional is not None
+
+    def position_of(self, group: int) -> int:
+        """Array position of a current group id (:class:`GroupNotFoundError` otherwise)."""
+        try:
+            return self.group_ids.index(group)
+        except ValueError:
+            raise GroupNotFoundError(
+                f"model {self.name!r} has groups {self.group_ids}; there is no group {group}"
+            ) from None
 
     def require_state(self) -> MixtureState:
         """The state to route with (the provisional fit while warming up), or
@@ -252,10 +300,8 @@ class LoadedModel:
         raise ModelNotReadyError(f"model {self.name!r} {buffered}; {more}")
 
     def check_group(self, group: int) -> None:
-        if not 0 <= group < self.n_groups:
-            raise GroupNotFoundError(
-                f"model {self.name!r} has groups 0..{self.n_groups - 1}; there is no group {group}"
-            )
+        """:class:`GroupNotFoundError` unless ``group`` is the id of a current group."""
+        self.position_of(group)
 
 
 class ServiceRuntime:
@@ -358,13 +404,15 @@ class ServiceRuntime:
             elif state.provisional is not None:
                 state.provisional.parameters()
             version, digest = current.version, current.checksum
-        if previous is not None and previous.typicality.n_groups == info.config.n_groups:
-            typicality = previous.typicality
+        ids = group_ids_of(state) if state is not None else list(range(info.config.n_groups))
+        if previous is not None:  # groups born, merged or retired: matched by id
+            typicality = previous.typicality.resized(ids)
         else:
             typicality = Typicality(
-                info.config.n_groups,
+                len(ids),
                 self.settings.typicality_half_life,
                 self.settings.typicality_min_documents,
+                ids,
             )
         return LoadedModel(
             name=name,
@@ -582,4 +630,5 @@ def _label_dict(value: Any) -> dict[str, Any]:
         "label": data.get("label"),
         "destination": data.get("destination"),
         "updated": data.get("updated"),
+        "merged_labels": data.get("merged_labels"),
     }

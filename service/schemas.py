@@ -256,11 +256,20 @@ class ModelIn(StrictIn):
         default_factory=OptionsIn,
         description="state.options.ModelOptions fields (checkpointing, stream, review...).",
     )
+    max_groups: int | None = Field(
+        default=None,
+        ge=1,
+        le=10_000,
+        description="Ceiling on the number of groups (config.lifecycle.max_groups). With "
+        "config.n_groups left out the model starts with 2 groups, the lifecycle on, and "
+        "grows by births up to this (default 32).",
+    )
 
 
 class ModelOut(BaseModel):
     name: str
-    n_groups: int
+    n_groups: int = Field(description="Current number of groups (they change with births...).")
+    group_ids: list[int] = Field(default_factory=list, description="Id of each weight.")
     version: int = Field(description="0 until the first checkpoint.")
     documents_learned: int
     warmed_up: bool
@@ -294,7 +303,11 @@ class TermScore(BaseModel):
 
 
 class GroupOut(BaseModel):
-    group: int
+    group: int = Field(description="Stable group id (never given to another group).")
+    born: bool = Field(default=False, description="Born while learning (not a starting group).")
+    merged_labels: list[dict[str, Any]] = Field(
+        default_factory=list, description="Labels of the groups this one absorbed by merges."
+    )
     weight: float
     expected_documents: float
     label: str | None
@@ -319,6 +332,24 @@ class LabelIn(StrictIn):
 
     label: str | None = Field(default=None, min_length=1, max_length=200)
     destination: str | None = Field(default=None, min_length=1, max_length=200)
+
+
+class EventOut(BaseModel):
+    kind: Literal["birth", "merge", "retire"]
+    groups: list[int] = Field(description="[new], [survivor, absorbed] or [retired].")
+    reason: str
+    documents: list[int] = Field(description="Stream positions of a birth's founding documents.")
+    position: int = Field(description="Documents learned when it happened.")
+    time: float
+    version: int = Field(description="The version that holds the change.")
+    snapshot_id: str | None = Field(description="Snapshot of the state just before it.")
+    evidence: dict[str, float]
+    undone: bool = Field(description="A rollback left the version behind.")
+
+
+class EventList(BaseModel):
+    model: str
+    events: list[EventOut] = Field(description="Newest first.")
 
 
 # -- snapshots ------------------------------------------------------------------------------
@@ -392,6 +423,7 @@ class HistoryRowOut(BaseModel):
     log_likelihood_per_token: float | None
     no_evidence: int
     batch_documents: int
+    group_ids: list[int] | None = Field(default=None, description="Id of each weight.")
 
 
 class HistoryOut(BaseModel):
@@ -406,9 +438,17 @@ class DriftOut(BaseModel):
     weights_now: list[float]
     weights_reference: list[float]
     weight_change: list[float]
-    word_divergence: list[float] | None
+    word_divergence: list[float | None] | None = Field(
+        description="Per reference group (snapshot reference): JS of its words against the "
+        "group of the same id now; null for a group gone since."
+    )
     threshold: float
     alert: bool
+    group_ids: list[int] | None = Field(
+        default=None, description="Ids of the groups present at both points (the weights')."
+    )
+    groups_born: list[int] | None = Field(default=None, description="Present now only.")
+    groups_gone: list[int] | None = Field(default=None, description="At the reference only.")
 
 
 class AlertOut(BaseModel):

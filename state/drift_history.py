@@ -4,10 +4,8 @@ from __future__ import annotations
 
 import json
 
-import numpy as np
-
-from mixture.drift import js_divergence, word_drift
 from state.errors import OptionsError, StateError
+from state.group_drift import compare_weights, group_ids_of, word_divergence_by_id
 from state.handle import ModelHandle
 from state.records import Alert, DriftReport, HistoryRow
 from state.snapshots import Snapshots
@@ -60,32 +58,49 @@ class DriftHistory:
         summary = self.versions.summary()
         if summary is None:
             raise StateError(f"model {self.handle.model!r} has no state yet")
-        now = np.asarray(summary["weights"], dtype=float)
+        now = [float(w) for w in summary["weights"]]
+        now_ids = summary.get("group_ids") or list(range(len(now)))
         word_divergence = None
         if reference is None:
             if not series:
                 raise StateError(f"model {self.handle.model!r} has no drift history yet")
-            ref = np.asarray(series[max(len(series) - 1 - window, 0)].weights, dtype=float)
+            # the window never reaches back across a rollback: rows of the current line only
+            line = self._current_line(series)
+            row = line[max(len(line) - 1 - window, 0)]
+            ref, ref_ids = row.weights, row.ids()
             label = f"window:{window}"
         else:
-            ref = np.asarray(self.snapshots.get(reference).weights, dtype=float)
+            info = self.snapshots.get(reference)
             label = f"snapshot:{reference}"
             current_state = self.versions.load_state()
             snap_state = self.snapshots.state(reference)
+            ref, ref_ids = info.weights, group_ids_of(snap_state)
             if current_state is not None and current_state.warmed_up and snap_state.warmed_up:
-                word_divergence = [float(v) for v in word_drift(snap_state, current_state)]
-        value = float(js_divergence(now, ref))
+                # by id over the full vocabularies, never aligned by position
+                word_divergence = word_divergence_by_id(snap_state, current_state)
+        compared = compare_weights(now, now_ids, ref, ref_ids)
+        value = compared.js_divergence
         return DriftReport(
             reference=label,
             js_divergence=value,
-            weights_now=[float(w) for w in now],
-            weights_reference=[float(w) for w in ref],
-            weight_change=[float(w) for w in now - ref],
+            weights_now=[float(w) for w in compared.now],
+            weights_reference=[float(w) for w in compared.reference],
+            weight_change=[float(w) for w in compared.now - compared.reference],
             word_divergence=word_divergence,
             threshold=options.drift_threshold,
             alert=value > options.drift_threshold,
             series=series if series_limit is None else series[-int(series_limit) :],
+            group_ids=compared.common,
+            groups_born=compared.born,
+            groups_gone=compared.gone,
         )
+
+    def _current_line(self, series: list[HistoryRow]) -> list[HistoryRow]:
+        """The history rows written since the newest rollback (all rows when none)."""
+        rollbacks = [r.version for r in self.versions.lineage(1000) if r.kind == "rollback"]
+        since = max(rollbacks, default=0)
+        line = [row for row in series if row.version >= since]
+        return line or series[-1:]
 
     def alerts(self, count: int = 100) -> list[Alert]:
         """The newest ``count`` alerts, oldest first."""

@@ -109,6 +109,8 @@ class ModelKeys:
         "dead_letters",
         "docs",
         "entries_added",
+        "event_counts",
+        "events",
         "heartbeat",
         "history",
         "labels",
@@ -151,6 +153,8 @@ class ModelKeys:
         self.labels = b + "labels"
         self.labels_version = b + "labels_version"
         self.routed = b + "routed"
+        self.events = b + "events"  # group events (births, merges, retirements), capped list
+        self.event_counts = b + "event_counts"  # hash kind -> events ever written (metrics)
 
     def fixed(self) -> list[str]:
         """Every key of the model whose name does not depend on an id (not the channel)."""
@@ -174,6 +178,8 @@ class ModelKeys:
             self.labels,
             self.labels_version,
             self.routed,
+            self.events,
+            self.event_counts,
         ]
 
     def snapshot(self, snapshot_id: str) -> str:

@@ -61,6 +61,14 @@ class ModelOptions:
         Seed of the learner's random initialisation.
     review_threshold : float
         Routing answers ask for human review when the MAP posterior is below this (0, 1].
+    word_drift_threshold : float
+        Alert when a group's word distribution has moved this far (Jensen-Shannon divergence,
+        base 2, over its top words) from the reference checkpoint's, for groups present in
+        both. 0.1 bit: one word then tells a tenth of a bit about which of the two windows it
+        came from, the same principle as the lifecycle's merge threshold (there: too close to
+        keep apart; here: too far to be the same topic); rule of thumb, no source.
+    event_limit : int
+        Group-event records kept (births, merges, retirements; the newest).
     """
 
     checkpoint_documents: int = 1000
@@ -81,6 +89,8 @@ class ModelOptions:
     lease_seconds: float = 15.0
     seed: int = 0
     review_threshold: float = 0.6
+    word_drift_threshold: float = 0.1
+    event_limit: int = 1000
 
     def __post_init__(self) -> None:
         positive_int = (
@@ -89,6 +99,7 @@ class ModelOptions:
             "history_limit",
             "lineage_limit",
             "drift_window",
+            "event_limit",
         )
         for name in positive_int:
             _check_int(name, getattr(self, name), minimum=1)
@@ -111,6 +122,12 @@ class ModelOptions:
                 _check_float(name, value, minimum=0.0, strict=True)
         _check_float("drift_threshold", self.drift_threshold, minimum=0.0, strict=False)
         _check_float("review_threshold", self.review_threshold, minimum=0.0, strict=True)
+        _check_float("word_drift_threshold", self.word_drift_threshold, minimum=0.0, strict=False)
+        if self.word_drift_threshold > 1.0:
+            raise OptionsError(
+                f"word_drift_threshold must be in [0, 1] (JS divergence, base 2), got "
+                f"{self.word_drift_threshold!r}"
+            )
         if self.review_threshold > 1.0:
             raise OptionsError(f"review_threshold must be in (0, 1], got {self.review_threshold!r}")
         if self.drift_threshold > 1.0:

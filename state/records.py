@@ -127,6 +127,13 @@ class HistoryRow:
     log_likelihood_per_token: float  # mean over the documents since the last checkpoint
     no_evidence: int  # documents with no known word since the last checkpoint
     batch_documents: int  # documents learned since the last checkpoint
+    group_ids: list[int] | None = None  # the weights' group ids (None: rows before ids, 0..K-1)
+
+    def ids(self) -> list[int]:
+        """Group id of each weight."""
+        if self.group_ids is None:
+            return list(range(len(self.weights)))
+        return list(self.group_ids)
 
     def to_dict(self) -> dict[str, Any]:
         d = asdict(self)
@@ -144,6 +151,7 @@ class HistoryRow:
             log_likelihood_per_token=float("nan") if ll is None else float(ll),
             no_evidence=int(d["no_evidence"]),
             batch_documents=int(d["batch_documents"]),
+            group_ids=None if d.get("group_ids") is None else [int(g) for g in d["group_ids"]],
         )
 
 
@@ -182,6 +190,9 @@ class DriftReport:
     threshold: float
     alert: bool
     series: list[HistoryRow]
+    group_ids: list[int] | None = None  # ids of weights_now / weights_reference (both points)
+    groups_born: list[int] | None = None  # ids present now only (not in the divergence)
+    groups_gone: list[int] | None = None  # ids present at the reference only
 
     def to_dict(self) -> dict[str, Any]:
         d = asdict(self)
@@ -233,6 +244,21 @@ class GroupLabel:
     label: str | None
     destination: str | None
     updated: float
+    merged_labels: list[dict[str, Any]] | None = None  # labels of groups this one absorbed
+    merged_into: int | None = None  # set when this group was absorbed by a merge
+    retired: int | None = None  # the version that retired this group
+
+    @classmethod
+    def from_dict(cls, group: int, d: dict[str, Any]) -> GroupLabel:
+        return cls(
+            group,
+            d.get("label"),
+            d.get("destination"),
+            float(d.get("updated", 0.0)),
+            merged_labels=d.get("merged_labels"),
+            merged_into=None if d.get("merged_into") is None else int(d["merged_into"]),
+            retired=None if d.get("retired") is None else int(d["retired"]),
+        )
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)

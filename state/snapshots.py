@@ -62,9 +62,10 @@ class Snapshots:
             pipe.delete(self.handle.keys.snapshot(old))
             pipe.zrem(self.handle.keys.snapshots, old)
 
-    def to_prune(self, client: Client, extra: int) -> list[str]:
-        """Automatic snapshots beyond ``snapshot_keep`` (counting ``extra`` about to be added)."""
-        automatic = [s for s in self.listed(client) if s.kind == AUTOMATIC]
+    def to_prune(self, client: Client, extra: int, kind: str = AUTOMATIC) -> list[str]:
+        """Snapshots of ``kind`` ("automatic" or "pre-change") beyond ``snapshot_keep``
+        (counting ``extra`` about to be added); each kind is kept by its own count."""
+        automatic = [s for s in self.listed(client) if s.kind == kind]
         keep = max(self.handle.options.snapshot_keep - extra, 0)
         if len(automatic) <= keep:
             return []

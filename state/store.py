@@ -24,6 +24,7 @@ import redis
 from mixture.stats import MixtureState
 from state.drift_history import DriftHistory
 from state.errors import ModelNotFoundError
+from state.events import EventRecord, GroupEvents
 from state.handle import ModelHandle
 from state.keys import ModelKeys, validate_model_name
 from state.labels import GroupLabels
@@ -84,6 +85,7 @@ class ModelStore:
         self.rollbacks = Rollbacks(handle, self.snapshots, self.queue)
         self.drift_history = DriftHistory(handle, self.versions, self.snapshots)
         self.labels = GroupLabels(handle)
+        self.group_events = GroupEvents(handle)
 
     @property
     def options(self) -> ModelOptions:
@@ -236,6 +238,28 @@ class ModelStore:
     def labels_version(self) -> int:
         """Counter bumped by every label change."""
         return self.labels.version()
+
+    # -- group events (state.events) ---------------------------------------------------------
+    def events(self, limit: int = 100) -> list[EventRecord]:
+        """The newest ``limit`` group events (births, merges, retirements), newest first; an
+        event whose version a rollback left behind is marked ``undone``."""
+        return self.group_events.list(limit, self.current_line())
+
+    def current_line(self) -> set[int]:
+        """Versions on the current line: from the current version back along the parents
+        (a rollback's parent is the snapshot's version), within the lineage kept."""
+        records = {r.version: r for r in self.versions.lineage(self.options.lineage_limit)}
+        line: set[int] = set()
+        version: int | None = self.versions.version()
+        while version and version not in line:
+            line.add(version)
+            record = records.get(version)
+            version = record.parent if record is not None else version - 1
+        return line
+
+    def event_counts(self) -> dict[str, int]:
+        """Group events ever written, by kind."""
+        return self.group_events.counts()
 
     def set_group_label(self, group: int, label: str | None, destination: str | None) -> GroupLabel:
         """Set (or, with both None, clear) the label and destination of one group."""

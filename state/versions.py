@@ -9,10 +9,19 @@ loaded and that the worker still holds the lease; then ONE MULTI writes the vers
 automatic snapshot (with retention), the checkpoint's alerts and the age trim of the stream
 (XTRIM MINID, never past the watermark). If anything changed under the WATCH nothing is
 written (:class:`VersionConflictError`); the worker reloads and re-reads from the watermark.
+
+A checkpoint that carries group events (births, merges, retirements from
+``OnlineLearner.learn``) also writes, in the same MULTI: a "pre-change" snapshot of the version
+it replaces (the state just before the change, read under the WATCH; its own retention count),
+the event records (:mod:`state.events`), an alert per event, and the label records that follow
+the change (a merge's survivor keeps the absorbed group's label in ``merged_labels``; an
+absorbed or retired group's label stays, marked ``merged_into`` or ``retired``). The labels'
+counter is WATCHed then too, so a label set racing the change conflicts the checkpoint.
 """
 
 from __future__ import annotations
 
+import json
 import time
 from dataclasses import dataclass, field
 from typing import Any
@@ -23,6 +32,8 @@ import redis
 from mixture.serialize import checksum, state_from_bytes, state_to_bytes
 from mixture.stats import MixtureState
 from state.errors import VersionConflictError
+from state.events import EventRecord, GroupEvents, event_alert, event_record
+from state.group_drift import group_ids_of
 from state.handle import ModelHandle, loads_or_none
 from state.records import (
     AUTOMATIC,
@@ -54,6 +65,7 @@ class Checkpoint:
     no_evidence: int = 0
     snapshot_reason: str | None = None
     alerts: list[dict[str, Any]] = field(default_factory=list)
+    events: list[Any] = field(default_factory=list)  # mixture.lifecycle.GroupEvent
 
 
 @dataclass(frozen=True)
@@ -82,6 +94,7 @@ def state_summary(state: MixtureState) -> dict[str, Any]:
         "weights": [float(w) for w in weights],
         "warmed_up": bool(state.warmed_up),
         "provisional": bool(not state.warmed_up and state.provisional is not None),
+        "group_ids": group_ids_of(state),
     }
     entries_read = state.metadata.get("entries_read")
     if isinstance(entries_read, int) and not isinstance(entries_read, bool):
@@ -199,10 +212,14 @@ class Versions:
         cp.state.watermark = cp.watermark
         data = state_to_bytes(cp.state)
         snapshot_id = self.snapshots.next_id() if cp.snapshot_reason else None
+        change_id = self.snapshots.next_id() if cp.events else None
         with self.handle.redis.pipeline(transaction=True) as pipe:
             try:
                 current_version = self._check(pipe, cp)
+                change = self._before_change(pipe, cp, change_id) if cp.events else None
                 expired = self.snapshots.to_prune(pipe, extra=1 if snapshot_id else 0)
+                if change is not None and change[0] is not None:
+                    expired += self.snapshots.to_prune(pipe, extra=1, kind="pre-change")
                 now = time.time()
                 write = VersionWrite(
                     version=current_version + 1,
@@ -219,6 +236,8 @@ class Versions:
                 pipe.multi()
                 write_version(pipe, self.handle, write)
                 self._write_extras(pipe, cp, write, snapshot_id, expired)
+                if change is not None:
+                    self._write_change(pipe, cp, write, *change)
                 pipe.execute()
             except redis.WatchError as exc:
                 raise VersionConflictError(
@@ -245,6 +264,68 @@ class Versions:
                 f"worker {cp.worker!r} no longer holds model {self.handle.model!r} ({who} does)"
             )
         return current_version
+
+    def _before_change(
+        self, pipe: redis.client.Pipeline, cp: Checkpoint, change_id: str | None
+    ) -> tuple[SnapshotInfo | None, bytes | None, dict[int, dict[str, Any]]]:
+        """Under the WATCH: the pre-change snapshot of the version about to be replaced (None
+        before the first version) and the labels the events touch (labels WATCHed)."""
+        keys = self.handle.keys
+        pipe.watch(keys.labels_version)
+        labels = {int(k): json.loads(v) for k, v in pipe.hgetall(keys.labels).items()}
+        previous, raw_meta = pipe.get(keys.state), pipe.get(keys.state_meta)
+        if previous is None or raw_meta is None or change_id is None:
+            return None, None, labels
+        meta = json.loads(raw_meta)
+        kinds = ", ".join(f"{e.kind} {list(e.groups)}" for e in cp.events)
+        info = SnapshotInfo(
+            id=change_id,
+            reason=f"before {kinds}"[:500],
+            kind="pre-change",
+            created=time.time(),
+            version=int(meta["version"]),
+            documents_learned=int(meta["documents_learned"]),
+            weights=[float(w) for w in meta["weights"]],
+            checksum=checksum(previous),
+            watermark=str(meta["watermark"]),
+            size=len(previous),
+        )
+        return info, previous, labels
+
+    def _write_change(
+        self,
+        pipe: redis.client.Pipeline,
+        cp: Checkpoint,
+        write: VersionWrite,
+        info: SnapshotInfo | None,
+        previous: bytes | None,
+        labels: dict[int, dict[str, Any]],
+    ) -> None:
+        """The pre-change snapshot, the event records with their alerts, the labels that
+        follow a merge or a retirement (see the module docstring)."""
+        keys = self.handle.keys
+        if info is not None and previous is not None:
+            self.snapshots.write(pipe, info, previous)
+        records = [
+            event_record(
+                e, version=write.version, time=write.time, snapshot_id=info.id if info else None
+            )
+            for e in cp.events
+        ]
+        GroupEvents(self.handle).write(pipe, records)
+        changed: dict[int, dict[str, Any]] = {}
+        for record in records:
+            pipe.xadd(
+                keys.alerts,
+                {k: str(v) for k, v in event_alert(record).items()},
+                maxlen=10_000,
+                approximate=True,
+            )
+            follow_labels(record, labels, changed)
+        for group, value in changed.items():
+            pipe.hset(keys.labels, str(group), dumps(value))
+        if changed:
+            pipe.incr(keys.labels_version)
 
     def _write_extras(
         self,
@@ -283,6 +364,39 @@ class Versions:
         minid = trim_floor(cp.watermark, options.stream_max_age_seconds, write.time)
         if minid is not None:
             pipe.xtrim(keys.docs, minid=minid, approximate=True)
+
+
+def follow_labels(
+    record: EventRecord, labels: dict[int, dict[str, Any]], changed: dict[int, dict[str, Any]]
+) -> None:
+    """Update ``labels`` (group id -> stored label dict) for one event, noting what changed.
+
+    Merge: the survivor keeps its own label and adds the absorbed group's label (and those it
+    had absorbed before) to ``merged_labels``; when the survivor had no label of its own it
+    takes the absorbed one's. The absorbed group's record stays, marked ``merged_into``.
+    Retirement: the record stays, marked ``retired`` (ids are never reused, so it keeps its
+    meaning as history).
+    """
+    if record.kind == "merge" and len(record.groups) == 2:
+        survivor, absorbed = record.groups
+        gone = labels.get(absorbed)
+        if gone is None:
+            return
+        kept = dict(labels.get(survivor) or {"group": survivor, "updated": record.time})
+        merged = list(kept.get("merged_labels") or [])
+        merged.append(
+            {"group": absorbed, "label": gone.get("label"), "destination": gone.get("destination")}
+        )
+        merged.extend(gone.get("merged_labels") or [])
+        kept["merged_labels"] = merged
+        if kept.get("label") is None and kept.get("destination") is None:
+            kept["label"], kept["destination"] = gone.get("label"), gone.get("destination")
+        labels[survivor] = changed[survivor] = kept
+        labels[absorbed] = changed[absorbed] = {**gone, "merged_into": survivor}
+    elif record.kind == "retire" and record.groups:
+        group = record.groups[0]
+        if group in labels:
+            labels[group] = changed[group] = {**labels[group], "retired": record.version}
 
 
 def trim_floor(watermark: str, max_age_seconds: float | None, now: float) -> str | None:

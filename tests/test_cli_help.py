@@ -70,6 +70,7 @@ MODEL_COMMANDS = {
     "label": ["label", "0", "--label", "lost property"],
     "flagged": ["flagged"],
     "export": ["export"],
+    "events": ["events"],
 }
 
 

@@ -72,6 +72,8 @@ def test_review_reasons_follow_the_rule() -> None:
         review_unknown_share=0.5,
         labels={0: {"label": "L0", "destination": "d"}},
         provisional=False,
+        group_ids=list(range(state.n_groups)),
+        starting_groups=state.n_groups,
     )
     results = build_results(loaded, documents, routing, atypical, None, None)  # type: ignore[arg-type]
     for result, posterior in zip(results, routing.posterior, strict=True):

@@ -270,7 +270,7 @@ def test_group_labels_and_review_threshold(redis_client: redis.Redis, model_name
     assert store.group_labels() == {1: record} and store.labels_version() == 1
     store.set_group_label(1, None, None)
     assert store.group_labels() == {} and store.labels_version() == 2
-    with pytest.raises(OptionsError, match=r"\[0, 3\)"):
+    with pytest.raises(OptionsError, match=r"current group \[0, 1, 2\]"):
         store.set_group_label(3, "x", None)
     with pytest.raises(OptionsError, match="label"):
         store.set_group_label(0, "", None)

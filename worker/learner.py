@@ -21,6 +21,18 @@ docs <cursor>`` (:class:`state.reader.PageReader`), and learns it strictly in st
    a million entries holds the lease and commits its progress page after page instead of
    being taken over by the standby and thrown away.
 
+Groups that change
+------------------
+A learning unit whose decisions changed the groups (``BatchReport.events``: births, merges,
+retirements) is checkpointed at once, right after the unit, so each change is a version of its
+own like any other checkpoint; the checkpoint carries the events, and the store writes the
+pre-change snapshot and the event records in the same MULTI (``state.versions``). A crash
+before that MULTI leaves nothing: the watermark did not move, the next worker learns the same
+units and makes the same change. Drift is compared by group id: the weights of groups present
+at both points, and each group's words against a reference (its word distribution, kept in the
+worker's memory, ``state.group_drift``), both within the current line of versions (a
+rollback reloads the worker, which starts both windows again from what it loaded).
+
 The watermark is the last entry such that every entry up to it is handled. A checkpoint
 (``ModelStore.commit_checkpoint``) writes state, version + 1, watermark, history row and
 lineage record in one MULTI under WATCH of version and lease. When the WATCH fails (a
@@ -69,11 +81,17 @@ from typing import Any
 import numpy as np
 import redis
 
-from mixture.drift import js_divergence
 from mixture.online import BatchReport, OnlineLearner
 from mixture.serialize import state_from_bytes
 from state.connection import redis_from_url
 from state.errors import ModelNotFoundError, VersionConflictError
+from state.group_drift import (
+    WordReference,
+    compare_weights,
+    content_divergence,
+    group_ids_of,
+    word_reference,
+)
 from state.options import ModelOptions
 from state.reader import (
     PageReader,
@@ -171,7 +189,15 @@ class Worker:
         self._last_checkpoint = time.monotonic()
         self._last_arrival = time.monotonic()
         self._last_lease = 0.0
-        self._recent_weights: deque[list[float]] = deque(maxlen=self.options.drift_window)
+        # (group ids, weights) of the last checkpoints on this line of versions
+        self._recent_weights: deque[tuple[list[int], list[float]]] = deque(
+            maxlen=self.options.drift_window
+        )
+        self._events: list[Any] = []  # group events learned since the last checkpoint
+        # the older and the newer word reference (see _content_alerts)
+        self._word_references: deque[WordReference] = deque(maxlen=2)
+        self._word_reference_age = 0  # checkpoints since the newer was taken
+        self._word_alarms: set[int] = set()  # groups whose word-drift alert is standing
         self._last_auto_snapshot_docs = 0
         self._last_auto_snapshot_time = time.time()
         self.holding = False
@@ -253,7 +279,12 @@ class Worker:
         """Commit what was handled since the last checkpoint. False if nothing to write."""
         if self.learner is None:
             return False
-        if self.handled == self._committed and not self._dead and not self._gap_alerts:
+        if (
+            self.handled == self._committed
+            and not self._dead
+            and not self._gap_alerts
+            and not self._events
+        ):
             self._last_checkpoint = time.monotonic()
             return False
         state = self.learner.state
@@ -270,7 +301,7 @@ class Worker:
             self._drop_work()
             return False
         self._last_lease = time.monotonic()
-        alerts = self._drift_alerts(state) + self._gap_alerts
+        alerts = self._drift_alerts(state) + self._content_alerts() + self._gap_alerts
         snapshot_reason = self._snapshot_due(state)
         state.metadata["entries_read"] = self._entries_read()
         state.metadata["entries_read_watermark"] = self.handled
@@ -286,6 +317,7 @@ class Worker:
             no_evidence=self._report.no_evidence,
             snapshot_reason=snapshot_reason,
             alerts=alerts,
+            events=list(self._events),
         )
         try:
             self.version = self.store.commit_checkpoint(cp)
@@ -302,12 +334,13 @@ class Worker:
         self.checkpoints += 1
         self._committed = self.handled
         if state.warmed_up:
-            self._recent_weights.append([float(w) for w in state.weights()])
+            self._recent_weights.append((group_ids_of(state), [float(w) for w in state.weights()]))
         if snapshot_reason:
             self._last_auto_snapshot_docs = state.documents_learned
             self._last_auto_snapshot_time = time.time()
         self._dead.clear()
         self._gap_alerts.clear()
+        self._events.clear()
         self._report = BatchReport()
         self._documents_since_checkpoint = 0
         self._fit_to_serve = False
@@ -405,16 +438,19 @@ class Worker:
         self.reader.drop()
         self._dead.clear()
         self._gap_alerts.clear()
+        self._events.clear()
         self._report = BatchReport()
         self._documents_since_checkpoint = 0
         self._load_counters(current)
         self._recent_weights.clear()
+        self._word_references.clear()
+        self._word_alarms.clear()
         # the drift window never reaches back across a rollback (the spoiled state's weights)
         rollbacks = [r.version for r in self.store.lineage(1000) if r.kind == "rollback"]
         since = max(rollbacks, default=0)
         for row in self.store.history(self.options.drift_window):
             if row.version >= since:
-                self._recent_weights.append(row.weights)
+                self._recent_weights.append((row.ids(), row.weights))
         autos = [s for s in self.store.list_snapshots() if s.automatic]
         if autos:
             last = max(autos, key=lambda s: s.created)
@@ -483,6 +519,7 @@ class Worker:
         self._dead.clear()
         self._gap_alerts.clear()
         self._fit_to_serve = False
+        self._events.clear()
 
     # -- reading -----------------------------------------------------------------------------
     def _read_page(self) -> int:
@@ -679,6 +716,10 @@ class Worker:
             learned += len(texts)
             self._handle(cut)
             pending.documents -= len(texts)
+            if report.events:  # a change of the groups: a version of its own, at once
+                self._events.extend(report.events)
+                if not self.checkpoint() and self.learner is None:
+                    return learned  # the work was dropped (conflict, lease, delete)
         if not pending.documents and pending.ids:
             self._handle(len(pending.ids))
         return learned
@@ -707,8 +748,15 @@ class Worker:
 
     # -- checkpoint policy -------------------------------------------------------------------
     def _checkpoint_due(self) -> bool:
-        if self.handled == self._committed and not self._dead and not self._gap_alerts:
+        if (
+            self.handled == self._committed
+            and not self._dead
+            and not self._gap_alerts
+            and not self._events
+        ):
             return False
+        if self._events:
+            return True
         if (
             self._fit_to_serve
             or self._documents_since_checkpoint >= self.options.checkpoint_documents
@@ -736,26 +784,28 @@ class Worker:
         learner_state = self.learner.state if self.learner is not None else None
         if learner_state is None or not learner_state.warmed_up or not self._recent_weights:
             return []
-        reference = np.asarray(self._recent_weights[0], dtype=float)
-        now = learner_state.weights()
-        if reference.shape != now.shape:
-            return []
-        value = float(js_divergence(now, reference))
+        ref_ids, ref_weights = self._recent_weights[0]
+        now_ids = group_ids_of(learner_state)
+        compared = compare_weights(
+            [float(w) for w in learner_state.weights()], now_ids, ref_weights, ref_ids
+        )
+        value = compared.js_divergence
         threshold = self.options.drift_threshold
         alarmed = bool(learner_state.metadata.get("drift_alarm", False))
         alerts: list[dict[str, object]] = []
         if value > threshold and not alarmed:
-            change = now - reference
-            group = int(np.argmax(np.abs(change)))
+            change = compared.now - compared.reference
+            at = int(np.argmax(np.abs(change)))
+            group = compared.common[at]
             alerts.append(
                 {
                     "time": time.time(),
                     "kind": "weight_drift",
                     "reason": (
                         f"JS divergence of the mixture weights over the last "
-                        f"{len(self._recent_weights)} checkpoints is {value:.4f} > {threshold}; "
-                        f"largest change: group {group} {reference[group]:.3f} -> "
-                        f"{now[group]:.3f}"
+                        f"{len(self._recent_weights)} checkpoints is {value:.4f} > {threshold} "
+                        f"(the {len(compared.common)} groups present at both); largest change: "
+                        f"group {group} {compared.reference[at]:.3f} -> {compared.now[at]:.3f}"
                     ),
                     "value": value,
                     "threshold": threshold,
@@ -765,6 +815,56 @@ class Worker:
             learner_state.metadata["drift_alarm"] = True
         elif value <= threshold and alarmed:
             learner_state.metadata["drift_alarm"] = False
+        return alerts
+
+    def _content_alerts(self) -> list[dict[str, object]]:
+        """Per-group word drift against the reference (``state.group_drift``).
+
+        A reference is taken at the first checkpoint after a load and a new one every
+        ``drift_window`` checkpoints; at each of those the words are compared with the older of
+        the last two references, so the comparison spans two windows (one reference alone,
+        renewed in a tumbling window, cut a burst in pieces and saw a third of it). Once per
+        window, because the comparison is O(vocabulary x K), far more than a learning unit's
+        O(words in the unit x K): checked at every checkpoint it cost the worker a tenth of its
+        throughput (bench_worker). One alert per group when its divergence crosses
+        ``word_drift_threshold`` (again only after it fell back below).
+        """
+        state = self.learner.state if self.learner is not None else None
+        if state is None or not state.warmed_up:
+            return []
+        references = self._word_references
+        if not references:
+            references.append(word_reference(state, self.version))
+            self._word_reference_age = 0
+            return []
+        self._word_reference_age += 1
+        if self._word_reference_age < self.options.drift_window:
+            return []
+        reference = references[0]
+        divergence = content_divergence(reference, state)
+        references.append(word_reference(state, self.version))
+        self._word_reference_age = 0
+        threshold = self.options.word_drift_threshold
+        alerts: list[dict[str, object]] = []
+        for group, value in sorted(divergence.items()):
+            if value > threshold and group not in self._word_alarms:
+                alerts.append(
+                    {
+                        "time": time.time(),
+                        "kind": "word_drift",
+                        "reason": (
+                            f"group {group}: JS divergence of its words since version "
+                            f"{reference.version} is {value:.4f} > {threshold}"
+                        ),
+                        "value": value,
+                        "threshold": threshold,
+                        "version": self.version + 1,
+                    }
+                )
+                self._word_alarms.add(group)
+            elif value <= threshold:
+                self._word_alarms.discard(group)
+        self._word_alarms &= set(divergence)
         return alerts
 
     # -- shutdown --------------------------------------------------------------------------

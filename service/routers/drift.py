@@ -32,6 +32,8 @@ def drift(
     report = runtime.call(lambda: loaded.store.drift(reference=reference, window=window))
     data = report.to_dict()
     data.pop("series", None)
+    if data.get("word_divergence") is not None:  # nan (a group gone) is not JSON
+        data["word_divergence"] = [v if v == v else None for v in data["word_divergence"]]
     data["model"] = model
     return data
 

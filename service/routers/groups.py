@@ -18,20 +18,23 @@ NOT_FOUND = {404: {"model": Problem, "description": "Unknown model or group"}}
 
 def group_dicts(loaded: LoadedModel, top: int, min_count: float) -> list[dict[str, Any]]:
     """Every group of a loaded model as JSON-able dicts."""
-    k = loaded.n_groups
+    ids = loaded.group_ids
+    k = len(ids)
     typicality = loaded.typicality.to_dict()
     if loaded.state is None:
         summaries: list[Any] = []
     else:
         summaries = describe_groups(loaded.state, top_n=top, min_count=min_count)
-    by_group = {int(s.group): s for s in summaries}
+    by_position = {int(s.group): s for s in summaries}  # describe_groups numbers by position
     out = []
-    for g in range(k):
-        summary = by_group.get(g)
-        label = loaded.labels.get(g) or {}
+    for g, group_id in enumerate(ids):
+        summary = by_position.get(g)
+        label = loaded.labels.get(group_id) or {}
         out.append(
             {
-                "group": g,
+                "group": group_id,
+                "born": group_id >= loaded.starting_groups,
+                "merged_labels": label.get("merged_labels") or [],
                 "weight": float(summary.weight) if summary else 1.0 / k,
                 "expected_documents": float(summary.expected_documents) if summary else 0.0,
                 "label": label.get("label"),
@@ -86,8 +89,7 @@ def get_group(
     min_count: Annotated[float, Query(ge=0.0, le=1e9)] = 3.0,
 ) -> dict[str, Any]:
     loaded = runtime.model(model)
-    loaded.check_group(group)
-    return group_dicts(loaded, top, min_count)[group]
+    return group_dicts(loaded, top, min_count)[loaded.position_of(group)]
 
 
 @router.put(
@@ -100,4 +102,4 @@ def set_label(model: str, group: int, body: LabelIn, runtime: Runtime) -> dict[s
     """Name a group and say where its messages go; routing answers carry both from now on."""
     runtime.set_label(model, group, body.label, body.destination)
     loaded = runtime.model(model)
-    return group_dicts(loaded, 10, 3.0)[group]
+    return group_dicts(loaded, 10, 3.0)[loaded.position_of(group)]

@@ -34,6 +34,7 @@ def model_out(runtime: ServiceRuntime, loaded: LoadedModel, with_stream: bool) -
     return {
         "name": loaded.name,
         "n_groups": k,
+        "group_ids": loaded.group_ids,
         "version": loaded.version,
         "documents_learned": int(state.documents_learned) if state is not None else 0,
         "warmed_up": bool(state is not None and state.warmed_up),
@@ -73,6 +74,35 @@ def _jsonable(value: Any) -> Any:
     return value
 
 
+# A model whose number of topics is unknown starts with this many groups and grows by births
+# (two: the fewest a mixture can split a stream into) up to UNKNOWN_MAX_GROUPS unless told
+# otherwise (rule of thumb, no source: room for a busy inbox's topics at a modest cost per
+# update, which is O(words x K)).
+UNKNOWN_START_GROUPS = 2
+UNKNOWN_MAX_GROUPS = 32
+
+
+def creation_config(fields: dict[str, Any], max_groups: int | None) -> dict[str, Any]:
+    """The configuration of a new model from the fields the request set.
+
+    Without ``n_groups`` the model starts small with the lifecycle on (K unknown, as in a new
+    inbox): ``UNKNOWN_START_GROUPS`` groups, ``max_groups`` (or ``UNKNOWN_MAX_GROUPS``) as the
+    ceiling. With ``n_groups`` the lifecycle follows ``lifecycle.enabled`` (off by default).
+    ``max_groups`` sets ``lifecycle.max_groups`` in both cases.
+    """
+    out = dict(fields)
+    lifecycle = dict(out.get("lifecycle") or {})
+    if "n_groups" not in out:
+        out["n_groups"] = UNKNOWN_START_GROUPS
+        lifecycle.setdefault("enabled", True)
+        lifecycle.setdefault("max_groups", UNKNOWN_MAX_GROUPS)
+    if max_groups is not None:
+        lifecycle["max_groups"] = max_groups
+    if lifecycle:
+        out["lifecycle"] = lifecycle
+    return out
+
+
 @router.post(
     "/models",
     status_code=status.HTTP_201_CREATED,
@@ -90,7 +120,9 @@ def create_model(body: ModelIn, runtime: Runtime) -> dict[str, Any]:
     except OptionsError as exc:
         raise InvalidFieldError(str(exc), "name") from None
     # the schemas fixed the types; the dataclasses check the ranges and fill the defaults
-    config = MixtureConfig.from_dict(body.config.model_dump(exclude_unset=True))
+    config = MixtureConfig.from_dict(
+        creation_config(body.config.model_dump(exclude_unset=True), body.max_groups)
+    )
     options = ModelOptions.from_dict(body.options.model_dump(exclude_unset=True))
     runtime.call(lambda: runtime.registry.create(body.name, config, options))
     loaded = runtime.reload(body.name)

@@ -37,31 +37,41 @@ def build_results(
     stream_ids: list[str | None] | None,
 ) -> list[dict[str, Any]]:
     """Per-document answers as plain dicts (serialised without a second validation pass)."""
-    posteriors = posterior_entries(routing.posterior, top)
+    ids = loaded.group_ids  # answers name groups by id, never by array position
+    posteriors = posterior_entries(routing.posterior, top, ids)
+    groups = routing.group.tolist()
+    starting = loaded.starting_groups
+    labels = loaded.labels
+
+    def unnamed_newborn(group_id: int) -> bool:
+        label = labels.get(group_id)
+        return group_id >= starting and not (label and (label["label"] or label["destination"]))
+
+    new_group = np.array([unnamed_newborn(ids[g]) for g in groups], dtype=bool)
     all_reasons = review_reasons(
         routing,
         loaded.review_threshold,
         loaded.review_unknown_share,
         atypical,
         provisional=loaded.provisional,
+        new_group=new_group,
     )
-    groups = routing.group.tolist()
     margins = routing.margin.tolist()
     llpt = routing.log_likelihood_per_token.tolist()
     known = routing.known_tokens.tolist()
     unknown = routing.unknown_tokens.tolist()
-    labels = loaded.labels
     results = []
     for i, doc in enumerate(documents):
         g = groups[i]
+        group_id = ids[g]
         reasons = all_reasons[i]
-        label = labels.get(g)
+        label = labels.get(group_id)
         value = llpt[i]
         stream_id = stream_ids[i] if stream_ids is not None else None
         results.append(
             {
                 "id": doc.id,
-                "group": g,
+                "group": group_id,
                 "label": label["label"] if label else None,
                 "destination": label["destination"] if label else None,
                 "posterior": posteriors[i],

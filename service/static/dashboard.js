@@ -86,7 +86,12 @@ function niceStep(top) {
 
 // -- chart ------------------------------------------------------------------------------------
 
-function drawChart(rows, alerts, labels) {
+// Group ids of a history row (rows written before groups had ids: 0..K-1).
+function rowIds(row) {
+  return row.group_ids || row.weights.map((_, g) => g);
+}
+
+function drawChart(rows, alerts, labels, events = [], snapshots = []) {
   const box = $("chart");
   box.textContent = "";
   const W = 960, H = 300, left = 46, right = 14, top = 12, bottom = 30;
@@ -98,7 +103,6 @@ function drawChart(rows, alerts, labels) {
     $("legend").textContent = "";
     return;
   }
-  const k = rows[0].weights.length;
   const t0 = rows[0].time, t1 = rows[rows.length - 1].time;
   const span = Math.max(t1 - t0, 1e-6);
   let ymax = 0;
@@ -140,9 +144,41 @@ function drawChart(rows, alerts, labels) {
   }
   root.appendChild(marks);
 
+  // births, merges and retirements (a circle at the top), snapshots (a tick at the bottom)
+  const inside = (t) => t >= t0 - span * 0.02 && t <= t1 + span * 0.02;
+  const changes = svg("g", { class: "group-events" });
+  for (const event of events) {
+    if (!inside(event.time)) continue;
+    const ex = x(Math.min(Math.max(event.time, t0), t1));
+    const mark = svg("g", { class: `group-event ${event.kind}`, "data-version": event.version,
+      "data-kind": event.kind });
+    mark.appendChild(svg("line", { x1: ex, x2: ex, y1: top, y2: y(0), class: "event-line" }));
+    mark.appendChild(svg("circle", { cx: ex, cy: top + 2, r: 4, class: "event-mark" }));
+    mark.appendChild(svg("title", {}, `${event.kind} of group(s) ${event.groups.join(", ")} at ` +
+      `version ${event.version}${event.undone ? " (undone by a rollback)" : ""}: ${event.reason}`));
+    changes.appendChild(mark);
+  }
+  for (const snapshot of snapshots) {
+    if (!inside(snapshot.created)) continue;
+    const sx = x(Math.min(Math.max(snapshot.created, t0), t1));
+    const mark = svg("g", { class: `snapshot-mark ${snapshot.kind}`, "data-kind": snapshot.kind });
+    mark.appendChild(svg("line", { x1: sx, x2: sx, y1: y(0) - 6, y2: y(0) + 2, class: "snap-tick" }));
+    mark.appendChild(svg("title", {}, `${snapshot.kind} snapshot ${snapshot.id} of version ` +
+      `${snapshot.version}: ${snapshot.reason}`));
+    changes.appendChild(mark);
+  }
+  root.appendChild(changes);
+
+  // one line per group id, over the checkpoints where that group existed
+  const ids = [];
+  for (const row of rows) for (const id of rowIds(row)) if (!ids.includes(id)) ids.push(id);
   const lines = svg("g", { class: "lines" });
-  for (let g = 0; g < k; g++) {
-    const points = rows.map((row) => `${x(row.time).toFixed(1)},${y(row.weights[g]).toFixed(1)}`);
+  for (const g of ids) {
+    const points = [];
+    for (const row of rows) {
+      const at = rowIds(row).indexOf(g);
+      if (at >= 0) points.push(`${x(row.time).toFixed(1)},${y(row.weights[at]).toFixed(1)}`);
+    }
     const path = svg("polyline", { points: points.join(" "), class: "series", "data-group": g,
       stroke: colour(g) });
     path.appendChild(svg("title", {}, groupName(g, labels)));
@@ -152,12 +188,13 @@ function drawChart(rows, alerts, labels) {
 
   const legend = $("legend");
   legend.textContent = "";
-  const last = rows[rows.length - 1].weights;
-  for (let g = 0; g < k; g++) {
+  const lastRow = rows[rows.length - 1];
+  const lastIds = rowIds(lastRow);
+  lastIds.forEach((g, at) => {
     const swatch = el("span", { class: "swatch", style: `background:${colour(g)}` });
     legend.appendChild(el("li", {}, [swatch,
-      el("span", { text: `${groupName(g, labels)} (${last[g].toFixed(3)})` })]));
-  }
+      el("span", { text: `${groupName(g, labels)} (${lastRow.weights[at].toFixed(3)})` })]));
+  });
 }
 
 // -- groups, flagged documents, snapshots -------------------------------------------------------
@@ -302,12 +339,13 @@ async function refresh() {
     const model = await loadModels();
     if (!model) { notice("No model yet: create one with POST /models or `mixroute models create`."); return; }
     const base = `/models/${encodeURIComponent(model.name)}`;
-    const [history, alerts, groups, flagged, snapshots] = await Promise.all([
+    const [history, alerts, groups, flagged, snapshots, events] = await Promise.all([
       api("GET", `${base}/drift/history?limit=2000`),
       api("GET", `${base}/drift/alerts?count=500`),
       api("GET", `${base}/groups?top=8`),
       api("GET", `${base}/flagged?count=15`),
       api("GET", `${base}/snapshots`),
+      api("GET", `${base}/events?limit=500`),
     ]);
     const labels = {};
     for (const g of groups.groups) if (g.label) labels[g.group] = g.label;
@@ -315,7 +353,9 @@ async function refresh() {
     $("version").dataset.version = String(model.version);
     $("learned").textContent = `${model.documents_learned} documents learned`;
     notice(model.warmed_up ? "" : `Model ${model.name}: ${model.status}.`);
-    drawChart(history.rows, alerts.alerts, labels);
+    // group events get their own markers; the alert diamonds keep to drift and stream alerts
+    const driftAlerts = alerts.alerts.filter((a) => !a.kind.startsWith("group-"));
+    drawChart(history.rows, driftAlerts, labels, events.events, snapshots.snapshots);
     drawGroups(groups.groups);
     drawFlagged(flagged.documents, labels);
     drawSnapshots(snapshots.snapshots);
