@@ -130,6 +130,13 @@ class Settings(BaseSettings):
         description="Threads the model core may use for batch EM fits (unset: the CPUs this "
         "process may run on, at most 8; 1 runs them inline, e.g. beside other busy processes).",
     )
+    model_memory_mb: float | None = Field(
+        default=None,
+        gt=0.0,
+        description="Memory budget of the models one API process holds, MiB (unset: every "
+        "model stays loaded). Models load on their first request; past the budget the least "
+        "recently used are dropped and read again from Redis when asked for.",
+    )
     metrics_public: bool = Field(
         default=False,
         description="Serve /metrics without a key (for a scraper that cannot send one; the "
