@@ -99,7 +99,8 @@ def test_models_on_every_node_listed_and_deleted(client: object) -> None:
 
 def test_api_worker_snapshot_rollback_delete(cluster: LocalCluster, client: object) -> None:
     model_name = f"t-{uuid.uuid4().hex[:12]}"  # deleted through the API at the end
-    settings = Settings(redis_url=cluster.url, redis_cluster=True, reload_poll_interval=0.05)
+    # the fallback poll is slow here so the notice, not the poll, is what is checked
+    settings = Settings(redis_url=cluster.url, redis_cluster=True, reload_poll_interval=30)
     pool = lambda _runtime: WorkerPool(cluster.url, 0.1, models=[])  # noqa: E731
     app = create_app(settings, background_factories=[pool])
     with TestClient(app) as http:
@@ -131,7 +132,11 @@ def test_api_worker_snapshot_rollback_delete(cluster: LocalCluster, client: obje
             json={"documents": [{"text": m.text} for m in messages[:150]]},
         )
         assert more.status_code == 202, more.text
+        wait_until(lambda: runtime.subscribed, what="the notice subscription on the cluster")
+        notices = runtime.notices
         wait_until(lambda: worker.run_once() >= 0 and store.version() > first, what="learning")
+        # the checkpoint's notice, published from inside the cluster MULTI, reaches the API
+        wait_until(lambda: runtime.notices > notices, what="the checkpoint notice")
         restored = http.post(
             f"/models/{model_name}/snapshots/{snap_body['id']}/restore", json={"replay": False}
         )
