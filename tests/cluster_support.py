@@ -114,6 +114,10 @@ class LocalCluster:
                 "nodes.conf",
                 "--cluster-node-timeout",
                 "1000",
+                # a replica may always take over: with a 1 s node timeout the default validity
+                # window (10 x timeout plus the ping period) refuses replicas of a busy test
+                "--cluster-replica-validity-factor",
+                "0",
                 "--dir",
                 str(node_dir),
                 "--appendonly",
