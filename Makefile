@@ -13,7 +13,7 @@ FLOOR_TESTS := tests/test_mixture_core.py tests/test_text.py tests/test_state_ke
 	tests/test_service_units.py tests/test_service_api.py tests/test_runtime_reload.py \
 	tests/test_embedded_lifecycle.py
 
-.PHONY: install corpora browser imap-server test test-fast test-floors demo bench lint format clean
+.PHONY: install corpora browser imap-server cluster-tools test test-fast test-floors demo bench lint format clean
 
 $(STAMP): pyproject.toml
 	test -x $(PY) || $(PYTHON) -m venv $(VENV)
@@ -37,10 +37,15 @@ browser:
 imap-server:
 	test -x /usr/sbin/dovecot || (apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq dovecot-imapd >/dev/null)
 
-test: $(STAMP) corpora browser imap-server
+# the Redis Cluster tests start the machine's redis-server in cluster mode and join the nodes
+# with redis-cli (Debian's redis-server and redis-tools)
+cluster-tools:
+	test -x /usr/bin/redis-server -a -x /usr/bin/redis-cli || (apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq redis-server redis-tools >/dev/null)
+
+test: $(STAMP) corpora browser imap-server cluster-tools
 	$(PY) -m pytest -q
 
-test-fast: $(STAMP)
+test-fast: $(STAMP) cluster-tools
 	$(PY) -m pytest -q -m "not corpus and not browser"
 
 $(FLOOR_STAMP): pyproject.toml .ci/floors.py

@@ -39,11 +39,13 @@ from mixture.restarts import (
     PLAIN,
     FitReport,
     RestartSummary,
+    SweepFactory,
     fit_restarts,
     iteration_bound,
     restart_kinds,
 )
 from mixture.stats import MixtureState, Parameters, derive_parameters
+from mixture.sweep import EMSweep
 
 __all__ = ["FitReport", "RestartSummary"]
 
@@ -189,6 +191,7 @@ def fit_batch_em(
     active: np.ndarray | None = None,
     progress: Progress | None = None,
     kinds: tuple[str, ...] | None = None,
+    sweep_factory: SweepFactory | None = None,
 ) -> tuple[np.ndarray, np.ndarray, FitReport]:
     """Fit the mixture by MAP-EM with seeded restarts; the best MAP objective wins.
 
@@ -211,6 +214,8 @@ def fit_batch_em(
     kinds : tuple of str, optional
         Runs made from each seeding, ``"annealed"`` and/or ``"plain"``; by default both (plain
         only when annealing_steps is 0). For comparisons: one kind alone is the fit of before.
+    sweep_factory : callable, optional
+        Makes each run's sweep (default :class:`mixture.sweep.EMSweep`, this machine's cores).
 
     Returns
     -------
@@ -249,7 +254,16 @@ def fit_batch_em(
             progress(min(done, total), total)
 
     return fit_restarts(
-        used, used_t, used_lengths, config, seed, active, seed_assignment, kinds, tick
+        used,
+        used_t,
+        used_lengths,
+        config,
+        seed,
+        active,
+        seed_assignment,
+        kinds,
+        tick,
+        EMSweep if sweep_factory is None else sweep_factory,
     )
 
 
@@ -257,6 +271,7 @@ def fit_pending(
     state: MixtureState,
     progress: Progress | None = None,
     kinds: tuple[str, ...] | None = None,
+    sweep_factory: SweepFactory | None = None,
 ) -> FitReport:
     """Fit batch EM on the state's warm-up buffer and make it the state's statistics."""
     if state.pending is None or state.pending.shape[0] == 0:
@@ -279,6 +294,7 @@ def fit_pending(
         active=state.vocabulary.active_mask(),
         progress=progress,
         kinds=kinds,
+        sweep_factory=sweep_factory,
     )
     fitted = MixtureState.from_counts(
         state.config, state.vocabulary, word_counts, doc_counts, state.documents_learned
@@ -302,6 +318,7 @@ def fit_texts(
     seed: int = 0,
     progress: Progress | None = None,
     kinds: tuple[str, ...] | None = None,
+    sweep_factory: SweepFactory | None = None,
 ) -> tuple[MixtureState, FitReport]:
     """Tokenise texts with a growing vocabulary, bound it, and fit batch EM.
 
@@ -319,5 +336,5 @@ def fit_texts(
     batch = count_texts(texts, state.tokenizer, state.vocabulary, grow=True)
     state.pending = batch.counts
     state.documents_learned = len(texts)
-    report = fit_pending(state, progress, kinds)
+    report = fit_pending(state, progress, kinds, sweep_factory)
     return state, report

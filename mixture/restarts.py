@@ -52,6 +52,12 @@ from mixture.config import MixtureConfig
 from mixture.sweep import EMSweep
 
 Seeder = Callable[[sp.csr_matrix, int, np.random.Generator], np.ndarray]
+# Makes the sweep of one run: (counts, counts_t, K, active, word and weight pseudo-counts).
+# EMSweep runs on this machine's cores; a distributed sweep (archive/) is an EMSweep whose
+# E-step runs elsewhere.
+SweepFactory = Callable[
+    [sp.csr_matrix, sp.csr_matrix, int, np.ndarray | None, float, float], EMSweep
+]
 
 # A group under this share of the uniform weight 1 / K is starved (common practice, no source).
 STARVED_SHARE = 0.1
@@ -190,6 +196,7 @@ def fit_restarts(
     seeder: Seeder,
     kinds: tuple[str, ...],
     progress: Callable[[], None] | None,
+    sweep_factory: SweepFactory = EMSweep,
 ) -> tuple[np.ndarray, np.ndarray, FitReport]:
     """Runs from every seeding as :func:`seeding_kinds` plans them; the highest final MAP
     objective among the runs with every group alive wins (fewest starved groups first, should
@@ -220,6 +227,7 @@ def fit_restarts(
                 active,
                 seeder,
                 progress,
+                sweep_factory,
             )
             run.summary.seeding = seeding
             summaries.append(run.summary)
@@ -249,10 +257,13 @@ def _one_run(
     active: np.ndarray | None,
     seeder: Seeder,
     progress: Callable[[], None] | None,
+    sweep_factory: SweepFactory = EMSweep,
 ) -> _Run:
     n_docs = counts.shape[0]
     k = config.n_groups
-    sweep = EMSweep(counts, counts_t, k, active, config.word_pseudocount, config.weight_pseudocount)
+    sweep = sweep_factory(
+        counts, counts_t, k, active, config.word_pseudocount, config.weight_pseudocount
+    )
     resp = np.zeros((n_docs, k))
     resp[np.arange(n_docs), assignment] = 1.0
     sweep.m_step(resp)
@@ -269,7 +280,7 @@ def _one_run(
             resp, _ = sweep.e_step(float(tau))
             if progress is not None:
                 progress()
-            sweep.m_step(resp)
+            sweep.m_step_after_e_step(resp)
 
     objective, resp = _converge(sweep, config, report, progress)
     floor = STARVED_SHARE * n_docs / k
@@ -325,7 +336,7 @@ def _converge(
             report.converged = True
             return objective, resp
         previous = objective
-        sweep.m_step(resp)
+        sweep.m_step_after_e_step(resp)
     report.converged = False
     return objective, resp
 

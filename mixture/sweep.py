@@ -14,6 +14,7 @@ so the results agree with them up to the rounding of sums taken in another order
 from __future__ import annotations
 
 import itertools
+from collections.abc import Callable
 from dataclasses import dataclass
 
 import numpy as np
@@ -184,17 +185,52 @@ class EMSweep:
         (``sum_d r_dk len_d`` equals ``sum_w C_wk``), so every word block can take its
         logarithm as soon as its product is done.
         """
+        self._m_step_with(
+            resp.sum(axis=0),
+            resp.T @ self._active_lengths,
+            lambda part: np.asarray(part.matrix @ resp),
+        )
+
+    def m_step_after_e_step(self, resp: np.ndarray) -> None:
+        """The M-step from the responsibilities the last :meth:`e_step` returned, unchanged.
+
+        Here the same as :meth:`m_step`; a sweep whose E-step already reduced the expected
+        counts (a distributed one) uses those instead of the responsibilities.
+        """
+        self.m_step(resp)
+
+    def m_step_from_statistics(
+        self, doc_counts: np.ndarray, totals: np.ndarray, expected: np.ndarray
+    ) -> None:
+        """The M-step from reduced expected counts instead of responsibilities.
+
+        Parameters
+        ----------
+        doc_counts : ndarray of shape (K,)
+            Expected documents per group, ``sum_d r_dk``.
+        totals : ndarray of shape (K,)
+            Expected active tokens per group, ``sum_d r_dk len_d`` (active words only).
+        expected : ndarray of shape (n_used_words, K)
+            Expected word counts ``X^T R`` over the used words (columns of ``counts``).
+        """
+        self._m_step_with(doc_counts, totals, lambda part: expected[part.start : part.stop])
+
+    def _m_step_with(
+        self,
+        doc_counts: np.ndarray,
+        totals: np.ndarray,
+        expected_of: Callable[[RowBlock], np.ndarray],
+    ) -> None:
         beta, a = self.word_pseudocount, self.weight_pseudocount
-        self.doc_counts = resp.sum(axis=0)
+        self.doc_counts = doc_counts
         self.log_weights = smoothed_log_weights(self.doc_counts, a)
-        totals = resp.T @ self._active_lengths
         log_norm = word_log_normaliser(totals, self.n_active, beta)
         self._turn ^= 1
         log_word_prob = self._buffers[self._turn]
 
         def block(i: int) -> tuple[np.ndarray, float]:
             part = self.word_blocks[i]
-            expected = np.asarray(part.matrix @ resp)
+            expected = expected_of(part)
             active = None if self.active is None else self.active[part.start : part.stop]
             out = smoothed_log_word_prob(
                 expected,

@@ -310,6 +310,7 @@ def create_app(
 
             client = redis_from_url(
                 settings.redis_url,
+                cluster=settings.redis_cluster,
                 socket_timeout=settings.redis_timeout,
                 socket_connect_timeout=settings.redis_timeout,
             )

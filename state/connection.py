@@ -40,6 +40,7 @@ from types import TracebackType
 from typing import Any, TypeVar
 
 import redis
+from redis.cluster import RedisCluster
 
 from state.errors import StateError
 
@@ -68,19 +69,63 @@ def redis_server_binary() -> str:
     return str(binary)
 
 
-def redis_from_url(url: str, **kwargs: object) -> redis.Redis:
+# Whether a URL names a Redis Cluster node. The service sets it once from its settings
+# (MIXROUTE_REDIS_CLUSTER) before any client is made; every client made from a URL without an
+# explicit ``cluster=`` follows it, so the workers, the API and the command line agree.
+_cluster_default = False
+
+
+def use_cluster_client(enabled: bool) -> None:
+    """Make :func:`redis_from_url` build cluster clients (True) or plain clients (False)."""
+    global _cluster_default
+    _cluster_default = bool(enabled)
+
+
+def cluster_client_default() -> bool:
+    """True when clients made from a URL are cluster clients (see :func:`use_cluster_client`)."""
+    return _cluster_default
+
+
+def is_cluster(client: object) -> bool:
+    """True when ``client`` is redis-py's cluster client."""
+    return isinstance(client, RedisCluster)
+
+
+def redis_from_url(url: str, *, cluster: bool | None = None, **kwargs: object) -> Any:
     """A client for ``url`` (``redis://``, ``rediss://`` or ``unix://``), bytes responses.
 
     Parameters
     ----------
     url : str
-        Redis URL.
+        Redis URL; with ``cluster``, the address of any node of the cluster.
+    cluster : bool or None
+        True: redis-py's :class:`~redis.cluster.RedisCluster` (it learns the other nodes and
+        the slot map from the one named); False: :class:`redis.Redis`; None: the process's
+        choice (:func:`use_cluster_client`, from the setting ``MIXROUTE_REDIS_CLUSTER``).
     **kwargs
-        Passed on to :meth:`redis.Redis.from_url` (e.g. ``socket_timeout``).
+        Passed on to ``from_url`` (e.g. ``socket_timeout``).
+
+    Returns
+    -------
+    redis.Redis or redis.cluster.RedisCluster
     """
     options: dict[str, object] = {"decode_responses": False, "health_check_interval": 30}
     options.update(kwargs)
+    if _cluster_default if cluster is None else cluster:
+        if url.startswith("unix://"):
+            raise StateError("a Redis Cluster is reached over TCP: give a redis:// node address")
+        return RedisCluster.from_url(url, **options)
     return redis.Redis.from_url(url, **options)
+
+
+def primary_clients(client: Any) -> list[redis.Redis]:
+    """One plain client per primary node (the client itself when it is not a cluster client).
+
+    What lives on every node (SCAN over all keys, INFO, health) is asked of each of these.
+    """
+    if is_cluster(client):
+        return [client.get_redis_connection(node) for node in client.get_primaries()]
+    return [client]
 
 
 class EmbeddedRedis:
@@ -268,7 +313,7 @@ class EmbeddedRedis:
                     f"{self.data_dir / 'redis.log'}: {stderr.decode(errors='replace')[-500:]}"
                 )
             try:
-                client = redis_from_url(self.url, socket_timeout=1.0)
+                client = redis_from_url(self.url, cluster=False, socket_timeout=1.0)
                 try:
                     # while loading the AOF the server answers LOADING errors
                     if client.ping():
@@ -294,7 +339,7 @@ class EmbeddedRedis:
                 return
             if process.poll() is None:
                 try:
-                    client = redis_from_url(self.url, socket_timeout=timeout)
+                    client = redis_from_url(self.url, cluster=False, socket_timeout=timeout)
                     with contextlib.suppress(redis.ConnectionError):
                         client.shutdown(save=True)  # the server closes the connection
                     client.close()
@@ -329,7 +374,7 @@ class EmbeddedRedis:
 
     def client(self, **kwargs: object) -> redis.Redis:
         """A new client connected to this server."""
-        return redis_from_url(self.url, **kwargs)
+        return redis_from_url(self.url, cluster=False, **kwargs)
 
     def __enter__(self) -> EmbeddedRedis:
         return self.start()
@@ -503,5 +548,7 @@ def connect(
     if url:
         client = redis_from_url(url)
         return client, None
+    if _cluster_default:
+        raise StateError("a Redis Cluster needs its address: set MIXROUTE_REDIS_URL to a node")
     server = EmbeddedRedis(data_dir).start()
     return server.client(), server

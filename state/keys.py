@@ -2,10 +2,14 @@
 
 All keys of one model share the hash tag ``{<model>}``: ``mixroute:{<model>}:<what>``. Redis
 Cluster hashes only the text between the braces, so every key of one model lives in one slot
-and a MULTI/EXEC or a Lua script over them is legal on a cluster too. The only key outside a
+and a MULTI/EXEC or a Lua script over them is legal on a cluster too. The only keys outside a
 model's tag are the registry set :data:`REGISTRY_KEY` and the generation counter
 :data:`GENERATION_KEY` (each created model takes the next number, so a model re-created under
-an old name is told apart from the deleted one by every writer that checks it).
+an old name is told apart from the deleted one by every writer that checks it). Those two share
+the tag ``{_global}`` (one slot of a cluster); no model can be named ``_global`` (names start
+with a letter or digit), so no model's keys or SCAN pattern ever meet them. Before the cluster
+came they were ``mixroute:models`` and ``mixroute:generation_seq``
+(:data:`LEGACY_GLOBAL_KEYS`); :func:`state.registry.adopt_legacy_keys` moves them over.
 
 Keys of model ``M`` (``mixroute:{M}:`` omitted):
 
@@ -53,10 +57,11 @@ import re
 from state.errors import OptionsError
 
 PREFIX = "mixroute"
-REGISTRY_KEY = f"{PREFIX}:models"
-GENERATION_KEY = f"{PREFIX}:generation_seq"
-# Temporary: only the consumer-group worker still reads with a group; it goes with that worker
-# (reads become plain XREAD from the watermark).
+GLOBAL_TAG = "{_global}"  # not a valid model name: never one model's tag
+REGISTRY_KEY = f"{PREFIX}:{GLOBAL_TAG}:models"
+GENERATION_KEY = f"{PREFIX}:{GLOBAL_TAG}:generation_seq"
+# (registry, generation counter) as named before they shared a slot
+LEGACY_GLOBAL_KEYS = (f"{PREFIX}:models", f"{PREFIX}:generation_seq")
 
 _MODEL_NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.\-]{0,63}")
 

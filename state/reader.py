@@ -9,7 +9,10 @@ the current one.
 and arguments (``pool.connection_class(**pool.connection_kwargs)``): it needs no
 ``get_connection`` call, whose signature changed across redis-py 5.x, and its replies are
 read as Redis sent them (``[[id, [field, value, ...]], ...]``): redis-py's conversion to a
-dict per entry costs more than the read itself.
+dict per entry costs more than the read itself. With the cluster client the connection is made
+the same way from the pool of the node that serves the stream's slot; after a failure (a node
+down, a MOVED reply after a failover) the cluster client's slot map is refreshed and the next
+read connects to whichever node serves the slot then.
 
 A read sent ahead (the next page requested before the current one is learned) paid while the
 worker read through a consumer group, whose XREADGROUP + XACK cost Redis real work; with
@@ -28,6 +31,7 @@ from typing import Any
 
 import redis
 
+from state.connection import is_cluster
 from state.stream import ZERO_ID, parse_stream_id
 
 RawEntry = tuple[bytes, list[bytes]]  # really [id, [field, value, ...]] as sent by Redis
@@ -110,11 +114,25 @@ class PageReader:
     reaches a later read (the next command reconnects).
     """
 
-    def __init__(self, client: redis.Redis, key: str, count: int) -> None:
-        pool = client.connection_pool
-        self._connection = pool.connection_class(**pool.connection_kwargs)
+    def __init__(self, client: Any, key: str, count: int) -> None:
+        self._client = client
+        self._cluster = is_cluster(client)
+        self._stale_map = False  # a cluster read failed: refresh the slot map first
         self.key = key
         self.count = int(count)
+        self._connection: Any = None
+        self._connection = self._connect()
+
+    def _connect(self) -> Any:
+        """A new connection to the server of the stream (for a cluster: of its slot now)."""
+        client = self._client
+        if self._cluster:
+            if self._stale_map:
+                client.nodes_manager.initialize()
+                self._stale_map = False
+            client = client.get_redis_connection(client.get_node_from_key(self.key))
+        pool = client.connection_pool
+        return pool.connection_class(**pool.connection_kwargs)
 
     def read(self, after: str, block: int) -> list[RawEntry]:
         """The next page after ``after`` (waiting up to ``block`` ms; [] when none came)."""
@@ -122,11 +140,16 @@ class PageReader:
         if block > 0:
             args += ["BLOCK", block]
         args += ["STREAMS", self.key, after]
+        if self._connection is None:
+            self._connection = self._connect()
         try:
             self._connection.send_command(*args)
             reply = self._connection.read_response()
         except BaseException:
             self.drop()
+            if self._cluster:  # the slot may have moved (failover): re-learn the map
+                self._stale_map = True
+                self._connection = None
             raise
         if not reply:
             return []
@@ -135,7 +158,8 @@ class PageReader:
 
     def close(self) -> None:
         """Disconnect (the next read reconnects)."""
-        self._connection.disconnect()
+        if self._connection is not None:
+            self._connection.disconnect()
 
     drop = close
 

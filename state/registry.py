@@ -3,15 +3,25 @@
 from __future__ import annotations
 
 import json
+import threading
 import time
+import weakref
 from dataclasses import dataclass
 from typing import Any
 
 import redis
+import redis.exceptions as redis_errors
 
 from mixture.config import MixtureConfig
+from state.connection import is_cluster
 from state.errors import ModelExistsError, ModelNotFoundError, StateError
-from state.keys import GENERATION_KEY, REGISTRY_KEY, ModelKeys, validate_model_name
+from state.keys import (
+    GENERATION_KEY,
+    LEGACY_GLOBAL_KEYS,
+    REGISTRY_KEY,
+    ModelKeys,
+    validate_model_name,
+)
 from state.options import ModelOptions
 from state.records import dumps
 
@@ -46,17 +56,70 @@ return redis.call('UNLINK', unpack(KEYS, 2))
 """
 
 
+# Moves the registry set and the generation counter of a single server from their old names
+# to the ones sharing the {_global} slot. KEYS: old registry, old counter, new registry, new
+# counter. Members are merged and the counter keeps the larger value, so a writer that still
+# used an old name meanwhile loses nothing. Returns 1 when something was moved.
+_ADOPT_LUA = """
+local moved = 0
+if redis.call('EXISTS', KEYS[1]) == 1 then
+  redis.call('SUNIONSTORE', KEYS[3], KEYS[3], KEYS[1])
+  redis.call('DEL', KEYS[1])
+  moved = 1
+end
+local old = tonumber(redis.call('GET', KEYS[2]) or '0')
+if old > 0 then
+  local new = tonumber(redis.call('GET', KEYS[4]) or '0')
+  if old > new then redis.call('SET', KEYS[4], old) end
+  redis.call('DEL', KEYS[2])
+  moved = 1
+end
+return moved
+"""
+
+_adopted: weakref.WeakSet[Any] = weakref.WeakSet()  # clients already checked in this process
+_adopted_lock = threading.Lock()
+
+
+def adopt_legacy_keys(client: Any) -> bool:
+    """Move a single server's registry and generation counter to their current names.
+
+    A Redis Cluster was never supported under the old names, so only plain servers are
+    checked (the old names are in different slots: one script could not touch both on a
+    cluster). Each client is checked once per process.
+
+    Returns
+    -------
+    bool
+        True when old keys were found and moved.
+    """
+    with _adopted_lock:
+        if client in _adopted:
+            return False
+        _adopted.add(client)
+    if is_cluster(client):
+        return False
+    if not client.exists(*LEGACY_GLOBAL_KEYS):  # the common case: one cheap round trip
+        return False
+    keys = [*LEGACY_GLOBAL_KEYS, REGISTRY_KEY, GENERATION_KEY]
+    return bool(client.eval(_ADOPT_LUA, len(keys), *keys))
+
+
 class Registry:
     """Create, list, read and delete models.
 
     Parameters
     ----------
-    redis : redis.Redis
+    redis : redis.Redis or redis.cluster.RedisCluster
         Client with ``decode_responses=False``.
     """
 
-    def __init__(self, redis: redis.Redis) -> None:
+    def __init__(self, redis: Any) -> None:
         self.redis = redis
+        try:
+            adopt_legacy_keys(redis)
+        except (redis_errors.ConnectionError, redis_errors.TimeoutError):
+            _adopted.discard(redis)  # Redis is down: the next registry tries again
 
     def create(
         self, name: str, config: MixtureConfig, options: ModelOptions | None = None

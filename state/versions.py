@@ -28,6 +28,7 @@ from typing import Any
 
 import numpy as np
 import redis
+from redis.cluster import ClusterPipeline
 
 from mixture.serialize import checksum, state_from_bytes, state_to_bytes
 from mixture.stats import MixtureState
@@ -102,6 +103,10 @@ def state_summary(state: MixtureState) -> dict[str, Any]:
     return out
 
 
+# KEYS[1]: any key of the model (routes the script to its slot); ARGV: channel, message
+_PUBLISH_LUA = "return redis.call('PUBLISH', ARGV[1], ARGV[2])"
+
+
 def write_version(pipe: redis.client.Pipeline, handle: ModelHandle, w: VersionWrite) -> None:
     """Queue, inside the caller's MULTI, every write of a new version.
 
@@ -146,7 +151,12 @@ def write_version(pipe: redis.client.Pipeline, handle: ModelHandle, w: VersionWr
     pipe.ltrim(keys.lineage, -options.lineage_limit, -1)
     pipe.rpush(keys.history, dumps(row.to_dict()))
     pipe.ltrim(keys.history, -options.history_limit, -1)
-    pipe.publish(keys.notify, str(w.version))
+    if isinstance(pipe, ClusterPipeline):
+        # a cluster pipeline refuses PUBLISH (it has no key to route by); a script keyed by
+        # one of the model's keys stays in the transaction's slot and publishes cluster-wide
+        pipe.execute_command("EVAL", _PUBLISH_LUA, 1, keys.version, keys.notify, str(w.version))
+    else:
+        pipe.publish(keys.notify, str(w.version))
 
 
 class Versions:

@@ -29,6 +29,14 @@ def main(argv: list[str] | None = None) -> int:
     parser.add_argument(
         "--redis-url", default=os.environ.get("REDIS_URL"), help="Redis URL (default: $REDIS_URL)"
     )
+    parser.add_argument(
+        "--redis-cluster",
+        action=argparse.BooleanOptionalAction,
+        # the worker sits below the service layer: it reads the service's variable itself
+        default=os.environ.get("MIXROUTE_REDIS_CLUSTER", "").strip().lower()
+        in ("1", "true", "yes", "on"),
+        help="the Redis URL names a Redis Cluster node (default: $MIXROUTE_REDIS_CLUSTER)",
+    )
     parser.add_argument("--log-level", default=os.environ.get("MIXROUTE_LOG_LEVEL", "INFO"))
     parser.add_argument(
         "--log-format",
@@ -57,7 +65,7 @@ def main(argv: list[str] | None = None) -> int:
             "no Redis: set REDIS_URL or pass --redis-url (a worker process needs the "
             "shared Redis; the embedded server runs workers in-process)"
         )
-    client = redis_from_url(args.redis_url)
+    client = redis_from_url(args.redis_url, cluster=args.redis_cluster)
     try:
         worker = Worker(client, args.model, name=args.name)
     except ModelNotFoundError as exc:
