@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import shutil
 import tempfile
+import time
 import uuid
 from collections.abc import Iterator
 from pathlib import Path
@@ -17,6 +18,7 @@ import pytest
 from service.testing import uvicorn_thread, wait_until
 from state.connection import redis_from_url
 from state.keys import REGISTRY_KEY, ModelKeys
+from state.routed_log import RoutedLog, RoutedRecord
 from tests.ops_support import ADMIN, ADMIN_KEY, READ_KEY, K, make_app, route_examples, train
 
 pytestmark = [pytest.mark.browser, pytest.mark.redis]
@@ -45,6 +47,12 @@ def live(redis_url: str) -> Iterator[tuple[str, str, httpx.Client]]:
                 json={"label": "Harbour desk", "destination": "harbour@example.invalid"},
             )
             assert labelled.status_code == 200, labelled.text
+            # what a mail intake would have recorded: two messages to group 0, one to group 1
+            intake_client = redis_from_url(redis_url)
+            log = RoutedLog(intake_client, model)
+            for i, group in enumerate([0, 0, 1]):
+                log.record(RoutedRecord(f"mail-{i}", time.time(), group, None, 0.9, False))
+            intake_client.close()
             yield base, model, api
     finally:
         client = redis_from_url(redis_url)
@@ -140,6 +148,14 @@ def test_dashboard_shows_the_model_and_restores_after_confirmation(
     assert "Harbour desk" in first and "expected documents" in first
     assert groups[0]["top_terms"][0]["term"] in first
     assert groups[0]["distinctive_terms"][0]["term"] in first
+
+    # routed per day: today's row counts what the intake recorded, per group
+    daily = api.get(f"/models/{model}/routed/daily", params={"days": 7}).json()["days"]
+    today = max(daily)
+    assert daily[today] == {"0": 2, "1": 1}
+    rows = browser.find_elements(By.CSS_SELECTOR, "#daily tr")
+    assert rows and rows[0].text.split() == [today, "2", "1", "3"]
+    assert "Harbour desk" in browser.find_element(By.ID, "daily-head").text
 
     # flagged documents: the junk the helper routed
     flagged_text = browser.find_element(By.ID, "flagged").text

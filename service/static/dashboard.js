@@ -246,6 +246,27 @@ function drawFlagged(documents, labels) {
   }
 }
 
+function drawDaily(days, labels) {
+  // one row per day (newest first), one column per group that received any message
+  const head = $("daily-head");
+  const body = $("daily");
+  head.textContent = "";
+  body.textContent = "";
+  const names = Object.keys(days).sort().reverse();
+  const groups = [...new Set(names.flatMap((d) => Object.keys(days[d])))].map(Number).sort((a, b) => a - b);
+  head.appendChild(el("tr", {}, [el("th", { text: "day (UTC)" }),
+    ...groups.map((g) => el("th", { class: "num", text: groupName(g, labels) })),
+    el("th", { class: "num", text: "all" })]));
+  if (!groups.length) { emptyRow(body, 2, "nothing routed by the mail intake in these days"); return; }
+  for (const day of names) {
+    const counts = days[day];
+    const total = Object.values(counts).reduce((a, b) => a + b, 0);
+    body.appendChild(el("tr", {}, [el("td", { text: day }),
+      ...groups.map((g) => el("td", { class: "num", text: String(counts[g] || 0) })),
+      el("td", { class: "num", text: String(total) })]));
+  }
+}
+
 function drawSnapshots(snapshots) {
   // redraw only on a change, so a button never moves (or goes stale) under the pointer
   const signature = JSON.stringify([view.model, view.role, snapshots]);
@@ -339,13 +360,14 @@ async function refresh() {
     const model = await loadModels();
     if (!model) { notice("No model yet: create one with POST /models or `mixroute models create`."); return; }
     const base = `/models/${encodeURIComponent(model.name)}`;
-    const [history, alerts, groups, flagged, snapshots, events] = await Promise.all([
+    const [history, alerts, groups, flagged, snapshots, events, daily] = await Promise.all([
       api("GET", `${base}/drift/history?limit=2000`),
       api("GET", `${base}/drift/alerts?count=500`),
       api("GET", `${base}/groups?top=8`),
       api("GET", `${base}/flagged?count=15`),
       api("GET", `${base}/snapshots`),
       api("GET", `${base}/events?limit=500`),
+      api("GET", `${base}/routed/daily?days=7`),
     ]);
     const labels = {};
     for (const g of groups.groups) if (g.label) labels[g.group] = g.label;
@@ -358,6 +380,7 @@ async function refresh() {
     drawChart(history.rows, driftAlerts, labels, events.events, snapshots.snapshots);
     drawGroups(groups.groups);
     drawFlagged(flagged.documents, labels);
+    drawDaily(daily.days, labels);
     drawSnapshots(snapshots.snapshots);
     document.body.dataset.loaded = "true";
   } catch (error) {
