@@ -216,8 +216,9 @@ def test_sigkill_around_a_birth_records_it_once_and_ends_in_the_uninterrupted_st
     versions = [r.version for r in store.lineage(10_000)]
     assert versions == list(range(1, len(versions) + 1))
     assert store.event_counts() == {"birth": 1}
-    assert min(learned_at_kill) < birth_at <= max(learned_at_kill)  # kills on both sides
-    assert min(learned_at_kill) < birth_at <= max(learned_at_kill)  # kills on both sides
+    # kills on both sides of the birth's checkpoint (the worker commits the birth's unit at
+    # once, so the first kill may land on that very checkpoint under load)
+    assert min(learned_at_kill) <= birth_at <= max(learned_at_kill)
 
 
 def test_a_junk_burst_in_two_groups_raises_content_alerts_while_the_weights_stay(
