@@ -258,14 +258,14 @@ def work(model: str | None = None, data_dir: str | Path | None = None, processes
         log.info("signal %d: finishing the current batches", signum)
         done.set()
 
-    signal.signal(signal.SIGTERM, on_signal)
-    signal.signal(signal.SIGINT, on_signal)
     if processes > 1:
         from worker.pool import supervise
 
         # the batch fits of the members share the machine's cores
         threads = max(1, (os.cpu_count() or 1) // processes)
         os.environ["MIXROUTE_REDIS_CLUSTER"] = "true" if settings.redis_cluster else "false"
+        signal.signal(signal.SIGTERM, on_signal)
+        signal.signal(signal.SIGINT, on_signal)
         return supervise(settings.redis_url, processes, done, threads=threads)
     if model:
         runner: Any = WorkerPool(settings.redis_url, models=[model])
@@ -273,6 +273,8 @@ def work(model: str | None = None, data_dir: str | Path | None = None, processes
         from worker.pool import PoolMember
 
         runner = PoolMember(settings.redis_url)
+    signal.signal(signal.SIGTERM, on_signal)
+    signal.signal(signal.SIGINT, on_signal)
     runner.start()
     with contextlib.suppress(KeyboardInterrupt):
         done.wait()
