@@ -950,7 +950,7 @@ def cmd_serve(args: argparse.Namespace) -> int:
 def cmd_work(args: argparse.Namespace) -> int:
     from service.runner import work
 
-    return work(model=args.model, data_dir=args.data_dir)
+    return work(model=args.model, data_dir=args.data_dir, processes=args.processes)
 
 
 EXPORT_FIELDS = ("id", "time", "group", "label", "posterior", "review", "filed_to")
@@ -1128,7 +1128,16 @@ def build_parser() -> argparse.ArgumentParser:
         "work",
         help="run learning workers alone (on REDIS_URL, or on the Redis of a running serve)",
     )
-    p.add_argument("--model", help="model to learn (default: every model, one thread each)")
+    p.add_argument(
+        "--model", help="one model to learn alone (default: share every model with the pool)"
+    )
+    p.add_argument(
+        "--processes",
+        type=int,
+        default=1,
+        help="pool member processes to start on this machine (default 1); every `work` on "
+        "the same Redis shares the models, about M/N leases each",
+    )
     p.add_argument(
         "--data-dir",
         dest="data_dir",

@@ -220,14 +220,22 @@ def serve(
     return 130 if received else 0  # an interrupt: the shell's status for SIGINT
 
 
-def work(model: str | None = None, data_dir: str | Path | None = None) -> int:
+def work(model: str | None = None, data_dir: str | Path | None = None, processes: int = 1) -> int:
     """Run learning workers until SIGTERM/SIGINT; exit status.
 
     The Redis is ``REDIS_URL``, or else the embedded one of a ``serve`` running on
-    ``data_dir`` (read from its address file, :mod:`service.address`).
+    ``data_dir`` (read from its address file, :mod:`service.address`). Without ``model`` this
+    process is a member of the worker pool (:mod:`worker.pool`): every ``work`` on the same
+    Redis shares the models, each holding about M/N leases; ``processes`` > 1 starts that many
+    member processes here (no shared GIL) and starts again any that dies. With ``model``, one
+    learner for that model alone (the others wait on standby).
     """
     from service.cli import CommandError
 
+    if processes < 1:
+        raise CommandError(f"--processes must be at least 1; got {processes}", 2)
+    if model and processes != 1:
+        raise CommandError("--processes is for the pool (all models); drop --model", 2)
     settings = load_settings(data_dir=data_dir)
     if not settings.redis_url:
         # the embedded Redis of a `serve` running on the same data folder
@@ -241,17 +249,34 @@ def work(model: str | None = None, data_dir: str | Path | None = None) -> int:
             2,
         )
     _configure_logging(settings)  # only once the command is really going to run
-    pool = WorkerPool(settings.redis_url, models=[model] if model else None)
+    from state.connection import use_cluster_client
+
+    use_cluster_client(settings.redis_cluster)
     done = threading.Event()
 
     def on_signal(signum: int, frame: FrameType | None) -> None:
         log.info("signal %d: finishing the current batches", signum)
         done.set()
 
+    if processes > 1:
+        from worker.pool import supervise
+
+        # the batch fits of the members share the machine's cores
+        threads = max(1, (os.cpu_count() or 1) // processes)
+        os.environ["MIXROUTE_REDIS_CLUSTER"] = "true" if settings.redis_cluster else "false"
+        signal.signal(signal.SIGTERM, on_signal)
+        signal.signal(signal.SIGINT, on_signal)
+        return supervise(settings.redis_url, processes, done, threads=threads)
+    if model:
+        runner: Any = WorkerPool(settings.redis_url, models=[model])
+    else:
+        from worker.pool import PoolMember
+
+        runner = PoolMember(settings.redis_url)
     signal.signal(signal.SIGTERM, on_signal)
     signal.signal(signal.SIGINT, on_signal)
-    pool.start()
+    runner.start()
     with contextlib.suppress(KeyboardInterrupt):
         done.wait()
-    pool.stop()
+    runner.stop()
     return 0

@@ -5,7 +5,8 @@ Cluster hashes only the text between the braces, so every key of one model lives
 and a MULTI/EXEC or a Lua script over them is legal on a cluster too. The only keys outside a
 model's tag are the registry set :data:`REGISTRY_KEY` and the generation counter
 :data:`GENERATION_KEY` (each created model takes the next number, so a model re-created under
-an old name is told apart from the deleted one by every writer that checks it). Those two share
+an old name is told apart from the deleted one by every writer that checks it), and the worker
+pool's roster :data:`POOL_MEMBERS_KEY` (``state.lease.PoolRoster``). Those share
 the tag ``{_global}`` (one slot of a cluster); no model can be named ``_global`` (names start
 with a letter or digit), so no model's keys or SCAN pattern ever meet them. Before the cluster
 came they were ``mixroute:models`` and ``mixroute:generation_seq``
@@ -60,6 +61,8 @@ PREFIX = "mixroute"
 GLOBAL_TAG = "{_global}"  # not a valid model name: never one model's tag
 REGISTRY_KEY = f"{PREFIX}:{GLOBAL_TAG}:models"
 GENERATION_KEY = f"{PREFIX}:{GLOBAL_TAG}:generation_seq"
+# zset of the live members of the worker pool: member name scored by its expiry (Redis ms)
+POOL_MEMBERS_KEY = f"{PREFIX}:{GLOBAL_TAG}:pool_members"
 # (registry, generation counter) as named before they shared a slot
 LEGACY_GLOBAL_KEYS = (f"{PREFIX}:models", f"{PREFIX}:generation_seq")
 

@@ -73,3 +73,73 @@ class Lease:
 def default_worker_name() -> str:
     """``<host>:<pid>``, unique enough among live workers."""
     return f"{socket.gethostname()}:{os.getpid()}"
+
+
+# KEYS: roster. ARGV: member, ttl ms. Drops expired members, renews this one; the live names.
+# The clock is the server's (TIME), so members on machines with skewed clocks agree.
+_ROSTER_BEAT_LUA = """
+local t = redis.call('TIME')
+local now = tonumber(t[1]) * 1000 + math.floor(tonumber(t[2]) / 1000)
+redis.call('ZREMRANGEBYSCORE', KEYS[1], '-inf', now)
+redis.call('ZADD', KEYS[1], now + tonumber(ARGV[2]), ARGV[1])
+return redis.call('ZRANGEBYSCORE', KEYS[1], now, '+inf')
+"""
+
+
+class PoolRoster:
+    """Membership of the worker pool: each live member renews its entry before it expires.
+
+    One sorted set (:data:`state.keys.POOL_MEMBERS_KEY`), member name scored by its expiry in
+    the server's milliseconds; a member that stops renewing (killed, cut off) drops out after
+    ``ttl_seconds`` and its share is divided among the others.
+
+    Parameters
+    ----------
+    redis : redis.Redis
+        Client (a cluster client works: the roster is one key).
+    ttl_seconds : float
+        How long an entry lives without renewal.
+    """
+
+    def __init__(self, redis: object, ttl_seconds: float) -> None:
+        from state.keys import POOL_MEMBERS_KEY
+
+        self.redis = redis
+        self.key = POOL_MEMBERS_KEY
+        self.ttl_ms = max(1, int(ttl_seconds * 1000))
+        self._beat = redis.register_script(_ROSTER_BEAT_LUA)  # type: ignore[attr-defined]
+
+    def beat(self, member: str) -> list[str]:
+        """Renew ``member``'s entry; the names of every live member (itself included), sorted."""
+        live = self._beat(keys=[self.key], args=[member, str(self.ttl_ms)])
+        return sorted(name.decode() if isinstance(name, bytes) else str(name) for name in live)
+
+    def leave(self, member: str) -> None:
+        """Remove ``member`` at once (a clean stop), so the others need not wait for its TTL."""
+        self.redis.zrem(self.key, member)  # type: ignore[attr-defined]
+
+
+def lease_holders(redis: object, models: list[str]) -> dict[str, str | None]:
+    """The lease holder of each model (None when free), in one pipelined round trip.
+
+    Parameters
+    ----------
+    redis : redis.Redis
+        Client (on a cluster the pipeline is split by slot by redis-py).
+    models : list of str
+        Model names.
+
+    Returns
+    -------
+    dict
+        Model name to the holder's name, or None.
+    """
+    from state.keys import ModelKeys
+
+    if not models:
+        return {}
+    pipe = redis.pipeline(transaction=False)  # type: ignore[attr-defined]
+    for model in models:
+        pipe.get(ModelKeys(model).heartbeat)
+    raw = pipe.execute()
+    return {m: (r.decode() if r else None) for m, r in zip(models, raw, strict=True)}

@@ -159,11 +159,16 @@ def test_work_uses_the_redis_of_a_running_serve(tmp_path: Path, monkeypatch) -> 
             used.append(url)
             raise _AskedError(url)
 
-    monkeypatch.setattr(runner, "WorkerPool", Pool)
+    import worker.pool
+
+    monkeypatch.setattr(runner, "WorkerPool", Pool)  # `work --model`
+    monkeypatch.setattr(worker.pool, "PoolMember", Pool)  # `work`: a member of the pool
     monkeypatch.setattr(runner, "_configure_logging", lambda settings: None)
     with pytest.raises(_AskedError):
         runner.work(data_dir=tmp_path)
-    assert used == ["unix:///r.sock"]
+    with pytest.raises(_AskedError):
+        runner.work(model="inbox", data_dir=tmp_path)
+    assert used == ["unix:///r.sock", "unix:///r.sock"]
 
 
 @pytest.mark.parametrize(
