@@ -313,6 +313,10 @@ def test_dashboard_edits_a_label_through_the_page(
         what="the new label on its card",
     )
     assert "timetable@example.invalid" in browser.find_element(By.CSS_SELECTOR, card).text
+    # the keyboard focus is back on the card's Edit button, not lost to the page
+    focused = browser.switch_to.active_element
+    assert focused.get_attribute("class") == "edit-label"
+    assert focused.get_attribute("data-group") == "1"
 
     # a read key sees no edit button
     use_key(browser, READ_KEY)

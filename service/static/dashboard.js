@@ -267,7 +267,10 @@ function openLabelForm(card, group) {
     el("label", { for: id("destination") }, [document.createTextNode("destination"), destInput]),
     el("div", { class: "buttons" }, [cancel, save]),
   ]);
-  const close = () => { view.editing = null; view.groupSignature = null; refresh(); };
+  // back to the card's Edit button once the cards are redrawn (keyboard users stay in place)
+  const close = () => {
+    view.editing = null; view.groupSignature = null; view.focusGroup = group.group; refresh();
+  };
   cancel.addEventListener("click", close);
   form.addEventListener("keydown", (event) => { if (event.key === "Escape") close(); });
   form.addEventListener("submit", async (event) => {
@@ -563,6 +566,11 @@ async function refresh() {
     }
     if (got.alerts) drawAlerts(got.alerts.alerts);
     if (got.groups && view.editing === null) drawGroups(got.groups.groups);
+    if (view.focusGroup != null) {
+      const button = document.querySelector(`button.edit-label[data-group="${view.focusGroup}"]`);
+      if (button) button.focus();
+      view.focusGroup = null;
+    }
     $("groups-hint").textContent = view.role === "admin"
       ? "size = mixture weight and expected documents; Edit label names a group and its destination"
       : "size = mixture weight and expected documents; labels need the admin role";
