@@ -1,6 +1,8 @@
 """The dashboard in headless Chromium against a live app (uvicorn on loopback, private Redis)
-with a trained model: one chart series per group, alerts marked, labels, flagged documents,
-and a restore that asks first and then shows the new version. Screenshots go to artefacts/."""
+with a trained model: one chart series per group, alerts marked and listed with their reasons,
+labels (shown, and edited through the page), flagged documents with their reasons in words,
+worker health and backlog, a restore that asks first and then shows the new version, and a
+phone-width layout without sideways scrolling. Screenshots go to artefacts/."""
 
 from __future__ import annotations
 
@@ -15,6 +17,7 @@ from typing import Any
 import httpx
 import pytest
 
+from mixture.routing import NO_KNOWN_WORDS, REVIEW_REASONS
 from service.testing import uvicorn_thread, wait_until
 from state.connection import redis_from_url
 from state.keys import REGISTRY_KEY, ModelKeys
@@ -210,6 +213,135 @@ def test_dashboard_shows_the_model_and_restores_after_confirmation(
         if entry["level"] == "SEVERE" and "401" not in entry["message"]
     ]
     assert not errors, errors
+
+
+# (after the test above: it starts from a tab that has no key yet)
+
+
+def open_as_admin(driver: Any, base: str, model: str) -> None:
+    """Load the page for ``model`` with the admin key and wait for a full load."""
+    from selenium.webdriver.common.by import By
+
+    driver.get(f"{base}/dashboard?model={model}")
+    wait_until(lambda: driver.find_element(By.ID, "key-input").is_displayed(), 20, what="key")
+    use_key(driver, ADMIN_KEY)
+    wait_until(lambda: driver.find_element(By.ID, "role").text == "role admin", 20, what="admin")
+    wait_until(lambda: driver.find_elements(By.CSS_SELECTOR, "button.edit-label"), 20)
+    wait_until(lambda: driver.execute_script("return document.body.dataset.loaded"), 20)
+
+
+def phone_width(driver: Any, width: int | None) -> None:
+    """Emulate a phone's viewport ``width`` CSS pixels wide (None: back to the window)."""
+    if width is None:
+        driver.execute_cdp_cmd("Emulation.clearDeviceMetricsOverride", {})
+        return
+    driver.execute_cdp_cmd(
+        "Emulation.setDeviceMetricsOverride",
+        {"width": width, "height": 844, "deviceScaleFactor": 1, "mobile": True},
+    )
+
+
+def test_dashboard_lists_alerts_with_reasons_and_flagged_reasons_in_words(
+    live: tuple[str, str, httpx.Client], browser: Any
+) -> None:
+    from selenium.webdriver.common.by import By
+
+    base, model, api = live
+    ARTEFACTS.mkdir(exist_ok=True)
+    open_as_admin(browser, base, model)
+    # the alert list: one row per alert the API has, newest first, each with its reason
+    alerts = api.get(f"/models/{model}/drift/alerts", params={"count": 500}).json()["alerts"]
+    assert alerts, "the invented storm day must raise a drift alert at this threshold"
+    rows = browser.find_elements(By.CSS_SELECTOR, "#alerts tr[data-alert]")
+    assert [r.get_attribute("data-alert") for r in rows] == [a["id"] for a in reversed(alerts)]
+    for row, alert in zip(rows, reversed(alerts), strict=True):
+        assert alert["reason"] in row.find_element(By.CSS_SELECTOR, "td.alert-reason").text
+        assert alert["kind"] in row.text
+
+    # the flagged table says why in words, from the one reason table the API serves
+    served = httpx.get(f"{base}/review-reasons", headers=ADMIN).json()["reasons"]
+    assert {r["name"]: r["words"] for r in served} == REVIEW_REASONS
+    junk = browser.find_element(By.XPATH, "//tbody[@id='flagged']/tr[td[text()='junk-2']]")
+    reason = junk.find_element(By.CSS_SELECTOR, f"li[data-reason='{NO_KNOWN_WORDS}']")
+    assert REVIEW_REASONS[NO_KNOWN_WORDS] in reason.text
+
+    # a readable page: the flagged table no longer stretches it (issue 14 saw 3,700 px)
+    height = browser.execute_script("return document.getElementById('flagged').offsetHeight")
+    assert height < 1200, height  # 15 rows of short text; a rule of thumb, no source
+
+    # worker health and backlog, as the API reports them; last updated
+    ready = httpx.get(f"{base}/ready").json()
+    entry = next(m for m in ready["models"] if m["name"] == model)
+    assert entry["worker_heartbeat_age_seconds"] is not None
+    assert browser.find_element(By.ID, "heartbeat").text.endswith("ago")
+    lag = api.get(f"/models/{model}").json()["stream"]["lag"]
+    assert browser.find_element(By.ID, "backlog").text.startswith(f"{lag} message")
+    assert browser.find_element(By.ID, "updated").get_attribute("data-time")
+    assert browser.find_element(By.ID, "degraded").is_displayed() is False
+    browser.save_screenshot(str(ARTEFACTS / "dashboard-alerts.png"))
+
+
+def test_dashboard_edits_a_label_through_the_page(
+    live: tuple[str, str, httpx.Client], browser: Any
+) -> None:
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+
+    base, model, api = live
+    open_as_admin(browser, base, model)
+    browser.find_element(By.CSS_SELECTOR, "button.edit-label[data-group='1']").click()
+    # the fields have labels and take the keyboard focus
+    field = browser.find_element(By.ID, "label-1-label")
+    assert browser.switch_to.active_element == field
+    assert browser.find_element(By.CSS_SELECTOR, "label[for='label-1-label']").text == "label"
+    field.clear()
+    field.send_keys("Timetable questions")
+    destination = browser.find_element(By.ID, "label-1-destination")
+    destination.clear()
+    destination.send_keys("timetable@example.invalid", Keys.ENTER)
+
+    def labelled() -> dict[str, Any] | None:
+        group = api.get(f"/models/{model}/groups/1").json()
+        return group if group.get("label") == "Timetable questions" else None
+
+    group = wait_until(labelled, 20, what="the label through the API")
+    assert group["destination"] == "timetable@example.invalid"
+    card = "#groups article.group[data-group='1']"
+    wait_until(
+        lambda: "Timetable questions" in browser.find_element(By.CSS_SELECTOR, card).text,
+        20,
+        what="the new label on its card",
+    )
+    assert "timetable@example.invalid" in browser.find_element(By.CSS_SELECTOR, card).text
+    # the keyboard focus is back on the card's Edit button, not lost to the page
+    focused = browser.switch_to.active_element
+    assert focused.get_attribute("class") == "edit-label"
+    assert focused.get_attribute("data-group") == "1"
+
+    # a read key sees no edit button
+    use_key(browser, READ_KEY)
+    wait_until(lambda: browser.find_element(By.ID, "role").text == "role read", 20)
+    wait_until(lambda: not browser.find_elements(By.CSS_SELECTOR, "button.edit-label"), 20)
+
+
+def test_dashboard_fits_a_phone_width(live: tuple[str, str, httpx.Client], browser: Any) -> None:
+    from selenium.webdriver.common.by import By
+
+    base, model, _ = live
+    ARTEFACTS.mkdir(exist_ok=True)
+    phone_width(browser, 390)
+    try:
+        open_as_admin(browser, base, model)
+        width = browser.execute_script("return document.documentElement.clientWidth")
+        assert width == 390
+        scroll = browser.execute_script("return document.documentElement.scrollWidth")
+        assert scroll <= 390, scroll
+        # the stacked tables still name each value's column
+        first = browser.find_element(By.CSS_SELECTOR, "#flagged tr td[data-label='when']")
+        assert first.is_displayed()
+        browser.save_screenshot(str(ARTEFACTS / "dashboard-phone.png"))
+    finally:
+        phone_width(browser, None)
 
 
 def test_dashboard_files_are_served_from_the_app_only(live: tuple[str, str, httpx.Client]) -> None:

@@ -7,7 +7,9 @@ and alerts, groups, snapshots, restore) with the key the operator typed in (kept
 session storage only).
 
 ``GET /models/{model}/flagged`` lists the most recent documents this process answered with
-``review: true`` (see :class:`service.metrics.FlaggedDocuments`).
+``review: true`` (see :class:`service.metrics.FlaggedDocuments`). ``GET /review-reasons`` gives
+the words of every review reason (:data:`mixture.routing.REVIEW_REASONS`), so the page says
+what a code means; it needs no Redis, so it answers in degraded mode too.
 """
 
 from __future__ import annotations
@@ -19,6 +21,7 @@ from fastapi import APIRouter, FastAPI, Query, Request
 from fastapi.responses import FileResponse
 from fastapi.staticfiles import StaticFiles
 
+from mixture.routing import REVIEW_REASONS
 from service.routers import COMMON_RESPONSES, Runtime
 from service.schemas import Problem
 from service.settings import Settings
@@ -66,6 +69,13 @@ def flagged_documents(
         "kept": flagged.keep,
         "documents": flagged.recent(model, count),
     }
+
+
+@router.get("/review-reasons", summary="The review reasons and what each means, in words")
+def review_reason_words() -> dict[str, Any]:
+    """Every review reason a routing answer can carry (``review_reasons``), in the table's
+    order, with the sentence the dashboard and the README show for it."""
+    return {"reasons": [{"name": name, "words": words} for name, words in REVIEW_REASONS.items()]}
 
 
 def install(app: FastAPI, settings: Settings) -> None:

@@ -7,7 +7,8 @@ const COLOURS = ["#2a7f78", "#c8641b", "#6a4c93", "#3f7d20", "#b8860b", "#b03a6f
 const REFRESH_MS = 5000;
 const SVG_NS = "http://www.w3.org/2000/svg";
 
-const view = { model: null, role: null, keysRequired: false, snapshots: [], busy: false, again: false };
+const view = { model: null, role: null, keysRequired: false, snapshots: [], busy: false, again: false,
+               editing: null, reasonWords: null };
 
 function $(id) { return document.getElementById(id); }
 function colour(group) { return COLOURS[group % COLOURS.length]; }
@@ -41,8 +42,9 @@ async function api(method, path, body) {
   const data = response.status === 204 ? null : await response.json().catch(() => null);
   if (!response.ok) {
     const detail = data && data.detail ? data.detail : response.statusText;
-    const error = new Error(`${response.status}: ${detail}`);
+    const error = new Error(`${response.status}: ${typeof detail === "string" ? detail : response.statusText}`);
     error.status = response.status;
+    error.data = data;
     throw error;
   }
   return data;
@@ -94,7 +96,9 @@ function rowIds(row) {
 function drawChart(rows, alerts, labels, events = [], snapshots = []) {
   const box = $("chart");
   box.textContent = "";
-  const W = 960, H = 300, left = 46, right = 14, top = 12, bottom = 30;
+  // a narrower drawing on a phone, so its ticks stay readable when scaled to the screen
+  const W = box.clientWidth && box.clientWidth < 600 ? 520 : 960;
+  const H = 300, left = 46, right = 14, top = 12, bottom = 30;
   const root = svg("svg", { viewBox: `0 0 ${W} ${H}`, id: "weights-chart" });
   box.appendChild(root);
   if (!rows.length) {
@@ -200,6 +204,10 @@ function drawChart(rows, alerts, labels, events = [], snapshots = []) {
 // -- groups, flagged documents, snapshots -------------------------------------------------------
 
 function drawGroups(groups) {
+  // redraw only on a change, so an Edit button never moves (or goes stale) under the pointer
+  const signature = JSON.stringify([view.model, view.role, groups]);
+  if (signature === view.groupSignature) return;
+  view.groupSignature = signature;
   const box = $("groups");
   box.textContent = "";
   const maxWeight = Math.max(...groups.map((g) => g.weight), 1e-9);
@@ -221,7 +229,134 @@ function drawGroups(groups) {
       document.createTextNode(group.distinctive_terms.map((t) => t.term).join(", ") || "–")]);
     const card = el("article", { class: "group", "data-group": group.group,
       style: `border-top-color:${colour(group.group)}` }, [title, size, bar, top, distinct]);
+    if (view.role === "admin") {
+      const edit = el("button", { type: "button", class: "edit-label", "data-group": group.group,
+        text: "Edit label", "aria-label": `Edit the label and destination of group ${group.group}` });
+      edit.addEventListener("click", () => openLabelForm(card, group));
+      card.appendChild(edit);
+    }
     box.appendChild(card);
+  }
+}
+
+function cell(label, attrs, children) {
+  return el("td", { ...(attrs || {}), "data-label": label }, children);
+}
+
+function clock(seconds) { return new Date(seconds * 1000).toTimeString().slice(0, 8); }
+
+function ageText(seconds) {
+  if (seconds < 90) return `${Math.round(seconds)} s ago`;
+  if (seconds < 5400) return `${Math.round(seconds / 60)} min ago`;
+  return `${(seconds / 3600).toFixed(1)} h ago`;
+}
+
+// -- label editing (admin) ------------------------------------------------------------------------
+
+function openLabelForm(card, group) {
+  view.editing = group.group;  // the periodic refresh leaves the cards alone meanwhile
+  const id = (name) => `label-${group.group}-${name}`;
+  const labelInput = el("input", { id: id("label"), name: "label", maxlength: "200",
+    value: group.label || "" });
+  const destInput = el("input", { id: id("destination"), name: "destination", maxlength: "200",
+    value: group.destination || "", placeholder: "e.g. a mailbox or queue" });
+  const cancel = el("button", { type: "button", class: "cancel", text: "Cancel" });
+  const save = el("button", { type: "submit", text: "Save" });
+  const form = el("form", { class: "label-form", "data-group": group.group }, [
+    el("label", { for: id("label") }, [document.createTextNode("label"), labelInput]),
+    el("label", { for: id("destination") }, [document.createTextNode("destination"), destInput]),
+    el("div", { class: "buttons" }, [cancel, save]),
+  ]);
+  // back to the card's Edit button once the cards are redrawn (keyboard users stay in place)
+  const close = () => {
+    view.editing = null; view.groupSignature = null; view.focusGroup = group.group; refresh();
+  };
+  cancel.addEventListener("click", close);
+  form.addEventListener("keydown", (event) => { if (event.key === "Escape") close(); });
+  form.addEventListener("submit", async (event) => {
+    event.preventDefault();
+    save.disabled = true;
+    const body = { label: labelInput.value.trim() || null,
+                   destination: destInput.value.trim() || null };
+    try {
+      await api("PUT", `/models/${encodeURIComponent(view.model)}/groups/${group.group}/label`, body);
+      toast(`Group ${group.group} is now ${body.label ? `"${body.label}"` : "unlabelled"}` +
+            (body.destination ? `, going to ${body.destination}.` : "."));
+      close();
+    } catch (error) {
+      save.disabled = false;
+      toast(`Saving the label failed: ${error.message}`, true);
+    }
+  });
+  const button = card.querySelector("button.edit-label");
+  if (button) button.replaceWith(form); else card.appendChild(form);
+  labelInput.focus();
+}
+
+// -- alerts, worker health --------------------------------------------------------------------
+
+function drawAlerts(alerts) {
+  const body = $("alerts");
+  body.textContent = "";
+  if (!alerts.length) { emptyRow(body, 5, "no alerts raised"); return; }
+  for (const alert of [...alerts].reverse()) {
+    body.appendChild(el("tr", { "data-alert": alert.id, "data-version": alert.version }, [
+      cell("when", { text: new Date(alert.time * 1000).toLocaleString() }),
+      cell("version", { class: "num", text: String(alert.version) }),
+      cell("kind", {}, [el("span", { class: "alert-kind", text: alert.kind })]),
+      cell("reason", { class: "alert-reason", text: alert.reason }),
+      cell("value / threshold", { class: "num",
+        text: `${Number(alert.value).toPrecision(3)} / ${Number(alert.threshold).toPrecision(3)}` }),
+    ]));
+  }
+}
+
+function setStat(id, text, state) {
+  const node = $(id);
+  node.textContent = text;
+  node.className = state || "";
+}
+
+function drawHealth(ready, model, name) {
+  if (ready) {
+    const entry = ready.models.find((m) => m.name === name);
+    const age = entry ? entry.worker_heartbeat_age_seconds : null;
+    const stale = ready.reasons.some((r) => r.startsWith(`model '${name}'`));
+    if (ready.redis !== "reachable") setStat("heartbeat", "unknown (Redis unreachable)", "bad");
+    else if (age == null) setStat("heartbeat", "none seen: no worker is learning", "bad");
+    else setStat("heartbeat", ageText(age) + (stale ? " (stale)" : ""), stale ? "bad" : "ok");
+    setStat("redis-state", ready.redis === "reachable" ? "reachable" : "unreachable",
+      ready.redis === "reachable" ? "ok" : "bad");
+  } else {
+    setStat("heartbeat", "unknown (readiness did not answer)", "bad");
+    setStat("redis-state", "unknown", "bad");
+  }
+  const stream = model && model.stream;
+  if (!stream) setStat("backlog", "unknown (the stream did not answer)", "bad");
+  else if (stream.lag == null) setStat("backlog", `${stream.length} in the stream`, "");
+  else setStat("backlog", `${stream.lag} message${stream.lag === 1 ? "" : "s"}`,
+    stream.lag > 0 ? "" : "ok");
+}
+
+// Mark a panel as not answering (its last content stays, dimmed) or as answering again.
+function panelState(id, error) {
+  const panel = $(id);
+  let note = panel.querySelector(".unavailable-note");
+  if (!error) {
+    panel.classList.remove("unavailable");
+    if (note) note.remove();
+    for (const node of panel.querySelectorAll(".stale")) node.classList.remove("stale");
+    return;
+  }
+  panel.classList.add("unavailable");
+  if (!note) {
+    note = el("p", { class: "unavailable-note" });
+    const head = panel.querySelector(".panel-head");
+    if (head) head.after(note); else panel.prepend(note);
+  }
+  note.textContent = `Not answering (${error.message}); showing what was last loaded, if anything.`;
+  for (const node of panel.children) {
+    if (!node.classList.contains("panel-head") && node !== note) node.classList.add("stale");
   }
 }
 
@@ -234,14 +369,20 @@ function drawFlagged(documents, labels) {
   body.textContent = "";
   if (!documents.length) { emptyRow(body, 5, "nothing flagged since this API process started"); return; }
   for (const doc of documents) {
-    const reasons = el("td", {}, doc.reasons.map((r) => el("span", { class: "reason", text: r })));
+    // each reason in words, its name beside it (the name the API's review_reasons carry)
+    const words = view.reasonWords || {};
+    const reasons = cell("why it needs a look", { class: "why" }, [el("ul", { class: "reasons" },
+      doc.reasons.map((r) => el("li", { "data-reason": r }, [
+        document.createTextNode(words[r] || r), document.createTextNode(" "),
+        ...(words[r] ? [el("code", { text: `(${r})` })] : []),
+      ])))]);
     body.appendChild(el("tr", {}, [
-      el("td", { text: new Date(doc.time * 1000).toTimeString().slice(0, 8) }),
-      el("td", { text: doc.id || "–" }),
-      el("td", { text: `${groupName(doc.group, labels)}` +
+      cell("when", { text: clock(doc.time) }),
+      cell("document", { text: doc.id || "–" }),
+      cell("group", { text: `${groupName(doc.group, labels)}` +
         (doc.probability != null ? ` (${doc.probability.toFixed(2)})` : "") }),
       reasons,
-      el("td", { class: "text", text: doc.text + (doc.truncated ? " …" : "") }),
+      cell("text", { class: "text", text: doc.text + (doc.truncated ? " …" : "") }),
     ]));
   }
 }
@@ -284,11 +425,11 @@ function drawSnapshots(snapshots) {
     button.disabled = !admin;
     button.addEventListener("click", () => askRestore(snap));
     body.appendChild(el("tr", { "data-snapshot": snap.id }, [
-      el("td", { text: snap.id }),
-      el("td", { class: "num", text: String(snap.version) }),
-      el("td", { class: "num", text: String(snap.documents_learned) }),
-      el("td", { text: snap.kind }),
-      el("td", { text: snap.reason }),
+      cell("id", { text: snap.id }),
+      cell("version", { class: "num", text: String(snap.version) }),
+      cell("documents", { class: "num", text: String(snap.documents_learned) }),
+      cell("kind", { text: snap.kind }),
+      cell("reason", { text: snap.reason }),
       el("td", {}, admin ? [button] : []),
     ]));
   }
@@ -347,6 +488,29 @@ async function loadModels() {
   return data.models.find((m) => m.name === view.model) || null;
 }
 
+// Each part of the page from its own request: when some fail (Redis down), the others still show.
+const PARTS = [
+  ["history", "weights-panel", "weights over time"],
+  ["alerts", "alerts-panel", "alerts"],
+  ["groups", "groups-panel", "groups"],
+  ["flagged", "flagged-panel", "flagged"],
+  ["snapshots", "snapshots-panel", "snapshots"],
+  ["daily", "daily-panel", "routed per day"],
+  ["model", "health-panel", "the model"],
+  ["stream", "health-panel", "backlog"],
+  ["ready", "health-panel", "worker health"],
+];
+
+async function loadReasonWords() {
+  if (view.reasonWords) return;
+  try {
+    const data = await api("GET", "/review-reasons");
+    view.reasonWords = Object.fromEntries(data.reasons.map((r) => [r.name, r.words]));
+  } catch (error) {
+    view.reasonWords = null;  // the codes are shown until the words load
+  }
+}
+
 async function refresh() {
   if ($("confirm-dialog").open) return;  // nothing changes while a restore is being confirmed
   if (view.busy) { view.again = true; return; }
@@ -359,29 +523,83 @@ async function refresh() {
     }
     const model = await loadModels();
     if (!model) { notice("No model yet: create one with POST /models or `mixroute models create`."); return; }
+    await loadReasonWords();
     const base = `/models/${encodeURIComponent(model.name)}`;
-    const [history, alerts, groups, flagged, snapshots, events, daily] = await Promise.all([
-      api("GET", `${base}/drift/history?limit=2000`),
-      api("GET", `${base}/drift/alerts?count=500`),
-      api("GET", `${base}/groups?top=8`),
-      api("GET", `${base}/flagged?count=15`),
-      api("GET", `${base}/snapshots`),
-      api("GET", `${base}/events?limit=500`),
-      api("GET", `${base}/routed/daily?days=7`),
-    ]);
+    const paths = {
+      history: `${base}/drift/history?limit=2000`,
+      alerts: `${base}/drift/alerts?count=500`,
+      groups: `${base}/groups?top=8`,
+      flagged: `${base}/flagged?count=15`,
+      snapshots: `${base}/snapshots`,
+      events: `${base}/events?limit=500`,
+      daily: `${base}/routed/daily?days=7`,
+      model: base,
+      ready: "/ready",
+    };
+    const names = Object.keys(paths);
+    const settled = await Promise.allSettled(names.map((n) => api("GET", paths[n])));
+    const got = {}, failed = {};
+    names.forEach((n, i) => {
+      const result = settled[i];
+      if (result.status === "fulfilled") got[n] = result.value;
+      // a 503 from readiness still carries its body (what is unreachable)
+      else if (n === "ready" && result.reason.data && result.reason.data.models) got[n] = result.reason.data;
+      else failed[n] = result.reason;
+    });
+    const refused = Object.values(failed).find((e) => e.status === 401 || e.status === 403);
+    if (refused) throw refused;
+    // the model answers from memory without its stream: the backlog is what did not answer
+    if (got.model && !got.model.stream) failed.stream = new Error("the stream did not answer");
+
     const labels = {};
-    for (const g of groups.groups) if (g.label) labels[g.group] = g.label;
-    $("version").textContent = `version ${model.version}`;
-    $("version").dataset.version = String(model.version);
-    $("learned").textContent = `${model.documents_learned} documents learned`;
-    notice(model.warmed_up ? "" : `Model ${model.name}: ${model.status}.`);
-    // group events get their own markers; the alert diamonds keep to drift and stream alerts
-    const driftAlerts = alerts.alerts.filter((a) => !a.kind.startsWith("group-"));
-    drawChart(history.rows, driftAlerts, labels, events.events, snapshots.snapshots);
-    drawGroups(groups.groups);
-    drawFlagged(flagged.documents, labels);
-    drawDaily(daily.days, labels);
-    drawSnapshots(snapshots.snapshots);
+    if (got.groups) for (const g of got.groups.groups) if (g.label) labels[g.group] = g.label;
+    const shown = got.model || model;
+    $("version").textContent = `version ${shown.version}`;
+    $("version").dataset.version = String(shown.version);
+    $("learned").textContent = `${shown.documents_learned} documents learned`;
+    notice(shown.warmed_up ? "" : `Model ${shown.name}: ${shown.status}.`);
+    if (got.history) {
+      // group events get their own markers; the alert diamonds keep to drift and stream alerts
+      const driftAlerts = (got.alerts ? got.alerts.alerts : []).filter((a) => !a.kind.startsWith("group-"));
+      drawChart(got.history.rows, driftAlerts, labels, got.events ? got.events.events : [],
+        got.snapshots ? got.snapshots.snapshots : []);
+    }
+    if (got.alerts) drawAlerts(got.alerts.alerts);
+    if (got.groups && view.editing === null) drawGroups(got.groups.groups);
+    if (view.focusGroup != null) {
+      const button = document.querySelector(`button.edit-label[data-group="${view.focusGroup}"]`);
+      if (button) button.focus();
+      view.focusGroup = null;
+    }
+    $("groups-hint").textContent = view.role === "admin"
+      ? "size = mixture weight and expected documents; Edit label names a group and its destination"
+      : "size = mixture weight and expected documents; labels need the admin role";
+    if (got.flagged) drawFlagged(got.flagged.documents, labels);
+    if (got.daily) drawDaily(got.daily.days, labels);
+    if (got.snapshots) drawSnapshots(got.snapshots.snapshots);
+    drawHealth(got.ready, got.model, model.name);
+
+    const down = {};  // error message -> the parts that failed with it
+    const panels = {};
+    for (const [part, panel, words] of PARTS) {
+      const error = failed[part];
+      if (error) {
+        (down[error.message] = down[error.message] || []).push(words);
+        // the status strip shows its own unknowns; the panels say they are stale
+        if (panel !== "health-panel") panels[panel] = error;
+      } else if (!(panel in panels)) panels[panel] = null;
+    }
+    for (const [panel, error] of Object.entries(panels)) panelState(panel, error);
+    const up = PARTS.filter(([part]) => !failed[part]).map(([, , words]) => words);
+    const downText = Object.entries(down).map(([message, parts]) => `${parts.join(", ")} (${message})`);
+    $("degraded").hidden = downText.length === 0;
+    $("degraded-text").textContent = downText.length === 0 ? "" :
+      `Not answering: ${downText.join("; ")}. Still answering: ${up.join(", ") || "nothing"}` +
+      (got.ready && got.ready.redis !== "reachable" ? " (from this API's memory; Redis is unreachable)." : ".");
+    document.body.dataset.degraded = downText.length ? "true" : "false";
+    const now = Date.now() / 1000;
+    $("updated").textContent = clock(now) + (downText.length ? " (partly)" : "");
+    $("updated").dataset.time = String(now);
     document.body.dataset.loaded = "true";
   } catch (error) {
     notice(error.status === 401 || error.status === 403
