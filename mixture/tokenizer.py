@@ -15,13 +15,13 @@ Tokenizer rules (deterministic; the same text always gives the same tokens):
   space or neither, and splitting makes the first two agree. Every other character (symbols,
   emoji, punctuation, the underscore) separates tokens.
 - A run of digits, optionally with inner ``.``, ``,`` or ``:`` between ASCII digits ("12.50",
-  "1,000", "10:30", "٤٢"), is a number and becomes ``_num_``. So is a run of digits followed
-  by a suffix that names no unit and no thing of its own (``NUMBER_SUFFIXES``): the English
-  ordinal endings, right or wrong ("1st", "2nd", "9th", "23th"), the plural of a number
-  ("1990s", "80s") and the clock's "am"/"pm" ("10am", "3pm"; "10:30" is already a number).
-  These say "a number was here" as "23" does, and left as words they fill the top terms with
-  one-off dates. Digits followed by anything else stay words: a unit or a code carries meaning
-  ("5kg", "20gb", "2fa", "a320", "v1.2"). Without ``fold_numbers`` all of them stay words.
+  "1,000", "10:30", "٤٢"), is a number and becomes ``_num_``. So is a run of ASCII digits
+  followed by an English ordinal suffix, right or wrong ("1st", "2nd", "9th", "23th";
+  ``NUMBER_SUFFIXES``): the suffix only spells the same number in the same place ("9th June"
+  is "9 June"), and left as words they filled the top terms with one-off dates. Digits
+  followed by other letters stay words, as they say more than the number: a unit or a code
+  ("5kg", "20gb", "a320", "v1.2"), a time of day ("3pm"), a decade ("1990s"). With
+  ``fold_ordinals`` off, or ``fold_numbers`` off, ordinals stay words.
 - Tokens shorter than ``min_length`` or longer than ``max_length`` characters are dropped (not
   cut), as are the built-in English stop words and a model's ``extra_stop_words``.
   Placeholders are exempt from both. A text cannot forge a placeholder: the literal string
@@ -96,9 +96,9 @@ ENGLISH_STOP_WORDS: Final[frozenset[str]] = frozenset(_ENGLISH_STOP_TEXT.split()
 
 PLACEHOLDERS: Final = frozenset({URL_TOKEN, EMAIL_TOKEN, NUMBER_TOKEN})
 
-# Letters after a run of digits that leave it a number (module docstring): the English ordinal
-# endings, the plural "s", the clock's "am" and "pm". Units and codes are deliberately absent.
-NUMBER_SUFFIXES: Final[frozenset[str]] = frozenset({"st", "nd", "rd", "th", "s", "am", "pm"})
+# Letters after a run of digits that leave it the same number (module docstring): the English
+# ordinal endings. Units, codes, "am"/"pm" and the decades' "s" add meaning and stay words.
+NUMBER_SUFFIXES: Final[frozenset[str]] = frozenset({"st", "nd", "rd", "th"})
 _SUFFIXED_NUMBER: Final = re.compile(rf"[0-9]++(?:{'|'.join(sorted(NUMBER_SUFFIXES))})")
 
 # Bounds on a model's own stop words (``TokenizerConfig.extra_stop_words``): the list is stored
@@ -181,8 +181,10 @@ class TokenizerConfig:
     stop_words : str
         ``"english"`` for our built-in list, ``"none"`` to keep every word.
     fold_urls, fold_emails, fold_numbers : bool
-        Replace URLs, e-mail addresses and numbers by ``_url_``, ``_email_`` and ``_num_``
-        (numbers include ordinals such as "9th" and "10am", see the tokenizer rules).
+        Replace URLs, e-mail addresses and numbers by ``_url_``, ``_email_`` and ``_num_``.
+    fold_ordinals : bool
+        Also fold numbers with an English ordinal suffix ("9th", "23th") into ``_num_``
+        (only with ``fold_numbers``; see the tokenizer rules).
     extra_stop_words : tuple of str
         The model's own stop words (an organisation's name, its signature lines), dropped like
         the built-in list. Each must be one token; it is stored as the tokenizer spells it
@@ -195,6 +197,7 @@ class TokenizerConfig:
     fold_urls: bool = True
     fold_emails: bool = True
     fold_numbers: bool = True
+    fold_ordinals: bool = True
     extra_stop_words: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
@@ -215,7 +218,7 @@ class TokenizerConfig:
                 f"tokenizer stop_words must be one of {sorted(_STOP_LISTS)}, "
                 f"got {self.stop_words!r}"
             )
-        for name in ("fold_urls", "fold_emails", "fold_numbers"):
+        for name in ("fold_urls", "fold_emails", "fold_numbers", "fold_ordinals"):
             value = getattr(self, name)
             if not isinstance(value, bool | np.bool_):
                 raise ConfigError(f"tokenizer {name} must be true or false, got {value!r}")
@@ -469,7 +472,12 @@ class Tokenizer:
                 return NUMBER_TOKEN
             term = term.strip(".,:")
             return term if config.min_length <= len(term) <= config.max_length else None
-        if config.fold_numbers and term[0].isdigit() and _SUFFIXED_NUMBER.fullmatch(term):
+        if (
+            config.fold_ordinals
+            and config.fold_numbers
+            and term[0].isdigit()
+            and _SUFFIXED_NUMBER.fullmatch(term)
+        ):
             return NUMBER_TOKEN
         if not ascii_only:
             stripped = term.translate(_NUMBER_SEPARATORS)
