@@ -10,6 +10,19 @@ from scipy.optimize import linear_sum_assignment
 from mixture.kernels import smoothed_log_word_prob
 from mixture.stats import MixtureState
 
+# Greetings, closings and politeness words, as the tokenizer spells them (case-folded,
+# apostrophes removed). Every kind of message carries them, so they top the word lists of
+# every group and say nothing about its topic; describe_groups leaves them out of top and
+# distinctive terms unless asked to keep them. They stay in the model: its likelihood and
+# routing are unchanged. Our own list, common practice, no source. Words that also name a
+# topic in a service inbox ("morning", "sorry", "help", "forward") are deliberately absent.
+_COURTESY_TEXT = """
+    appreciate appreciated best cheers dear faithfully greetings hello hey hi hiya kind kindly
+    madam pls please regards respectfully sincerely sir thank thankful thanks thankyou thx ty
+    warm warmest warmly wishes
+"""
+COURTESY_TERMS: frozenset[str] = frozenset(_COURTESY_TEXT.split())
+
 
 @dataclass
 class GroupSummary:
@@ -37,7 +50,11 @@ class GroupSummary:
 
 
 def describe_groups(
-    state: MixtureState, top_n: int = 10, min_count: float = 3.0
+    state: MixtureState,
+    top_n: int = 10,
+    min_count: float = 3.0,
+    *,
+    keep_courtesy_terms: bool = False,
 ) -> list[GroupSummary]:
     """Summaries of every group of a state.
 
@@ -48,6 +65,15 @@ def describe_groups(
         Terms per list.
     min_count : float
         Minimum expected count of a word in a group for it to be called distinctive.
+    keep_courtesy_terms : bool
+        Keep greetings and closings (:data:`COURTESY_TERMS`) in both lists; by default they
+        are left out. The scores of the other words are the same either way (p(w | k) and
+        lift are not renormalised).
+
+    Returns
+    -------
+    list of GroupSummary
+        One per group, by position.
     """
     vocab = state.vocabulary
     weights = state.weights()
@@ -71,13 +97,17 @@ def describe_groups(
             state.config.word_pseudocount,
         )[:, 0]
     )
+    shown = np.ones(active.size, dtype=bool)
+    if not keep_courtesy_terms:
+        courtesy_ids = vocab.lookup_many(COURTESY_TERMS)
+        shown[np.isin(active, courtesy_ids[courtesy_ids >= 0])] = False
     out: list[GroupSummary] = []
-    n = min(top_n, active.size)
+    n = min(top_n, int(shown.sum()))
     for k in range(state.n_groups):
         col = prob[:, k]
-        top = _top_indices(col, n)
+        top = _top_indices(np.where(shown, col, -np.inf), n)
         lift = col / pooled
-        eligible = counts[:, k] >= min_count
+        eligible = (counts[:, k] >= min_count) & shown
         lift_masked = np.where(eligible, lift, -np.inf)
         n_eligible = int(eligible.sum())
         distinct = _top_indices(lift_masked, min(n, n_eligible)) if n_eligible else []

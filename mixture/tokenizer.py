@@ -15,11 +15,17 @@ Tokenizer rules (deterministic; the same text always gives the same tokens):
   space or neither, and splitting makes the first two agree. Every other character (symbols,
   emoji, punctuation, the underscore) separates tokens.
 - A run of digits, optionally with inner ``.``, ``,`` or ``:`` between ASCII digits ("12.50",
-  "1,000", "10:30", "٤٢"), is a number and becomes ``_num_``. Tokens mixing letters and digits
-  ("3pm", "a320", "v1.2") are ordinary words.
+  "1,000", "10:30", "٤٢"), is a number and becomes ``_num_``. So is a run of ASCII digits
+  followed by an English ordinal suffix, right or wrong ("1st", "2nd", "9th", "23th";
+  ``NUMBER_SUFFIXES``): the suffix only spells the same number in the same place ("9th June"
+  is "9 June"), and left as words they filled the top terms with one-off dates. Digits
+  followed by other letters stay words, as they say more than the number: a unit or a code
+  ("5kg", "20gb", "a320", "v1.2"), a time of day ("3pm"), a decade ("1990s"). With
+  ``fold_ordinals`` off, or ``fold_numbers`` off, ordinals stay words.
 - Tokens shorter than ``min_length`` or longer than ``max_length`` characters are dropped (not
-  cut), as are the built-in English stop words. Placeholders are exempt from both. A text
-  cannot forge a placeholder: the literal string ``_url_`` in a message is the word "url".
+  cut), as are the built-in English stop words and a model's ``extra_stop_words``.
+  Placeholders are exempt from both. A text cannot forge a placeholder: the literal string
+  ``_url_`` in a message is the word "url".
 
 The token pattern is Python's ``re`` with a character class built once per process (about
 10 ms) from ``str.isalnum`` and the combining marks of the BMP. The ``regex`` package's
@@ -44,6 +50,7 @@ from mixture.errors import ConfigError, InputError
 __all__ = [
     "EMAIL_TOKEN",
     "ENGLISH_STOP_WORDS",
+    "NUMBER_SUFFIXES",
     "NUMBER_TOKEN",
     "PLACEHOLDERS",
     "URL_TOKEN",
@@ -88,6 +95,16 @@ _ENGLISH_STOP_TEXT: Final = """
 ENGLISH_STOP_WORDS: Final[frozenset[str]] = frozenset(_ENGLISH_STOP_TEXT.split())
 
 PLACEHOLDERS: Final = frozenset({URL_TOKEN, EMAIL_TOKEN, NUMBER_TOKEN})
+
+# Letters after a run of digits that leave it the same number (module docstring): the English
+# ordinal endings. Units, codes, "am"/"pm" and the decades' "s" add meaning and stay words.
+NUMBER_SUFFIXES: Final[frozenset[str]] = frozenset({"st", "nd", "rd", "th"})
+_SUFFIXED_NUMBER: Final = re.compile(rf"[0-9]++(?:{'|'.join(sorted(NUMBER_SUFFIXES))})")
+
+# Bounds on a model's own stop words (``TokenizerConfig.extra_stop_words``): the list is stored
+# in every state header and configuration record, so it is kept to a size a person writes.
+MAX_EXTRA_STOP_WORDS: Final = 1000
+_MAX_STOP_WORD_LENGTH: Final = 100
 
 # The term cache is dropped and refilled past this many entries, so a stream of one-off tokens
 # (hashes, ticket numbers, typos) cannot grow memory without bound.
@@ -165,6 +182,13 @@ class TokenizerConfig:
         ``"english"`` for our built-in list, ``"none"`` to keep every word.
     fold_urls, fold_emails, fold_numbers : bool
         Replace URLs, e-mail addresses and numbers by ``_url_``, ``_email_`` and ``_num_``.
+    fold_ordinals : bool
+        Also fold numbers with an English ordinal suffix ("9th", "23th") into ``_num_``
+        (only with ``fold_numbers``; see the tokenizer rules).
+    extra_stop_words : tuple of str
+        The model's own stop words (an organisation's name, its signature lines), dropped like
+        the built-in list. Each must be one token; it is stored as the tokenizer spells it
+        (case-folded, apostrophes removed), sorted and without repeats. At most 1000.
     """
 
     min_length: int = 2
@@ -173,6 +197,8 @@ class TokenizerConfig:
     fold_urls: bool = True
     fold_emails: bool = True
     fold_numbers: bool = True
+    fold_ordinals: bool = True
+    extra_stop_words: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
         for name in ("min_length", "max_length"):
@@ -192,15 +218,18 @@ class TokenizerConfig:
                 f"tokenizer stop_words must be one of {sorted(_STOP_LISTS)}, "
                 f"got {self.stop_words!r}"
             )
-        for name in ("fold_urls", "fold_emails", "fold_numbers"):
+        for name in ("fold_urls", "fold_emails", "fold_numbers", "fold_ordinals"):
             value = getattr(self, name)
             if not isinstance(value, bool | np.bool_):
                 raise ConfigError(f"tokenizer {name} must be true or false, got {value!r}")
             object.__setattr__(self, name, bool(value))
+        object.__setattr__(self, "extra_stop_words", _spelled_stop_words(self.extra_stop_words))
 
     def to_dict(self) -> dict[str, Any]:
         """Return the settings as a JSON-able dict (the inverse of :meth:`from_dict`)."""
-        return asdict(self)
+        out = asdict(self)
+        out["extra_stop_words"] = list(self.extra_stop_words)
+        return out
 
     @classmethod
     def from_dict(cls, d: dict[str, Any]) -> TokenizerConfig:
@@ -221,6 +250,53 @@ class TokenizerConfig:
                 f"known: {', '.join(sorted(known))}"
             )
         return cls(**d)
+
+
+def _spelled_stop_words(words: Any) -> tuple[str, ...]:
+    """Validate a model's own stop words and spell them as the tokenizer would.
+
+    Raises
+    ------
+    ConfigError
+        On a value that is not a list of strings, too many words, or a word that is not
+        exactly one token.
+    """
+    if isinstance(words, str) or not isinstance(words, tuple | list):
+        raise ConfigError(
+            f"tokenizer extra_stop_words must be a list of words, got {type(words).__name__}"
+        )
+    if len(words) > MAX_EXTRA_STOP_WORDS:
+        raise ConfigError(
+            f"tokenizer extra_stop_words holds {len(words)} words; at most {MAX_EXTRA_STOP_WORDS}"
+        )
+    if not words:
+        return ()
+    # The rules of normalise without folding, stop words or length limits: the word as it
+    # would come out of a text, whatever the model's other settings.
+    speller = Tokenizer(
+        TokenizerConfig(
+            min_length=1,
+            max_length=_MAX_STOP_WORD_LENGTH,
+            stop_words="none",
+            fold_urls=False,
+            fold_emails=False,
+            fold_numbers=False,
+        )
+    )
+    spelled: set[str] = set()
+    for word in words:
+        if not isinstance(word, str):
+            raise ConfigError(
+                f"tokenizer extra_stop_words must hold strings, got {type(word).__name__}"
+            )
+        tokens = speller.tokenize(word) if len(word) <= _MAX_STOP_WORD_LENGTH else []
+        if len(tokens) != 1:
+            raise ConfigError(
+                f"tokenizer extra_stop_words: {word[:50]!r} is not one word of at most "
+                f"{_MAX_STOP_WORD_LENGTH} letters or digits (hyphens and spaces split words)"
+            )
+        spelled.add(tokens[0])
+    return tuple(sorted(spelled))
 
 
 class _TermCache(dict[str, str | None]):
@@ -255,7 +331,7 @@ class Tokenizer:
                 f"tokenizer config must be a TokenizerConfig, got {type(config).__name__}"
             )
         self.config: Final = config
-        self._stop_words = _STOP_LISTS[config.stop_words]
+        self._stop_words = _STOP_LISTS[config.stop_words] | frozenset(config.extra_stop_words)
         self._sentinels = {
             sentinel: token
             for sentinel, token in _SENTINELS.items()
@@ -396,6 +472,13 @@ class Tokenizer:
                 return NUMBER_TOKEN
             term = term.strip(".,:")
             return term if config.min_length <= len(term) <= config.max_length else None
+        if (
+            config.fold_ordinals
+            and config.fold_numbers
+            and term[0].isdigit()
+            and _SUFFIXED_NUMBER.fullmatch(term)
+        ):
+            return NUMBER_TOKEN
         if not ascii_only:
             stripped = term.translate(_NUMBER_SEPARATORS)
             if stripped != normal:

@@ -438,7 +438,7 @@ def _threshold(args: argparse.Namespace) -> float:
     return float(ModelOptions().review_threshold)  # the service's default
 
 
-def describe_lines(state: Any, top_n: int = 10) -> list[str]:
+def describe_lines(state: Any, top_n: int = 10, keep_courtesy_terms: bool = False) -> list[str]:
     """A plain-text description of every group of a model state."""
     from mixture.describe import describe_groups
 
@@ -446,7 +446,7 @@ def describe_lines(state: Any, top_n: int = 10) -> list[str]:
         f"{state.n_groups} groups, {state.documents_learned} documents learned, "
         f"vocabulary {state.vocabulary.n_active} active words"
     ]
-    for summary in describe_groups(state, top_n=top_n):
+    for summary in describe_groups(state, top_n=top_n, keep_courtesy_terms=keep_courtesy_terms):
         data = _summary_dict(summary)
         lines.append(f"group {data['group']}  weight {data['weight']:.3f}")
         lines.append("  top:         " + ", ".join(term for term, _ in data["top_terms"]))
@@ -477,18 +477,22 @@ def cmd_describe(args: argparse.Namespace) -> int:
     if args.json:
         from mixture.describe import describe_groups
 
-        print(
-            json.dumps([_summary_dict(s) for s in describe_groups(state, top_n=args.top)], indent=2)
+        summaries = describe_groups(
+            state, top_n=args.top, keep_courtesy_terms=args.keep_courtesy_terms
         )
+        print(json.dumps([_summary_dict(s) for s in summaries], indent=2))
     else:
-        print("\n".join(describe_lines(state, args.top)))
+        print("\n".join(describe_lines(state, args.top, args.keep_courtesy_terms)))
     return EXIT_OK
 
 
 def _describe_online(args: argparse.Namespace) -> int:
     client = ApiClient(args.api or default_api_url())
     name = _model_name(args)
-    groups = client.get(f"/models/{name}/groups", params={"top": args.top})
+    params: dict[str, Any] = {"top": args.top}
+    if args.keep_courtesy_terms:
+        params["keep_courtesy_terms"] = "true"
+    groups = client.get(f"/models/{name}/groups", params=params)
     if args.json:
         print(json.dumps(groups, indent=2))
         return EXIT_OK
@@ -1102,6 +1106,11 @@ def build_parser() -> argparse.ArgumentParser:
     )
     p.add_argument("--top", type=int, default=10, help="terms listed per group (default 10)")
     p.add_argument("--json", action="store_true", help="print JSON instead of text")
+    p.add_argument(
+        "--keep-courtesy-terms",
+        action="store_true",
+        help="keep greetings and closings (thanks, regards, ...) in the term lists",
+    )
     api_options(p)
     p.set_defaults(func=cmd_describe)
 

@@ -107,6 +107,11 @@ def schema_of_dataclass(cls: type, name: str | None = None) -> type[StrictIn]:
             default = item.default
         else:
             default = item.default_factory()  # type: ignore[misc]
+        args = typing.get_args(annotation)
+        if typing.get_origin(annotation) is tuple and len(args) == 2 and args[1] is Ellipsis:
+            # JSON has arrays, not tuples, and strict validation refuses a list for a tuple:
+            # the body takes a list and the dataclass makes it its tuple.
+            annotation, default = list[args[0]], list(default)  # type: ignore[valid-type]
         definitions[item.name] = (annotation, Field(default=default, description=description))
     model_name = name or cls.__name__.removesuffix("Config") + "In"
     model = create_model(model_name, __base__=StrictIn, **definitions)

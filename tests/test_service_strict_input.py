@@ -49,6 +49,8 @@ def candidates(annotation: Any, default: Any) -> list[Any]:
         return [default * 1.25, default * 0.8, 0.75]
     if isinstance(default, str):
         return ["none", "english"]
+    if isinstance(default, tuple):
+        return [["marrowline", "skerry"]]  # a JSON list of words (extra_stop_words)
     raise AssertionError(f"no candidate for {annotation}")
 
 

@@ -14,9 +14,12 @@ from service.schemas import GroupList, GroupOut, LabelIn, Problem
 router = APIRouter(tags=["groups"], responses=COMMON_RESPONSES, route_class=StrictJsonRoute)
 
 NOT_FOUND = {404: {"model": Problem, "description": "Unknown model or group"}}
+KEEP_COURTESY = "Keep greetings and closings (thanks, regards, ...) in the term lists"
 
 
-def group_dicts(loaded: LoadedModel, top: int, min_count: float) -> list[dict[str, Any]]:
+def group_dicts(
+    loaded: LoadedModel, top: int, min_count: float, keep_courtesy_terms: bool = False
+) -> list[dict[str, Any]]:
     """Every group of a loaded model as JSON-able dicts."""
     ids = loaded.group_ids
     k = len(ids)
@@ -24,7 +27,9 @@ def group_dicts(loaded: LoadedModel, top: int, min_count: float) -> list[dict[st
     if loaded.state is None:
         summaries: list[Any] = []
     else:
-        summaries = describe_groups(loaded.state, top_n=top, min_count=min_count)
+        summaries = describe_groups(
+            loaded.state, top_n=top, min_count=min_count, keep_courtesy_terms=keep_courtesy_terms
+        )
     by_position = {int(s.group): s for s in summaries}  # describe_groups numbers by position
     out = []
     for g, group_id in enumerate(ids):
@@ -65,13 +70,14 @@ def list_groups(
     runtime: Runtime,
     top: Annotated[int, Query(ge=1, le=200, description="Terms per list")] = 10,
     min_count: Annotated[float, Query(ge=0.0, le=1e9, description="Distinctive-term floor")] = 3.0,
+    keep_courtesy_terms: Annotated[bool, Query(description=KEEP_COURTESY)] = False,
 ) -> dict[str, Any]:
     """Weights, top terms p(w | k), distinctive terms (lift) and labels of every group."""
     loaded = runtime.model(model)
     return {
         "model": model,
         "version": loaded.version,
-        "groups": group_dicts(loaded, top, min_count),
+        "groups": group_dicts(loaded, top, min_count, keep_courtesy_terms),
     }
 
 
@@ -87,9 +93,10 @@ def get_group(
     group: int,
     top: Annotated[int, Query(ge=1, le=200)] = 10,
     min_count: Annotated[float, Query(ge=0.0, le=1e9)] = 3.0,
+    keep_courtesy_terms: Annotated[bool, Query(description=KEEP_COURTESY)] = False,
 ) -> dict[str, Any]:
     loaded = runtime.model(model)
-    return group_dicts(loaded, top, min_count)[loaded.position_of(group)]
+    return group_dicts(loaded, top, min_count, keep_courtesy_terms)[loaded.position_of(group)]
 
 
 @router.put(
