@@ -56,16 +56,26 @@ def _corpus(name: str) -> corpora.LabelledCorpus:
 
 
 @cache
-def _nmi(name: str, method: str) -> float:
+def _nmi(name: str, method: str, seed: int = 0) -> float:
     corpus = _corpus(name)
     run = {
         "batch": corpora.cluster_batch_em,
         "stepwise": corpora.cluster_stepwise_em,
         "kmeans": corpora.cluster_kmeans_tfidf,
     }[method]
-    score = float(normalized_mutual_info_score(corpus.labels, run(corpus, seed=0)))
-    print(f"NMI {name} {method}: {score:.4f}")
+    score = float(normalized_mutual_info_score(corpus.labels, run(corpus, seed=seed)))
+    print(f"NMI {name} {method} seed {seed}: {score:.4f}")
     return score
+
+
+# Two methods are compared on the mean over seeds 0-2: a single seed's NMI moves by about 0.03
+# whenever the tokens change (measured over seeds 0-19 when ordinals began to fold: no change
+# in the means, while seed 0 alone fell under KMeans' floor and the old tokens failed at seed 4).
+COMPARISON_SEEDS = (0, 1, 2)
+
+
+def _mean_nmi(name: str, method: str) -> float:
+    return float(np.mean([_nmi(name, method, seed) for seed in COMPARISON_SEEDS]))
 
 
 # ---- loaders on tiny stand-ins (no corpus needed) ---------------------------------------------
@@ -211,8 +221,8 @@ def test_batch_em_reaches_the_target_nmi(name: str) -> None:
 @pytest.mark.corpus
 @pytest.mark.parametrize("name", ["bbc", "wordnet"])
 def test_batch_em_is_not_worse_than_kmeans_on_tfidf(name: str) -> None:
-    # Source: scikit-learn KMeans on TF-IDF, run here on the same documents.
-    ours, kmeans = _nmi(name, "batch"), _nmi(name, "kmeans")
+    # Source: scikit-learn KMeans on TF-IDF, run here on the same documents (means over seeds).
+    ours, kmeans = _mean_nmi(name, "batch"), _mean_nmi(name, "kmeans")
     assert ours >= kmeans - KMEANS_SLACK, f"{name}: batch EM {ours:.4f}, KMeans {kmeans:.4f}"
 
 
