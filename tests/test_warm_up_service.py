@@ -8,11 +8,8 @@ Reference for the states: mixture/ fed the same documents directly in units of b
 
 from __future__ import annotations
 
-import os
 import random
 import signal
-import subprocess
-import sys
 import threading
 import time
 import warnings
@@ -37,6 +34,7 @@ from tests.worker_support import (
     learned_all,
     reference_state,
     small_config,
+    start_worker_process,
     wait_for,
 )
 from worker.learner import Worker
@@ -160,17 +158,6 @@ def test_route_with_learn_queues_its_documents_before_the_model_can_answer(
     assert redis_client.xlen(ModelKeys(model_name).docs) == 5  # the ids were queued already
 
 
-def _start_worker(redis_url: str, model: str, name: str) -> subprocess.Popen[bytes]:
-    env = {**os.environ, "REDIS_URL": redis_url, "MIXROUTE_LOG_LEVEL": "WARNING"}
-    return subprocess.Popen(
-        [sys.executable, "-m", "worker", "--model", model, "--name", name],
-        cwd=ROOT,
-        env=env,
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.PIPE,
-    )
-
-
 def test_sigkill_during_the_warm_up_gives_the_same_provisional_and_final_state(
     redis_url: str, redis_client: redis.Redis, model_name: str
 ) -> None:
@@ -201,7 +188,7 @@ def test_sigkill_during_the_warm_up_gives_the_same_provisional_and_final_state(
     producer.start()
     learned_at_kill = []
     for attempt in range(3):
-        process = _start_worker(redis_url, model_name, f"warm-{attempt}")
+        process = start_worker_process(redis_url, model_name, f"warm-{attempt}")
         before = (store.summary() or {}).get("documents_learned", 0)
         wait_for(
             lambda b=before: (
@@ -216,7 +203,7 @@ def test_sigkill_during_the_warm_up_gives_the_same_provisional_and_final_state(
         assert process.stderr is not None
         process.stderr.close()
         learned_at_kill.append((store.summary() or {}).get("documents_learned", 0))
-    final = _start_worker(redis_url, model_name, "warm-final")
+    final = start_worker_process(redis_url, model_name, "warm-final")
     try:
         sent.wait(60)
         producer.join(60)

@@ -7,11 +7,8 @@ order, in units of batch_size (``reference_state``). Exactly-once effect means e
 from __future__ import annotations
 
 import logging
-import os
 import random
 import signal
-import subprocess
-import sys
 import threading
 import time
 from pathlib import Path
@@ -30,6 +27,7 @@ from tests.worker_support import (
     learned_all,
     reference_state,
     small_config,
+    start_worker_process,
     wait_for,
 )
 from worker.learner import Worker
@@ -37,17 +35,6 @@ from worker.learner import Worker
 pytestmark = pytest.mark.redis
 
 ROOT = Path(__file__).resolve().parent.parent
-
-
-def _start_worker(redis_url: str, model: str, name: str) -> subprocess.Popen[bytes]:
-    env = {**os.environ, "REDIS_URL": redis_url, "MIXROUTE_LOG_LEVEL": "WARNING"}
-    return subprocess.Popen(
-        [sys.executable, "-m", "worker", "--model", model, "--name", name],
-        cwd=ROOT,
-        env=env,
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.PIPE,
-    )
 
 
 def test_sigkill_at_random_points_loses_nothing_and_learns_nothing_twice(
@@ -87,7 +74,7 @@ def test_sigkill_at_random_points_loses_nothing_and_learns_nothing_twice(
     kills = 0
     learned_at_kill: list[int] = []
     for attempt in range(3):
-        process = _start_worker(redis_url, model_name, f"crash-{attempt}")
+        process = start_worker_process(redis_url, model_name, f"crash-{attempt}")
         # kill after it has learned something (so the kill falls mid-stream), at a random delay
         learned_before = (store.summary() or {}).get("documents_learned", 0)
         wait_for(
@@ -104,7 +91,7 @@ def test_sigkill_at_random_points_loses_nothing_and_learns_nothing_twice(
         process.stderr.close()
         kills += 1
     assert kills == 3
-    final = _start_worker(redis_url, model_name, "final")
+    final = start_worker_process(redis_url, model_name, "final")
     try:
         sent.wait(60)
         producer.join(60)

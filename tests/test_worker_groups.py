@@ -9,11 +9,8 @@ in units of batch_size (``reference_state``): exactly-once effect means equal st
 
 from __future__ import annotations
 
-import os
 import random
 import signal
-import subprocess
-import sys
 import threading
 import time
 from pathlib import Path
@@ -36,6 +33,7 @@ from tests.worker_support import (
     fast_options,
     learned_all,
     reference_state,
+    start_worker_process,
     wait_for,
 )
 from worker.learner import Worker
@@ -144,17 +142,6 @@ def test_a_merge_keeps_both_labels_and_a_retired_label_stays(
         store.set_group_label(absorbed, "x", None)
 
 
-def _start_worker(redis_url: str, model: str, name: str) -> subprocess.Popen[bytes]:
-    env = {**os.environ, "REDIS_URL": redis_url, "MIXROUTE_LOG_LEVEL": "WARNING"}
-    return subprocess.Popen(
-        [sys.executable, "-m", "worker", "--model", model, "--name", name],
-        cwd=ROOT,
-        env=env,
-        stdout=subprocess.DEVNULL,
-        stderr=subprocess.PIPE,
-    )
-
-
 def test_sigkill_around_a_birth_records_it_once_and_ends_in_the_uninterrupted_state(
     redis_url: str, redis_client: redis.Redis, model_name: str
 ) -> None:
@@ -185,7 +172,7 @@ def test_sigkill_around_a_birth_records_it_once_and_ends_in_the_uninterrupted_st
     producer.start()
     learned_at_kill = []
     for attempt, target in enumerate([birth_at - 512, birth_at - 256, birth_at, birth_at + 256]):
-        process = _start_worker(redis_url, model_name, f"kill-{attempt}")
+        process = start_worker_process(redis_url, model_name, f"kill-{attempt}")
         wait_for(
             lambda t=target: (store.summary() or {}).get("documents_learned", 0) >= t,
             timeout=120,
@@ -197,7 +184,7 @@ def test_sigkill_around_a_birth_records_it_once_and_ends_in_the_uninterrupted_st
         process.stderr.close()
         learned_at_kill.append((store.summary() or {}).get("documents_learned", 0))
     producer.join(60)
-    final = _start_worker(redis_url, model_name, "final")
+    final = start_worker_process(redis_url, model_name, "final")
     try:
         wait_for(learned_all(store, len(texts)), timeout=120, what="all learned")
         wait_for(lambda: store.lease_holder() == "final", timeout=30, what="final holds")

@@ -6,7 +6,10 @@ three groups of short messages over disjoint small vocabularies, so models stay 
 
 from __future__ import annotations
 
+import os
 import random
+import subprocess
+import sys
 import threading
 import time
 from collections.abc import Callable, Iterator, Sequence
@@ -289,3 +292,15 @@ def private_redis7(folder: Path) -> Iterator[str]:
     finally:
         process.terminate()
         process.wait(20)
+
+
+def start_worker_process(redis_url: str, model: str, name: str) -> subprocess.Popen[bytes]:
+    """``python -m worker`` for one model as a real process (crash tests kill it)."""
+    env = {**os.environ, "REDIS_URL": redis_url, "MIXROUTE_LOG_LEVEL": "WARNING"}
+    return subprocess.Popen(
+        [sys.executable, "-m", "worker", "--model", model, "--name", name],
+        cwd=Path(__file__).resolve().parent.parent,
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.PIPE,
+    )
