@@ -50,6 +50,8 @@ import math
 from dataclasses import asdict, dataclass, field, fields
 from typing import Any
 
+from mixture.checks import check_float as _check_float
+from mixture.checks import check_int as _check_int
 from mixture.errors import ConfigError
 from mixture.lifecycle_config import LifecycleConfig
 from mixture.tokenizer import TokenizerConfig
@@ -194,26 +196,3 @@ class MixtureConfig:
         values = {f.name: getattr(self, f.name) for f in fields(self)}
         values.update(changes)
         return MixtureConfig(**values)
-
-
-def _check_int(cfg: MixtureConfig, name: str, low: int, high: int) -> None:
-    value = getattr(cfg, name)
-    if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
-        raise ConfigError(f"{name} must be an integer in [{low}, {high}]; got {value!r}")
-
-
-def _check_float(
-    cfg: MixtureConfig, name: str, low: float, high: float, *, low_open: bool = False
-) -> None:
-    value = getattr(cfg, name)
-    if (
-        isinstance(value, bool)
-        or not isinstance(value, int | float)
-        or not math.isfinite(value)
-        or not (value > low if low_open else value >= low)
-        or value > high
-    ):
-        bracket = "(" if low_open else "["
-        raise ConfigError(
-            f"{name} must be a finite number in {bracket}{low}, {high}]; got {value!r}"
-        )

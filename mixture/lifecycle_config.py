@@ -56,10 +56,10 @@ retire_share = 0.001, retire_windows = 2
 
 from __future__ import annotations
 
-import math
 from dataclasses import asdict, dataclass, fields
 from typing import Any
 
+from mixture.checks import check_float, check_int
 from mixture.errors import ConfigError
 
 
@@ -121,25 +121,25 @@ class LifecycleConfig:
         if not isinstance(self.enabled, bool):
             raise ConfigError(f"lifecycle.enabled must be true or false; got {self.enabled!r}")
         if self.max_groups is not None:
-            _check_int(self, "max_groups", 1, 10_000)
-        _check_int(self, "check_every_documents", 1, 100_000_000)
-        _check_float(self, "novelty_z", 0.0, 100.0)
-        _check_float(self, "novel_unknown_share", 0.0, 1.0)
-        _check_float(self, "typicality_half_life", 1.0, 1e12)
-        _check_int(self, "typicality_min_documents", 1, 1_000_000)
-        _check_int(self, "buffer_documents", 1, 100_000)
-        _check_int(self, "buffer_horizon_documents", 1, 1_000_000_000)
-        _check_int(self, "birth_min_documents", 2, 100_000)
+            check_int(self, "max_groups", 1, 10_000, prefix="lifecycle.")
+        check_int(self, "check_every_documents", 1, 100_000_000, prefix="lifecycle.")
+        check_float(self, "novelty_z", 0.0, 100.0, prefix="lifecycle.")
+        check_float(self, "novel_unknown_share", 0.0, 1.0, prefix="lifecycle.")
+        check_float(self, "typicality_half_life", 1.0, 1e12, prefix="lifecycle.")
+        check_int(self, "typicality_min_documents", 1, 1_000_000, prefix="lifecycle.")
+        check_int(self, "buffer_documents", 1, 100_000, prefix="lifecycle.")
+        check_int(self, "buffer_horizon_documents", 1, 1_000_000_000, prefix="lifecycle.")
+        check_int(self, "birth_min_documents", 2, 100_000, prefix="lifecycle.")
         if self.birth_min_documents > self.buffer_documents:
             raise ConfigError(
                 f"lifecycle.birth_min_documents ({self.birth_min_documents}) must not exceed "
                 f"lifecycle.buffer_documents ({self.buffer_documents}): no birth could happen"
             )
-        _check_float(self, "birth_log_bayes_factor", 0.0, 1e9)
-        _check_float(self, "merge_overlap", 1e-9, 1.0)
-        _check_float(self, "merge_divergence", 1e-9, 1.0)
-        _check_float(self, "retire_share", 0.0, 0.999)
-        _check_int(self, "retire_windows", 1, 1_000_000)
+        check_float(self, "birth_log_bayes_factor", 0.0, 1e9, prefix="lifecycle.")
+        check_float(self, "merge_overlap", 1e-9, 1.0, prefix="lifecycle.")
+        check_float(self, "merge_divergence", 1e-9, 1.0, prefix="lifecycle.")
+        check_float(self, "retire_share", 0.0, 0.999, prefix="lifecycle.")
+        check_int(self, "retire_windows", 1, 1_000_000, prefix="lifecycle.")
 
     def ceiling(self, n_groups: int) -> int:
         """The effective ``max_groups`` for a model that starts with ``n_groups``."""
@@ -158,22 +158,3 @@ class LifecycleConfig:
         if unknown:
             raise ConfigError(f"unknown lifecycle field(s): {', '.join(unknown)}")
         return cls(**data)
-
-
-def _check_int(cfg: LifecycleConfig, name: str, low: int, high: int) -> None:
-    value = getattr(cfg, name)
-    if isinstance(value, bool) or not isinstance(value, int) or not low <= value <= high:
-        raise ConfigError(f"lifecycle.{name} must be an integer in [{low}, {high}]; got {value!r}")
-
-
-def _check_float(cfg: LifecycleConfig, name: str, low: float, high: float) -> None:
-    value = getattr(cfg, name)
-    if (
-        isinstance(value, bool)
-        or not isinstance(value, int | float)
-        or not math.isfinite(value)
-        or not low <= value <= high
-    ):
-        raise ConfigError(
-            f"lifecycle.{name} must be a finite number in [{low}, {high}]; got {value!r}"
-        )
