@@ -28,8 +28,8 @@ clusters are fair but only partly in the labels' order: matched to the classes b
 Hungarian method its accuracy is 0.71 against 0.35 as labelled (the unsupervised fit of the
 same glosses, matched, 0.85), so one gloss of 10-26 words per class seeds its group too
 weakly against 6,000 unlabelled glosses. That case is a strict expected failure below.
-lambda = 0.1 gives a mean of 0.53 at one label there (bench/README.md), which is EM-lambda's
-point; the default stays 1 (not tuned to these corpora).
+lambda = 0.1 gives a mean of 0.535 (against 0.504) at one label there but less at 3 and 10
+(bench/README.md); the default stays 1 (Nigam et al.'s basic EM, not tuned to these corpora).
 """
 
 from __future__ import annotations

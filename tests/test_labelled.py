@@ -221,6 +221,9 @@ def test_during_the_warm_up_they_are_kept_and_used_by_every_fit():
     learner.learn(texts[:150])  # a provisional fit at 100 documents
     provisional = learner.state.provisional
     assert provisional is not None and provisional.labelled.ids() == [it.doc_id for it in items]
+    # The provisional fit started group 0 from the examples: it routes their topic there.
+    early = route_texts(provisional, texts[:150]).group
+    assert np.mean(early[labels[:150] == 2] == 0) >= 0.9
     late = LabelledItem("late", texts[int(np.flatnonzero(labels == 2)[0])], 0)
     learner.learn_labelled([late])
     assert "late" in learner.state.provisional.labelled  # at once, without a refit
