@@ -131,12 +131,16 @@ def test_dashboard_shows_the_model_and_restores_after_confirmation(
     wait_until(lambda: shown_version(browser) == before["version"], 20, what="version shown")
     assert browser.find_element(By.ID, "role").text == "role admin"
 
-    # the chart: one series per group, each with as many points as checkpoints
+    # the chart: one series per group, in steps at as many times as checkpoints (two points
+    # at each time after the first: the weight held, then the new one)
     history = api.get(f"/models/{model}/drift/history", params={"limit": 2000}).json()["rows"]
     series = browser.find_elements(By.CSS_SELECTOR, "#weights-chart polyline.series")
     assert sorted(int(s.get_attribute("data-group")) for s in series) == list(range(K))
     for line in series:
-        assert len(line.get_attribute("points").split()) == len(history)
+        points = line.get_attribute("points").split()
+        assert len(points) == 2 * len(history) - 1
+        times = [float(p.split(",")[0]) for p in points]
+        assert times == sorted(times)  # never back in time, also across the rollbacks
     alerts = api.get(f"/models/{model}/drift/alerts").json()["alerts"]
     assert alerts, "the invented storm day must raise a drift alert at this threshold"
     marked = browser.find_elements(By.CSS_SELECTOR, "#weights-chart g.alert")
@@ -361,3 +365,83 @@ def test_dashboard_files_are_served_from_the_app_only(live: tuple[str, str, http
     script = httpx.get(f"{base}/dashboard/static/dashboard.js").text
     assert "http://" not in script.replace("http://www.w3.org/2000/svg", "")
     assert "https://" not in script
+
+
+def rgb(hex_colour: str) -> str:
+    """A ``#rrggbb`` colour as the browser's computed style writes it."""
+    r, g, b = (int(hex_colour[i : i + 2], 16) for i in (1, 3, 5))
+    return f"rgb({r}, {g}, {b})"
+
+
+def test_dashboard_marks_rollbacks_in_the_palette_colours(
+    live: tuple[str, str, httpx.Client], browser: Any
+) -> None:
+    """After a rollback (with replay) the chart shows a labelled marker whose hover and
+    accessible text name the snapshot and the replay, at desktop and phone widths; the lines
+    and markers are drawn in the colours of palette.json, the file the PNG plot reads."""
+    from selenium.webdriver.common.by import By
+
+    from service.plot import palette
+
+    base, model, api = live
+    ARTEFACTS.mkdir(exist_ok=True)
+    snapshot = api.post(f"/models/{model}/snapshots", json={"reason": "before the marker test"})
+    assert snapshot.status_code == 201, snapshot.text
+    snap_id = snapshot.json()["id"]
+    restored = api.post(f"/models/{model}/snapshots/{snap_id}/restore", json={"replay": True})
+    assert restored.status_code == 200, restored.text
+    version = restored.json()["version"]
+    history = api.get(f"/models/{model}/drift/history", params={"limit": 2000}).json()["rows"]
+    rollbacks = [row for row in history if row["kind"] == "rollback"]
+    assert rollbacks[-1]["version"] == version and rollbacks[-1]["replay"] is True
+    colours = palette()
+    for width in (None, 390):
+        phone_width(browser, width)
+        try:
+            open_as_admin(browser, base, model)
+            wait_until(lambda: shown_version(browser) == version, 20, what="the rollback shown")
+            marks = browser.find_elements(By.CSS_SELECTOR, "#weights-chart g.rollback-mark")
+            assert [int(m.get_attribute("data-version")) for m in marks] == [
+                row["version"] for row in rollbacks
+            ]
+            mark = marks[-1]
+            words = f"version {version}: rolled back to snapshot {snap_id}, replay on"
+            assert mark.get_attribute("data-snapshot") == snap_id
+            assert mark.get_attribute("aria-label") == words
+            title = mark.find_element(By.TAG_NAME, "title")
+            assert title.get_attribute("textContent") == words
+            label = mark.find_element(By.CSS_SELECTOR, "text.rollback-label")
+            assert label.text == f"rollback to {snap_id}" and label.is_displayed()
+            chart_name = browser.find_element(By.ID, "chart").get_attribute("aria-label")
+            assert words.replace(":", "") in chart_name
+            # the label stays inside the drawing (nothing cut off at the phone's width)
+            box = browser.execute_script(
+                "const t = arguments[0].getBBox(); const s = arguments[0].ownerSVGElement"
+                ".viewBox.baseVal; return [t.x, t.x + t.width, s.width];",
+                label,
+            )
+            assert box[0] >= 0 and box[1] <= box[2], box
+
+            # one palette: computed colours (after the style sheet) are palette.json's
+            line = mark.find_element(By.CSS_SELECTOR, "line.rollback-line")
+            stroke = browser.execute_script("return getComputedStyle(arguments[0]).stroke", line)
+            assert stroke == rgb(colours["marks"]["rollback"])
+            for series in browser.find_elements(By.CSS_SELECTOR, "#weights-chart polyline"):
+                group = int(series.get_attribute("data-group"))
+                stroke = browser.execute_script(
+                    "return getComputedStyle(arguments[0]).stroke", series
+                )
+                assert stroke == rgb(colours["groups"][group % len(colours["groups"])])
+            for alert in browser.find_elements(By.CSS_SELECTOR, "#weights-chart rect.alert-mark"):
+                fill = browser.execute_script("return getComputedStyle(arguments[0]).fill", alert)
+                assert fill == rgb(colours["marks"]["alert"])
+            for tick in browser.find_elements(By.CSS_SELECTOR, "#weights-chart g.snapshot-mark"):
+                kind = "pre-rollback" if tick.get_attribute("data-kind") == "pre-rollback" else None
+                stroke = browser.execute_script(
+                    "return getComputedStyle(arguments[0].querySelector('line')).stroke", tick
+                )
+                assert stroke == rgb(colours["marks"][kind or "snapshot"])
+            name = "dashboard-rollback.png" if width is None else "dashboard-rollback-phone.png"
+            browser.save_screenshot(str(ARTEFACTS / name))
+        finally:
+            phone_width(browser, None)
