@@ -2,7 +2,8 @@
 
 The x axis is each history row's ``time``: the wall-clock time its version was written, which
 only grows, so a rollback draws a jump (marked, with the snapshot it restored and whether the
-stream is replayed) and never a line back over itself. One line per group id, over the rows
+stream is replayed) and never a line back over itself. The lines are steps (a version's weights
+hold until the next version), as on the dashboard. One line per group id, over the rows
 where that group existed (a gap where it did not), named as the dashboard names it: the
 group's label by id, "group N" without one. Drift alerts (diamonds at the top), births, merges
 and retirements (circles under them), snapshots (ticks on the axis) and rollbacks (a solid line
@@ -87,6 +88,9 @@ def fetch_plot_inputs(
     """Read what the plot needs from the API: history (unless ``rows`` are given), labels,
     alerts, snapshots and group events.
 
+    Labels are the current groups' and those of groups merged into them (``merged_labels``); a
+    retired group's line is "group N" (the API lists current groups only).
+
     Parameters
     ----------
     get : callable
@@ -103,6 +107,11 @@ def fetch_plot_inputs(
         rows = get(f"{base}/drift/history", params={"limit": history_limit})["rows"]
     groups = get(f"{base}/groups", params={"top": 1})["groups"]
     labels = {int(g["group"]): str(g["label"]) for g in groups if g.get("label")}
+    # a group merged away keeps its line in the history: its label is the survivor's record
+    for group in groups:
+        for gone in group.get("merged_labels") or []:
+            if gone.get("label") and int(gone["group"]) not in labels:
+                labels[int(gone["group"])] = str(gone["label"])
     return PlotInputs(
         rows=list(rows),
         labels=labels,
@@ -187,6 +196,7 @@ def weights_figure(inputs: PlotInputs, title: str, tz: tzinfo | None = None) -> 
             weights,
             color=group_colour(group),
             linewidth=1.8,
+            drawstyle="steps-post",  # a version's weights hold until the next version
             label=group_name(group, inputs.labels),
         )
         line.set_gid(f"group:{group}")

@@ -227,7 +227,18 @@ def test_fetch_reads_labels_alerts_snapshots_and_events() -> None:
     answers = {
         "/models/m/drift/history": {"rows": history()},
         "/models/m/groups": {
-            "groups": [{"group": 0, "label": "harbour desk"}, {"group": 1, "label": None}]
+            "groups": [
+                {"group": 0, "label": "harbour desk", "merged_labels": []},
+                # group 1 absorbed group 4 (labelled) and group 6 (not)
+                {
+                    "group": 1,
+                    "label": None,
+                    "merged_labels": [
+                        {"group": 4, "label": "ferry times", "destination": None},
+                        {"group": 6, "label": None, "destination": None},
+                    ],
+                },
+            ]
         },
         "/models/m/drift/alerts": {"alerts": []},
         "/models/m/snapshots": {"snapshots": []},
@@ -239,7 +250,7 @@ def test_fetch_reads_labels_alerts_snapshots_and_events() -> None:
         return answers[path]
 
     fetched = fetch_plot_inputs(get, "m")
-    assert fetched.labels == {0: "harbour desk"}
+    assert fetched.labels == {0: "harbour desk", 4: "ferry times"}
     assert len(fetched.rows) == len(history())
     assert sorted(asked) == sorted(answers)
     asked.clear()

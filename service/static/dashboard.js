@@ -614,6 +614,10 @@ async function refresh() {
 
     const labels = {};
     if (got.groups) for (const g of got.groups.groups) if (g.label) labels[g.group] = g.label;
+    // a group merged away still has its line: its label lives on in the survivor's record
+    if (got.groups) for (const g of got.groups.groups) {
+      for (const gone of g.merged_labels || []) if (gone.label && !(gone.group in labels)) labels[gone.group] = gone.label;
+    }
     const shown = got.model || model;
     $("version").textContent = `version ${shown.version}`;
     $("version").dataset.version = String(shown.version);
