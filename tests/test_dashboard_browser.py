@@ -373,14 +373,39 @@ def rgb(hex_colour: str) -> str:
     return f"rgb({r}, {g}, {b})"
 
 
+# Everything the rollback test reads from the chart, in one script run: the page redraws the
+# chart every few seconds, so elements found one call earlier can be gone (stale) the next.
+CHART_READING = """
+const chart = document.getElementById("weights-chart");
+const css = (node, property) => getComputedStyle(node)[property];
+const viewBox = chart.viewBox.baseVal;
+return {
+  name: document.getElementById("chart").getAttribute("aria-label"),
+  rollbacks: [...chart.querySelectorAll("g.rollback-mark")].map((mark) => {
+    const label = mark.querySelector("text.rollback-label");
+    const box = label.getBBox();
+    return {
+      version: Number(mark.dataset.version), snapshot: mark.dataset.snapshot,
+      aria: mark.getAttribute("aria-label"), title: mark.querySelector("title").textContent,
+      label: label.textContent, left: box.x, right: box.x + box.width, width: viewBox.width,
+      stroke: css(mark.querySelector("line.rollback-line"), "stroke"),
+    };
+  }),
+  series: [...chart.querySelectorAll("polyline.series")].map(
+    (line) => [Number(line.dataset.group), css(line, "stroke")]),
+  alerts: [...chart.querySelectorAll("rect.alert-mark")].map((mark) => css(mark, "fill")),
+  snapshots: [...chart.querySelectorAll("g.snapshot-mark")].map(
+    (mark) => [mark.dataset.kind, css(mark.querySelector("line"), "stroke")]),
+};
+"""
+
+
 def test_dashboard_marks_rollbacks_in_the_palette_colours(
     live: tuple[str, str, httpx.Client], browser: Any
 ) -> None:
     """After a rollback (with replay) the chart shows a labelled marker whose hover and
     accessible text name the snapshot and the replay, at desktop and phone widths; the lines
     and markers are drawn in the colours of palette.json, the file the PNG plot reads."""
-    from selenium.webdriver.common.by import By
-
     from service.plot import palette
 
     base, model, api = live
@@ -395,52 +420,42 @@ def test_dashboard_marks_rollbacks_in_the_palette_colours(
     rollbacks = [row for row in history if row["kind"] == "rollback"]
     assert rollbacks[-1]["version"] == version and rollbacks[-1]["replay"] is True
     colours = palette()
+    words = f"version {version}: rolled back to snapshot {snap_id}, replay on"
     for width in (None, 390):
         phone_width(browser, width)
         try:
             open_as_admin(browser, base, model)
-            wait_until(lambda: shown_version(browser) == version, 20, what="the rollback shown")
-            marks = browser.find_elements(By.CSS_SELECTOR, "#weights-chart g.rollback-mark")
-            assert [int(m.get_attribute("data-version")) for m in marks] == [
-                row["version"] for row in rollbacks
-            ]
-            mark = marks[-1]
-            words = f"version {version}: rolled back to snapshot {snap_id}, replay on"
-            assert mark.get_attribute("data-snapshot") == snap_id
-            assert mark.get_attribute("aria-label") == words
-            title = mark.find_element(By.TAG_NAME, "title")
-            assert title.get_attribute("textContent") == words
-            label = mark.find_element(By.CSS_SELECTOR, "text.rollback-label")
-            assert label.text == f"rollback to {snap_id}" and label.is_displayed()
-            chart_name = browser.find_element(By.ID, "chart").get_attribute("aria-label")
-            assert words.replace(":", "") in chart_name
-            # the label stays inside the drawing (nothing cut off at the phone's width)
-            box = browser.execute_script(
-                "const t = arguments[0].getBBox(); const s = arguments[0].ownerSVGElement"
-                ".viewBox.baseVal; return [t.x, t.x + t.width, s.width];",
-                label,
+            wait_until(lambda: (shown_version(browser) or 0) >= version, 20, what="rollback shown")
+            chart = wait_until(
+                lambda: (
+                    (got := browser.execute_script(CHART_READING))["rollbacks"]
+                    and got["rollbacks"][-1]["version"] >= version
+                    and got
+                ),
+                20,
+                what="the rollback's marker",
             )
-            assert box[0] >= 0 and box[1] <= box[2], box
+            assert [m["version"] for m in chart["rollbacks"]] == [r["version"] for r in rollbacks]
+            mark = chart["rollbacks"][-1]
+            assert mark["snapshot"] == snap_id
+            assert mark["aria"] == words and mark["title"] == words
+            assert mark["label"] == f"rollback to {snap_id}"
+            assert words.replace(":", "") in chart["name"]
+            # the label stays inside the drawing (nothing cut off at the phone's width)
+            assert mark["left"] >= 0 and mark["right"] <= mark["width"], mark
 
             # one palette: computed colours (after the style sheet) are palette.json's
-            line = mark.find_element(By.CSS_SELECTOR, "line.rollback-line")
-            stroke = browser.execute_script("return getComputedStyle(arguments[0]).stroke", line)
-            assert stroke == rgb(colours["marks"]["rollback"])
-            for series in browser.find_elements(By.CSS_SELECTOR, "#weights-chart polyline"):
-                group = int(series.get_attribute("data-group"))
-                stroke = browser.execute_script(
-                    "return getComputedStyle(arguments[0]).stroke", series
-                )
+            assert mark["stroke"] == rgb(colours["marks"]["rollback"])
+            assert chart["series"]
+            for group, stroke in chart["series"]:
                 assert stroke == rgb(colours["groups"][group % len(colours["groups"])])
-            for alert in browser.find_elements(By.CSS_SELECTOR, "#weights-chart rect.alert-mark"):
-                fill = browser.execute_script("return getComputedStyle(arguments[0]).fill", alert)
+            assert chart["alerts"]
+            for fill in chart["alerts"]:
                 assert fill == rgb(colours["marks"]["alert"])
-            for tick in browser.find_elements(By.CSS_SELECTOR, "#weights-chart g.snapshot-mark"):
-                kind = "pre-rollback" if tick.get_attribute("data-kind") == "pre-rollback" else None
-                stroke = browser.execute_script(
-                    "return getComputedStyle(arguments[0].querySelector('line')).stroke", tick
-                )
-                assert stroke == rgb(colours["marks"][kind or "snapshot"])
+            assert chart["snapshots"]
+            for kind, stroke in chart["snapshots"]:
+                key = "pre-rollback" if kind == "pre-rollback" else "snapshot"
+                assert stroke == rgb(colours["marks"][key])
             name = "dashboard-rollback.png" if width is None else "dashboard-rollback-phone.png"
             browser.save_screenshot(str(ARTEFACTS / name))
         finally:
