@@ -238,7 +238,11 @@ function drawChart(rows, alerts, labels, events = [], snapshots = []) {
     let held = null;  // the weight of the previous version, when the group was in it
     for (const row of rows) {
       const at = rowIds(row).indexOf(g);
-      if (at < 0) { held = null; continue; }
+      if (at < 0) {  // gone (merged, retired, or undone by a rollback): held up to this version
+        if (held !== null) points.push(`${x(row.time).toFixed(1)},${y(held).toFixed(1)}`);
+        held = null;
+        continue;
+      }
       const rx = x(row.time).toFixed(1);
       if (held !== null) points.push(`${rx},${y(held).toFixed(1)}`);
       points.push(`${rx},${y(row.weights[at]).toFixed(1)}`);
