@@ -951,7 +951,13 @@ def cmd_drift(args: argparse.Namespace) -> int:
         words = ", ".join(f"g{g} {value:.3f}" for g, value in enumerate(report["word_divergence"]))
         print(f"word divergence per group vs {report['reference']}: {words}")
     if args.plot:
-        plot_weights(history, args.plot, title=f"mixture weights of {name}")
+        from service.plot import PlotError, fetch_plot_inputs, write_weights_plot
+
+        try:
+            inputs = fetch_plot_inputs(client.get, name, rows=history)
+            write_weights_plot(inputs, args.plot, title=f"mixture weights of {name}")
+        except PlotError as error:
+            raise CommandError(str(error)) from None
         print(f"wrote {args.plot}")
     return EXIT_OK
 
@@ -971,31 +977,6 @@ def format_drift_table(rows: Sequence[dict[str, Any]], max_rows: int = 30) -> st
         weights = " ".join(f"{w:6.3f}" for w in row["weights"])
         lines.append(f"{row['version']:>7} {row['documents_learned']:>9} {weights}")
     return "\n".join(lines)
-
-
-def plot_weights(rows: Sequence[dict[str, Any]], path: str, title: str) -> None:
-    """Plot mixture weights against documents learned into a PNG file."""
-    try:
-        import matplotlib
-
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-    except ImportError:
-        raise CommandError("--plot needs matplotlib: pip install 'mixroute[plot]'") from None
-    if not rows:
-        raise CommandError("no drift history to plot yet")
-    x = [row["documents_learned"] for row in rows]
-    k = len(rows[0]["weights"])
-    fig, ax = plt.subplots(figsize=(8, 4.5))
-    for group in range(k):
-        ax.plot(x, [row["weights"][group] for row in rows], label=f"group {group}")
-    ax.set_xlabel("documents learned")
-    ax.set_ylabel("mixture weight")
-    ax.set_title(title)
-    ax.legend(loc="upper left", fontsize="small", ncol=2)
-    fig.tight_layout()
-    fig.savefig(path, dpi=100)
-    plt.close(fig)
 
 
 def cmd_label(args: argparse.Namespace) -> int:

@@ -366,10 +366,13 @@ class Demo:
             self.say(f"    {terms}")
 
     def plot(self, path: str) -> None:
-        from service.cli import plot_weights
+        from service.plot import PlotError, fetch_plot_inputs, write_weights_plot
 
-        rows = self.call("GET", f"/models/{MODEL}/drift/history")["rows"]
-        plot_weights(rows, path, title="mixture weights (invented ferry-inbox demo)")
+        try:
+            inputs = fetch_plot_inputs(lambda p, **kw: self.call("GET", p, **kw), MODEL)
+            write_weights_plot(inputs, path, title="mixture weights (invented ferry-inbox demo)")
+        except PlotError as error:
+            raise CommandError(str(error)) from None
         self.say(f"wrote {path}")
 
 

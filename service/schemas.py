@@ -429,6 +429,13 @@ class HistoryRowOut(BaseModel):
     no_evidence: int
     batch_documents: int
     group_ids: list[int] | None = Field(default=None, description="Id of each weight.")
+    kind: Literal["checkpoint", "rollback"] = Field(
+        default="checkpoint", description="What wrote this version."
+    )
+    snapshot_id: str | None = Field(default=None, description="A rollback's restored snapshot.")
+    replay: bool | None = Field(
+        default=None, description="A rollback's: whether the stream after the snapshot is re-read."
+    )
 
 
 class HistoryOut(BaseModel):

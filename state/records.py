@@ -107,6 +107,7 @@ class VersionRecord:
     documents_learned: int
     snapshot_id: str | None = None
     replaced: int | None = None
+    replay: bool | None = None  # a rollback's: whether the stream after the snapshot is re-read
 
     def to_dict(self) -> dict[str, Any]:
         return asdict(self)
@@ -118,7 +119,13 @@ class VersionRecord:
 
 @dataclass(frozen=True)
 class HistoryRow:
-    """One drift-history row, written by every checkpoint."""
+    """One drift-history row, written by every version (checkpoint or rollback).
+
+    ``time`` is the wall-clock time the version was written: it only grows, also across a
+    rollback (whose row carries the restored weights), so it is the time axis of the weight
+    plots. A rollback's row says so (``kind``, ``snapshot_id``, ``replay``); rows written before
+    these fields read as checkpoints.
+    """
 
     time: float
     version: int
@@ -128,6 +135,9 @@ class HistoryRow:
     no_evidence: int  # documents with no known word since the last checkpoint
     batch_documents: int  # documents learned since the last checkpoint
     group_ids: list[int] | None = None  # the weights' group ids (None: rows before ids, 0..K-1)
+    kind: str = "checkpoint"  # or "rollback"
+    snapshot_id: str | None = None  # a rollback's restored snapshot
+    replay: bool | None = None  # a rollback's: the stream after the snapshot is learned again
 
     def ids(self) -> list[int]:
         """Group id of each weight."""
@@ -152,6 +162,9 @@ class HistoryRow:
             no_evidence=int(d["no_evidence"]),
             batch_documents=int(d["batch_documents"]),
             group_ids=None if d.get("group_ids") is None else [int(g) for g in d["group_ids"]],
+            kind=str(d.get("kind", "checkpoint")),
+            snapshot_id=None if d.get("snapshot_id") is None else str(d["snapshot_id"]),
+            replay=None if d.get("replay") is None else bool(d["replay"]),
         )
 
 

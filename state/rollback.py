@@ -148,6 +148,7 @@ class Rollbacks:
             time=now,
             snapshot_id=info.id,
             replaced=current_version,
+            replay=replay,
         )
         pipe.multi()
         if safety is not None:

@@ -82,6 +82,7 @@ class VersionWrite:
     time: float
     snapshot_id: str | None = None
     replaced: int | None = None
+    replay: bool | None = None  # a rollback's replay flag (None for a checkpoint)
     log_likelihood_per_token: float = float("nan")
     no_evidence: int = 0
     batch_documents: int = 0
@@ -133,6 +134,7 @@ def write_version(pipe: redis.client.Pipeline, handle: ModelHandle, w: VersionWr
         documents_learned=summary["documents_learned"],
         snapshot_id=w.snapshot_id,
         replaced=w.replaced,
+        replay=w.replay,
     )
     row = HistoryRow(
         time=w.time,
@@ -142,6 +144,10 @@ def write_version(pipe: redis.client.Pipeline, handle: ModelHandle, w: VersionWr
         log_likelihood_per_token=w.log_likelihood_per_token,
         no_evidence=w.no_evidence,
         batch_documents=w.batch_documents,
+        group_ids=summary["group_ids"],
+        kind=w.kind,
+        snapshot_id=w.snapshot_id,
+        replay=w.replay,
     )
     pipe.set(keys.state, w.data)
     pipe.set(keys.version, w.version)

@@ -3,6 +3,7 @@ worker on a real Redis: models create, feed, route, describe, snapshot, rollback
 
 from __future__ import annotations
 
+import itertools
 import json
 from collections.abc import Iterator
 from pathlib import Path
@@ -115,10 +116,35 @@ def test_service_commands(live: str, model_name: str, redis_client, tmp_path: Pa
 
     image = matplotlib.image.imread(png)
     assert image.ndim == 3 and image.shape[0] > 100
+    check_plot_of_live_history(http, model_name, snap_id)
 
     assert main(["models", "list", *api]) == 0
     assert model_name in capsys.readouterr().out
     http.close()
+
+
+def check_plot_of_live_history(http: httpx.Client, model_name: str, snap_id: str) -> None:
+    """The figure `drift --plot` draws, from the rows the API wrote: both rollbacks above
+    (replay off, then on) are rows of their own and marked; time never goes back; the label
+    set through the command line names group 1 in the legend."""
+    from service.plot import fetch_plot_inputs, weights_figure
+
+    inputs = fetch_plot_inputs(lambda path, **kw: http.get(path, **kw).json(), model_name)
+    rollbacks = [row for row in inputs.rows if row["kind"] == "rollback"]
+    assert [(row["snapshot_id"], row["replay"]) for row in rollbacks] == [
+        (snap_id, False),
+        (snap_id, True),
+    ]
+    assert inputs.rows[-1]["group_ids"] == http.get(f"/models/{model_name}").json()["group_ids"]
+    ax = weights_figure(inputs, "t").axes[0]
+    lines = {line.get_gid(): line for line in ax.get_lines() if line.get_gid()}
+    for group in inputs.rows[-1]["group_ids"]:
+        xs = list(lines[f"group:{group}"].get_xdata())
+        assert all(a <= b for a, b in itertools.pairwise(xs)) and len(xs) > 2
+    assert {f"rollback:{row['version']}" for row in rollbacks} <= set(lines)
+    assert {"snapshots:snapshot", "snapshots:pre-rollback"} <= set(lines)
+    legend = [text.get_text() for text in ax.get_legend().get_texts()]
+    assert "1 · lost property" in legend and "rollback" in legend
 
 
 def test_unreachable_api_and_unknown_model_are_one_line_errors(

@@ -131,12 +131,16 @@ def test_dashboard_shows_the_model_and_restores_after_confirmation(
     wait_until(lambda: shown_version(browser) == before["version"], 20, what="version shown")
     assert browser.find_element(By.ID, "role").text == "role admin"
 
-    # the chart: one series per group, each with as many points as checkpoints
+    # the chart: one series per group, in steps at as many times as checkpoints (two points
+    # at each time after the first: the weight held, then the new one)
     history = api.get(f"/models/{model}/drift/history", params={"limit": 2000}).json()["rows"]
     series = browser.find_elements(By.CSS_SELECTOR, "#weights-chart polyline.series")
     assert sorted(int(s.get_attribute("data-group")) for s in series) == list(range(K))
     for line in series:
-        assert len(line.get_attribute("points").split()) == len(history)
+        points = line.get_attribute("points").split()
+        assert len(points) == 2 * len(history) - 1
+        times = [float(p.split(",")[0]) for p in points]
+        assert times == sorted(times)  # never back in time, also across the rollbacks
     alerts = api.get(f"/models/{model}/drift/alerts").json()["alerts"]
     assert alerts, "the invented storm day must raise a drift alert at this threshold"
     marked = browser.find_elements(By.CSS_SELECTOR, "#weights-chart g.alert")
@@ -361,3 +365,98 @@ def test_dashboard_files_are_served_from_the_app_only(live: tuple[str, str, http
     script = httpx.get(f"{base}/dashboard/static/dashboard.js").text
     assert "http://" not in script.replace("http://www.w3.org/2000/svg", "")
     assert "https://" not in script
+
+
+def rgb(hex_colour: str) -> str:
+    """A ``#rrggbb`` colour as the browser's computed style writes it."""
+    r, g, b = (int(hex_colour[i : i + 2], 16) for i in (1, 3, 5))
+    return f"rgb({r}, {g}, {b})"
+
+
+# Everything the rollback test reads from the chart, in one script run: the page redraws the
+# chart every few seconds, so elements found one call earlier can be gone (stale) the next.
+CHART_READING = """
+const chart = document.getElementById("weights-chart");
+const css = (node, property) => getComputedStyle(node)[property];
+const viewBox = chart.viewBox.baseVal;
+return {
+  name: document.getElementById("chart").getAttribute("aria-label"),
+  rollbacks: [...chart.querySelectorAll("g.rollback-mark")].map((mark) => {
+    const label = mark.querySelector("text.rollback-label");
+    const box = label.getBBox();
+    return {
+      version: Number(mark.dataset.version), snapshot: mark.dataset.snapshot,
+      aria: mark.getAttribute("aria-label"), title: mark.querySelector("title").textContent,
+      label: label.textContent, left: box.x, right: box.x + box.width, width: viewBox.width,
+      stroke: css(mark.querySelector("line.rollback-line"), "stroke"),
+    };
+  }),
+  series: [...chart.querySelectorAll("polyline.series")].map(
+    (line) => [Number(line.dataset.group), css(line, "stroke")]),
+  alerts: [...chart.querySelectorAll("rect.alert-mark")].map((mark) => css(mark, "fill")),
+  snapshots: [...chart.querySelectorAll("g.snapshot-mark")].map(
+    (mark) => [mark.dataset.kind, css(mark.querySelector("line"), "stroke")]),
+};
+"""
+
+
+def test_dashboard_marks_rollbacks_in_the_palette_colours(
+    live: tuple[str, str, httpx.Client], browser: Any
+) -> None:
+    """After a rollback (with replay) the chart shows a labelled marker whose hover and
+    accessible text name the snapshot and the replay, at desktop and phone widths; the lines
+    and markers are drawn in the colours of palette.json, the file the PNG plot reads."""
+    from service.plot import palette
+
+    base, model, api = live
+    ARTEFACTS.mkdir(exist_ok=True)
+    snapshot = api.post(f"/models/{model}/snapshots", json={"reason": "before the marker test"})
+    assert snapshot.status_code == 201, snapshot.text
+    snap_id = snapshot.json()["id"]
+    restored = api.post(f"/models/{model}/snapshots/{snap_id}/restore", json={"replay": True})
+    assert restored.status_code == 200, restored.text
+    version = restored.json()["version"]
+    history = api.get(f"/models/{model}/drift/history", params={"limit": 2000}).json()["rows"]
+    rollbacks = [row for row in history if row["kind"] == "rollback"]
+    assert rollbacks[-1]["version"] == version and rollbacks[-1]["replay"] is True
+    colours = palette()
+    words = f"version {version}: rolled back to snapshot {snap_id}, replay on"
+    for width in (None, 390):
+        phone_width(browser, width)
+        try:
+            open_as_admin(browser, base, model)
+            wait_until(lambda: (shown_version(browser) or 0) >= version, 20, what="rollback shown")
+            chart = wait_until(
+                lambda: (
+                    (got := browser.execute_script(CHART_READING))["rollbacks"]
+                    and got["rollbacks"][-1]["version"] >= version
+                    and got
+                ),
+                20,
+                what="the rollback's marker",
+            )
+            assert [m["version"] for m in chart["rollbacks"]] == [r["version"] for r in rollbacks]
+            mark = chart["rollbacks"][-1]
+            assert mark["snapshot"] == snap_id
+            assert mark["aria"] == words and mark["title"] == words
+            assert mark["label"] == f"rollback to {snap_id}"
+            assert words.replace(":", "") in chart["name"]
+            # the label stays inside the drawing (nothing cut off at the phone's width)
+            assert mark["left"] >= 0 and mark["right"] <= mark["width"], mark
+
+            # one palette: computed colours (after the style sheet) are palette.json's
+            assert mark["stroke"] == rgb(colours["marks"]["rollback"])
+            assert chart["series"]
+            for group, stroke in chart["series"]:
+                assert stroke == rgb(colours["groups"][group % len(colours["groups"])])
+            assert chart["alerts"]
+            for fill in chart["alerts"]:
+                assert fill == rgb(colours["marks"]["alert"])
+            assert chart["snapshots"]
+            for kind, stroke in chart["snapshots"]:
+                key = "pre-rollback" if kind == "pre-rollback" else "snapshot"
+                assert stroke == rgb(colours["marks"][key])
+            name = "dashboard-rollback.png" if width is None else "dashboard-rollback-phone.png"
+            browser.save_screenshot(str(ARTEFACTS / name))
+        finally:
+            phone_width(browser, None)

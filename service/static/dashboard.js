@@ -2,16 +2,42 @@
 // No libraries, nothing fetched from anywhere but this origin.
 "use strict";
 
-const COLOURS = ["#2a7f78", "#c8641b", "#6a4c93", "#3f7d20", "#b8860b", "#b03a6f",
-                 "#2f5d9b", "#7a6a1f", "#8c2f39", "#16697a", "#8a5a44", "#4a5a6a"];
+// The chart's colours come from palette.json, which the PNG plot (service/plot.py) reads too.
+const PALETTE_PATH = "/dashboard/static/palette.json";
+const UNCOLOURED = "#5d6b6f";  // until the palette has loaded (or if it cannot be read)
 const REFRESH_MS = 5000;
 const SVG_NS = "http://www.w3.org/2000/svg";
 
 const view = { model: null, role: null, keysRequired: false, snapshots: [], busy: false, again: false,
-               editing: null, reasonWords: null };
+               editing: null, reasonWords: null, palette: null };
 
 function $(id) { return document.getElementById(id); }
-function colour(group) { return COLOURS[group % COLOURS.length]; }
+function colour(group) {
+  const groups = view.palette ? view.palette.groups : [UNCOLOURED];
+  return groups[group % groups.length];
+}
+function markColour(kind) {
+  return (view.palette && view.palette.marks[kind]) || UNCOLOURED;
+}
+
+async function loadPalette() {
+  if (view.palette) return;
+  try {
+    const response = await fetch(PALETTE_PATH, { headers: { "Accept": "application/json" } });
+    if (!response.ok) return;
+    view.palette = await response.json();
+    view.groupSignature = null;  // redraw the cards in their colours
+    const key = document.querySelector(".alert-key");
+    if (key) key.style.background = markColour("alert");
+  } catch (error) {
+    view.palette = null;  // grey until a later refresh reads it
+  }
+}
+
+// What a rollback's marker says (the PNG plot's service.plot.rollback_text has the same words).
+function rollbackText(row) {
+  return `rolled back to snapshot ${row.snapshot_id}, replay ${row.replay ? "on" : "off"}`;
+}
 
 function el(tag, attrs, children) {
   const node = document.createElement(tag);
@@ -139,9 +165,10 @@ function drawChart(rows, alerts, labels, events = [], snapshots = []) {
     if (alert.time < t0 - span * 0.02 || alert.time > t1 + span * 0.02) continue;
     const ax = x(Math.min(Math.max(alert.time, t0), t1));
     const mark = svg("g", { class: "alert", "data-version": alert.version });
-    mark.appendChild(svg("line", { x1: ax, x2: ax, y1: top, y2: y(0), class: "alert-line" }));
+    mark.appendChild(svg("line", { x1: ax, x2: ax, y1: top, y2: y(0), class: "alert-line",
+      stroke: markColour("alert") }));
     mark.appendChild(svg("rect", { x: ax - 4, y: top - 4, width: 8, height: 8, class: "alert-mark",
-      transform: `rotate(45 ${ax} ${top})` }));
+      transform: `rotate(45 ${ax} ${top})`, fill: markColour("alert") }));
     mark.appendChild(svg("title", {},
       `drift alert at version ${alert.version}: ${alert.reason}`));
     marks.appendChild(mark);
@@ -157,7 +184,8 @@ function drawChart(rows, alerts, labels, events = [], snapshots = []) {
     const mark = svg("g", { class: `group-event ${event.kind}`, "data-version": event.version,
       "data-kind": event.kind });
     mark.appendChild(svg("line", { x1: ex, x2: ex, y1: top, y2: y(0), class: "event-line" }));
-    mark.appendChild(svg("circle", { cx: ex, cy: top + 2, r: 4, class: "event-mark" }));
+    mark.appendChild(svg("circle", { cx: ex, cy: top + 2, r: 4, class: "event-mark",
+      fill: markColour(event.kind) }));
     mark.appendChild(svg("title", {}, `${event.kind} of group(s) ${event.groups.join(", ")} at ` +
       `version ${event.version}${event.undone ? " (undone by a rollback)" : ""}: ${event.reason}`));
     changes.appendChild(mark);
@@ -166,22 +194,59 @@ function drawChart(rows, alerts, labels, events = [], snapshots = []) {
     if (!inside(snapshot.created)) continue;
     const sx = x(Math.min(Math.max(snapshot.created, t0), t1));
     const mark = svg("g", { class: `snapshot-mark ${snapshot.kind}`, "data-kind": snapshot.kind });
-    mark.appendChild(svg("line", { x1: sx, x2: sx, y1: y(0) - 6, y2: y(0) + 2, class: "snap-tick" }));
+    mark.appendChild(svg("line", { x1: sx, x2: sx, y1: y(0) - 6, y2: y(0) + 2, class: "snap-tick",
+      stroke: markColour(snapshot.kind === "pre-rollback" ? "pre-rollback" : "snapshot") }));
     mark.appendChild(svg("title", {}, `${snapshot.kind} snapshot ${snapshot.id} of version ` +
       `${snapshot.version}: ${snapshot.reason}`));
     changes.appendChild(mark);
   }
   root.appendChild(changes);
 
-  // one line per group id, over the checkpoints where that group existed
+  // rollbacks: the history row a rollback wrote (its weights are the restored snapshot's), so
+  // the jump in the lines beside it says where it came from
+  const rollbacks = rows.filter((row) => row.kind === "rollback");
+  const back = svg("g", { class: "rollbacks" });
+  for (const row of rollbacks) {
+    const rx = x(row.time);
+    const words = `version ${row.version}: ${rollbackText(row)}`;
+    const leftwards = rx > left + 0.6 * (W - left - right);  // the label on the side with room
+    const tint = markColour("rollback");
+    const mark = svg("g", { class: "rollback-mark", "data-version": row.version,
+      "data-snapshot": row.snapshot_id, "data-replay": row.replay ? "on" : "off",
+      role: "img", "aria-label": words });
+    mark.appendChild(svg("line", { x1: rx, x2: rx, y1: top, y2: y(0), class: "rollback-line",
+      stroke: tint }));
+    mark.appendChild(svg("path", { d: `M${rx - 5},${top + 10} h10 l-5,8 z`, class: "rollback-flag",
+      fill: tint }));
+    mark.appendChild(svg("text", { x: leftwards ? rx - 7 : rx + 7, y: top + 18, class: "rollback-label",
+      "text-anchor": leftwards ? "end" : "start", fill: tint }, `rollback to ${row.snapshot_id}`));
+    mark.appendChild(svg("title", {}, words));
+    back.appendChild(mark);
+  }
+  root.appendChild(back);
+  // the chart is one image to assistive technology: its name carries the rollbacks' words
+  box.setAttribute("aria-label", "mixture weights over time" + (rollbacks.length
+    ? `; ${rollbacks.map((row) => `version ${row.version} ${rollbackText(row)}`).join("; ")}` : ""));
+
+  // one line per group id, over the versions where that group existed, in steps: a version's
+  // weights hold until the next version (so a rollback is a jump at its own time, as in the PNG)
   const ids = [];
   for (const row of rows) for (const id of rowIds(row)) if (!ids.includes(id)) ids.push(id);
   const lines = svg("g", { class: "lines" });
   for (const g of ids) {
     const points = [];
+    let held = null;  // the weight of the previous version, when the group was in it
     for (const row of rows) {
       const at = rowIds(row).indexOf(g);
-      if (at >= 0) points.push(`${x(row.time).toFixed(1)},${y(row.weights[at]).toFixed(1)}`);
+      if (at < 0) {  // gone (merged, retired, or undone by a rollback): held up to this version
+        if (held !== null) points.push(`${x(row.time).toFixed(1)},${y(held).toFixed(1)}`);
+        held = null;
+        continue;
+      }
+      const rx = x(row.time).toFixed(1);
+      if (held !== null) points.push(`${rx},${y(held).toFixed(1)}`);
+      points.push(`${rx},${y(row.weights[at]).toFixed(1)}`);
+      held = row.weights[at];
     }
     const path = svg("polyline", { points: points.join(" "), class: "series", "data-group": g,
       stroke: colour(g) });
@@ -516,7 +581,7 @@ async function refresh() {
   if (view.busy) { view.again = true; return; }
   view.busy = true;
   try {
-    await loadRole();
+    await Promise.all([loadRole(), loadPalette()]);
     if (view.keysRequired && !view.role) {
       notice("Type an API key (read or admin role) to see the models.");
       return;
@@ -553,6 +618,10 @@ async function refresh() {
 
     const labels = {};
     if (got.groups) for (const g of got.groups.groups) if (g.label) labels[g.group] = g.label;
+    // a group merged away still has its line: its label lives on in the survivor's record
+    if (got.groups) for (const g of got.groups.groups) {
+      for (const gone of g.merged_labels || []) if (gone.label && !(gone.group in labels)) labels[gone.group] = gone.label;
+    }
     const shown = got.model || model;
     $("version").textContent = `version ${shown.version}`;
     $("version").dataset.version = String(shown.version);
