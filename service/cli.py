@@ -963,20 +963,31 @@ def cmd_drift(args: argparse.Namespace) -> int:
 
 
 def format_drift_table(rows: Sequence[dict[str, Any]], max_rows: int = 30) -> str:
-    """A text table of drift-history rows (version, documents, weights)."""
+    """A text table of drift-history rows (version, documents, a column per group id).
+
+    Columns follow the rows' ``group_ids`` (positions for rows written before ids), so a group
+    born or merged away keeps its own column; a dash where the group did not exist.
+    """
     if not rows:
         return "(no checkpoints yet)"
-    k = len(rows[0]["weights"])
-    header = f"{'version':>7} {'documents':>9} " + " ".join(f"{'g' + str(i):>6}" for i in range(k))
-    lines = [header]
     step = max(1, math.ceil(len(rows) / max_rows))
     shown = list(rows[::step])
     if shown[-1] is not rows[-1]:
         shown.append(rows[-1])
-    for row in shown:
-        weights = " ".join(f"{w:6.3f}" for w in row["weights"])
-        lines.append(f"{row['version']:>7} {row['documents_learned']:>9} {weights}")
+    by_id = [_weights_by_id(row) for row in shown]
+    ids = sorted({group for weights in by_id for group in weights})
+    header = f"{'version':>7} {'documents':>9} " + " ".join(f"{'g' + str(i):>6}" for i in ids)
+    lines = [header]
+    for row, weights in zip(shown, by_id, strict=True):
+        cells = " ".join(f"{weights[i]:6.3f}" if i in weights else f"{'-':>6}" for i in ids)
+        lines.append(f"{row['version']:>7} {row['documents_learned']:>9} {cells}")
     return "\n".join(lines)
+
+
+def _weights_by_id(row: dict[str, Any]) -> dict[int, float]:
+    weights = row["weights"]
+    ids = row.get("group_ids") or range(len(weights))
+    return {int(group): float(weight) for group, weight in zip(ids, weights, strict=True)}
 
 
 def cmd_label(args: argparse.Namespace) -> int:

@@ -176,3 +176,23 @@ def test_errors_are_one_line_and_exit_non_zero(corpus, tmp_path, capsys, argv, m
     assert status != 0
     assert message in err and "Traceback" not in err
     assert not (tmp_path / "m").exists()
+
+
+def test_drift_table_columns_follow_group_ids() -> None:
+    # A birth between two rows: the newborn gets its own column and the earlier row a dash,
+    # instead of the second row's weights shifting under the first row's headings.
+    from service.cli import format_drift_table
+
+    rows = [
+        {"version": 1, "documents_learned": 10, "weights": [0.6, 0.4], "group_ids": [0, 1]},
+        {"version": 2, "documents_learned": 20, "weights": [0.5, 0.2, 0.3], "group_ids": [0, 3, 1]},
+    ]
+    lines = format_drift_table(rows).splitlines()
+    assert lines[0].split() == ["version", "documents", "g0", "g1", "g3"]
+    assert lines[1].split() == ["1", "10", "0.600", "0.400", "-"]
+    assert lines[2].split() == ["2", "20", "0.500", "0.300", "0.200"]
+    # Rows written before ids name groups by position.
+    assert (
+        format_drift_table([{"version": 1, "documents_learned": 5, "weights": [1.0]}]).split()[-1]
+        == "1.000"
+    )
