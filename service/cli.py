@@ -755,8 +755,13 @@ def cmd_models(args: argparse.Namespace) -> int:
             body["max_groups"] = args.max_groups
         if args.options:
             body["options"] = json.loads(args.options)
+        if args.seeds:  # the file of `fit --seeds`; the API checks the count against n_groups
+            limit = args.groups if args.groups is not None else 10_000
+            body["seeds"] = read_seeds(args.seeds, limit)
         created = client.post("/models", json=body)
         print(f"created model {created['name']} with {created['n_groups']} groups")
+        for group, seed in enumerate(body.get("seeds", [])):
+            print(f"  group {group} [{seed['label']}]: {len(seed['examples'])} examples queued")
     elif args.action == "delete":
         client.delete(f"/models/{args.name}")
         print(f"deleted model {args.name}")
@@ -1469,6 +1474,12 @@ def build_parser() -> argparse.ArgumentParser:
     mp.add_argument("--max-groups", type=int, help="ceiling on the number of groups")
     mp.add_argument("--config", help="further MixtureConfig fields as a JSON object")
     mp.add_argument("--options", help="model options (checkpointing, retention...) as JSON")
+    mp.add_argument(
+        "--seeds",
+        metavar="SEEDS.jsonl",
+        help='start groups 0..S-1 from examples: one {"label", "destination"?, "examples": '
+        "[text, ...]} a line, as for `fit --seeds`",
+    )
     api_options(mp, model=False)
     mp = msub.add_parser("delete", help="delete a model and everything it stored")
     mp.add_argument("name", help="model name")
