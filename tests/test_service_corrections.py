@@ -175,17 +175,30 @@ def test_the_text_of_a_flagged_message_is_found_by_its_id(
     api: TestClient, redis_client: redis.Redis, model_name: str
 ) -> None:
     create(api, model_name)
-    flagged = api.app.state.flagged  # what the routing meter keeps of answers with review
-    flagged.add(model_name, [{"id": "f-1", "text": "lost bag on deck", "truncated": False}])
-    flagged.add(model_name, [{"id": "f-2", "text": "x" * 200, "truncated": True}])
-    sent = api.post(
-        f"/models/{model_name}/corrections", json={"documents": [{"id": "f-1", "group": 0}]}
+    store = ModelStore(redis_client, model_name)
+    store.enqueue(ferry_texts(200, seed=9))
+    with WorkerThread(Worker(redis_client, model_name)):
+        wait_until(lambda: learned_through(api, model_name, 200), 60, what="warm-up learned")
+    # routed (not queued) with a review flag: the answer is all that knows the text; a long
+    # one (over the 200 characters GET .../flagged shows) is kept whole too
+    long_text = "quartz zebra " * 100 + "fog"
+    unknown = ["zebra quartz", long_text, "x" * 30_000]
+    answer = api.post(
+        f"/models/{model_name}/route",
+        json={"documents": [{"id": f"f-{i}", "text": t} for i, t in enumerate(unknown)]},
     )
-    assert sent.status_code == 202 and sent.json()["corrections"][0]["text_from"] == "flagged"
-    sid = sent.json()["corrections"][0]["stream_id"]
-    rows = redis_client.xrange(ModelStore(redis_client, model_name).keys.docs, min=sid, max=sid)
-    assert decode_entry(sid, rows[0][1]).text == "lost bag on deck"
-    # only an excerpt is held of a long one: the text must be sent
+    assert answer.status_code == 200
+    assert [r["review"] for r in answer.json()["results"]] == [True, True, True]
+    sent = api.post(
+        f"/models/{model_name}/corrections",
+        json={"documents": [{"id": "f-0", "group": 0}, {"id": "f-1", "group": 2}]},
+    )
+    assert sent.status_code == 202, sent.text
+    assert [c["text_from"] for c in sent.json()["corrections"]] == ["flagged", "flagged"]
+    sid = sent.json()["corrections"][1]["stream_id"]
+    rows = redis_client.xrange(store.keys.docs, min=sid, max=sid)
+    assert decode_entry(sid, rows[0][1]).text == long_text
+    # one over the whole-text bound is only an excerpt: the text must be sent
     cut = api.post(
         f"/models/{model_name}/corrections", json={"documents": [{"id": "f-2", "group": 0}]}
     )

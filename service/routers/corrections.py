@@ -13,7 +13,7 @@ system's.
 The text of a correction may be left out: it is looked up by the message id, first in the
 stream (the client-id key holds the stream id of the document queued under that id, within
 the model's idempotency window), then among the messages this API process flagged for review
-(``GET .../flagged``; only when that memory holds the whole text).
+(``GET .../flagged``; its memory keeps the whole text of those up to 20,000 characters).
 """
 
 from __future__ import annotations
@@ -68,16 +68,10 @@ def _check_count(n: int, where: str, settings: Settings) -> None:
         )
 
 
-def _flagged_texts(request: Request, model: str) -> dict[str, str]:
-    """Whole texts of the messages this process flagged for review, by id (newest wins)."""
+def _flagged_text(request: Request, model: str, document_id: str) -> str | None:
+    """The whole text of a message this process flagged for review (None when not kept)."""
     flagged = getattr(request.app.state, "flagged", None)
-    if flagged is None:
-        return {}
-    out: dict[str, str] = {}
-    for record in reversed(flagged.recent(model)):  # oldest first: the newest overwrites
-        if record.get("id") is not None and not record.get("truncated"):
-            out[str(record["id"])] = str(record.get("text") or "")
-    return out
+    return None if flagged is None else flagged.text_of(model, document_id)
 
 
 def learned_weight(loaded: LoadedModel, stream_id: str | None) -> tuple[bool, float | None]:
@@ -136,7 +130,6 @@ def queue_corrections(
         if doc.text is not None:
             _check_text(doc.text, f"documents.{i}.text", settings)
     found = runtime.call(lambda: loaded.store.texts_of([doc.id for doc in documents]))
-    flagged: dict[str, str] | None = None
     entries: list[list[str | bytes]] = []
     answers: list[dict[str, Any]] = []
     now = time.time()
@@ -145,10 +138,8 @@ def queue_corrections(
         if text is None and stream_text is not None:
             text, source = stream_text, "stream"
         if text is None:
-            if flagged is None:
-                flagged = _flagged_texts(request, model)
-            if doc.id in flagged:
-                text, source = flagged[doc.id], "flagged"
+            text = _flagged_text(request, model, doc.id)
+            source = "flagged"
         if text is None or not text.strip():
             where = "gone from the stream (retention)" if stream_id else "not in the stream"
             raise InvalidFieldError(
