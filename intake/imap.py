@@ -26,9 +26,17 @@ with exponential backoff (with jitter) and resumes from the mark, so nothing is 
 Every move is logged (``message_id``, ``uid``, ``from_folder``, ``to_folder``) so an operator
 can undo it; the password never reaches a log line.
 
-Corrections from messages an operator moves by hand between destination folders: the seam is
-:meth:`ImapIntake.destination_folders` (the folder per group this intake files into); reading
-those folders for hand moves waits for the corrections API of the operators' issue.
+Corrections from the operators' hands (``filing = "move"``): before moving a message the intake
+marks it with the keyword of where it sends it (``<keyword_prefix>review`` or
+``<keyword_prefix>group-<id>``); IMAP keeps a message's flags through MOVE and COPY. After each
+round :meth:`ImapIntake.collect_hand_moves` looks in every group's destination folder
+(:meth:`ImapIntake.destination_folders`) for messages whose routing keyword names another place
+(the review folder, or another group's folder): an operator moved them there by hand. Each
+becomes a correction to that folder's group (a labelled entry on the stream, as ``POST
+.../corrections`` queues it; its id is the Message-ID, the id it was queued for learning with),
+and its keyword is then set to the folder's own, so it is taken once; a crash in between takes
+it again, which the model ignores (a correction is idempotent per id and group). Messages
+without a routing keyword (filed before this, or dropped in from elsewhere) are left alone.
 """
 
 from __future__ import annotations
@@ -55,9 +63,11 @@ from intake.model_view import ModelView
 from mixture.errors import MixrouteError
 from mixture.stats import MixtureState
 from state.errors import ModelNotFoundError, StateError
+from state.group_drift import group_ids_of
 from state.intake_marks import IntakeMarks
 from state.routed_log import RoutedLog, RoutedRecord
 from state.store import ModelStore
+from state.stream import correction_fields
 
 log = logging.getLogger(__name__)
 
@@ -154,6 +164,7 @@ class ImapIntake:
         self._folders: set[str] = set()
         self._queued_waiting: set[tuple[int, int]] = set()
         self._idle_tag = 0
+        self.corrections = 0  # hand moves turned into corrections (this process)
 
     # -- running ------------------------------------------------------------------------------
 
@@ -180,6 +191,8 @@ class ImapIntake:
                     if self.conn is None:
                         self.connect()
                     handled = self.run_round()
+                    if handled == 0 and not self.stopping:
+                        self.collect_hand_moves()
                     delay = self.config.backoff_initial
                     if handled == 0 and not self.stopping:
                         self.wait_for_mail()
@@ -212,6 +225,7 @@ class ImapIntake:
                 handled = self.run_round()
                 total += handled
                 if handled == 0:
+                    self.collect_hand_moves()
                     break
         finally:
             self.close()
@@ -381,10 +395,10 @@ class ImapIntake:
     # -- filing -------------------------------------------------------------------------------
 
     def destination_folders(self) -> dict[int, str]:
-        """The folder per group this intake files into (the seam for hand-move corrections)."""
+        """The folder per group id this intake files into (where hand moves are looked for)."""
         out = {}
         state = self.view.state
-        for group in range(state.n_groups if state is not None else 0):
+        for group in group_ids_of(state) if state is not None else []:
             entry = self.view.labels.get(group)
             decision = Decision(
                 group, 1.0, False, (), getattr(entry, "label", None),
@@ -392,6 +406,70 @@ class ImapIntake:
             )  # fmt: skip
             out[group] = folder_name(decision, prefix=self.config.folder_prefix, review_folder=None)
         return out
+
+    def _routing_keyword(self, group: int | None) -> str:
+        """The keyword a moved message carries: where the intake sent it (None: review)."""
+        name = "review" if group is None else f"group-{group}"
+        return keyword(self.config.keyword_prefix + "routed-", name)
+
+    def collect_hand_moves(self) -> int:
+        """Queue a correction for every message an operator moved by hand into a group's
+        destination folder (see the module docstring); returns how many were queued."""
+        if self.config.filing != "move" or self._current_state() is None:
+            return 0
+        conn = self._need_conn()
+        prefix = (self.config.keyword_prefix + "routed-").lower()
+        queued = 0
+        by_folder: dict[str, list[int]] = {}
+        for group, folder in self.destination_folders().items():
+            by_folder.setdefault(folder, []).append(group)
+        # a folder several groups share says nothing about which one the operator meant
+        targets = [
+            (groups[0], folder)
+            for folder, groups in sorted(by_folder.items())
+            if len(groups) == 1 and folder not in (self.config.folder, self.config.review_folder)
+        ]
+        try:
+            for group, folder in targets:
+                if self.stopping:
+                    break
+                own = self._routing_keyword(group)
+                quoted = quote_mailbox(folder)
+                typ, _ = conn.select(quoted)
+                if typ != "OK":
+                    continue  # nothing was ever filed there
+                _, data = self._ok(conn.uid("SEARCH", "UNKEYWORD", own))
+                for uid in (int(x) for x in (data[0] or b"").split()):
+                    raw, flags = self._fetch(uid)
+                    foreign = [f for f in flags if f.lower().startswith(prefix)]
+                    if raw is None or not foreign:
+                        continue  # not one the intake moved: left alone
+                    try:
+                        mail = parse_message(raw, strip_quotes=self.config.strip_quotes)
+                    except MessageError:
+                        continue
+                    fields = correction_fields(mail.id, group, mail.text, "correction", time.time())
+                    stream_id = self.store.enqueue_labelled([fields])[0]
+                    removed = "(" + " ".join(foreign) + ")"
+                    self._ok(conn.uid("STORE", str(uid), "-FLAGS.SILENT", removed))
+                    self._ok(conn.uid("STORE", str(uid), "+FLAGS.SILENT", f"({own})"))
+                    queued += 1
+                    log.info(
+                        "intake: message %s moved by hand to %s: correction to group %d",
+                        mail.id,
+                        folder,
+                        group,
+                        extra={
+                            "message_id": mail.id,
+                            "to_folder": folder,
+                            "group": group,
+                            "stream_id": stream_id,
+                        },
+                    )
+        finally:
+            self._ok(conn.select(quote_mailbox(self.config.folder)))
+        self.corrections += queued
+        return queued
 
     def _file(self, uid: int, mail: MailDocument, decision: Decision, flags: list[str]) -> str:
         config = self.config
@@ -410,6 +488,11 @@ class ImapIntake:
             return flag
         self._ensure_folder(target)
         quoted = quote_mailbox(target)
+        # where it was sent travels with it (flags survive MOVE and COPY): a later move by hand
+        # to another group's folder is then told apart from the intake's own filing
+        reviewed = decision.review and config.review_folder is not None
+        routed = self._routing_keyword(None if reviewed else decision.group)
+        self._ok(conn.uid("STORE", str(uid), "+FLAGS.SILENT", f"({routed})"))
         if "MOVE" in self.capabilities:
             self._ok(conn.uid("MOVE", str(uid), quoted))
         else:  # COPY + delete; look first, so that a crash between the two copies once

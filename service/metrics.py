@@ -13,7 +13,9 @@ Two kinds of figures:
 
 The review-flag counting also keeps the most recent flagged documents of each model in memory
 (:class:`FlaggedDocuments`, ``flagged_documents_kept`` per model, text cut to 200 characters)
-for the dashboard; they are lost when the process restarts.
+for the dashboard, and beside them the whole text of each one that has an id and at most
+:data:`WHOLE_TEXT_CHARACTERS` characters (never served: a correction that names a flagged
+message by id finds its text there); they are lost when the process restarts.
 """
 
 from __future__ import annotations
@@ -42,6 +44,9 @@ log = logging.getLogger(__name__)
 _MODEL_PATH = re.compile(r"^/models/([A-Za-z0-9][A-Za-z0-9_.-]{0,63})$")
 _ROUTE_PATH = re.compile(r"^/models/([A-Za-z0-9][A-Za-z0-9_.-]{0,63})/(route|documents)$")
 SNIPPET_CHARACTERS = 200
+# Longest flagged text kept whole for corrections by id (a size choice: 50 kept messages a
+# model at most 1 MB each; common practice, no source)
+WHOLE_TEXT_CHARACTERS = 20_000
 # Routing latency buckets, seconds: single documents take well under a millisecond of model
 # time, batches of thousands take tens of milliseconds (common practice, no source).
 LATENCY_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0)
@@ -73,14 +78,33 @@ class FlaggedDocuments:
     def __init__(self, keep: int) -> None:
         self.keep = keep
         self._by_model: dict[str, collections.deque[dict[str, Any]]] = {}
+        # per model: (id, whole text) of the kept records that have both, oldest first
+        self._texts: dict[str, collections.deque[tuple[str, str]]] = {}
         self._lock = threading.Lock()
 
-    def add(self, model: str, records: list[dict[str, Any]]) -> None:
+    def add(
+        self, model: str, records: list[dict[str, Any]], texts: list[str] | None = None
+    ) -> None:
+        """Keep ``records`` (newest last); ``texts``: each record's whole text, kept apart
+        (for :meth:`text_of`) when the record has an id and the text is not too long."""
         if self.keep <= 0 or not records:
             return
         with self._lock:
             queue = self._by_model.setdefault(model, collections.deque(maxlen=self.keep))
             queue.extend(records)
+            if texts is not None:
+                whole = self._texts.setdefault(model, collections.deque(maxlen=self.keep))
+                for record, text in zip(records, texts, strict=True):
+                    if record.get("id") is not None and len(text) <= WHOLE_TEXT_CHARACTERS:
+                        whole.append((str(record["id"]), text))
+
+    def text_of(self, model: str, document_id: str) -> str | None:
+        """The whole text of the newest flagged message of that id, if it is kept."""
+        with self._lock:
+            for kept_id, text in reversed(self._texts.get(model, ())):
+                if kept_id == document_id:
+                    return text
+        return None
 
     def recent(self, model: str, count: int | None = None) -> list[dict[str, Any]]:
         """Newest first."""
@@ -92,6 +116,7 @@ class FlaggedDocuments:
     def forget(self, model: str) -> None:
         with self._lock:
             self._by_model.pop(model, None)
+            self._texts.pop(model, None)
 
 
 class ServiceMetrics:
@@ -203,6 +228,7 @@ class RoutingMeter:
             return
         texts = scope.get("mixroute.texts") or []
         records = []
+        whole: list[str] = []
         now = time.time()
         for i, result in enumerate(results):
             if not result.get("review"):
@@ -226,8 +252,9 @@ class RoutingMeter:
                     "truncated": len(text) > SNIPPET_CHARACTERS,
                 }
             )
+            whole.append(text)
         if model != "_unknown":
-            self.flagged.add(model, records)
+            self.flagged.add(model, records, whole)
 
 
 class ModelCollector(Collector):

@@ -18,11 +18,17 @@ Keys of model ``M`` (``mixroute:{M}:`` omitted):
 key                type        what it holds
 =================  ==========  ===========================================================
 config             string      JSON: MixtureConfig, ModelOptions, creation time, generation
-docs               stream      documents: id, text, metadata (JSON), received (unix s)
+docs               stream      documents: id, text, metadata (JSON), received (unix s);
+                               labelled entries: kind, target, group, source, text, received
+                               (``state.stream``)
 entries_added      string      entries our enqueue ever added to ``docs`` (the count Redis 7
                                reports as ``entries-added``, kept for Redis 6.2)
+labelled_queue     zset        stream ids of the labelled entries (corrections, examples,
+                               withdrawals) still in ``docs``, scored by their millisecond
+                               part: how many are queued past the watermark, without a scan
 dead               stream      entries that could not be decoded, with the reason
-id:<client id>     string      marks a client id as seen (TTL = idempotency window)
+id:<client id>     string      marks a client id as seen (TTL = idempotency window); the
+                               value is its document's stream id (``"1"`` in older keys)
 state              string      current state bytes (mixture.serialize)
 state_meta         string      JSON summary of the current state (version, weights, checksum,
                                ``entries_read`` when the state's line counts it)
@@ -121,6 +127,7 @@ class ModelKeys:
         "events",
         "heartbeat",
         "history",
+        "labelled_queue",
         "labels",
         "labels_version",
         "lineage",
@@ -160,6 +167,7 @@ class ModelKeys:
         self.notify = b + "notify"
         self.labels = b + "labels"
         self.labels_version = b + "labels_version"
+        self.labelled_queue = b + "labelled_queue"
         self.routed = b + "routed"
         self.events = b + "events"  # group events (births, merges, retirements), capped list
         self.event_counts = b + "event_counts"  # hash kind -> events ever written (metrics)
@@ -185,6 +193,7 @@ class ModelKeys:
             self.replay,
             self.labels,
             self.labels_version,
+            self.labelled_queue,
             self.routed,
             self.events,
             self.event_counts,
