@@ -12,8 +12,12 @@ Two kinds of figures:
   heartbeat).
 
 The review-flag counting also keeps the most recent flagged documents of each model in memory
-(:class:`FlaggedDocuments`, ``flagged_documents_kept`` per model, text cut to 200 characters)
-for the dashboard; they are lost when the process restarts.
+(:class:`FlaggedDocuments`, ``flagged_documents_kept`` per model, listed with the text cut to
+200 characters) for the dashboard; they are lost when the process restarts. Each keeps an id
+(the client's, else the stream id of a document queued with ``learn``, else a generated
+``flagged-...`` one) and its text up to ``flagged_text_chars``, so that a correction naming
+only the id (the dashboard's Confirm and Reassign) can be given its text:
+:meth:`FlaggedDocuments.text_for`.
 """
 
 from __future__ import annotations
@@ -24,6 +28,7 @@ import logging
 import re
 import threading
 import time
+import uuid
 from collections.abc import Iterator
 from typing import Any
 
@@ -68,14 +73,19 @@ class FlaggedDocuments:
     ----------
     keep : int
         Documents kept per model (0 keeps none).
+    text_chars : int
+        Characters of each document's text kept for :meth:`text_for` (the listing shows the
+        first 200 only).
     """
 
-    def __init__(self, keep: int) -> None:
+    def __init__(self, keep: int, text_chars: int = 20_000) -> None:
         self.keep = keep
+        self.text_chars = text_chars
         self._by_model: dict[str, collections.deque[dict[str, Any]]] = {}
         self._lock = threading.Lock()
 
     def add(self, model: str, records: list[dict[str, Any]]) -> None:
+        """Keep ``records`` (dicts as listed, plus ``full_text``; the newest ``keep`` stay)."""
         if self.keep <= 0 or not records:
             return
         with self._lock:
@@ -83,11 +93,23 @@ class FlaggedDocuments:
             queue.extend(records)
 
     def recent(self, model: str, count: int | None = None) -> list[dict[str, Any]]:
-        """Newest first."""
+        """Newest first, as listed (text cut to 200 characters, no full text)."""
         with self._lock:
             items = list(self._by_model.get(model, ()))
         items.reverse()
-        return items if count is None else items[:count]
+        items = items if count is None else items[:count]
+        return [{k: v for k, v in item.items() if k != "full_text"} for item in items]
+
+    def text_for(self, model: str, doc_id: str) -> str | None:
+        """The text of the newest flagged document of ``model`` with id ``doc_id`` (None when
+        none is held): what a correction that leaves the text out is learned with. The text
+        is the whole message up to ``text_chars`` characters."""
+        with self._lock:
+            items = list(self._by_model.get(model, ()))
+        for item in reversed(items):
+            if item.get("id") == doc_id:
+                return str(item.get("full_text") or item.get("text") or "")
+        return None
 
     def forget(self, model: str) -> None:
         with self._lock:
@@ -213,10 +235,11 @@ class RoutingMeter:
             posterior = result.get("posterior") or []
             best = max((p["probability"] for p in posterior), default=None)
             text = texts[i] if i < len(texts) else ""
+            doc_id = result.get("id") or result.get("stream_id") or _generated_id()
             records.append(
                 {
                     "time": now,
-                    "id": result.get("id"),
+                    "id": doc_id,
                     "group": result.get("group"),
                     "label": result.get("label"),
                     "reasons": list(result.get("review_reasons", ())),
@@ -224,10 +247,16 @@ class RoutingMeter:
                     "version": answer.get("version"),
                     "text": text[:SNIPPET_CHARACTERS],
                     "truncated": len(text) > SNIPPET_CHARACTERS,
+                    "full_text": text[: self.flagged.text_chars],
                 }
             )
         if model != "_unknown":
             self.flagged.add(model, records)
+
+
+def _generated_id() -> str:
+    """An id for a flagged document that came without one and was not queued."""
+    return f"flagged-{uuid.uuid4().hex[:16]}"
 
 
 class ModelCollector(Collector):
@@ -446,7 +475,7 @@ def install(app: FastAPI, settings: Settings) -> ServiceMetrics:
     registry = CollectorRegistry(auto_describe=True)
     service_metrics = ServiceMetrics(registry)
     registry.register(ModelCollector(app))
-    flagged = FlaggedDocuments(settings.flagged_documents_kept)
+    flagged = FlaggedDocuments(settings.flagged_documents_kept, settings.flagged_text_chars)
     app.state.metrics_registry = registry
     app.state.metrics = service_metrics
     app.state.flagged = flagged
