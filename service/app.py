@@ -233,6 +233,7 @@ def install_error_handlers(app: FastAPI) -> None:
 def default_routers() -> list[APIRouter]:
     """One router per resource (also their order in the OpenAPI document)."""
     from service.routers import (
+        corrections,
         documents,
         drift,
         events,
@@ -251,6 +252,7 @@ def default_routers() -> list[APIRouter]:
         health.router,
         models.router,
         groups.router,
+        corrections.router,
         snapshots.router,
         drift.router,
         _routed_router(),

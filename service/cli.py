@@ -17,6 +17,8 @@ address file a running ``serve`` wrote in its data folder, else MIXROUTE_HOST/PO
     mixroute route DOCS.jsonl [--model NAME]    # through the API
     mixroute describe [--model NAME]
     mixroute label GROUP [--label TEXT] [--destination TEXT] [--refresh] [--replace] [--history]
+    mixroute correct --id ID --group G [--text TEXT]   # or --file FILE.jsonl, --withdraw ID
+    mixroute examples GROUP TEXT... [--file FILE.jsonl]
     mixroute flagged
     mixroute snapshot create|list|delete [ID]
     mixroute rollback SNAPSHOT [--replay] [--skip FIRST..LAST] [--skip-received FROM..TO]
@@ -933,6 +935,154 @@ def _print_label_history(answer: dict[str, Any], as_json: bool) -> int:
     return EXIT_OK
 
 
+CORRECTIONS_PER_REQUEST = 500
+
+
+def read_corrections(path: str) -> list[dict[str, Any]]:
+    """Corrections from a JSON-lines file: ``{"id", "group", "text"?}`` a line (blank lines
+    skipped). A bad line is a :class:`CommandError` naming it: nothing is sent."""
+    out: list[dict[str, Any]] = []
+    try:
+        lines = Path(path).read_text(encoding="utf-8").splitlines()
+    except (OSError, UnicodeDecodeError) as exc:
+        raise CommandError(f"cannot read {path}: {exc}", EXIT_BAD_INPUT) from None
+    for number, line in enumerate(lines, 1):
+        if not line.strip():
+            continue
+        try:
+            item = json.loads(line)
+        except ValueError as exc:
+            raise CommandError(f"{path}:{number}: not JSON ({exc})", EXIT_BAD_INPUT) from None
+        if not isinstance(item, dict):
+            raise CommandError(f"{path}:{number}: expected an object", EXIT_BAD_INPUT)
+        unknown = sorted(set(item) - {"id", "group", "text"})
+        if unknown:
+            raise CommandError(
+                f"{path}:{number}: unknown fields {unknown} (give id, group, text)",
+                EXIT_BAD_INPUT,
+            )
+        if not isinstance(item.get("id"), str) or not item["id"]:
+            raise CommandError(f"{path}:{number}: 'id' must be a non-empty string", EXIT_BAD_INPUT)
+        group = item.get("group")
+        if isinstance(group, bool) or not isinstance(group, int):
+            raise CommandError(f"{path}:{number}: 'group' must be an integer", EXIT_BAD_INPUT)
+        if "text" in item and not isinstance(item["text"], str):
+            raise CommandError(f"{path}:{number}: 'text' must be a string", EXIT_BAD_INPUT)
+        out.append({k: item[k] for k in ("id", "group", "text") if k in item})
+    return out
+
+
+def format_weight(value: float | None) -> str:
+    """An unlabelled weight remaining, as a share of the running average."""
+    return "unknown" if value is None else f"{value:.3g}"
+
+
+def cmd_correct(args: argparse.Namespace) -> int:
+    client = ApiClient(args.api or default_api_url())
+    name = _model_name(args)
+    chosen = [bool(args.id is not None), bool(args.file), bool(args.withdraw), bool(args.list)]
+    if sum(chosen) != 1:
+        raise CommandError(
+            "give one of: --id ID --group G [--text TEXT], --file FILE.jsonl, --withdraw ID, "
+            "--list",
+            EXIT_BAD_INPUT,
+        )
+    if args.list:
+        answer = client.get(f"/models/{name}/corrections")
+        if args.json:
+            print(json.dumps(answer, indent=2))
+            return EXIT_OK
+        for doc in answer["documents"]:
+            print(f"{doc['id']}\tgroup {doc['group']}\t{doc['source']}\t{doc['excerpt'][:80]}")
+        groups = ", ".join(f"group {g}: {n}" for g, n in sorted(answer["groups"].items()))
+        print(
+            f"{len(answer['documents'])} labelled documents ({groups or 'none'}); "
+            f"{answer['queued']} queued, not learned yet"
+        )
+        return EXIT_OK
+    if args.withdraw:
+        answer = client.delete(f"/models/{name}/corrections/{args.withdraw}")
+        held = "" if answer["held"] else " (the model does not hold it now: nothing to remove)"
+        print(f"withdrawal of {args.withdraw} queued as {answer['stream_id']}{held}")
+        return EXIT_OK
+    if args.file:
+        if args.group is not None or args.text is not None:
+            raise CommandError("--group and --text go with --id, not --file", EXIT_BAD_INPUT)
+        documents = read_corrections(args.file)
+        if not documents:
+            raise CommandError(f"{args.file} holds no corrections", EXIT_BAD_INPUT)
+    else:
+        if args.group is None:
+            raise CommandError(
+                "--id needs --group (the group the message belongs to)", EXIT_BAD_INPUT
+            )
+        documents = [{"id": args.id, "group": args.group}]
+        if args.text is not None:
+            documents[0]["text"] = args.text
+    answers: list[dict[str, Any]] = []
+    for start in range(0, len(documents), CORRECTIONS_PER_REQUEST):
+        chunk = documents[start : start + CORRECTIONS_PER_REQUEST]
+        answers += client.post(f"/models/{name}/corrections", json={"documents": chunk})[
+            "corrections"
+        ]
+    if args.json:
+        print(json.dumps(answers, indent=2))
+        return EXIT_OK
+    for answer in answers:
+        already = ""
+        if answer.get("learned_as_document"):
+            already = (
+                "; already learned unlabelled, weight remaining "
+                f"{format_weight(answer.get('unlabelled_weight_remaining'))}"
+            )
+        print(
+            f"{answer['id']} -> group {answer['group']} queued as {answer['stream_id']} "
+            f"(text from {answer['text_from']}){already}"
+        )
+    return EXIT_OK
+
+
+def cmd_examples(args: argparse.Namespace) -> int:
+    texts = list(args.texts or [])
+    if args.file:
+        for item in _read_example_lines(args.file):
+            texts.append(item)
+    if not texts:
+        raise CommandError("give example texts, or --file FILE.jsonl", EXIT_BAD_INPUT)
+    client = ApiClient(args.api or default_api_url())
+    name = _model_name(args)
+    answers: list[dict[str, Any]] = []
+    for start in range(0, len(texts), CORRECTIONS_PER_REQUEST):
+        chunk = texts[start : start + CORRECTIONS_PER_REQUEST]
+        answers += client.post(
+            f"/models/{name}/groups/{args.group}/examples", json={"examples": chunk}
+        )["examples"]
+    for answer in answers:
+        print(f"{answer['id']} queued as {answer['stream_id']}")
+    print(f"{len(answers)} examples of group {args.group} queued")
+    return EXIT_OK
+
+
+def _read_example_lines(path: str) -> list[str]:
+    """Example texts from JSON lines (``{"text": ...}`` a line)."""
+    out: list[str] = []
+    try:
+        lines = Path(path).read_text(encoding="utf-8").splitlines()
+    except (OSError, UnicodeDecodeError) as exc:
+        raise CommandError(f"cannot read {path}: {exc}", EXIT_BAD_INPUT) from None
+    for number, line in enumerate(lines, 1):
+        if not line.strip():
+            continue
+        try:
+            item = json.loads(line)
+        except ValueError as exc:
+            raise CommandError(f"{path}:{number}: not JSON ({exc})", EXIT_BAD_INPUT) from None
+        if not isinstance(item, dict) or not isinstance(item.get("text"), str):
+            raise CommandError(f'{path}:{number}: expected {{"text": ...}}', EXIT_BAD_INPUT)
+        out.append(item["text"])
+    return out
+
+
 def cmd_flagged(args: argparse.Namespace) -> int:
     from mixture.routing import REVIEW_REASONS
 
@@ -1328,6 +1478,38 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true", help="print JSON instead of text")
     api_options(p)
     p.set_defaults(func=cmd_label)
+
+    p = sub.add_parser(
+        "correct", help="label a message: the model learns it as a document of that group"
+    )
+    p.add_argument("--id", help="the message's id (as queued or routed)")
+    p.add_argument("--group", type=int, help="with --id: the group id it belongs to")
+    p.add_argument(
+        "--text",
+        help="with --id: the message text (left out: the API looks it up by id in the stream "
+        "or among the flagged messages)",
+    )
+    p.add_argument(
+        "--file",
+        metavar="FILE.jsonl",
+        help='many corrections: JSON lines, {"id", "group", "text"?} a line',
+    )
+    p.add_argument("--withdraw", metavar="ID", help="withdraw the correction or example of this id")
+    p.add_argument(
+        "--list", action="store_true", help="list the labelled documents the model holds"
+    )
+    p.add_argument("--json", action="store_true", help="print JSON instead of text")
+    api_options(p)
+    p.set_defaults(func=cmd_correct)
+
+    p = sub.add_parser("examples", help="add example messages to a group")
+    p.add_argument("group", type=int, help="group id (see `describe`)")
+    p.add_argument("texts", nargs="*", metavar="TEXT", help="example message texts")
+    p.add_argument(
+        "--file", metavar="FILE.jsonl", help='more examples: JSON lines, {"text": ...} a line'
+    )
+    api_options(p)
+    p.set_defaults(func=cmd_examples)
 
     p = sub.add_parser("flagged", help="recent messages routed with a review reason")
     p.add_argument(

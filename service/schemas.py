@@ -255,6 +255,19 @@ ConfigIn = schema_of_dataclass(MixtureConfig, "ConfigIn")
 OptionsIn = schema_of_dataclass(ModelOptions, "OptionsIn")
 
 
+class SeedIn(StrictIn):
+    """A group the model starts from: seed i is group id i."""
+
+    label: str | None = Field(default=None, min_length=1, max_length=200)
+    destination: str | None = Field(default=None, min_length=1, max_length=200)
+    examples: list[str] = Field(
+        default_factory=list,
+        max_length=10_000,
+        description="Example messages of this group, learned as labelled documents (source "
+        '"example") before any other document.',
+    )
+
+
 class ModelIn(StrictIn):
     """A model to create."""
 
@@ -273,6 +286,13 @@ class ModelIn(StrictIn):
         description="Ceiling on the number of groups (config.lifecycle.max_groups). With "
         "config.n_groups left out the model starts with 2 groups, the lifecycle on, and "
         "grows by births up to this (default 32).",
+    )
+    seeds: list[SeedIn] = Field(
+        default_factory=list,
+        max_length=1000,
+        description="Groups to start from, each with a label, destination and example "
+        "messages: seed i is group id i. Without config.n_groups the model starts with one "
+        "more group than seeds (at least 2), for the messages no seed describes.",
     )
 
 
@@ -397,6 +417,103 @@ class LabelHistory(BaseModel):
     model: str
     group: int
     history: list[LabelChange] = Field(description="Oldest first (the newest 50 are kept).")
+
+
+# -- corrections and examples (labelled documents) -------------------------------------------
+
+
+class CorrectionIn(StrictIn):
+    """One message an operator labels: ``id`` learned as a document of ``group``."""
+
+    id: str = Field(
+        min_length=1,
+        max_length=200,
+        description="The message's id (the id it was queued or routed with).",
+    )
+    group: int = Field(description="Stable id of the group it belongs to.")
+    text: str | None = Field(
+        default=None,
+        description="The message text; left out, it is looked up by id (the stream entry "
+        "of that id, or a message this API process flagged for review).",
+    )
+
+
+class CorrectionsIn(StrictIn):
+    """Corrections to queue (confirming a routing is a correction to the same group)."""
+
+    documents: list[CorrectionIn] = Field(min_length=1)
+
+
+class CorrectionOut(BaseModel):
+    id: str
+    group: int
+    stream_id: str = Field(description="Stream id of the queued correction entry.")
+    text_from: Literal["request", "stream", "flagged"] = Field(
+        description="Where the text came from: the request, the message's stream entry, or "
+        "this process's memory of flagged messages."
+    )
+    learned_as_document: bool = Field(
+        default=False,
+        description="The message was already learned as an unlabelled document.",
+    )
+    unlabelled_weight_remaining: float | None = Field(
+        default=None,
+        description="When it was learned as an unlabelled document: the share of the model's "
+        "running average its unlabelled copy still holds (it fades as stepwise EM forgets; "
+        "null when unknown).",
+    )
+
+
+class CorrectionsOut(BaseModel):
+    model: str
+    queued: int = Field(description="Correction entries added to the stream.")
+    corrections: list[CorrectionOut]
+
+
+class WithdrawOut(BaseModel):
+    model: str
+    id: str
+    stream_id: str = Field(description="Stream id of the queued withdraw entry.")
+    held: bool = Field(
+        description="The loaded state holds a labelled document of that id (a withdraw of an "
+        "id it does not hold, or not yet, removes nothing)."
+    )
+
+
+class LabelledDocumentOut(BaseModel):
+    id: str
+    group: int
+    source: Literal["correction", "example"]
+    excerpt: str = Field(description="The first 200 characters of its text.")
+    tokens: int = Field(description="Known tokens it was learned with.")
+
+
+class CorrectionList(BaseModel):
+    model: str
+    version: int = Field(description="Version of the state listed.")
+    documents: list[LabelledDocumentOut]
+    groups: dict[str, int] = Field(description="Labelled documents per group id.")
+    sources: dict[str, int] = Field(description="Labelled documents per source.")
+    queued: int = Field(
+        description="Corrections, examples and withdrawals queued but not learned yet."
+    )
+    limit: int = Field(description="The most labelled documents the model holds.")
+
+
+class ExamplesIn(StrictIn):
+    examples: list[str] = Field(min_length=1, description="Example message texts.")
+
+
+class ExampleOut(BaseModel):
+    id: str = Field(description="Labelled-document id of the example (from its text).")
+    stream_id: str
+
+
+class ExamplesOut(BaseModel):
+    model: str
+    group: int
+    queued: int
+    examples: list[ExampleOut]
 
 
 class EventOut(BaseModel):

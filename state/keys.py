@@ -18,11 +18,17 @@ Keys of model ``M`` (``mixroute:{M}:`` omitted):
 key                type        what it holds
 =================  ==========  ===========================================================
 config             string      JSON: MixtureConfig, ModelOptions, creation time, generation
-docs               stream      documents: id, text, metadata (JSON), received (unix s)
+docs               stream      documents: id, text, metadata (JSON), received (unix s);
+                               labelled entries: kind, target, group, source, text, received
+                               (``state.stream``)
 entries_added      string      entries our enqueue ever added to ``docs`` (the count Redis 7
                                reports as ``entries-added``, kept for Redis 6.2)
+labelled_queue     zset        stream ids of the labelled entries (corrections, examples,
+                               withdrawals) still in ``docs``, scored by their millisecond
+                               part: how many are queued past the watermark, without a scan
 dead               stream      entries that could not be decoded, with the reason
-id:<client id>     string      marks a client id as seen (TTL = idempotency window)
+id:<client id>     string      marks a client id as seen (TTL = idempotency window); the
+                               value is its document's stream id (``"1"`` in older keys)
 state              string      current state bytes (mixture.serialize)
 state_meta         string      JSON summary of the current state (version, weights, checksum,
                                ``entries_read`` when the state's line counts it)
@@ -127,6 +133,7 @@ class ModelKeys:
         "history",
         "label_history",
         "label_words",
+        "labelled_queue",
         "labels",
         "labels_version",
         "lineage",
@@ -168,6 +175,7 @@ class ModelKeys:
         self.labels_version = b + "labels_version"
         self.label_words = b + "label_words"  # hash group id -> the words its label was given to
         self.label_history = b + "label_history"  # hash group id -> JSON list of label changes
+        self.labelled_queue = b + "labelled_queue"
         self.routed = b + "routed"
         self.events = b + "events"  # group events (births, merges, retirements), capped list
         self.event_counts = b + "event_counts"  # hash kind -> events ever written (metrics)
@@ -195,6 +203,7 @@ class ModelKeys:
             self.labels_version,
             self.label_words,
             self.label_history,
+            self.labelled_queue,
             self.routed,
             self.events,
             self.event_counts,

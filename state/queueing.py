@@ -4,8 +4,17 @@
   ``config``), counts the documents that are new (a client id seen within the idempotency
   window is not queued again), refuses the whole chunk when the unlearned backlog would pass
   ``options.stream_max_length`` (:class:`StreamFullError`: nothing is written), then for each
-  new document ``SET id:<client id> NX PX <ttl>`` and ``XADD`` (no MAXLEN: nothing is trimmed
-  here, ever) and counts it in ``entries_added``.
+  new document: if ``id:<client id>`` does not exist, ``XADD`` (no MAXLEN: nothing is trimmed
+  here, ever) and ``SET id:<client id> <stream id> PX <ttl>`` (inside the one script, so it is
+  SET NX's effect), and counts it in ``entries_added``. The id key holds the entry's stream
+  id, so a correction that names a queued document by its client id finds its text
+  (:meth:`DocumentQueue.texts_of`: GET, then XRANGE of that one id). Keys written before this
+  hold ``"1"``: their documents are not found by id (the caller then asks for the text).
+* **Labelled entries** (corrections, examples, withdrawals; ``state.stream``) are queued by
+  :meth:`DocumentQueue.enqueue_labelled`, one Lua call: the same model check and backlog cap,
+  XADD, ``entries_added``. They set no id key: a correction is idempotent per target in the
+  model itself (the same target and group twice is a no-op), and its target is the id of the
+  document it labels, not an id of its own.
 * **Backlog** = entries added - ``entries_read``. Entries added is Redis 7's
   ``XINFO STREAM`` ``entries-added``, or, on Redis 6.2 which has no such field, our own
   ``entries_added`` counter. ``entries_read`` is the number of entries at or below the
@@ -29,7 +38,7 @@ from mixture.errors import InputError
 from state.errors import ModelNotFoundError, StreamFullError
 from state.handle import ModelHandle, loads_or_none
 from state.records import EnqueueResult, dumps
-from state.stream import ZERO_ID
+from state.stream import LABELLED_QUEUE_LUA, ZERO_ID, parse_stream_id
 
 MAX_CLIENT_ID_LENGTH = 256
 ENQUEUE_CHUNK = 10_000  # documents per Lua call: bounds how long one call holds Redis
@@ -88,16 +97,67 @@ local out = {}
 local added = 0
 for i = 1, n do
   local a = 4 * i
-  if ARGV[a + 4] == '1' and not redis.call('SET', KEYS[4 + i], '1', 'NX', 'PX', ARGV[1]) then
+  local checked = ARGV[a + 4] == '1'
+  if checked and redis.call('EXISTS', KEYS[4 + i]) == 1 then
     out[i] = false
   else
-    out[i] = redis.call('XADD', KEYS[1], '*', 'id', ARGV[a + 1], 'text', ARGV[a + 2],
-                        'metadata', ARGV[a + 3], 'received', ARGV[3])
+    local sid = redis.call('XADD', KEYS[1], '*', 'id', ARGV[a + 1], 'text', ARGV[a + 2],
+                           'metadata', ARGV[a + 3], 'received', ARGV[3])
+    if checked then
+      -- the stream id, so that the text can be found by the client id (texts_of)
+      redis.call('SET', KEYS[4 + i], sid, 'PX', ARGV[1])
+    end
+    out[i] = sid
     added = added + 1
   end
 end
 if added > 0 then
   redis.call('INCRBY', KEYS[4], added)
+end
+return out
+"""
+)
+
+# KEYS: docs, config, state_meta, entries_added, labelled_queue. ARGV: cap ("" = none), then
+# per entry: the number of its fields and the fields (name, value, ...). Returns the new
+# stream ids.
+_ENQUEUE_LABELLED_LUA = (
+    _ENTRIES_ADDED_LUA
+    + LABELLED_QUEUE_LUA
+    + """
+if redis.call('EXISTS', KEYS[2]) == 0 then
+  return redis.error_reply('NOMODEL the model does not exist')
+end
+local entries = {}
+local i = 2
+while i <= #ARGV do
+  local n = tonumber(ARGV[i])
+  entries[#entries + 1] = {i + 1, i + n}
+  i = i + n + 1
+end
+if ARGV[1] ~= '' then
+  local backlog
+  local meta = redis.call('GET', KEYS[3])
+  local ok, d = false, nil
+  if meta ~= false then ok, d = pcall(cjson.decode, meta) end
+  if meta == false then
+    backlog = entries_added(KEYS[1], KEYS[4])
+  elseif ok and type(d) == 'table' and type(d['entries_read']) == 'number' then
+    backlog = entries_added(KEYS[1], KEYS[4]) - d['entries_read']
+  else
+    backlog = redis.call('XLEN', KEYS[1])
+  end
+  if backlog + #entries > tonumber(ARGV[1]) then
+    return redis.error_reply('STREAMFULL ' .. backlog)
+  end
+end
+local out = {}
+for j, span in ipairs(entries) do
+  out[j] = redis.call('XADD', KEYS[1], '*', unpack(ARGV, span[1], span[2]))
+  note_labelled(KEYS[5], KEYS[1], out[j])
+end
+if #entries > 0 then
+  redis.call('INCRBY', KEYS[4], #entries)
 end
 return out
 """
@@ -124,6 +184,7 @@ class DocumentQueue:
         self.handle = handle
         self._enqueue = handle.redis.register_script(_ENQUEUE_LUA)
         self._counts = handle.redis.register_script(_COUNTS_LUA)
+        self._enqueue_labelled = handle.redis.register_script(_ENQUEUE_LABELLED_LUA)
 
     def enqueue(
         self,
@@ -180,6 +241,99 @@ class DocumentQueue:
                 self._raise_refusal(exc, len(encoded))
             stream_ids += [None if r is None else r.decode() for r in reply]
         return EnqueueResult(stream_ids, sum(1 for r in stream_ids if r is None))
+
+    def enqueue_labelled(self, entries: Sequence[Sequence[str | bytes]]) -> list[str]:
+        """Append labelled entries (corrections, examples, withdrawals) in one Lua call.
+
+        Parameters
+        ----------
+        entries : sequence of field lists
+            Each entry's fields as ``state.stream.correction_fields`` or ``withdraw_fields``
+            give them.
+
+        Returns
+        -------
+        list of str
+            The new stream id of each entry, in order.
+
+        Raises
+        ------
+        StreamFullError
+            When the unlearned backlog would pass ``options.stream_max_length`` (nothing is
+            written: an operator's corrections wait for the worker like every input).
+        ModelNotFoundError
+            When the model was deleted.
+        """
+        if not entries:
+            return []
+        options = self.handle.options
+        cap = "" if options.stream_max_length is None else str(options.stream_max_length)
+        args: list[str | bytes] = [cap]
+        for fields in entries:
+            if len(fields) % 2:
+                raise InputError(f"entry fields {list(fields)[:4]!r} are not name/value pairs")
+            args += [str(len(fields)), *fields]
+        keys = self.handle.keys
+        try:
+            reply = self._enqueue_labelled(
+                keys=[
+                    keys.docs,
+                    keys.config,
+                    keys.state_meta,
+                    keys.entries_added,
+                    keys.labelled_queue,
+                ],
+                args=args,
+            )
+        except redis.ResponseError as exc:
+            self._raise_refusal(exc, len(entries))
+        return [r.decode() for r in reply]
+
+    def labelled_queued(self) -> int:
+        """Labelled entries (corrections, examples, withdrawals) after the watermark: queued
+        and not learned yet (two cheap reads of ``labelled_queue``, no scan of the stream)."""
+        keys = self.handle.keys
+        watermark = self.handle.redis.get(keys.watermark)
+        ms, seq = parse_stream_id(watermark.decode() if watermark else ZERO_ID)
+        pipe = self.handle.redis.pipeline(transaction=True)
+        pipe.zcount(keys.labelled_queue, f"({ms}", "+inf")
+        pipe.zrangebyscore(keys.labelled_queue, ms, ms)
+        later, same_ms = pipe.execute()
+        return int(later) + sum(1 for sid in same_ms if parse_stream_id(sid)[1] > seq)
+
+    def stream_ids_of(self, client_ids: Sequence[str]) -> list[str | None]:
+        """The stream id of the document queued under each client id (None when not known:
+        never queued, its idempotency window passed, or queued before ids kept stream ids)."""
+        if not client_ids:
+            return []
+        keys = self.handle.keys
+        raw = self.handle.redis.mget([keys.client_id(c) for c in client_ids])
+        out: list[str | None] = []
+        for value in raw:
+            text = value.decode() if value else ""
+            out.append(text if "-" in text else None)
+        return out
+
+    def texts_of(self, client_ids: Sequence[str]) -> list[tuple[str | None, str | None]]:
+        """(stream id, text) of the document queued under each client id; (None, None) when
+        its id key is gone or holds no stream id, (stream id, None) when the entry itself was
+        trimmed from the stream (retention)."""
+        stream_ids = self.stream_ids_of(client_ids)
+        wanted = [s for s in stream_ids if s is not None]
+        if not wanted:
+            return [(None, None)] * len(client_ids)
+        pipe = self.handle.redis.pipeline(transaction=False)
+        for sid in wanted:
+            pipe.xrange(self.handle.keys.docs, min=sid, max=sid, count=1)
+        found: dict[str, str | None] = {}
+        for sid, rows in zip(wanted, pipe.execute(), strict=True):
+            text: str | None = None
+            if rows:
+                raw = rows[0][1].get(b"text")
+                if raw is not None and b"kind" not in rows[0][1]:
+                    text = raw.decode("utf-8", errors="replace")
+            found[sid] = text
+        return [(None, None) if s is None else (s, found.get(s)) for s in stream_ids]
 
     def _raise_refusal(self, exc: redis.ResponseError, n: int) -> NoReturn:
         text = str(exc)

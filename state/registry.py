@@ -6,6 +6,7 @@ import json
 import threading
 import time
 import weakref
+from collections.abc import Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -14,7 +15,7 @@ import redis.exceptions as redis_errors
 
 from mixture.config import MixtureConfig
 from state.connection import is_cluster
-from state.errors import ModelExistsError, ModelNotFoundError, StateError
+from state.errors import ModelExistsError, ModelNotFoundError, OptionsError, StateError
 from state.keys import (
     GENERATION_KEY,
     LEGACY_GLOBAL_KEYS,
@@ -23,7 +24,24 @@ from state.keys import (
     validate_model_name,
 )
 from state.options import ModelOptions
-from state.records import dumps
+from state.records import GroupLabel, dumps
+from state.stream import LABELLED_QUEUE_LUA, correction_fields, example_id
+
+MAX_LABEL_LENGTH = 200  # as state.labels refuses longer labels and destinations
+
+
+@dataclass(frozen=True)
+class Seed:
+    """A group the model starts from: its label, destination and example texts.
+
+    Seed i of a model's seeds is group id i. Its examples are queued as labelled entries
+    (source ``"example"``) in the same transaction that creates the model, so they are the
+    stream's first entries, before any document.
+    """
+
+    label: str | None
+    destination: str | None
+    examples: tuple[str, ...]
 
 
 @dataclass(frozen=True)
@@ -77,6 +95,39 @@ end
 return moved
 """
 
+# KEYS: config, docs, labels, labels_version, entries_added, labelled_queue. ARGV: config JSON,
+# the number L of labels, L pairs (group, label JSON), then per example entry its number of
+# fields and the fields. Returns 0 when the name is taken (nothing written), else 1.
+_CREATE_SEEDED_LUA = (
+    LABELLED_QUEUE_LUA
+    + """
+if not redis.call('SET', KEYS[1], ARGV[1], 'NX') then
+  return 0
+end
+local n_labels = tonumber(ARGV[2])
+local i = 3
+for _ = 1, n_labels do
+  redis.call('HSET', KEYS[3], ARGV[i], ARGV[i + 1])
+  i = i + 2
+end
+if n_labels > 0 then
+  redis.call('INCR', KEYS[4])
+end
+local added = 0
+while i <= #ARGV do
+  local n = tonumber(ARGV[i])
+  local sid = redis.call('XADD', KEYS[2], '*', unpack(ARGV, i + 1, i + n))
+  note_labelled(KEYS[6], KEYS[2], sid)
+  added = added + 1
+  i = i + n + 1
+end
+if added > 0 then
+  redis.call('INCRBY', KEYS[5], added)
+end
+return 1
+"""
+)
+
 _adopted: weakref.WeakSet[Any] = weakref.WeakSet()  # clients already checked in this process
 _adopted_lock = threading.Lock()
 
@@ -122,30 +173,82 @@ class Registry:
             _adopted.discard(redis)  # Redis is down: the next registry tries again
 
     def create(
-        self, name: str, config: MixtureConfig, options: ModelOptions | None = None
+        self,
+        name: str,
+        config: MixtureConfig,
+        options: ModelOptions | None = None,
+        seeds: Sequence[Seed] = (),
     ) -> ModelInfo:
-        """Register a model.
+        """Register a model, optionally with seeded groups.
+
+        Parameters
+        ----------
+        name : str
+        config : MixtureConfig
+        options : ModelOptions, optional
+        seeds : sequence of Seed, optional
+            Seed i becomes group id i: its label and destination are set and its examples
+            queued as labelled entries, in one MULTI with the ``config`` key (a document queued
+            by another client can only follow them: queueing refuses a model without config).
 
         Raises
         ------
         ModelExistsError
             When the name is taken (nothing is changed).
         OptionsError
-            When the name is invalid.
+            When the name is invalid, or the seeds do not fit the configuration (more seeds
+            than ``config.n_groups``, a label over 200 characters).
         """
         keys = ModelKeys(validate_model_name(name))
         options = options or ModelOptions()
+        _check_seeds(seeds, config)
         if self.redis.exists(keys.config):  # spare a generation number in the common refusal
             raise ModelExistsError(f"model {name!r} already exists")
         generation = int(self.redis.incr(GENERATION_KEY))
         info = ModelInfo(
             name=name, config=config, options=options, created=time.time(), generation=generation
         )
-        # SET NX makes creation atomic between two racing clients
-        if not self.redis.set(keys.config, dumps(info.to_dict()), nx=True):
-            raise ModelExistsError(f"model {name!r} already exists")
+        if not seeds:
+            # SET NX makes creation atomic between two racing clients
+            if not self.redis.set(keys.config, dumps(info.to_dict()), nx=True):
+                raise ModelExistsError(f"model {name!r} already exists")
+        else:
+            self._create_seeded(keys, info, seeds)
         self.redis.sadd(REGISTRY_KEY, name)
         return info
+
+    def _create_seeded(self, keys: ModelKeys, info: ModelInfo, seeds: Sequence[Seed]) -> None:
+        """config (SET NX), the seeds' labels and their examples in one script (one slot): a
+        racing creation of the same name writes nothing, and no document can precede the
+        examples (queueing refuses a model without config)."""
+        args: list[str | bytes] = [dumps(info.to_dict())]
+        labels = [
+            (group, GroupLabel(group, seed.label, seed.destination, info.created))
+            for group, seed in enumerate(seeds)
+            if seed.label is not None or seed.destination is not None
+        ]
+        args.append(str(len(labels)))
+        for group, record in labels:
+            args += [str(group), dumps(record.to_dict())]
+        for group, seed in enumerate(seeds):
+            for text in seed.examples:
+                fields = correction_fields(
+                    example_id(group, text), group, text, "example", info.created
+                )
+                args += [str(len(fields)), *fields]
+        created = self.redis.eval(
+            _CREATE_SEEDED_LUA,
+            6,
+            keys.config,
+            keys.docs,
+            keys.labels,
+            keys.labels_version,
+            keys.entries_added,
+            keys.labelled_queue,
+            *args,
+        )
+        if not created:
+            raise ModelExistsError(f"model {info.name!r} already exists")
 
     def list(self) -> list[str]:
         """Names of every registered model, sorted."""
@@ -220,6 +323,24 @@ class Registry:
         if batch:
             removed += max(int(sweep(keys=[keys.config, *batch])), 0)
         return removed
+
+
+def _check_seeds(seeds: Sequence[Seed], config: MixtureConfig) -> None:
+    """:class:`OptionsError` naming the first seed that cannot be created."""
+    if len(seeds) > config.n_groups:
+        raise OptionsError(
+            f"{len(seeds)} seeds for a model of {config.n_groups} groups: give n_groups >= "
+            f"{len(seeds)} (each seed is one starting group)"
+        )
+    for i, seed in enumerate(seeds):
+        for field_name, value in (("label", seed.label), ("destination", seed.destination)):
+            if value is not None and (not value.strip() or len(value) > MAX_LABEL_LENGTH):
+                raise OptionsError(
+                    f"seeds[{i}].{field_name} must be 1-{MAX_LABEL_LENGTH} characters or null"
+                )
+        for j, text in enumerate(seed.examples):
+            if not isinstance(text, str) or not text.strip():
+                raise OptionsError(f"seeds[{i}].examples[{j}] is empty")
 
 
 def parse_model_info(raw: bytes, name: str) -> ModelInfo:

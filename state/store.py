@@ -104,6 +104,19 @@ class ModelStore:
         """See :meth:`state.queueing.DocumentQueue.enqueue` (raises StreamFullError at the cap)."""
         return self.queue.enqueue(texts, ids=ids, metadata=metadata, received=received)
 
+    def enqueue_labelled(self, entries: Sequence[Sequence[str | bytes]]) -> list[str]:
+        """See :meth:`state.queueing.DocumentQueue.enqueue_labelled` (corrections, examples,
+        withdrawals; raises StreamFullError at the cap)."""
+        return self.queue.enqueue_labelled(entries)
+
+    def labelled_queued(self) -> int:
+        """Corrections, examples and withdrawals queued after the watermark (not learned)."""
+        return self.queue.labelled_queued()
+
+    def texts_of(self, client_ids: Sequence[str]) -> list[tuple[str | None, str | None]]:
+        """See :meth:`state.queueing.DocumentQueue.texts_of`: (stream id, text) per id."""
+        return self.queue.texts_of(client_ids)
+
     def stream_info(self) -> dict[str, Any]:
         """See :meth:`state.queueing.DocumentQueue.stream_info`."""
         return self.queue.stream_info()

@@ -14,10 +14,26 @@ An entry of ``mixroute:{M}:docs`` has the fields
 An entry that cannot be decoded (no ``text``, text not UTF-8, metadata not a JSON object,
 received not a number) is not learned: the worker writes it to the dead-letter stream with the
 reason, in the checkpoint that moves the watermark past it, and carries on.
+
+Labelled entries (an operator's corrections and examples, and their withdrawals) carry a field
+``kind`` first (an ordinary document has none):
+
+``kind = "correction"``
+    ``target`` (the document id being labelled, unique per labelled document), ``group`` (the
+    stable group id, decimal), ``text`` (UTF-8), ``source`` (``"correction"`` or
+    ``"example"``), ``received``;
+``kind = "withdraw"``
+    ``target`` (the labelled document id to remove), ``received``.
+
+They are decoded by :func:`decode_entry` into :class:`Labelled` / :class:`Withdrawal`; one
+whose fields are unusable is an :class:`Undecodable` like any other entry. Because ``kind`` is
+the first field, such an entry never matches the worker's fast path for our plain layout
+(``id, text, metadata, received``).
 """
 
 from __future__ import annotations
 
+import hashlib
 import json
 import math
 from collections.abc import Iterable, Mapping, Sequence
@@ -27,6 +43,20 @@ from typing import Any
 from state.errors import OptionsError
 
 ZERO_ID = "0-0"
+
+
+# Records a labelled entry's stream id in KEYS[5] (labelled_queue) and drops the ids of
+# entries trimmed from the stream (below its first entry's millisecond).
+LABELLED_QUEUE_LUA = """
+local function note_labelled(queue, docs, sid)
+  redis.call('ZADD', queue, tonumber(string.match(sid, '^(%d+)')), sid)
+  local first = redis.call('XRANGE', docs, '-', '+', 'COUNT', 1)
+  if #first > 0 then
+    redis.call('ZREMRANGEBYSCORE', queue, '-inf',
+               '(' .. tonumber(string.match(first[1][1], '^(%d+)')))
+  end
+end
+"""
 
 
 def parse_stream_id(stream_id: str | bytes) -> tuple[int, int]:
@@ -71,6 +101,78 @@ class Document:
     received: float
 
 
+KIND_CORRECTION = "correction"
+KIND_WITHDRAW = "withdraw"
+LABELLED_SOURCES = ("correction", "example")
+
+
+@dataclass(frozen=True)
+class Labelled:
+    """A decoded correction (or example) entry: learn ``text`` as a document of ``group``."""
+
+    stream_id: str
+    target: str
+    group: int
+    text: str
+    source: str
+    received: float
+
+    def fields(self) -> dict[str, str]:
+        """A printable copy of the entry (for a dead letter), the text cut to 512 characters."""
+        return {
+            "kind": KIND_CORRECTION,
+            "target": self.target,
+            "group": str(self.group),
+            "source": self.source,
+            "text": self.text[:512],
+        }
+
+
+@dataclass(frozen=True)
+class Withdrawal:
+    """A decoded withdraw entry: remove the labelled document ``target``."""
+
+    stream_id: str
+    target: str
+    received: float
+
+    def fields(self) -> dict[str, str]:
+        """A printable copy of the entry (for a dead letter)."""
+        return {"kind": KIND_WITHDRAW, "target": self.target}
+
+
+def correction_fields(
+    target: str, group: int, text: str, source: str, received: float
+) -> list[str | bytes]:
+    """The XADD field list of a correction entry (``kind`` first; see the module docstring)."""
+    return [
+        "kind",
+        KIND_CORRECTION,
+        "target",
+        target,
+        "group",
+        str(int(group)),
+        "source",
+        source,
+        "text",
+        text,
+        "received",
+        repr(float(received)),
+    ]
+
+
+def example_id(group: int, text: str) -> str:
+    """The labelled-document id of an example text of ``group``: the same example given twice
+    is one labelled document (learning it again is a no-op)."""
+    digest = hashlib.sha256(text.encode("utf-8")).hexdigest()[:16]
+    return f"example-{int(group)}-{digest}"
+
+
+def withdraw_fields(target: str, received: float) -> list[str | bytes]:
+    """The XADD field list of a withdraw entry."""
+    return ["kind", KIND_WITHDRAW, "target", target, "received", repr(float(received))]
+
+
 @dataclass(frozen=True)
 class Undecodable:
     """A stream entry that cannot be learned, with the reason."""
@@ -88,9 +190,13 @@ class Undecodable:
         }
 
 
-def decode_entry(stream_id: str, fields: Mapping[bytes, bytes]) -> Document | Undecodable:
+def decode_entry(
+    stream_id: str, fields: Mapping[bytes, bytes]
+) -> Document | Labelled | Withdrawal | Undecodable:
     """Decode one stream entry as read with ``decode_responses=False``."""
     try:
+        if b"kind" in fields:
+            return _decode_labelled(stream_id, fields)
         raw_text = fields.get(b"text")
         if raw_text is None:
             return _bad(stream_id, "no 'text' field", fields)
@@ -121,6 +227,48 @@ def decode_entry(stream_id: str, fields: Mapping[bytes, bytes]) -> Document | Un
         return Document(stream_id, client_id, text, metadata, received)
     except Exception as exc:  # never let one entry stop the loop
         return _bad(stream_id, f"cannot decode entry: {type(exc).__name__}: {exc}", fields)
+
+
+def _decode_labelled(
+    stream_id: str, fields: Mapping[bytes, bytes]
+) -> Labelled | Withdrawal | Undecodable:
+    """A correction or withdraw entry (``kind`` present), or why it cannot be used."""
+    kind = fields[b"kind"]
+    raw_target = fields.get(b"target")
+    if not raw_target:
+        return _bad(stream_id, f"{kind!r} entry has no 'target'", fields)
+    try:
+        target = raw_target.decode("utf-8")
+    except UnicodeDecodeError:
+        return _bad(stream_id, "target is not UTF-8", fields)
+    received = 0.0
+    raw_received = fields.get(b"received")
+    if raw_received is not None:
+        try:
+            received = float(raw_received)
+        except ValueError:
+            return _bad(stream_id, "received is not a number", fields)
+        if not math.isfinite(received):
+            return _bad(stream_id, "received is not finite", fields)
+    if kind == KIND_WITHDRAW.encode():
+        return Withdrawal(stream_id, target, received)
+    if kind != KIND_CORRECTION.encode():
+        return _bad(stream_id, f"unknown entry kind {kind!r}", fields)
+    try:
+        group = int(fields.get(b"group", b""))
+    except ValueError:
+        return _bad(stream_id, "correction has no integer 'group'", fields)
+    raw_text = fields.get(b"text")
+    if raw_text is None:
+        return _bad(stream_id, "correction has no 'text'", fields)
+    try:
+        text = raw_text.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        return _bad(stream_id, f"text is not UTF-8 ({exc.reason} at byte {exc.start})", fields)
+    source = fields.get(b"source", KIND_CORRECTION.encode()).decode("utf-8", errors="replace")
+    if source not in LABELLED_SOURCES:
+        return _bad(stream_id, f"unknown correction source {source!r}", fields)
+    return Labelled(stream_id, target, group, text, source, received)
 
 
 def _bad(stream_id: str, reason: str, fields: Mapping[bytes, bytes]) -> Undecodable:

@@ -69,6 +69,8 @@ MODEL_COMMANDS = {
     "drift": ["drift"],
     "label": ["label", "0", "--label", "lost property"],
     "flagged": ["flagged"],
+    "correct": ["correct", "--id", "m-1", "--group", "0"],
+    "examples": ["examples", "0", "a lost bag on the morning crossing"],
     "export": ["export"],
     "events": ["events"],
 }

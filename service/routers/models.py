@@ -8,13 +8,14 @@ from fastapi import APIRouter, Response, status
 
 from mixture.config import MixtureConfig
 from mixture.online import warm_up_progress
-from service.errors import InvalidFieldError
+from service.errors import InvalidFieldError, PayloadTooLargeError
 from service.routers import COMMON_RESPONSES, Runtime, StrictJsonRoute
 from service.runtime import LoadedModel, RedisUnavailableError, ServiceRuntime
 from service.schemas import ModelIn, ModelList, ModelOut, Problem
 from state.errors import OptionsError
 from state.keys import validate_model_name
 from state.options import ModelOptions
+from state.registry import Seed
 
 router = APIRouter(tags=["models"], responses=COMMON_RESPONSES, route_class=StrictJsonRoute)
 
@@ -82,18 +83,22 @@ UNKNOWN_START_GROUPS = 2
 UNKNOWN_MAX_GROUPS = 32
 
 
-def creation_config(fields: dict[str, Any], max_groups: int | None) -> dict[str, Any]:
+def creation_config(
+    fields: dict[str, Any], max_groups: int | None, seeds: int = 0
+) -> dict[str, Any]:
     """The configuration of a new model from the fields the request set.
 
     Without ``n_groups`` the model starts small with the lifecycle on (K unknown, as in a new
-    inbox): ``UNKNOWN_START_GROUPS`` groups, ``max_groups`` (or ``UNKNOWN_MAX_GROUPS``) as the
-    ceiling. With ``n_groups`` the lifecycle follows ``lifecycle.enabled`` (off by default).
-    ``max_groups`` sets ``lifecycle.max_groups`` in both cases.
+    inbox): ``UNKNOWN_START_GROUPS`` groups, or one more than ``seeds`` when that is more (a
+    group for the messages no seed describes; rule of thumb, no source), ``max_groups`` (or
+    ``UNKNOWN_MAX_GROUPS``) as the ceiling. With ``n_groups`` the lifecycle follows
+    ``lifecycle.enabled`` (off by default). ``max_groups`` sets ``lifecycle.max_groups`` in
+    both cases.
     """
     out = dict(fields)
     lifecycle = dict(out.get("lifecycle") or {})
     if "n_groups" not in out:
-        out["n_groups"] = UNKNOWN_START_GROUPS
+        out["n_groups"] = max(UNKNOWN_START_GROUPS, seeds + 1 if seeds else 0)
         lifecycle.setdefault("enabled", True)
         lifecycle.setdefault("max_groups", UNKNOWN_MAX_GROUPS)
     if max_groups is not None:
@@ -114,17 +119,42 @@ def creation_config(fields: dict[str, Any], max_groups: int | None) -> dict[str,
     },
 )
 def create_model(body: ModelIn, runtime: Runtime) -> dict[str, Any]:
-    """Register a model; its worker starts learning from its stream."""
+    """Register a model; its worker starts learning from its stream.
+
+    ``seeds`` start groups from what the team knows: seed i is group id i, with its label and
+    destination set, and its examples are the stream's first entries, learned as labelled
+    documents (source ``example``): the warm-up and every refit keep them in their group.
+    """
     try:
         validate_model_name(body.name)
     except OptionsError as exc:
         raise InvalidFieldError(str(exc), "name") from None
     # the schemas fixed the types; the dataclasses check the ranges and fill the defaults
     config = MixtureConfig.from_dict(
-        creation_config(body.config.model_dump(exclude_unset=True), body.max_groups)
+        creation_config(
+            body.config.model_dump(exclude_unset=True), body.max_groups, len(body.seeds)
+        )
     )
     options = ModelOptions.from_dict(body.options.model_dump(exclude_unset=True))
-    runtime.call(lambda: runtime.registry.create(body.name, config, options))
+    seeds = [Seed(s.label, s.destination, tuple(s.examples)) for s in body.seeds]
+    if len(seeds) > config.n_groups:
+        raise InvalidFieldError(
+            f"{len(seeds)} seeds for {config.n_groups} groups (config.n_groups): each seed is "
+            f"one starting group, so give n_groups >= {len(seeds)} or leave it out",
+            "seeds",
+        )
+    settings = runtime.settings
+    for i, seed in enumerate(seeds):
+        for j, text in enumerate(seed.examples):
+            where = f"seeds.{i}.examples.{j}"
+            if not text.strip():
+                raise InvalidFieldError(f"{where} is empty: give the example's text", where)
+            if len(text.encode("utf-8")) > settings.max_text_bytes:
+                raise PayloadTooLargeError(
+                    f"{where} is over {settings.max_text_bytes} bytes (MIXROUTE_MAX_TEXT_BYTES)",
+                    field=where,
+                )
+    runtime.call(lambda: runtime.registry.create(body.name, config, options, seeds))
     loaded = runtime.reload(body.name)
     return model_out(runtime, loaded, with_stream=False)
 
