@@ -38,6 +38,13 @@ warmup_tokens = 40_000, warmup_documents = 10_000 (a cap), provisional_documents
     answers routing requests: at ``provisional_documents`` documents with tokens (100:
     common practice for "enough to say something", no source; the corpus test measures it),
     then at every doubling, so the refits cost O(final buffer) in all.
+unlabelled_weight = 1.0, labelled_limit = 10_000
+    lambda of EM-lambda (Nigam, McCallum, Thrun and Mitchell 2000): each unlabelled document
+    weighs lambda in the M-step, each labelled document (a correction or an example message)
+    weighs 1. lambda = 1 is their basic EM, every document counting once: the principled
+    default, not tuned to any corpus (bench/README.md measures 0.1 and 0.3 too). The limit
+    bounds the labelled documents one state holds (each is a row of counts kept in the state;
+    10,000 rows of a few hundred words are a few megabytes; common practice, no source).
 half_life_documents = None
     With a floor eta_min on the step size the statistics forget exponentially: a document's
     weight halves after h = batch_size * ln(0.5) / ln(1 - eta_min) documents. We let the user
@@ -93,6 +100,11 @@ class MixtureConfig:
         the relative change of the objective below which a run has converged.
     annealing_steps : int
         Tempered E-steps at the start of each batch EM run (0 switches annealing off).
+    unlabelled_weight : float
+        lambda of EM-lambda (Nigam et al. 2000): the weight of each unlabelled document in
+        the M-step, in (0, 1]; labelled documents weigh 1.
+    labelled_limit : int
+        Most labelled documents (corrections and examples) a state holds (>= 0).
     tokenizer : TokenizerConfig
         How text becomes tokens.
     lifecycle : LifecycleConfig
@@ -113,6 +125,8 @@ class MixtureConfig:
     max_iter: int = 100
     tolerance: float = 1e-6
     annealing_steps: int = 60
+    unlabelled_weight: float = 1.0
+    labelled_limit: int = 10_000
     tokenizer: TokenizerConfig = field(default_factory=TokenizerConfig)
     lifecycle: LifecycleConfig = field(default_factory=LifecycleConfig)
 
@@ -145,6 +159,8 @@ class MixtureConfig:
         _check_int(self, "max_iter", 1, 100_000)
         _check_float(self, "tolerance", 0.0, 1.0)
         _check_int(self, "annealing_steps", 0, 10_000)
+        _check_float(self, "unlabelled_weight", 0.0, 1.0, low_open=True)
+        _check_int(self, "labelled_limit", 0, 10_000_000)
         if not isinstance(self.tokenizer, TokenizerConfig):
             raise ConfigError("tokenizer must be a TokenizerConfig")
         if not isinstance(self.lifecycle, LifecycleConfig):

@@ -165,7 +165,7 @@ def _on_union(state: MixtureState, words: dict[str, int], index: dict[str, int])
     # An unknown word: the smoothed probability of a word with no count (the same kernel).
     unseen = smoothed_log_word_prob(
         np.zeros((1, k)),
-        state.unscaled_total * state.count_scale,
+        state.word_totals(),
         state.vocabulary.n_active,
         state.config.word_pseudocount,
     )

@@ -26,7 +26,7 @@ how starved groups are revived).
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 
 import numpy as np
 import scipy.sparse as sp
@@ -34,10 +34,12 @@ import scipy.sparse as sp
 from mixture.config import MixtureConfig
 from mixture.errors import ConfigError, InputError
 from mixture.kernels import softmax_rows
+from mixture.labelled import LabelledCounts, LabelledItem, add_items
 from mixture.restarts import (
     ANNEALED,
     PLAIN,
     FitReport,
+    FixedResponsibilities,
     RestartSummary,
     SweepFactory,
     fit_restarts,
@@ -142,6 +144,40 @@ def map_objective(
 # ---- seeding --------------------------------------------------------------------------------
 def seed_assignment(counts: sp.csr_matrix, n_groups: int, rng: np.random.Generator) -> np.ndarray:
     """k-means++-style seeding with the model's divergence; returns a group per document."""
+    return seed_assignment_with_labels(
+        counts, n_groups, rng, np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)
+    )
+
+
+def seed_assignment_with_labels(
+    counts: sp.csr_matrix,
+    n_groups: int,
+    rng: np.random.Generator,
+    fixed_rows: np.ndarray,
+    fixed_groups: np.ndarray,
+) -> np.ndarray:
+    """k-means++-style seeding where some documents are labelled.
+
+    A seeded group (one that labelled documents name) starts from the pooled word frequencies
+    of its labelled documents, as a chosen seed does from one document's; those seeds count as
+    already chosen, and the other groups are drawn by k-means++ among the unlabelled documents
+    only, in order of position. Labelled rows are assigned to their groups. Without labelled
+    rows this is :func:`seed_assignment` (the same draws).
+
+    Parameters
+    ----------
+    counts : csr_matrix of shape (n_docs, V)
+        Every row with at least one token.
+    n_groups : int
+    rng : numpy.random.Generator
+    fixed_rows, fixed_groups : ndarray of int
+        Labelled rows and their group positions.
+
+    Returns
+    -------
+    ndarray of shape (n_docs,)
+        A group position per document.
+    """
     n_docs, n_words = counts.shape
     lengths = np.asarray(counts.sum(axis=1)).ravel()
     freq = sp.diags(1.0 / np.maximum(lengths, 1e-300)) @ counts  # per-token frequencies
@@ -157,16 +193,39 @@ def seed_assignment(counts: sp.csr_matrix, n_groups: int, rng: np.random.Generat
 
     best_gain = np.full(n_docs, -np.inf)
     best_seed = np.zeros(n_docs, dtype=np.int64)
+
+    def take(group: int, seed_vector: np.ndarray) -> None:
+        gain = log_half + freq @ seed_vector
+        better = gain > best_gain
+        best_gain[better] = gain[better]
+        best_seed[better] = group
+
+    fixed_rows = np.asarray(fixed_rows, dtype=np.int64)
+    fixed_groups = np.asarray(fixed_groups, dtype=np.int64)
+    seeded = [int(g) for g in np.unique(fixed_groups)]
+    for group in seeded:
+        pooled = np.asarray(counts[fixed_rows[fixed_groups == group]].sum(axis=0)).ravel()
+        pooled /= max(float(pooled.sum()), 1e-300)
+        seed_vector = np.zeros(n_words)
+        words = np.flatnonzero(pooled)
+        seed_vector[words] = np.log1p(pooled[words] / background[words])
+        take(group, seed_vector)
+    free = np.ones(n_docs, dtype=bool)
+    free[fixed_rows] = False
+    unseeded = [g for g in range(n_groups) if g not in set(seeded)]
     chosen: list[int] = []
-    for k in range(n_groups):
-        if k == 0:
-            pick = int(rng.integers(n_docs))
+    for group in unseeded:
+        if not seeded and not chosen:
+            pick = (
+                int(rng.integers(n_docs)) if free.all() else int(rng.choice(np.flatnonzero(free)))
+            )
         else:
             deficit = np.clip(self_gain - best_gain, 0.0, None) ** 2
             deficit[chosen] = 0.0
+            deficit[~free] = 0.0
             total = deficit.sum()
             if not np.isfinite(total) or total <= 0:
-                remaining = np.setdiff1d(np.arange(n_docs), chosen)
+                remaining = np.setdiff1d(np.flatnonzero(free), chosen)
                 pick = int(rng.choice(remaining))
             else:
                 pick = int(rng.choice(n_docs, p=deficit / total))
@@ -174,11 +233,9 @@ def seed_assignment(counts: sp.csr_matrix, n_groups: int, rng: np.random.Generat
         seed_row = ratio.getrow(pick)
         seed_vector = np.zeros(n_words)
         seed_vector[seed_row.indices] = seed_row.data
-        gain = log_half + freq @ seed_vector
-        better = gain > best_gain
-        best_gain[better] = gain[better]
-        best_seed[better] = k
-    best_seed[chosen] = np.arange(n_groups)
+        take(group, seed_vector)
+    best_seed[chosen] = unseeded
+    best_seed[fixed_rows] = fixed_groups
     return best_seed
 
 
@@ -192,6 +249,7 @@ def fit_batch_em(
     progress: Progress | None = None,
     kinds: tuple[str, ...] | None = None,
     sweep_factory: SweepFactory | None = None,
+    labelled: LabelledCounts | None = None,
 ) -> tuple[np.ndarray, np.ndarray, FitReport]:
     """Fit the mixture by MAP-EM with seeded restarts; the best MAP objective wins.
 
@@ -216,11 +274,19 @@ def fit_batch_em(
         only when annealing_steps is 0). For comparisons: one kind alone is the fit of before.
     sweep_factory : callable, optional
         Makes each run's sweep (default :class:`mixture.sweep.EMSweep`, this machine's cores).
+    labelled : LabelledCounts, optional
+        Labelled documents (same columns as ``counts``) with their group positions: their
+        responsibilities are fixed one-hot throughout and the groups they name start from
+        them (semi-supervised EM, Nigam et al. 2000; mixture.restarts). With labelled
+        documents or ``config.unlabelled_weight`` below 1, each unlabelled document weighs
+        ``unlabelled_weight`` in the M-step.
 
     Returns
     -------
     word_counts : ndarray of shape (V, K)
     doc_counts : ndarray of shape (K,)
+        The M-step's counts: ``unlabelled_weight`` times the unlabelled documents' expected
+        counts plus the labelled documents' counts (those the parameters are smoothed from).
     report : FitReport
     """
     matrix = validate_counts(counts)
@@ -228,17 +294,35 @@ def fit_batch_em(
     nonempty = lengths > 0
     used = matrix[nonempty] if not nonempty.all() else matrix
     n_docs = used.shape[0]
-    if n_docs == 0:
+    lab_matrix, lab_groups = _labelled_rows(labelled, matrix.shape[1], config.n_groups)
+    n_seeded = int(np.unique(lab_groups).size)
+    if n_docs == 0 and lab_groups.size == 0:
         raise InputError("no document has a known token: nothing to fit")
-    if config.n_groups > n_docs:
+    if config.n_groups - n_seeded > n_docs:
         raise ConfigError(
             f"n_groups ({config.n_groups}) is larger than the number of documents with "
-            f"tokens ({n_docs}); use fewer groups or more documents"
+            f"tokens ({n_docs}) plus the groups labelled documents name ({n_seeded}); "
+            f"use fewer groups or more documents"
         )
     if active is not None and active.shape != (matrix.shape[1],):
         raise InputError(f"active mask has shape {active.shape}, expected ({matrix.shape[1]},)")
-    used_t = used.T.tocsr()
     used_lengths = lengths[nonempty]
+    fixed = None
+    if lab_groups.size or config.unlabelled_weight != 1.0:
+        rows = np.arange(n_docs, n_docs + lab_groups.size, dtype=np.int64)
+        used = sp.csr_matrix(sp.vstack([used, lab_matrix], format="csr"))
+        used_lengths = np.concatenate([used_lengths, np.asarray(lab_matrix.sum(axis=1)).ravel()])
+        row_weight = np.concatenate(
+            [np.full(n_docs, config.unlabelled_weight), np.ones(lab_groups.size)]
+        )
+
+        def labelled_seeder(
+            all_counts: sp.csr_matrix, n_groups: int, rng: np.random.Generator
+        ) -> np.ndarray:
+            return seed_assignment_with_labels(all_counts, n_groups, rng, rows, lab_groups)
+
+        fixed = FixedResponsibilities(rows, lab_groups, row_weight, labelled_seeder)
+    used_t = used.T.tocsr()
     if kinds is None:
         kinds = restart_kinds(config)
     unknown = set(kinds) - {ANNEALED, PLAIN}
@@ -264,7 +348,29 @@ def fit_batch_em(
         kinds,
         tick,
         EMSweep if sweep_factory is None else sweep_factory,
+        fixed,
     )
+
+
+def _labelled_rows(
+    labelled: LabelledCounts | None, n_words: int, n_groups: int
+) -> tuple[sp.csr_matrix, np.ndarray]:
+    """The labelled rows with tokens and their group positions (checked)."""
+    if labelled is None or len(labelled) == 0:
+        return sp.csr_matrix((0, n_words)), np.zeros(0, dtype=np.int64)
+    groups = np.asarray(labelled.groups)
+    if groups.ndim != 1 or groups.dtype.kind not in "iu":
+        raise InputError("labelled groups must be a 1-D array of group positions")
+    groups = groups.astype(np.int64)
+    matrix = validate_counts(labelled.counts)
+    if matrix.shape != (groups.size, n_words):
+        raise InputError(
+            f"labelled counts have shape {matrix.shape}, expected ({groups.size}, {n_words})"
+        )
+    if groups.size and (groups.min() < 0 or groups.max() >= n_groups):
+        raise InputError(f"labelled group positions must lie in [0, {n_groups})")
+    keep = np.asarray(matrix.sum(axis=1)).ravel() > 0
+    return sp.csr_matrix(matrix[keep]), groups[keep]
 
 
 def fit_pending(
@@ -284,9 +390,15 @@ def fit_pending(
             shape=(pending.shape[0], state.capacity),
         )
     column_totals = np.asarray(pending.sum(axis=0)).ravel()
+    if len(state.labelled):
+        # Words of the labelled documents count for the vocabulary bound as well.
+        column_totals += np.asarray(
+            state.labelled.counts_matrix(state.capacity).sum(axis=0)
+        ).ravel()
     state.pending = pending
     state.prune_vocabulary(keep=state.config.vocabulary_limit, word_totals=column_totals)
     pending = state.pending
+    labelled = _state_labelled(state)
     word_counts, doc_counts, report = fit_batch_em(
         pending,
         state.config,
@@ -295,7 +407,14 @@ def fit_pending(
         progress=progress,
         kinds=kinds,
         sweep_factory=sweep_factory,
+        labelled=labelled,
     )
+    weight = state.config.unlabelled_weight
+    if labelled is not None or weight != 1.0:
+        # The state keeps the unlabelled statistics; the labelled ones are summed from the set.
+        stats = state.labelled_statistics()
+        word_counts = np.clip((word_counts - stats.word.toarray()) / weight, 0.0, None)
+        doc_counts = np.clip((doc_counts - stats.docs) / weight, 0.0, None)
     fitted = MixtureState.from_counts(
         state.config, state.vocabulary, word_counts, doc_counts, state.documents_learned
     )
@@ -311,6 +430,20 @@ def fit_pending(
     return report
 
 
+def _state_labelled(state: MixtureState) -> LabelledCounts | None:
+    """The state's labelled documents as batch EM takes them (None when there are none)."""
+    if not len(state.labelled):
+        return None
+    assert state.group_ids is not None
+    position = {int(g): i for i, g in enumerate(state.group_ids)}
+    positions = np.array(
+        [position.get(int(g), -1) for g in state.labelled.groups()], dtype=np.int64
+    )
+    keep = positions >= 0
+    matrix = state.labelled.counts_matrix(state.capacity)
+    return LabelledCounts(sp.csr_matrix(matrix[keep]), positions[keep])
+
+
 def fit_texts(
     texts: list[str],
     config: MixtureConfig,
@@ -319,10 +452,14 @@ def fit_texts(
     progress: Progress | None = None,
     kinds: tuple[str, ...] | None = None,
     sweep_factory: SweepFactory | None = None,
+    labelled: Sequence[LabelledItem] = (),
 ) -> tuple[MixtureState, FitReport]:
     """Tokenise texts with a growing vocabulary, bound it, and fit batch EM.
 
     ``kinds`` is passed to :func:`fit_batch_em` (by default annealed and plain runs).
+    ``labelled`` documents (their ``group_id`` in 0..n_groups-1) are kept in the state and
+    fitted with fixed responsibilities (semi-supervised EM); the groups they name start from
+    them.
 
     Returns
     -------
@@ -336,5 +473,7 @@ def fit_texts(
     batch = count_texts(texts, state.tokenizer, state.vocabulary, grow=True)
     state.pending = batch.counts
     state.documents_learned = len(texts)
+    if labelled:
+        add_items(state, labelled)
     report = fit_pending(state, progress, kinds, sweep_factory)
     return state, report

@@ -222,11 +222,20 @@ def merge(
     reason: str,
     evidence: dict[str, float] | None = None,
 ) -> GroupEvent:
-    """Add the statistics of one group to another's; the absorbed id is gone for good."""
+    """Add the statistics of one group to another's; the absorbed id is gone for good.
+
+    The absorbed group's labelled documents move to the survivor. Two groups that both hold
+    labelled documents never merge (operators said they are different): InputError.
+    """
     if survivor_id == absorbed_id:
         raise InputError("a group cannot merge with itself")
     a = position_of(state, survivor_id)
     b = position_of(state, absorbed_id)
+    if state.labelled.holds_group(survivor_id) and state.labelled.holds_group(absorbed_id):
+        raise InputError(
+            f"groups {survivor_id} and {absorbed_id} both hold labelled documents: never merged"
+        )
+    state.labelled.move_group(absorbed_id, survivor_id)
     absorbed_docs = float(state.expected_documents()[b])
     state.unscaled_word[:, a] += state.unscaled_word[:, b]
     state.unscaled_docs = state.unscaled_docs.copy()
@@ -253,6 +262,8 @@ def retire(
     if state.n_groups <= 1:
         raise InputError("the last group cannot be retired")
     g = position_of(state, group_id)
+    if state.labelled.holds_group(group_id):
+        raise InputError(f"group {group_id} holds labelled documents: it is never retired")
     removed = float(state.expected_documents()[g])
     _remove_position(state, g)
     numbers = {"removed_documents": removed, **(evidence or {})}
@@ -354,6 +365,10 @@ def _retirements(
     due = np.flatnonzero(evidence.quiet_windows >= config.retire_windows)
     due = due[np.argsort(share[due], kind="stable")]  # the quietest first
     assert state.group_ids is not None
+    # Operators' labelled documents keep a group alive (mixture.labelled).
+    due = np.array(
+        [g for g in due if not state.labelled.holds_group(int(state.group_ids[g]))], dtype=np.int64
+    )
     found = [
         (int(state.group_ids[g]), float(share[g]), int(evidence.quiet_windows[g])) for g in due
     ]
@@ -399,6 +414,8 @@ def _merges(
     for first, second, coefficient in pairs:
         if first in touched or second in touched:
             continue
+        if state.labelled.holds_group(first) and state.labelled.holds_group(second):
+            continue  # operators' labels say the two are different groups
         a, b = position_of(state, first), position_of(state, second)
         params = state.parameters()
         p = np.exp(params.log_word_prob[:, a][params.active])
@@ -410,6 +427,9 @@ def _merges(
         survivor, absorbed = (first, second) if docs[a] >= docs[b] else (second, first)
         if docs[a] == docs[b]:
             survivor, absorbed = min(first, second), max(first, second)
+        # A group holding labelled documents survives and keeps its id.
+        if state.labelled.holds_group(absorbed):
+            survivor, absorbed = absorbed, survivor
         touched.update((first, second))
         events.append(
             merge(

@@ -36,6 +36,7 @@ from mixture.counting import count_texts
 from mixture.em import fit_pending, validate_counts
 from mixture.errors import InputError
 from mixture.kernels import softmax_rows
+from mixture.labelled import LabelledItem, add_items, check_items
 from mixture.lifecycle import GroupEvent, run_due_decisions, seed_typicality, unit_observer
 from mixture.stats import MixtureState
 
@@ -54,6 +55,12 @@ class BatchReport:
     steps: int = 0
     events: list[GroupEvent] = field(default_factory=list)  # births, merges, retirements
     provisional_fits: int = 0  # provisional fits of the warm-up buffer
+    labelled: int = 0  # labelled documents added, moved or replaced (learn_labelled)
+    # Per stepwise update, in order: its step size, the documents with tokens it averaged,
+    # and state.log_forgetting right after it (mixture.labelled.remaining_weight).
+    unit_etas: list[float] = field(default_factory=list)
+    unit_documents: list[int] = field(default_factory=list)
+    unit_log_forgetting: list[float] = field(default_factory=list)
 
     def merge(self, other: BatchReport) -> BatchReport:
         # Token-weighted mean of the parts that measured a log-likelihood.
@@ -75,6 +82,10 @@ class BatchReport:
             steps=self.steps + other.steps,
             events=[*self.events, *other.events],
             provisional_fits=self.provisional_fits + other.provisional_fits,
+            labelled=self.labelled + other.labelled,
+            unit_etas=[*self.unit_etas, *other.unit_etas],
+            unit_documents=[*self.unit_documents, *other.unit_documents],
+            unit_log_forgetting=[*self.unit_log_forgetting, *other.unit_log_forgetting],
         )
 
 
@@ -190,7 +201,11 @@ def _update_unit(
     state.unscaled_docs += gain * batch_docs
     state.weight_square_sum = (1.0 - eta) ** 2 * state.weight_square_sum + eta**2 / m
     state.step += fraction
+    state.log_forgetting += float(np.log1p(-eta))
     report.steps = 1
+    report.unit_etas.append(float(eta))
+    report.unit_documents.append(int(m))
+    report.unit_log_forgetting.append(state.log_forgetting)
     state.maybe_fold_scale()
     state.touch()
     return report
@@ -256,6 +271,83 @@ class OnlineLearner:
         if state.vocabulary.n_active > self.config.vocabulary_limit:
             report.pruned_words += state.prune_vocabulary()
         return report
+
+    def learn_labelled(self, items: Sequence[LabelledItem]) -> BatchReport:
+        """Learn labelled documents (corrections, examples): fixed responsibilities, weight 1.
+
+        Each item's counts go wholly to its group (Nigam et al. 2000) and stay there until
+        withdrawn; no stepwise step is taken for them, so after the warm-up the parameters
+        change at once and the step schedule does not move. During the warm-up they are kept
+        in ``state.labelled`` (and given to the provisional fit at once) and every later
+        provisional fit and the warm-up fit use them; they do not count towards the warm-up's
+        end, which stays a function of the unlabelled stream alone (the fits then depend on
+        the same prefix of documents whatever the labelled traffic, and a model started from
+        examples still waits for enough unlabelled documents to find its unseeded groups).
+
+        Idempotent per id: the same id with the same group, source and text is a no-op; with
+        another group it moves; the text given last wins. Items are applied in order.
+
+        Parameters
+        ----------
+        items : sequence of LabelledItem
+
+        Returns
+        -------
+        BatchReport
+            ``labelled`` = documents added, moved or replaced; ``tokens`` and ``new_words`` of
+            the texts; ``documents`` 0 (no unlabelled document was learned).
+
+        Raises
+        ------
+        InputError
+            For a bad item, a group id that is not a current group (retired, merged or never
+            made), or more labelled documents than ``config.labelled_limit``. Nothing is
+            changed then.
+        """
+        state = self.state
+        items = check_items(items)
+        added = add_items(state, items)
+        report = BatchReport(
+            warmed_up=state.warmed_up,
+            tokens=added.tokens,
+            new_words=added.new_words,
+            labelled=added.changed,
+        )
+        if state.provisional is not None:
+            OnlineLearner.from_state(state.provisional).learn_labelled(items)
+        if state.warmed_up and state.vocabulary.n_active > self.config.vocabulary_limit:
+            report.pruned_words += state.prune_vocabulary()
+        return report
+
+    def withdraw_labelled(self, doc_ids: Sequence[str]) -> int:
+        """Remove labelled documents by id; unknown ids are ignored.
+
+        The labelled statistics are summed from the set, and the words only these documents
+        brought (no unlabelled mass, no other labelled or buffered document) are retired, so
+        right after a withdrawal the parameters are those of never having had the documents
+        (to float rounding; word ids aside). Stepwise updates made while a labelled document
+        was held saw it in their E-steps; that influence stays, as any past parameter's does.
+
+        Returns
+        -------
+        int
+            How many were removed.
+        """
+        if isinstance(doc_ids, str) or not isinstance(doc_ids, Sequence):
+            raise InputError("doc_ids must be a sequence of str")
+        for index, doc_id in enumerate(doc_ids):
+            if not isinstance(doc_id, str):
+                raise InputError(f"doc_ids[{index}] must be a str")
+        state = self.state
+        words = state.labelled.word_ids_of(doc_ids)
+        removed = state.labelled.remove(doc_ids)
+        if removed:
+            state.touch()
+            # Words only these documents brought leave with them (as if never learned).
+            state.retire_unused_words(words)
+        if state.provisional is not None:
+            OnlineLearner.from_state(state.provisional).withdraw_labelled(doc_ids)
+        return removed
 
     def _warm_up(self, texts: Sequence[str], report: BatchReport) -> int:
         """Buffer texts up to the end of the warm-up, fitting where a fit is due.

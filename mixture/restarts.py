@@ -38,6 +38,20 @@ group of 100 glosses), more than a few short texts gain in likelihood. The user 
 groups, so the fit maximises the objective over solutions that use them all: the revival is
 kept, and among restarts the one with the fewest starved groups wins, then the highest MAP
 objective.
+
+Labelled documents (semi-supervised EM, Nigam, McCallum, Thrun and Mitchell 2000)
+---------------------------------------------------------------------------------
+With :class:`FixedResponsibilities` some rows of the corpus are labelled: their
+responsibilities are one-hot on their group from the seeding on, re-fixed after every E-step
+(at every temperature of the annealing and of plain EM) and never moved by a revival; each
+unlabelled row weighs ``lambda`` in the M-step (EM-lambda). The objective is then::
+
+    sum_labelled log(pi_y p(d | y)) + lambda * sum_unlabelled log sum_k pi_k p(d | k) + log prior
+
+which EM with the labelled terms fixed never lowers (Dempster, Laird and Rubin 1977: the
+labelled terms are complete-data terms, and a positive weight on a document's term keeps the
+lower-bound argument). A group is starved when its weighted documents fall under
+``STARVED_SHARE / K`` of the weighted total.
 """
 
 from __future__ import annotations
@@ -125,7 +139,9 @@ class FitReport:
     reseed_iterations : list of int
         Iterations (indices into objective_trace) right after a re-seed.
     documents : int
-        Documents with at least one token that took part in the fit.
+        Unlabelled documents with at least one token that took part in the fit.
+    labelled_documents : int
+        Labelled documents with at least one token (fixed responsibilities).
     """
 
     objective_trace: list[float] = field(default_factory=list)
@@ -137,6 +153,7 @@ class FitReport:
     reseeded: list[int] = field(default_factory=list)
     reseed_iterations: list[int] = field(default_factory=list)
     documents: int = 0
+    labelled_documents: int = 0
 
     @property
     def winner(self) -> RestartSummary | None:
@@ -178,6 +195,58 @@ def iteration_bound(config: MixtureConfig, kinds: tuple[str, ...]) -> int:
 
 
 @dataclass
+class FixedResponsibilities:
+    """Labelled rows of a batch fit and the weight of every row (semi-supervised EM).
+
+    Attributes
+    ----------
+    rows : ndarray of int
+        Row indices (into the fit's counts) of the labelled documents.
+    groups : ndarray of int
+        Array position of each labelled row's group.
+    row_weight : ndarray of shape (n_docs,)
+        ``unlabelled_weight`` for unlabelled rows, 1 for labelled rows.
+    seeder : callable (counts, K, rng) -> assignment
+        The seeding of the whole corpus that keeps the labelled rows in their groups (seeded
+        groups start from their documents; mixture.em.seed_assignment_with_labels).
+    """
+
+    rows: np.ndarray
+    groups: np.ndarray
+    row_weight: np.ndarray
+    seeder: Seeder
+
+    def __post_init__(self) -> None:
+        self.movable = np.ones(self.row_weight.shape[0], dtype=bool)
+        self.movable[self.rows] = False
+        self._local: tuple[int, sp.csr_matrix] | None = None
+
+    def fix(self, resp: np.ndarray) -> np.ndarray:
+        """Set the labelled rows one-hot on their groups, in place."""
+        if self.rows.size:
+            resp[self.rows] = 0.0
+            resp[self.rows, self.groups] = 1.0
+        return resp
+
+    def weighted(self, resp: np.ndarray) -> np.ndarray:
+        """Responsibilities times row weights: what the M-step sums."""
+        return resp * self.row_weight[:, None]
+
+    def objective(self, sweep: EMSweep, log_norm: np.ndarray) -> float:
+        """The semi-supervised MAP objective of the sweep's parameters (module docstring)."""
+        unlabelled = self.movable
+        total = float(self.row_weight[unlabelled] @ log_norm[unlabelled])
+        if self.rows.size:
+            params = sweep.parameters()
+            if self._local is None or self._local[0] != id(sweep):
+                self._local = (id(sweep), sp.csr_matrix(sweep.counts[self.rows]))
+            local = self._local[1]
+            own = np.asarray(local @ params.log_word_prob)[np.arange(self.rows.size), self.groups]
+            total += float(own.sum() + params.log_weights[self.groups].sum())
+        return total + sweep.log_prior
+
+
+@dataclass
 class _Run:
     objective: float
     word_counts: np.ndarray
@@ -197,6 +266,7 @@ def fit_restarts(
     kinds: tuple[str, ...],
     progress: Callable[[], None] | None,
     sweep_factory: SweepFactory = EMSweep,
+    fixed: FixedResponsibilities | None = None,
 ) -> tuple[np.ndarray, np.ndarray, FitReport]:
     """Runs from every seeding as :func:`seeding_kinds` plans them; the highest final MAP
     objective among the runs with every group alive wins (fewest starved groups first, should
@@ -204,6 +274,9 @@ def fit_restarts(
 
     Runs of one seeding start from the same seed assignment; revival draws from a generator
     of its own per run, so adding or removing a kind does not change the other kind's result.
+    With ``fixed`` the labelled rows keep their groups throughout (module docstring) and the
+    seeding is ``fixed.seeder``; the word and document counts returned are the weighted
+    M-step's (``lambda`` times the unlabelled plus the labelled).
     """
     best: _Run | None = None
     summaries: list[RestartSummary] = []
@@ -213,7 +286,7 @@ def fit_restarts(
         # The seeding draws from the restart's own generator, as before plain runs were added
         # (an annealed run without starved groups is the fit of then); revival draws from
         # generators spawned off it, one per kind.
-        assignment = seeder(counts, config.n_groups, child)
+        assignment = (fixed.seeder if fixed is not None else seeder)(counts, config.n_groups, child)
         revival_rngs = dict(zip((ANNEALED, PLAIN), child.spawn(2), strict=True))
         for kind in plan[seeding]:
             run = _one_run(
@@ -228,6 +301,7 @@ def fit_restarts(
                 seeder,
                 progress,
                 sweep_factory,
+                fixed,
             )
             run.summary.seeding = seeding
             summaries.append(run.summary)
@@ -258,6 +332,7 @@ def _one_run(
     seeder: Seeder,
     progress: Callable[[], None] | None,
     sweep_factory: SweepFactory = EMSweep,
+    fixed: FixedResponsibilities | None = None,
 ) -> _Run:
     n_docs = counts.shape[0]
     k = config.n_groups
@@ -266,8 +341,13 @@ def _one_run(
     )
     resp = np.zeros((n_docs, k))
     resp[np.arange(n_docs), assignment] = 1.0
-    sweep.m_step(resp)
+    if fixed is not None:
+        fixed.fix(resp)
+    _m_step(sweep, resp, fixed, after_e_step=False)
     report = FitReport(documents=n_docs)
+    if fixed is not None:
+        report.documents = int(fixed.movable.sum())
+        report.labelled_documents = int(fixed.rows.size)
 
     # Deterministic annealing (Ueda and Nakano 1998): the E-step raises the likelihood to a
     # power tau that climbs geometrically from 1 / (mean document length) to 1. At the start
@@ -280,23 +360,25 @@ def _one_run(
             resp, _ = sweep.e_step(float(tau))
             if progress is not None:
                 progress()
-            sweep.m_step_after_e_step(resp)
+            _m_step(sweep, resp, fixed)
 
-    objective, resp = _converge(sweep, config, report, progress)
-    floor = STARVED_SHARE * n_docs / k
+    objective, resp = _converge(sweep, config, report, progress, fixed)
+    mass = n_docs if fixed is None else float(fixed.row_weight.sum())
+    floor = STARVED_SHARE * mass / k
     reseeds = 0
     for _ in range(_REVIVAL_ROUNDS):
         starved = np.flatnonzero(sweep.doc_counts < floor)
         if starved.size == 0:
             break
-        revived = _split_donors(sweep, resp, starved, lengths, seeder, rng)
+        movable = None if fixed is None else fixed.movable
+        revived = _split_donors(sweep, resp, starved, lengths, seeder, rng, movable)
         if not revived:
             break
         reseeds += len(revived)
         report.reseeded.extend(revived)
-        sweep.m_step(resp)
+        _m_step(sweep, resp, fixed, after_e_step=False)
         report.reseed_iterations.append(len(report.objective_trace))
-        objective, resp = _converge(sweep, config, report, progress)
+        objective, resp = _converge(sweep, config, report, progress, fixed)
 
     doc_counts = sweep.doc_counts.copy()
     summary = RestartSummary(
@@ -310,11 +392,32 @@ def _one_run(
     return _Run(objective, sweep.word_counts(), doc_counts, report, summary)
 
 
+def _m_step(
+    sweep: EMSweep,
+    resp: np.ndarray,
+    fixed: FixedResponsibilities | None,
+    *,
+    after_e_step: bool = True,
+) -> None:
+    """The M-step; with labelled rows from the fixed, weighted responsibilities (``resp`` is
+    fixed in place first)."""
+    if fixed is None:
+        if after_e_step:
+            sweep.m_step_after_e_step(resp)
+        else:
+            sweep.m_step(resp)
+        return
+    # Not m_step_after_e_step: a distributed sweep's reduced statistics know neither the
+    # fixed rows nor the weights.
+    sweep.m_step(fixed.weighted(fixed.fix(resp)))
+
+
 def _converge(
     sweep: EMSweep,
     config: MixtureConfig,
     report: FitReport,
     progress: Callable[[], None] | None,
+    fixed: FixedResponsibilities | None = None,
 ) -> tuple[float, np.ndarray]:
     """Plain EM from the sweep's parameters until the objective settles or max_iter.
 
@@ -327,7 +430,11 @@ def _converge(
     resp = np.empty((0, 0))
     for _ in range(config.max_iter):
         resp, log_norm = sweep.e_step()
-        objective = float(log_norm.sum()) + sweep.log_prior
+        if fixed is None:
+            objective = float(log_norm.sum()) + sweep.log_prior
+        else:
+            fixed.fix(resp)
+            objective = fixed.objective(sweep, log_norm)
         report.objective_trace.append(objective)
         report.n_iter += 1
         if progress is not None:
@@ -336,7 +443,7 @@ def _converge(
             report.converged = True
             return objective, resp
         previous = objective
-        sweep.m_step_after_e_step(resp)
+        _m_step(sweep, resp, fixed)
     report.converged = False
     return objective, resp
 
@@ -348,14 +455,18 @@ def _split_donors(
     lengths: np.ndarray,
     seeder: Seeder,
     rng: np.random.Generator,
+    movable: np.ndarray | None = None,
 ) -> list[int]:
     """Give each starved group the worse-explained half of one of the largest groups.
 
     ``resp`` is changed in place (hard assignments for the moved documents). Returns the
-    groups revived (fewer than the starved ones when donors run out).
+    groups revived (fewer than the starved ones when donors run out). Only ``movable`` rows
+    (the unlabelled ones; all by default) are moved: a labelled document keeps its group.
     """
     counts = sweep.counts
     owner = resp.argmax(axis=1)
+    if movable is not None:
+        owner = np.where(movable, owner, -1)
     starved_set = set(int(g) for g in starved)
     donors = [int(g) for g in np.argsort(-sweep.doc_counts) if int(g) not in starved_set]
     log_word_prob = sweep.parameters().log_word_prob

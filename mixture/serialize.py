@@ -9,7 +9,9 @@ Layout::
 
 Version 2 adds the stable group ids, the next id and the group lifecycle's evidence
 (mixture.novelty); the number of groups is then that of the arrays, not the configuration's
-starting count. Version 1 states are still read: their groups get the ids 0..K-1.
+starting count. Version 3 adds the labelled documents (mixture.labelled; arrays ``lab.*``) and
+``log_forgetting``. Versions 1 and 2 are still read: version 1 groups get the ids 0..K-1, and
+both start with no labelled documents and ``log_forgetting`` 0.
 
 Loading checks the magic, the version and the checksum before it parses anything, and parses
 with ``np.load(..., allow_pickle=False)``, so bytes from a tampered store cannot run code. Any
@@ -30,13 +32,14 @@ import scipy.sparse as sp
 
 from mixture.config import MixtureConfig
 from mixture.errors import ConfigError, StateFormatError
+from mixture.labelled import LabelledSet
 from mixture.novelty import GroupEvidence
 from mixture.stats import MixtureState
 from mixture.vocabulary import Vocabulary
 
 MAGIC = b"MXRSTATE"
-FORMAT_VERSION = 2
-_READABLE_VERSIONS = (1, 2)
+FORMAT_VERSION = 3
+_READABLE_VERSIONS = (1, 2, 3)
 _PREFIX = struct.Struct("<8sH32s")
 
 
@@ -62,6 +65,7 @@ def state_to_bytes(state: MixtureState) -> bytes:
         "watermark": state.watermark,
         "metadata": state.metadata,
         "next_group_id": state.next_group_id,
+        "log_forgetting": state.log_forgetting,
     }
     arrays: dict[str, np.ndarray] = {
         "unscaled_word": np.ascontiguousarray(state.unscaled_word[: state.capacity]),
@@ -75,6 +79,9 @@ def state_to_bytes(state: MixtureState) -> bytes:
     if state.evidence is not None:
         for name, value in state.evidence.to_arrays().items():
             arrays[f"life.{name}"] = value
+    if len(state.labelled):
+        for name, value in state.labelled.to_arrays().items():
+            arrays[f"lab.{name}"] = value
     if state.pending is not None:
         pending = sp.csr_matrix(state.pending)
         arrays["pending.data"] = pending.data
@@ -184,6 +191,13 @@ def _build(header: dict[str, Any], arrays: dict[str, np.ndarray], version: int) 
         group_ids=group_ids,
         next_group_id=next_group_id,
     )
+    lab = {k[len("lab.") :]: v for k, v in arrays.items() if k.startswith("lab.")}
+    if lab:
+        state.labelled = LabelledSet.from_arrays(lab)
+        state.labelled.counts_matrix(vocabulary.capacity)  # word ids beyond it: InputError
+    state.log_forgetting = float(header.get("log_forgetting", 0.0))
+    if not (np.isfinite(state.log_forgetting) and state.log_forgetting <= 0.0):
+        raise StateFormatError("log_forgetting must be finite and <= 0")
     life = {k[len("life.") :]: v for k, v in arrays.items() if k.startswith("life.")}
     if life:
         state.evidence = GroupEvidence.from_arrays(life, k)

@@ -27,6 +27,15 @@ has the same weight and this is exactly the number of documents seen; with alpha
 on eta old documents are down-weighted and the effective number grows more slowly or levels
 off. The pseudo-counts are always added to that many documents' worth of evidence, so
 ``word_pseudocount = 0.1`` means the same thing after a thousand documents and after a million.
+
+Labelled documents (mixture.labelled) are not in the running average: the parameters are
+smoothed from ``lambda * (the statistics above, in count units) + (labelled counts)``, with
+``lambda = config.unlabelled_weight`` (EM-lambda, Nigam et al. 2000). The labelled counts are
+summed from ``state.labelled`` per group (cached by its revision and the group ids), so
+withdrawing one is exact. ``expected_word_counts`` / ``expected_documents`` /
+``word_totals`` are those combined counts (what the parameters, the top terms and the
+weights are made of); ``unlabelled_word_counts`` / ``unlabelled_documents`` the stepwise
+statistics alone.
 """
 
 from __future__ import annotations
@@ -40,6 +49,7 @@ import scipy.sparse as sp
 from mixture.config import MixtureConfig
 from mixture.errors import InputError
 from mixture.kernels import smoothed_log_weights, smoothed_log_word_prob
+from mixture.labelled import LabelledSet
 from mixture.tokenizer import Tokenizer
 from mixture.vocabulary import Vocabulary
 
@@ -147,11 +157,21 @@ class MixtureState:
     group_ids: np.ndarray | None = None
     next_group_id: int = -1
     evidence: GroupEvidence | None = None  # the lifecycle's evidence (mixture.novelty)
+    # Corrections and example messages: fixed responsibilities, counted whole (never decay).
+    labelled: LabelledSet = field(default_factory=LabelledSet)
+    # Sum of log(1 - eta) over every stepwise update: how much old documents were forgotten
+    # (mixture.labelled.remaining_weight).
+    log_forgetting: float = 0.0
     _revision: int = 0
-    _cached: tuple[int, Parameters] | None = field(default=None, repr=False)
+    _cached: tuple[tuple[int, int, int], Parameters] | None = field(default=None, repr=False)
+    _labelled_cached: tuple[tuple[Any, ...], _LabelledStatistics] | None = field(
+        default=None, repr=False
+    )
     _tokenizer: Tokenizer | None = field(default=None, repr=False)
 
     def __post_init__(self) -> None:
+        if self.labelled is None:
+            self.labelled = LabelledSet()
         if self.group_ids is None:
             self.group_ids = np.arange(self.unscaled_docs.shape[0], dtype=np.int64)
         if self.next_group_id < 0:
@@ -245,17 +265,62 @@ class MixtureState:
         self._revision += 1
 
     # ---- statistics in count units --------------------------------------------------------
-    def expected_word_counts(self) -> np.ndarray:
-        """Expected word counts per group, shape (capacity, K), in documents' worth."""
+    def unlabelled_word_counts(self) -> np.ndarray:
+        """Stepwise word statistics alone, shape (capacity, K), in documents' worth."""
         return self.unscaled_word[: self.capacity] * self.count_scale
 
-    def expected_documents(self) -> np.ndarray:
-        """Expected documents per group, shape (K,)."""
+    def unlabelled_documents(self) -> np.ndarray:
+        """Stepwise documents per group alone, shape (K,), in documents' worth."""
         return self.unscaled_docs * self.count_scale
 
+    def labelled_statistics(self) -> _LabelledStatistics:
+        """Per-group sums of the labelled documents (cached by the set's revision, the group
+        ids and the capacity). Documents naming a group id that is not current add nothing."""
+        assert self.group_ids is not None
+        key = (
+            self.labelled.revision,
+            id(self.labelled),
+            self.group_ids.tobytes(),
+            self.capacity,
+            self.vocabulary.generation,
+        )
+        if self._labelled_cached is not None and self._labelled_cached[0] == key:
+            return self._labelled_cached[1]
+        stats = _sum_labelled(self.labelled, self.group_ids, self.capacity)
+        self._labelled_cached = (key, stats)
+        return stats
+
+    def _weighted(self, unlabelled: np.ndarray) -> np.ndarray:
+        weight = self.config.unlabelled_weight
+        return unlabelled if weight == 1.0 else unlabelled * weight
+
+    def expected_word_counts(self) -> np.ndarray:
+        """Counts the word distributions are smoothed from, shape (capacity, K):
+        ``lambda * unlabelled + labelled`` (documents' worth)."""
+        counts = self._weighted(self.unlabelled_word_counts())
+        if len(self.labelled):
+            counts = counts + self.labelled_statistics().word.toarray()
+        return counts
+
+    def expected_documents(self) -> np.ndarray:
+        """Documents per group the weights are smoothed from, shape (K,):
+        ``lambda * unlabelled + labelled``."""
+        docs = self._weighted(self.unlabelled_documents())
+        if len(self.labelled):
+            docs = docs + self.labelled_statistics().docs
+        return docs
+
+    def word_totals(self) -> np.ndarray:
+        """Active word counts per group of :meth:`expected_word_counts`, shape (K,)."""
+        totals = self._weighted(self.unscaled_total * self.count_scale)
+        if len(self.labelled):
+            totals = totals + self.labelled_statistics().totals
+        return totals
+
     def parameters(self) -> Parameters:
-        """Log parameters (cached until the statistics change)."""
-        if self._cached is not None and self._cached[0] == self._revision:
+        """Log parameters (cached until the statistics or the labelled documents change)."""
+        key = (self._revision, self.labelled.revision, id(self.labelled))
+        if self._cached is not None and self._cached[0] == key:
             return self._cached[1]
         params = derive_parameters(
             self.expected_word_counts(),
@@ -264,7 +329,7 @@ class MixtureState:
             self.config.word_pseudocount,
             self.config.weight_pseudocount,
         )
-        self._cached = (self._revision, params)
+        self._cached = (key, params)
         return params
 
     def log_weights(self) -> np.ndarray:
@@ -278,9 +343,15 @@ class MixtureState:
     def log_word_prob_rows(self, rows: np.ndarray) -> np.ndarray:
         """log theta for some word ids only, shape (len(rows), K): O(len(rows) K)."""
         scale = self.count_scale
+        weight = self.config.unlabelled_weight
+        if weight != 1.0:
+            scale = scale * weight
+        counts = self.unscaled_word[rows] * scale
+        if len(self.labelled):
+            counts += self.labelled_statistics().word[rows].toarray()
         return smoothed_log_word_prob(
-            self.unscaled_word[rows] * scale,
-            self.unscaled_total * scale,
+            counts,
+            self.word_totals(),
             self.vocabulary.n_active,
             self.config.word_pseudocount,
         )
@@ -317,6 +388,10 @@ class MixtureState:
         active_ids = np.flatnonzero(vocab.active_mask())
         if word_totals is None:
             totals = self.unscaled_word[active_ids].sum(axis=1)
+            if len(self.labelled):
+                # A word only the labelled documents use is kept by their counts.
+                labelled = np.asarray(self.labelled_statistics().word.sum(axis=1)).ravel()
+                totals = self._weighted(totals * self.count_scale) + labelled[active_ids]
         else:
             totals = np.asarray(word_totals, dtype=np.float64)[active_ids]
         n_retire = active_ids.size - target
@@ -330,9 +405,41 @@ class MixtureState:
             self.pending = _drop_columns(self.pending, retire)
         if self.evidence is not None:
             self.evidence.drop_words(retire)
+        self.labelled.drop_words(retire)
         self.maybe_compact()
         self.touch()
         return int(n_retire)
+
+    def retire_unused_words(self, candidates: np.ndarray) -> int:
+        """Retire those candidate word ids that nothing holds any more: no unlabelled
+        statistics, no labelled document, no buffered document (warm-up or novelty buffer).
+
+        Called when labelled documents leave, so that the vocabulary (and with it the
+        smoothing over V words) is that of never having had them. Returns how many retired.
+        """
+        vocab = self.vocabulary
+        ids = np.unique(np.asarray(candidates, dtype=np.int64))
+        ids = ids[ids < vocab.capacity]
+        ids = ids[vocab.active_mask()[ids]]
+        if ids.size == 0:
+            return 0
+        self.ensure_capacity()
+        held = np.any(self.unscaled_word[ids] != 0.0, axis=1)
+        if len(self.labelled):
+            held |= np.isin(ids, self.labelled.word_ids_of(self.labelled.ids()))
+        for buffered in (
+            self.pending,
+            None if self.evidence is None else self.evidence.buffer,
+        ):
+            if buffered is not None and buffered.nnz:
+                held |= np.isin(ids, buffered.indices)
+        orphans = ids[~held]
+        if orphans.size == 0:
+            return 0
+        vocab.retire(orphans)
+        self.maybe_compact()
+        self.touch()
+        return int(orphans.size)
 
     def maybe_compact(self) -> None:
         """Renumber words densely once retired ids outnumber active ones (bounds memory)."""
@@ -355,6 +462,7 @@ class MixtureState:
             )
         if self.evidence is not None:
             self.evidence.renumber_words(mapping, vocab.capacity)
+        self.labelled.renumber_words(mapping)
         self.touch()
 
     def copy(self) -> MixtureState:
@@ -362,6 +470,36 @@ class MixtureState:
         from mixture.serialize import state_from_bytes, state_to_bytes
 
         return state_from_bytes(state_to_bytes(self))
+
+
+@dataclass(frozen=True)
+class _LabelledStatistics:
+    """Per-group sums of the labelled documents over the state's positions."""
+
+    word: sp.csr_matrix  # (capacity, K) word counts
+    docs: np.ndarray  # (K,) documents with at least one token
+    totals: np.ndarray  # (K,) tokens
+
+
+def _sum_labelled(
+    labelled: LabelledSet, group_ids: np.ndarray, capacity: int
+) -> _LabelledStatistics:
+    k = int(group_ids.shape[0])
+    if not len(labelled):
+        return _LabelledStatistics(sp.csr_matrix((capacity, k)), np.zeros(k), np.zeros(k))
+    counts = labelled.counts_matrix(capacity)
+    position = {int(g): i for i, g in enumerate(group_ids)}
+    positions = np.array([position.get(int(g), -1) for g in labelled.groups()], dtype=np.int64)
+    tokens = np.asarray(counts.sum(axis=1)).ravel()
+    # Without a token a document carries no evidence (as in stepwise and batch EM).
+    rows = np.flatnonzero((positions >= 0) & (tokens > 0))
+    onehot = sp.csr_matrix(
+        (np.ones(rows.size), (rows, positions[rows])), shape=(counts.shape[0], k)
+    )
+    word = sp.csr_matrix(counts.T @ onehot)
+    docs = np.bincount(positions[rows], minlength=k).astype(np.float64)
+    totals = np.bincount(positions[rows], weights=tokens[rows], minlength=k)
+    return _LabelledStatistics(word, docs, totals)
 
 
 def warm_start_step(config: MixtureConfig, n_documents: float) -> float:

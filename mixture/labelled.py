@@ -1,0 +1,517 @@
+"""Labelled documents: operators' corrections and example messages, kept inside the state.
+
+Semi-supervised EM after Nigam, McCallum, Thrun and Mitchell (2000), "Text classification from
+labeled and unlabeled documents using EM" (Machine Learning 39):
+
+- a labelled document keeps its class: its responsibility is one-hot on its group and is never
+  re-estimated, in batch EM (every iteration, every temperature of the annealing, around every
+  revival) and in stepwise EM (labelled documents never enter a stepwise step: their counts
+  are added to the group's statistics whole, at every derivation of the parameters);
+- EM-lambda: each unlabelled document weighs ``lambda`` (``MixtureConfig.unlabelled_weight``)
+  in the M-step, each labelled one 1. The parameters are smoothed from::
+
+      lambda * (unlabelled statistics in count units) + (labelled counts)
+
+  where the unlabelled statistics are the running average of stepwise EM turned into counts
+  with Kish's effective number of documents (mixture.stats). Labelled counts are real counts:
+  they never decay.
+
+The labelled statistics are always derived from the set (per-group sums cached by the set's
+revision and the state's group ids), never folded into the running average, so that
+withdrawing a document is exact: the parameters afterwards are those of never having had it.
+
+Groups are named by stable ids (``state.group_ids``); a labelled document names its group's
+id, mapped to an array position only when the statistics are summed. A birth never gets
+labelled documents; a merge moves them to the survivor (mixture.lifecycle).
+
+How much of an unlabelled document remains
+------------------------------------------
+A correction of a message that was already learned as an unlabelled document does not take
+that document out of the running average (its responsibilities were never stored); the
+stepwise statistics forget it at the model's pace, and :func:`remaining_weight` says exactly
+how much of it is left. A document learned in a unit of ``m`` documents at step size ``eta``
+had weight ``eta / m`` in the running average right after that unit; every later update
+multiplies every old weight by ``1 - eta_j``, so its weight now is::
+
+    (eta / m) * exp(log_forgetting_now - log_forgetting_after_its_unit)
+
+with ``MixtureState.log_forgetting`` the running sum of ``log(1 - eta_j)`` over every stepwise
+update (``BatchReport.unit_log_forgetting`` gives its value after each unit). A warm-up
+document had weight ``1 / n`` (the n documents of the warm-up fit, ``log_forgetting`` then 0).
+In count units (documents' worth in the parameters, before the factor lambda) a weight w is
+``w / state.weight_square_sum`` (:func:`remaining_documents`): 1.0 is one whole document.
+"""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from mixture.errors import InputError, StateFormatError
+
+if TYPE_CHECKING:
+    from mixture.stats import MixtureState
+
+__all__ = [
+    "EXCERPT_CHARACTERS",
+    "LABELLED_SOURCES",
+    "LabelledCounts",
+    "LabelledItem",
+    "LabelledSet",
+    "remaining_documents",
+    "remaining_weight",
+]
+
+# Where a labelled document came from: an operator's correction, or an example message given
+# to start or grow a group.
+LABELLED_SOURCES = ("correction", "example")
+# Characters of the text kept for listing (the text itself is not kept: its counts are).
+EXCERPT_CHARACTERS = 200
+# Longest document id accepted (client ids in the stream are of this order).
+_MAX_ID_LENGTH = 512
+
+
+@dataclass(frozen=True)
+class LabelledItem:
+    """One labelled document to learn.
+
+    Attributes
+    ----------
+    doc_id : str
+        The document's id (a client id, or one the caller made); one entry per id.
+    text : str
+        Its text.
+    group_id : int
+        Stable id of its group (``state.group_ids``).
+    source : str
+        ``"correction"`` or ``"example"``.
+    """
+
+    doc_id: str
+    text: str
+    group_id: int
+    source: str = "correction"
+
+    def check(self) -> None:
+        """Raise InputError naming the field when a value cannot be used."""
+        if not isinstance(self.doc_id, str) or not self.doc_id:
+            raise InputError("doc_id must be a non-empty str")
+        if len(self.doc_id) > _MAX_ID_LENGTH:
+            raise InputError(f"doc_id is longer than {_MAX_ID_LENGTH} characters")
+        if not isinstance(self.text, str):
+            raise InputError(f"text of {self.doc_id!r} must be a str")
+        if isinstance(self.group_id, bool) or not isinstance(self.group_id, int | np.integer):
+            raise InputError(f"group_id of {self.doc_id!r} must be an int")
+        if self.source not in LABELLED_SOURCES:
+            raise InputError(
+                f"source of {self.doc_id!r} must be one of {', '.join(LABELLED_SOURCES)}; "
+                f"got {self.source!r}"
+            )
+
+
+@dataclass(frozen=True)
+class LabelledCounts:
+    """Labelled documents as batch EM takes them: counts and a fixed group per row.
+
+    Attributes
+    ----------
+    counts : csr_matrix of shape (L, V)
+        Word counts over the same columns as the unlabelled counts.
+    groups : ndarray of shape (L,) of int
+        Array position (0..K-1) of each row's group in the fit.
+    """
+
+    counts: sp.csr_matrix
+    groups: np.ndarray
+
+    def __len__(self) -> int:
+        return int(self.groups.shape[0])
+
+
+class LabelledSet:
+    """The labelled documents of one state, in the order they were first given.
+
+    Each document has its id, its group's stable id, its source, an excerpt of its text (for
+    listing) and its word counts over the state's vocabulary ids (one CSR row). Replacing a
+    document keeps its place; removing one closes the gap. ``revision`` moves with every
+    change, so per-group sums can be cached by it.
+    """
+
+    def __init__(self) -> None:
+        self._ids: list[str] = []
+        self._index: dict[str, int] = {}
+        self._groups: list[int] = []
+        self._sources: list[str] = []
+        self._excerpts: list[str] = []
+        self._indices: list[np.ndarray] = []  # int64 word ids, sorted, distinct
+        self._data: list[np.ndarray] = []  # float64 counts
+        self.revision = 0
+
+    # ---- reading ---------------------------------------------------------------------------
+    def __len__(self) -> int:
+        return len(self._ids)
+
+    def len(self) -> int:
+        """Number of labelled documents."""
+        return len(self._ids)
+
+    def __contains__(self, doc_id: object) -> bool:
+        return doc_id in self._index
+
+    def ids(self) -> list[str]:
+        """Document ids in order."""
+        return list(self._ids)
+
+    def group_of(self, doc_id: str) -> int | None:
+        """Group id of a labelled document, None when the id is not labelled."""
+        index = self._index.get(doc_id)
+        return None if index is None else self._groups[index]
+
+    def groups(self) -> np.ndarray:
+        """Group id of every document, in order, shape (L,) int64."""
+        return np.asarray(self._groups, dtype=np.int64)
+
+    def tokens(self) -> np.ndarray:
+        """Tokens of every document (over active words), shape (L,) float64."""
+        return np.array([float(d.sum()) for d in self._data], dtype=np.float64)
+
+    def documents(self) -> list[dict[str, Any]]:
+        """Every labelled document for listing.
+
+        Returns
+        -------
+        list of dict
+            ``{"id", "group", "source", "excerpt", "tokens"}`` in order; ``tokens`` counts the
+            document's words still in the vocabulary.
+        """
+        return [
+            {
+                "id": doc_id,
+                "group": int(group),
+                "source": source,
+                "excerpt": excerpt,
+                "tokens": round(float(data.sum())),
+            }
+            for doc_id, group, source, excerpt, data in zip(
+                self._ids, self._groups, self._sources, self._excerpts, self._data, strict=True
+            )
+        ]
+
+    def group_counts(self) -> dict[int, int]:
+        """Labelled documents per group id (groups without any are left out)."""
+        out: dict[int, int] = {}
+        for group in self._groups:
+            out[group] = out.get(group, 0) + 1
+        return out
+
+    def source_counts(self) -> dict[str, int]:
+        """Labelled documents per source."""
+        out: dict[str, int] = {}
+        for source in self._sources:
+            out[source] = out.get(source, 0) + 1
+        return out
+
+    def word_ids_of(self, doc_ids: Iterable[str]) -> np.ndarray:
+        """Distinct word ids the given documents use (unknown ids are ignored)."""
+        parts = [self._indices[self._index[d]] for d in doc_ids if d in self._index]
+        if not parts:
+            return np.zeros(0, dtype=np.int64)
+        return np.unique(np.concatenate(parts))
+
+    def holds_group(self, group_id: int) -> bool:
+        """Whether any labelled document names this group id."""
+        return int(group_id) in set(self._groups)
+
+    def counts_matrix(self, capacity: int) -> sp.csr_matrix:
+        """Word counts of every document, shape (L, capacity) CSR."""
+        n = len(self._ids)
+        lengths = np.fromiter((i.size for i in self._indices), dtype=np.int64, count=n)
+        indptr = np.zeros(n + 1, dtype=np.int64)
+        np.cumsum(lengths, out=indptr[1:])
+        indices = np.concatenate(self._indices) if n else np.zeros(0, dtype=np.int64)
+        data = np.concatenate(self._data) if n else np.zeros(0, dtype=np.float64)
+        if indices.size and int(indices.max()) >= capacity:
+            raise InputError("labelled counts name word ids beyond the vocabulary's capacity")
+        return sp.csr_matrix((data, indices, indptr), shape=(n, capacity))
+
+    # ---- changing --------------------------------------------------------------------------
+    def put(
+        self,
+        doc_id: str,
+        group_id: int,
+        source: str,
+        excerpt: str,
+        row: sp.csr_matrix,
+    ) -> bool:
+        """Add a document or replace the one with this id (keeping its place).
+
+        Returns False (and changes nothing) when the id is held with the same group, source
+        and counts: learning the same correction twice is a no-op.
+        """
+        row = sp.csr_matrix(row, dtype=np.float64)
+        row.sum_duplicates()
+        indices = row.indices.astype(np.int64)
+        data = row.data.astype(np.float64)
+        keep = data > 0
+        indices, data = indices[keep], data[keep]
+        index = self._index.get(doc_id)
+        if index is not None:
+            if (
+                self._groups[index] == int(group_id)
+                and self._sources[index] == source
+                and np.array_equal(self._indices[index], indices)
+                and np.array_equal(self._data[index], data)
+            ):
+                return False
+            self._groups[index] = int(group_id)
+            self._sources[index] = source
+            self._excerpts[index] = excerpt
+            self._indices[index] = indices
+            self._data[index] = data
+        else:
+            self._index[doc_id] = len(self._ids)
+            self._ids.append(doc_id)
+            self._groups.append(int(group_id))
+            self._sources.append(source)
+            self._excerpts.append(excerpt)
+            self._indices.append(indices)
+            self._data.append(data)
+        self.revision += 1
+        return True
+
+    def remove(self, doc_ids: Iterable[str]) -> int:
+        """Remove documents by id (unknown ids are ignored); returns how many were removed."""
+        drop = {self._index[d] for d in doc_ids if d in self._index}
+        if not drop:
+            return 0
+        keep = [i for i in range(len(self._ids)) if i not in drop]
+        self._ids = [self._ids[i] for i in keep]
+        self._groups = [self._groups[i] for i in keep]
+        self._sources = [self._sources[i] for i in keep]
+        self._excerpts = [self._excerpts[i] for i in keep]
+        self._indices = [self._indices[i] for i in keep]
+        self._data = [self._data[i] for i in keep]
+        self._index = {d: i for i, d in enumerate(self._ids)}
+        self.revision += 1
+        return len(drop)
+
+    def move_group(self, old_id: int, new_id: int) -> int:
+        """Give every document of group ``old_id`` to ``new_id`` (a merge); returns how many."""
+        moved = 0
+        for i, group in enumerate(self._groups):
+            if group == old_id:
+                self._groups[i] = int(new_id)
+                moved += 1
+        if moved:
+            self.revision += 1
+        return moved
+
+    def drop_words(self, word_ids: np.ndarray) -> None:
+        """Take retired word ids out of every document's counts."""
+        retired = np.asarray(word_ids, dtype=np.int64)
+        if retired.size == 0 or not self._ids:
+            return
+        changed = False
+        for i, indices in enumerate(self._indices):
+            keep = ~np.isin(indices, retired, assume_unique=True)
+            if not keep.all():
+                self._indices[i] = indices[keep]
+                self._data[i] = self._data[i][keep]
+                changed = True
+        if changed:
+            self.revision += 1
+
+    def renumber_words(self, mapping: np.ndarray) -> None:
+        """Apply a vocabulary compaction (old id -> new id, -1 for retired) to the counts."""
+        if not self._ids:
+            return
+        for i, indices in enumerate(self._indices):
+            new = mapping[indices]
+            keep = new >= 0
+            order = np.argsort(new[keep], kind="stable")
+            self._indices[i] = new[keep][order].astype(np.int64)
+            self._data[i] = self._data[i][keep][order]
+        self.revision += 1
+
+    def copy(self) -> LabelledSet:
+        """An independent copy."""
+        return LabelledSet.from_arrays(self.to_arrays())
+
+    # ---- bytes -----------------------------------------------------------------------------
+    def to_arrays(self) -> dict[str, np.ndarray]:
+        """Plain arrays (no object arrays): fit for the state's npz archive."""
+        meta = {"ids": self._ids, "sources": self._sources, "excerpts": self._excerpts}
+        matrix_indptr = np.zeros(len(self._ids) + 1, dtype=np.int64)
+        np.cumsum([i.size for i in self._indices], out=matrix_indptr[1:])
+        return {
+            "meta": np.frombuffer(json.dumps(meta).encode("utf-8"), dtype=np.uint8),
+            "groups": np.asarray(self._groups, dtype=np.int64),
+            "indptr": matrix_indptr,
+            "indices": (
+                np.concatenate(self._indices) if self._ids else np.zeros(0, dtype=np.int64)
+            ).astype(np.int64),
+            "data": (
+                np.concatenate(self._data) if self._ids else np.zeros(0, dtype=np.float64)
+            ).astype(np.float64),
+        }
+
+    @classmethod
+    def from_arrays(cls, arrays: dict[str, np.ndarray]) -> LabelledSet:
+        """Read what :meth:`to_arrays` wrote; StateFormatError when it is inconsistent."""
+        try:
+            meta = json.loads(np.asarray(arrays["meta"]).tobytes().decode("utf-8"))
+            ids, sources, excerpts = meta["ids"], meta["sources"], meta["excerpts"]
+            groups = np.asarray(arrays["groups"], dtype=np.int64)
+            indptr = np.asarray(arrays["indptr"], dtype=np.int64)
+            indices = np.asarray(arrays["indices"], dtype=np.int64)
+            data = np.asarray(arrays["data"], dtype=np.float64)
+        except (KeyError, ValueError, UnicodeDecodeError, TypeError) as exc:
+            raise StateFormatError(f"labelled documents are malformed: {exc}") from exc
+        n = len(ids)
+        if not (
+            len(sources) == n == len(excerpts) == groups.shape[0]
+            and indptr.shape == (n + 1,)
+            and indptr[0] == 0
+            and indptr[-1] == indices.size == data.size
+            and np.all(np.diff(indptr) >= 0)
+            and len(set(ids)) == n
+        ):
+            raise StateFormatError("labelled documents are inconsistent (lengths or ids)")
+        if data.size and (not np.all(np.isfinite(data)) or data.min() < 0):
+            raise StateFormatError("labelled counts must be finite and non-negative")
+        if indices.size and indices.min() < 0:
+            raise StateFormatError("labelled counts name negative word ids")
+        out = cls()
+        for i in range(n):
+            if not isinstance(ids[i], str) or sources[i] not in LABELLED_SOURCES:
+                raise StateFormatError("labelled documents hold a bad id or source")
+            out._index[ids[i]] = i
+            out._ids.append(ids[i])
+            out._groups.append(int(groups[i]))
+            out._sources.append(str(sources[i]))
+            out._excerpts.append(str(excerpts[i]))
+            out._indices.append(indices[indptr[i] : indptr[i + 1]].copy())
+            out._data.append(data[indptr[i] : indptr[i + 1]].copy())
+        return out
+
+
+def remaining_weight(
+    unit_eta: float,
+    unit_documents: int,
+    log_forgetting_after_unit: float,
+    log_forgetting_now: float,
+) -> float:
+    """Weight an unlabelled document still has in the stepwise running average.
+
+    A document learned in a unit of ``unit_documents`` documents at step size ``unit_eta``
+    weighed ``unit_eta / unit_documents`` right after that unit; every update since multiplied
+    it by ``1 - eta_j``, which ``MixtureState.log_forgetting`` sums in log space. For a
+    document of the warm-up fit pass ``unit_eta = 1``, ``unit_documents`` = the documents of
+    the fit and the ``log_forgetting`` at the fit (0 for a state that began with it).
+
+    Parameters
+    ----------
+    unit_eta : float
+        The step size its unit took (``BatchReport.unit_etas``).
+    unit_documents : int
+        Documents with tokens in that unit (``BatchReport.unit_documents``).
+    log_forgetting_after_unit : float
+        ``state.log_forgetting`` right after that unit (``BatchReport.unit_log_forgetting``).
+    log_forgetting_now : float
+        ``state.log_forgetting`` now.
+
+    Returns
+    -------
+    float
+        The document's weight in the running average, in [0, 1] (the weights of all documents
+        learned sum to 1 without retirements).
+    """
+    if unit_documents <= 0:
+        raise InputError("unit_documents must be positive")
+    if log_forgetting_now > log_forgetting_after_unit + 1e-12:
+        raise InputError("log_forgetting_now must not exceed the value after the unit")
+    return float(unit_eta / unit_documents * np.exp(log_forgetting_now - log_forgetting_after_unit))
+
+
+def remaining_documents(weight: float, weight_square_sum: float) -> float:
+    """A running-average weight in count units: the documents' worth it adds to the counts
+    the parameters are smoothed from (before the factor lambda); 1.0 is one whole document.
+
+    ``weight_square_sum`` is ``state.weight_square_sum`` (Kish: counts = average / sum w^2).
+    """
+    return float(weight / weight_square_sum)
+
+
+def check_items(items: Sequence[LabelledItem]) -> list[LabelledItem]:
+    """Validate a batch of items (InputError naming the first bad one); returns them as a list."""
+    if isinstance(items, LabelledItem) or not isinstance(items, Sequence):
+        raise InputError("items must be a sequence of LabelledItem")
+    for index, item in enumerate(items):
+        if not isinstance(item, LabelledItem):
+            raise InputError(f"item at index {index} must be a LabelledItem")
+        item.check()
+    return list(items)
+
+
+@dataclass(frozen=True)
+class AddedItems:
+    """What :func:`add_items` did: documents added, moved or replaced; tokens; new words."""
+
+    changed: int
+    tokens: int
+    new_words: int
+
+
+def add_items(state: MixtureState, items: Sequence[LabelledItem]) -> AddedItems:
+    """Count labelled items over the state's vocabulary (growing it) and put them in
+    ``state.labelled``, in order. All checks come first: on InputError nothing changed.
+
+    Raises
+    ------
+    InputError
+        For a bad item, a group id that is not a current group, or more labelled documents
+        than ``config.labelled_limit``.
+    """
+    from mixture.counting import count_texts
+
+    items = check_items(items)
+    if not items:
+        return AddedItems(0, 0, 0)
+    assert state.group_ids is not None
+    current = {int(g) for g in state.group_ids}
+    for item in items:
+        if int(item.group_id) not in current:
+            raise InputError(
+                f"group {int(item.group_id)} (of labelled document {item.doc_id!r}) is not a "
+                f"current group: it was retired, merged or never made"
+            )
+    new_ids = {item.doc_id for item in items if item.doc_id not in state.labelled}
+    limit = state.config.labelled_limit
+    if len(state.labelled) + len(new_ids) > limit:
+        raise InputError(
+            f"labelled documents would number {len(state.labelled) + len(new_ids)}, over "
+            f"labelled_limit ({limit}); withdraw some first or raise the limit"
+        )
+    replaced = state.labelled.word_ids_of([item.doc_id for item in items])
+    batch = count_texts([item.text for item in items], state.tokenizer, state.vocabulary, True)
+    state.ensure_capacity()
+    counts = batch.counts
+    changed = 0
+    for index, item in enumerate(items):
+        changed += state.labelled.put(
+            item.doc_id,
+            int(item.group_id),
+            item.source,
+            item.text[:EXCERPT_CHARACTERS],
+            counts[index],
+        )
+    if changed:
+        state.touch()
+        # A replaced text's words that nothing else holds leave with it.
+        state.retire_unused_words(replaced)
+    return AddedItems(changed, int(counts.sum()), batch.new_words)
