@@ -28,6 +28,8 @@ group that kept its shape (b about a = 0.01) that is at most 0.01 bit; when junk
 share b of the group the bound grows towards 0.04 bit, but the rest bucket then carries b and
 the value itself is already large: a group half of whose words are new and disjoint from the
 sketch's has JS 0.311 over all words and at least 0.276 on the sketch (0.283 measured).
+The comparison costs O(words of the sketch x K), whatever the vocabulary's size: under 1 ms
+for eight labelled groups of the invented demo (about 400 words each; 5-10 kB of JSON).
 
 A label is *stale* when the value passes the model's ``label_stale_threshold``
 (:class:`state.options.ModelOptions`, 0.25 bit; why that value: see there).
@@ -178,10 +180,7 @@ def sketch_partition(
     if group_id not in ids:
         return None, None
     position = ids.index(group_id)
-    lookup = state.vocabulary.lookup
-    word_ids = np.fromiter(
-        (lookup(w) for w in sketch.words), dtype=np.int64, count=len(sketch.words)
-    )
+    word_ids = state.vocabulary.lookup_many(sketch.words)
     now = np.zeros(len(sketch.words) + 1)
     known = word_ids >= 0  # a word retired or compacted away since has probability 0 now
     if known.any() and state.vocabulary.n_active:

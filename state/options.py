@@ -80,8 +80,9 @@ class ModelOptions:
         least 0.276 on the compact record (its error bound), so 0.25 fires on any such half
         take-over (h(0.4) = 0.236 does not), while the content drift alert
         (``word_drift_threshold``) already fires at 0.1 bit for ordinary drift. Measured on
-        the invented ferry week: the storm day moves no group past 0.02, the junk burst takes
-        two groups to 0.41 (tests/test_label_stale.py).
+        the invented ferry week (seeds 0-5 at 0.4 of its size, 0-2 at full size): the storm
+        day moves no group past 0.053, the junk burst takes the groups it lands in to 0.27-0.58
+        and leaves the others under 0.14 (tests/test_label_stale.py runs three of these).
     """
 
     checkpoint_documents: int = 1000
