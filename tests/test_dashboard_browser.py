@@ -466,6 +466,7 @@ def test_dashboard_reassigns_and_confirms_flagged_messages_by_keyboard_and_count
             what="the count on the page",
         )
         assert browser.execute_script("return document.documentElement.scrollWidth") <= 390
+        browser.execute_script("arguments[0].scrollIntoView()", flagged_row(browser, other["id"]))
         browser.save_screenshot(str(ARTEFACTS / "dashboard-phone-corrected.png"))
     finally:
         phone_width(browser, None)
