@@ -282,6 +282,17 @@ class ModelCollector(Collector):
         weight = GaugeMetricFamily(
             "mixroute_group_weight", "Mixture weight of each group.", labels=["model", "group"]
         )
+        label_divergence = GaugeMetricFamily(
+            "mixroute_label_divergence",
+            "JS divergence (bits) of each labelled group's words now from those its label was "
+            "given to; the label is stale above mixroute_label_stale_threshold.",
+            labels=["model", "group"],
+        )
+        label_threshold = GaugeMetricFamily(
+            "mixroute_label_stale_threshold",
+            "The model's label_stale_threshold (bits).",
+            labels=["model"],
+        )
         from_redis = {
             key: family(name, documentation, labels=["model"])
             for key, (family, name, documentation) in _REDIS_FAMILIES.items()
@@ -306,6 +317,9 @@ class ModelCollector(Collector):
             weights = state.weights().tolist() if state is not None else [1.0 / k] * k
             for group, value in zip(ids, weights, strict=True):
                 weight.add_metric([name, str(group)], value)
+            for group, value in sorted(loaded.label_divergence.items()):
+                label_divergence.add_metric([name, str(group)], value)
+            label_threshold.add_metric([name], loaded.label_stale_threshold)
             if not reachable:
                 continue
             try:
@@ -318,7 +332,8 @@ class ModelCollector(Collector):
             except REDIS_DOWN_ERRORS:
                 reachable = False
         redis_up.add_metric([], 1.0 if reachable else 0.0)
-        yield from (version, learned, weight, *from_redis.values(), redis_up)
+        yield from (version, learned, weight, label_divergence, label_threshold)
+        yield from (*from_redis.values(), redis_up)
 
     @staticmethod
     def _from_redis(

@@ -143,6 +143,14 @@ def test_stale_labels_through_the_api_and_the_worker(api: tuple[Any, str]) -> No
     calm_results = client.post(f"/models/{model}/route", json={"documents": calm}).json()
     assert any(r["label_stale"] is False for r in calm_results["results"])
 
+    # the metrics carry the same figures (served from the same memory)
+    metrics = client.get("/metrics").text
+    for g, body in now.items():
+        line = f'mixroute_label_divergence{{group="{g}",model="{model}"}} '
+        value = float(metrics.split(line, 1)[1].split("\n", 1)[0])
+        assert value == pytest.approx(body["label_divergence"], rel=1e-9)
+    assert f'mixroute_label_stale_threshold{{model="{model}"}} {THRESHOLD}' in metrics
+
     # one alert per stale group, from the worker's checkpoint; more learning adds none
     def label_alerts() -> list[dict[str, Any]]:
         listed = client.get(f"/models/{model}/drift/alerts").json()["alerts"]
