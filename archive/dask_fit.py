@@ -32,6 +32,7 @@ import scipy.sparse as sp
 from mixture.config import MixtureConfig
 from mixture.em import Progress, fit_texts
 from mixture.kernels import softmax_rows
+from mixture.labelled import LabelledItem
 from mixture.restarts import FitReport
 from mixture.stats import MixtureState
 from mixture.sweep import EMSweep
@@ -316,6 +317,7 @@ def fit_texts_on_dask(
     seed: int = 0,
     partitions: int | None = None,
     progress: Progress | None = None,
+    labelled: Sequence[LabelledItem] = (),
 ) -> tuple[MixtureState, FitReport]:
     """:func:`mixture.em.fit_texts` with every E-step on the Dask cluster of ``client``.
 
@@ -329,6 +331,9 @@ def fit_texts_on_dask(
     partitions : int, optional
         Row partitions of the archive (default: two per worker thread).
     progress : callable (done, total), optional
+    labelled : sequence of LabelledItem
+        Examples of groups (``mixroute fit --seeds``): fixed responsibilities, as in
+        :func:`mixture.em.fit_texts`.
 
     Returns
     -------
@@ -336,7 +341,14 @@ def fit_texts_on_dask(
     """
     factory = DaskSweep.factory(client, partitions)
     try:
-        return fit_texts(list(texts), config, seed=seed, progress=progress, sweep_factory=factory)
+        return fit_texts(
+            list(texts),
+            config,
+            seed=seed,
+            progress=progress,
+            sweep_factory=factory,
+            labelled=labelled,
+        )
     finally:
         factory.partition_set.release()  # type: ignore[attr-defined]
 

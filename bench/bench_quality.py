@@ -34,9 +34,21 @@ with K given and with K unknown (2 groups at the start, max_groups twice the tru
 with the lifecycle off and on. Last, the lifecycle's cost: learn time over the same stream at
 the same K with it off and on (best of three), as the share of the bare learner kept.
 
+A fifth table is semi-supervised (Nigam, McCallum, Thrun and Mitchell 2000): accuracy and NMI
+on the unlabelled documents against the labelled documents per class (0, 1, 3, 10), for our
+fit with those documents as examples of groups 0..C-1 (K = C, one seeding) at lambda
+(``unlabelled_weight``) 1, 0.3 and 0.1, and for scikit-learn's MultinomialNB trained on the
+same labelled documents over our count matrix (alpha = our word pseudo-count); with 0 labels
+our fit is unsupervised and its accuracy is after Hungarian matching of groups to classes
+(scipy.optimize.linear_sum_assignment), NB n/a (tests/corpora.py ``labelled_run``). Means over
+``--labelled-seeds`` draws of the labelled documents (seeds 0..N-1), the range beside. Last,
+the core's cost of one correction after the warm-up: ``learn_labelled`` of one message plus
+the parameters derived again, over one stepwise unit of ``batch_size`` messages plus the same.
+
 Run ``python -m bench.bench_quality [--seed N] [--sweep-seeds N] [--no-kinds] [--no-drift]
-[--drift-only]`` (``--sweep-seeds 0`` skips the second table, ``--no-kinds`` the third,
-``--no-drift`` the fourth; ``--drift-only`` prints the fourth alone).
+[--drift-only] [--labelled-seeds N] [--labelled-only]`` (``--sweep-seeds 0`` skips the second
+table, ``--no-kinds`` the third, ``--no-drift`` the fourth; ``--drift-only`` prints the fourth
+alone; ``--labelled-seeds 0`` skips the fifth, ``--labelled-only`` prints it alone).
 """
 
 from __future__ import annotations
@@ -253,6 +265,78 @@ def learn_seconds(stream: corpora.LabelledCorpus, k: int, seed: int) -> tuple[fl
     return best[0], best[1]
 
 
+LABELS_PER_CLASS = (0, 1, 3, 10)
+UNLABELLED_WEIGHTS = (1.0, 0.3, 0.1)
+
+
+def labelled_table(seeds: range) -> None:
+    """Print accuracy and NMI against labelled documents per class, ours and NB's."""
+    print(
+        f"{'corpus':<16} {'labels':>6} {'lambda':>6}  {'accuracy (range)':<20} "
+        f"{'NMI (range)':<20} {'NB accuracy':<20} {'NB NMI':<20} {'s/fit':>6}"
+    )
+
+    def cell(values: list[float]) -> str:
+        if np.isnan(values).all():
+            return "n/a"
+        return f"{np.mean(values):.3f} ({min(values):.3f}-{max(values):.3f})"
+
+    for corpus in load_corpora():
+        label = f"{corpus.name} (K={len(corpus.label_names)})"
+        for per_class in LABELS_PER_CLASS:
+            for weight in UNLABELLED_WEIGHTS if per_class else (1.0,):
+                runs = [
+                    corpora.labelled_run(corpus, per_class, seed=seed, unlabelled_weight=weight)
+                    for seed in seeds
+                ]
+                print(
+                    f"{label:<16} {per_class:>6} {weight:>6.1f}  "
+                    f"{cell([r.accuracy for r in runs]):<20} {cell([r.nmi for r in runs]):<20} "
+                    f"{cell([r.nb_accuracy for r in runs]):<20} "
+                    f"{cell([r.nb_nmi for r in runs]):<20} "
+                    f"{np.mean([r.seconds for r in runs]):6.1f}",
+                    flush=True,
+                )
+    correction_cost()
+
+
+def correction_cost(repeats: int = 20) -> None:
+    """Time of one correction (learn_labelled + parameters) over one stepwise unit (learn +
+    parameters), after a warm-up on BBC, measured in this run."""
+    from mixture.config import MixtureConfig
+    from mixture.labelled import LabelledItem
+    from mixture.online import OnlineLearner
+
+    try:
+        corpus = corpora.load_bbc()
+    except corpora.CorpusMissingError as exc:
+        print(f"skipped the correction cost: {exc}")
+        return
+    config = MixtureConfig(n_groups=5, n_restarts=1)
+    learner = OnlineLearner(config, seed=0)
+    size = config.batch_size
+    texts = corpus.texts
+    start = 0
+    while not learner.state.warmed_up:
+        learner.learn(texts[start : start + size])
+        start += size
+    unit_seconds, correction_seconds = [], []
+    for i in range(repeats):
+        begin = time.perf_counter()
+        learner.learn(texts[(start + i * 7) % len(texts) :][:size])
+        learner.state.parameters()
+        unit_seconds.append(time.perf_counter() - begin)
+        begin = time.perf_counter()
+        learner.learn_labelled([LabelledItem(f"c{i}", texts[i], i % 5)])
+        learner.state.parameters()
+        correction_seconds.append(time.perf_counter() - begin)
+    unit, correction = float(np.median(unit_seconds)), float(np.median(correction_seconds))
+    print(
+        f"one correction {correction * 1e3:.1f} ms against one stepwise unit of {size} "
+        f"articles {unit * 1e3:.1f} ms (medians of {repeats}): ratio {correction / unit:.2f}"
+    )
+
+
 def main(argv: list[str] | None = None) -> None:
     """Print a table of NMI, ARI and wall time per corpus and method, then the warm-up sweep."""
     parser = argparse.ArgumentParser(prog="python -m bench.bench_quality", description=__doc__)
@@ -263,9 +347,21 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--no-kinds", action="store_true", help="skip the kinds table")
     parser.add_argument("--no-drift", action="store_true", help="skip the drift-stream table")
     parser.add_argument("--drift-only", action="store_true", help="only the drift-stream table")
+    parser.add_argument(
+        "--labelled-seeds",
+        type=int,
+        default=3,
+        help="draws of the labelled documents in the semi-supervised table (0 skips it)",
+    )
+    parser.add_argument(
+        "--labelled-only", action="store_true", help="only the semi-supervised table"
+    )
     args = parser.parse_args(argv)
     if args.drift_only:
         drift_table(args.seed)
+        return
+    if args.labelled_only:
+        labelled_table(range(max(args.labelled_seeds, 1)))
         return
     loaded = load_corpora()
     print(f"{'corpus':<22} {'method':<28} {'NMI':>6} {'ARI':>6} {'seconds':>8}")
@@ -288,6 +384,9 @@ def main(argv: list[str] | None = None) -> None:
     if not args.no_drift:
         print()
         drift_table(args.seed)
+    if args.labelled_seeds > 0:
+        print()
+        labelled_table(range(args.labelled_seeds))
 
 
 if __name__ == "__main__":

@@ -14,7 +14,11 @@
 2. One checkpoint for K = 50 groups and V = 100,000 words: seconds for ``state_to_bytes`` +
    ``ModelStore.commit_checkpoint`` (one MULTI), seconds to load it back (GET +
    ``state_from_bytes``), and its size.
-3. A replay after a rollback of 1,000,000 entries (100,000 with ``--quick``) under live
+3. The cost of corrections in the worker: the same stream of short messages learned with 1%
+   corrections interleaved (each a labelled copy of an earlier message, to a group, as
+   ``POST .../corrections`` queues them) and without; the ratio of the two times, and the cost
+   of one correction against that of one document, in the same run (runs alternate).
+4. A replay after a rollback of 1,000,000 entries (100,000 with ``--quick``) under live
    traffic, with a 0.25 s lease and a standby worker: whether it completes, how long it took,
    which workers held the lease meanwhile and how many checkpoints it committed on the way.
 
@@ -44,7 +48,7 @@ from state.options import ModelOptions
 from state.records import WorkerStatus
 from state.registry import Registry
 from state.store import Checkpoint, ModelStore
-from state.stream import parse_stream_id
+from state.stream import correction_fields, parse_stream_id
 from worker.learner import Worker
 
 WORDS = [
@@ -235,6 +239,91 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int, lifecycle: bool
     print(f"  ratio worker / group loop : {statistics.median(group_ratios):12.3f}")
 
 
+def drain(store: ModelStore, options: ModelOptions) -> float:
+    """Seconds for a fresh worker to handle every entry of the stream and checkpoint it."""
+    began = time.perf_counter()
+    worker = Worker(store.redis, store.model, options=options, name="bench")
+    last = store.last_stream_id()
+    while worker.learner is None or worker.handled != last:
+        worker.run_once()
+    worker.checkpoint()
+    elapsed = time.perf_counter() - began
+    worker.stop()
+    worker.run()
+    return elapsed
+
+
+def correction_cost(server: EmbeddedRedis, n_docs: int, repeats: int, share: float) -> None:
+    """A stream with ``share`` corrections against the same documents alone (see item 3)."""
+    client = server.client()
+    config = MixtureConfig(
+        n_groups=4,
+        warmup_documents=1000,
+        batch_size=256,
+        n_restarts=2,
+        max_iter=50,
+        vocabulary_limit=100_000,
+    )
+    options = ModelOptions(
+        checkpoint_documents=5000,
+        checkpoint_seconds=1.0,
+        flush_partial_seconds=0.05,  # the last partial unit too (drain waits for every entry)
+        read_count=1000,
+        read_block_ms=50,
+        snapshot_every_documents=None,
+        snapshot_every_seconds=None,
+        stream_max_length=None,
+        stream_max_age_seconds=None,
+    )
+    stores = {}
+    for kind in ("plain", "corrected"):
+        Registry(client).create(f"bench-{kind}", config, options)
+        stores[kind] = ModelStore(client, f"bench-{kind}")
+        warm = short_messages(config.warmup_documents, seed=1)
+        stores[kind].enqueue(warm)
+        drain(stores[kind], options)  # the warm-up fit outside the measurement
+    rng = random.Random(5)
+    times: dict[str, list[float]] = {"plain": [], "corrected": []}
+    corrections = 0
+    for rep in range(repeats):
+        texts = short_messages(n_docs, seed=20 + rep)
+        ids = [f"r{rep}-{i}" for i in range(n_docs)]
+        stores["plain"].enqueue(texts, ids=ids)
+        start = 0
+        made = 0
+        while start < n_docs:  # documents, with a correction after about 1 in 1/share
+            stop = min(n_docs, start + max(1, int(rng.expovariate(share))))
+            stores["corrected"].enqueue(texts[start:stop], ids=ids[start:stop])
+            if stop < n_docs:
+                target = rng.randrange(stop)
+                group = rng.randrange(config.n_groups)
+                fields = correction_fields(ids[target], group, texts[target], "correction", 0.0)
+                stores["corrected"].enqueue_labelled([fields])
+                made += 1
+            start = stop
+        corrections += made
+        order = ("plain", "corrected") if rep % 2 == 0 else ("corrected", "plain")
+        for kind in order:
+            times[kind].append(drain(stores[kind], options))
+    plain, corrected = statistics.median(times["plain"]), statistics.median(times["corrected"])
+    per = corrections / repeats
+    labelled = stores["corrected"].load_state().labelled.len()
+    print(
+        f"corrections in the worker: {n_docs} short messages x {repeats} runs, "
+        f"K={config.n_groups}, "
+        f"batch {config.batch_size}, {per:.0f} corrections a run ({per / n_docs:.1%}), "
+        f"{labelled} labelled documents held at the end"
+    )
+    print(f"  documents alone           : {plain:10.2f} s ({n_docs / plain:,.0f} documents/s)")
+    print(f"  with the corrections      : {corrected:10.2f} s")
+    print(f"  ratio with / without      : {corrected / plain:10.3f}")
+    extra = max(corrected - plain, 0.0) / per
+    print(
+        f"  one correction costs      : {extra * 1000:10.2f} ms, "
+        f"{extra / (plain / n_docs):.0f} documents' worth"
+    )
+
+
 def checkpoint_cost(server: EmbeddedRedis, repeats: int) -> None:
     client = server.client()
     k, v = 50, 100_000
@@ -382,6 +471,7 @@ def main(argv: list[str] | None = None) -> None:
     with tempfile.TemporaryDirectory() as folder, EmbeddedRedis(folder) as server:
         throughput(server, n_docs, repeats)
         throughput(server, n_docs, repeats, lifecycle=True)
+        correction_cost(server, n_docs, repeats, 0.01)
         checkpoint_cost(server, 2 if args.quick else 3)
         replay_under_traffic(server, 100_000 if args.quick else 1_000_000, 1000.0)
 

@@ -217,6 +217,8 @@ def cmd_fit(args: argparse.Namespace) -> int:
         if value is not None:
             config_fields[name] = value
     config = MixtureConfig.from_dict(config_fields)
+    seeds = read_seeds(args.seeds, config.n_groups) if args.seeds else []
+    labelled = seed_items(seeds)
     bar = _progress_bar(iteration_bound(config, restart_kinds(config)), "batch EM", "iter")
 
     def progress(done: int, total: int) -> None:
@@ -225,11 +227,24 @@ def cmd_fit(args: argparse.Namespace) -> int:
 
     try:
         if args.dask:
-            state, report = _fit_on_dask(batch.texts, config, args, progress)
+            state, report = _fit_on_dask(batch.texts, config, args, progress, labelled)
         else:
-            state, report = fit_texts(batch.texts, config, seed=args.seed, progress=progress)
+            state, report = fit_texts(
+                batch.texts, config, seed=args.seed, progress=progress, labelled=labelled
+            )
     finally:
         bar.close()
+    if seeds:
+        # The model file keeps the seeded groups' labels (groups 0..S-1, in the file's order).
+        state.metadata["seed_groups"] = [
+            {
+                "group": group,
+                "label": seed["label"],
+                "destination": seed["destination"],
+                "examples": len(seed["examples"]),
+            }
+            for group, seed in enumerate(seeds)
+        ]
     out = Path(args.out)
     _write_atomic(out, state_to_bytes(state))
     convergence = "converged" if report.converged else "stopped at max_iter"
@@ -241,11 +256,119 @@ def cmd_fit(args: argparse.Namespace) -> int:
     )
     for line in fit_summary_lines(report, state.weights()):
         print(line, file=sys.stderr)
+    for line in seeded_group_lines(state):
+        print(line, file=sys.stderr)
     return EXIT_OK
 
 
+SEED_FIELDS = ("label", "destination", "examples")
+
+
+def read_seeds(path: str, n_groups: int) -> list[dict[str, Any]]:
+    """Read a seeds file: one ``{"label", "destination"?, "examples": [text, ...]}`` a line.
+
+    Blank lines are skipped and other fields ignored (as in document files). The whole file is
+    refused on any bad line (seeds are few, and a group started from half its examples would
+    be a silent mistake): the message names the line and the field.
+
+    Parameters
+    ----------
+    path : str
+    n_groups : int
+        ``--groups``: there may be at most this many seeds (seeded groups are 0..S-1).
+
+    Returns
+    -------
+    list of dict
+        ``{"label": str, "destination": str or None, "examples": [str, ...]}`` in file order.
+    """
+    try:
+        raw = Path(path).read_bytes()
+    except OSError as exc:
+        raise CommandError(f"cannot read {path}: {exc.strerror or exc}", EXIT_BAD_INPUT) from None
+    seeds: list[dict[str, Any]] = []
+    first_line: dict[str, int] = {}
+    for number, line in enumerate(raw.split(b"\n"), start=1):
+        if not line.strip():
+            continue
+
+        def bad(message: str, number: int = number) -> CommandError:
+            return CommandError(f"{path} line {number}: {message}", EXIT_BAD_INPUT)
+
+        try:
+            record = json.loads(line.decode("utf-8"))
+        except UnicodeDecodeError:
+            raise bad("not UTF-8") from None
+        except json.JSONDecodeError as exc:
+            raise bad(f"not JSON ({exc.msg})") from None
+        if not isinstance(record, dict):
+            raise bad('a line must be a JSON object {"label", "destination", "examples"}')
+        label = record.get("label")
+        if not isinstance(label, str) or not label.strip():
+            raise bad("label must be a non-empty string")
+        destination = record.get("destination")
+        if destination is not None and not isinstance(destination, str):
+            raise bad("destination must be a string when given")
+        examples = record.get("examples")
+        if (
+            not isinstance(examples, list)
+            or not examples
+            or not all(isinstance(text, str) and text.strip() for text in examples)
+        ):
+            raise bad("examples must be a non-empty list of non-empty texts")
+        if label in first_line:
+            raise bad(f"label {label!r} is already the seed of line {first_line[label]}")
+        first_line[label] = number
+        seeds.append({"label": label, "destination": destination, "examples": examples})
+    if not seeds:
+        raise CommandError(f"{path}: no seeds (one JSON object a line)", EXIT_BAD_INPUT)
+    if len(seeds) > n_groups:
+        raise CommandError(
+            f"{path}: {len(seeds)} seeds for {n_groups} groups; give --groups {len(seeds)} or "
+            f"more (seeded groups are 0..{len(seeds) - 1}, the others are found as usual)",
+            EXIT_BAD_INPUT,
+        )
+    return seeds
+
+
+def seed_items(seeds: Sequence[dict[str, Any]]) -> list[Any]:
+    """The seeds' examples as labelled documents of groups 0..S-1 (source "example")."""
+    from mixture.labelled import LabelledItem
+
+    return [
+        LabelledItem(f"seed-{group}-{index}", text, group, "example")
+        for group, seed in enumerate(seeds)
+        for index, text in enumerate(seed["examples"])
+    ]
+
+
+def seeded_group_lines(state: Any, terms: int = 6) -> list[str]:
+    """One line per seeded group of a fitted state: label, destination, examples, weight and
+    top terms (empty without seeds)."""
+    from mixture.describe import describe_groups
+
+    seeds = state.metadata.get("seed_groups") or []
+    if not seeds:
+        return []
+    summaries = {s.group: s for s in describe_groups(state, top_n=terms)}
+    lines = ["seeded groups:"]
+    for seed in seeds:
+        summary = summaries[seed["group"]]
+        destination = f" -> {seed['destination']}" if seed["destination"] else ""
+        top = ", ".join(str(term) for term, _ in summary.top_terms)
+        lines.append(
+            f"  group {seed['group']} [{seed['label']}]{destination}: {seed['examples']} "
+            f"examples, weight {summary.weight:.3f}; top: {top}"
+        )
+    return lines
+
+
 def _fit_on_dask(
-    texts: list[str], config: Any, args: argparse.Namespace, progress: Any
+    texts: list[str],
+    config: Any,
+    args: argparse.Namespace,
+    progress: Any,
+    labelled: Sequence[Any] = (),
 ) -> tuple[Any, FitReport]:
     """The fit with its E-steps on the Dask cluster ``--dask`` names (archive.dask_fit)."""
     try:
@@ -261,7 +384,13 @@ def _fit_on_dask(
         raise CommandError(str(exc), EXIT_BAD_INPUT) from None
     with dask_session(args.dask) as client:
         return fit_texts_on_dask(
-            texts, config, client, seed=args.seed, partitions=args.partitions, progress=progress
+            texts,
+            config,
+            client,
+            seed=args.seed,
+            partitions=args.partitions,
+            progress=progress,
+            labelled=labelled,
         )
 
 
@@ -1255,6 +1384,13 @@ def build_parser() -> argparse.ArgumentParser:
         help="EM iterations per restart at most (default: MixtureConfig's)",
     )
     p.add_argument("--config", help="further MixtureConfig fields as a JSON object")
+    p.add_argument(
+        "--seeds",
+        metavar="SEEDS.jsonl",
+        help='start groups from example messages: JSON lines {"label", "destination", '
+        '"examples": [text, ...]}; seeded groups are 0..S-1 and keep their examples '
+        "(semi-supervised EM), the others are found as usual",
+    )
     strict_option(p)
     _source_options(p)
     p.add_argument(

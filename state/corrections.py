@@ -22,10 +22,11 @@ any case a small share (common practice, no source: the bound is a size choice).
 from __future__ import annotations
 
 import bisect
-import math
 from collections.abc import MutableMapping
 from typing import Any
 
+from mixture.errors import InputError
+from mixture.labelled import remaining_weight
 from state.stream import parse_stream_id
 
 UNITS_KEPT = 512
@@ -114,10 +115,12 @@ def unit_of(metadata: MutableMapping[str, Any], stream_id: str) -> dict[str, Any
 def weight_remaining(
     documents: int, eta: float | None, log_forgetting_then: float, log_forgetting_now: float
 ) -> float:
-    """Share of the running average an unlabelled document still holds (see the module
-    docstring; ``eta`` None: a warm-up document, weight 1 / documents at the fit)."""
-    start = 1.0 / documents if eta is None else eta / documents
-    return float(start * math.exp(min(log_forgetting_now - log_forgetting_then, 0.0)))
+    """Share of the running average an unlabelled document still holds: the core's
+    :func:`mixture.labelled.remaining_weight` (``eta`` None: a warm-up document, which had
+    weight 1 / documents at the fit)."""
+    return remaining_weight(
+        1.0 if eta is None else eta, documents, log_forgetting_then, log_forgetting_now
+    )
 
 
 def remaining_of(
@@ -129,4 +132,7 @@ def remaining_of(
     unit = unit_of(metadata, stream_id)
     if unit is None:
         return None
-    return weight_remaining(unit["documents"], unit["eta"], unit["lf"], log_forgetting_now)
+    try:
+        return weight_remaining(unit["documents"], unit["eta"], unit["lf"], log_forgetting_now)
+    except InputError:  # a record that does not fit the state (hand-edited metadata)
+        return None

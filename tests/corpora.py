@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import hashlib
 import importlib.util
+import time
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -672,3 +673,104 @@ def drift_pass(stream: LabelledCorpus, config: Any, seed: int = 0) -> DriftPass:
     state = learner.state
     final = state.group_ids[route_texts(state, stream.texts).group]
     return DriftPass(arrival, final, state.n_groups, events, seconds)
+
+
+# ---- semi-supervised fits against naive Bayes on the same labelled documents -------------------
+@dataclass
+class LabelledRun:
+    """One semi-supervised fit and MultinomialNB on the same few labelled documents.
+
+    Attributes
+    ----------
+    per_class : int
+        Labelled documents per class (0: an unsupervised fit, NB not run).
+    accuracy, nmi : float
+        Our fit on the unlabelled documents: group g is class g when labelled documents seed
+        the groups; with none, accuracy after Hungarian matching of groups to classes.
+    nb_accuracy, nb_nmi : float
+        MultinomialNB on the same labelled documents (NaN without labelled documents).
+    seconds : float
+        Our fit's time.
+    """
+
+    per_class: int
+    accuracy: float
+    nmi: float
+    nb_accuracy: float
+    nb_nmi: float
+    seconds: float
+
+
+def matched_accuracy(labels: np.ndarray, groups: np.ndarray) -> float:
+    """Accuracy after the best one-to-one matching of groups to labels (Hungarian method,
+    scipy.optimize.linear_sum_assignment on the contingency table)."""
+    from scipy.optimize import linear_sum_assignment
+
+    table = np.zeros((int(groups.max()) + 1, int(labels.max()) + 1))
+    np.add.at(table, (groups, labels), 1.0)
+    rows, cols = linear_sum_assignment(-table)
+    return float(table[rows, cols].sum() / labels.size)
+
+
+def labelled_run(
+    corpus: LabelledCorpus,
+    per_class: int,
+    seed: int = 0,
+    unlabelled_weight: float = 1.0,
+    n_restarts: int = 1,
+) -> LabelledRun:
+    """Draw ``per_class`` labelled documents of each class (seed ``seed``), fit the rest with
+    them as examples of groups 0..C-1 (``mixture.em.fit_texts``, K = C) and train
+    scikit-learn's MultinomialNB on the same labelled documents over our count matrix (our
+    tokens and vocabulary; alpha = our word pseudo-count, so the two differ only in the
+    unlabelled documents). Both are scored on the unlabelled documents."""
+    from sklearn.metrics import normalized_mutual_info_score
+    from sklearn.naive_bayes import MultinomialNB
+
+    from mixture.config import MixtureConfig
+    from mixture.counting import count_texts
+    from mixture.em import fit_texts
+    from mixture.labelled import LabelledItem
+    from mixture.routing import route_texts
+
+    rng = np.random.default_rng(seed)
+    n_classes = len(corpus.label_names)
+    chosen = np.zeros(0, dtype=np.int64)
+    if per_class:
+        chosen = np.concatenate(
+            [
+                rng.choice(np.flatnonzero(corpus.labels == c), per_class, replace=False)
+                for c in range(n_classes)
+            ]
+        )
+    unlabelled = np.setdiff1d(np.arange(len(corpus)), chosen)
+    texts = [corpus.texts[i] for i in unlabelled]
+    items = [
+        LabelledItem(f"labelled-{i}", corpus.texts[i], int(corpus.labels[i]), "example")
+        for i in chosen
+    ]
+    config = MixtureConfig(
+        n_groups=n_classes, n_restarts=n_restarts, unlabelled_weight=unlabelled_weight
+    )
+    start = time.perf_counter()
+    state, _ = fit_texts(texts, config, seed=seed, labelled=items)
+    seconds = time.perf_counter() - start
+    truth = corpus.labels[unlabelled]
+    groups = route_texts(state, texts).group
+    accuracy = float(np.mean(groups == truth)) if per_class else matched_accuracy(truth, groups)
+    nb_accuracy = nb_nmi = float("nan")
+    if per_class:
+        counts = count_texts(corpus.texts, state.tokenizer, state.vocabulary, grow=False).counts
+        bayes = MultinomialNB(alpha=config.word_pseudocount)
+        bayes.fit(counts[chosen], corpus.labels[chosen])
+        predicted = bayes.predict(counts[unlabelled])
+        nb_accuracy = float(np.mean(predicted == truth))
+        nb_nmi = float(normalized_mutual_info_score(truth, predicted))
+    return LabelledRun(
+        per_class=per_class,
+        accuracy=accuracy,
+        nmi=float(normalized_mutual_info_score(truth, groups)),
+        nb_accuracy=nb_accuracy,
+        nb_nmi=nb_nmi,
+        seconds=seconds,
+    )

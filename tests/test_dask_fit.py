@@ -85,6 +85,22 @@ def test_dask_fit_with_revival_and_annealing_equals_the_single_process_fit(
     assert_same_fit(single, spread, report_single, report_spread)
 
 
+def test_a_semi_supervised_dask_fit_equals_the_single_process_fit(thread_client: object) -> None:
+    # Labelled examples (fixed responsibilities, weight 1 against lambda) and revivals: the
+    # client's M-step from the fixed, weighted responsibilities on both paths.
+    from mixture.labelled import LabelledItem
+
+    texts = invented_archive(600, 2)
+    examples = [LabelledItem(f"e{i}", texts[i], i % 2, "example") for i in range(4)]
+    config = MixtureConfig(n_groups=7, n_restarts=1, annealing_steps=5, unlabelled_weight=0.5)
+    single, report_single = fit_texts(texts[4:], config, seed=1, labelled=examples)
+    spread, report_spread = fit_texts_on_dask(
+        texts[4:], config, thread_client, seed=1, partitions=3, labelled=examples
+    )
+    assert report_single.labelled_documents == 4
+    assert_same_fit(single, spread, report_single, report_spread)
+
+
 def test_dask_session_refuses_a_bad_local_address() -> None:
     for address in ("local:", "local:0", "local:2:gpu"):
         with pytest.raises(ValueError, match="local:N"), dask_session(address):

@@ -120,20 +120,27 @@ def test_labelled_counts_go_wholly_to_their_group_and_never_decay():
     report = learner.learn_labelled(items)
     assert report.labelled == 3 and report.documents == 0 and report.steps == 0
     assert state.step == step and state.documents_learned == learned  # no stepwise step
-    for start in range(600, 900, 50):  # stepwise updates after it
-        learner.learn(texts[start : start + 50])
-    # Independent counts of the three texts over the state's words.
-    own = Vocabulary(state.vocabulary.words())
-    counted = count_texts(examples, Tokenizer(config.tokenizer), own, grow=False).counts
-    expected = np.zeros((state.capacity, 3))
-    for row, group in zip(range(3), [1, 1, 2], strict=True):
-        expected[counted[row].indices, group] += counted[row].data
-    np.testing.assert_allclose(
-        state.expected_word_counts() - 0.3 * state.unlabelled_word_counts(), expected, atol=1e-9
-    )
-    np.testing.assert_allclose(
-        state.expected_documents() - 0.3 * state.unlabelled_documents(), [0, 2, 1], atol=1e-9
-    )
+
+    def labelled_part_is_exact() -> None:
+        # Independent counts of the three texts over the state's words.
+        own = Vocabulary(state.vocabulary.words())
+        counted = count_texts(examples, Tokenizer(config.tokenizer), own, grow=False).counts
+        expected = np.zeros((state.capacity, 3))
+        for row, group in zip(range(3), [1, 1, 2], strict=True):
+            expected[counted[row].indices, group] += counted[row].data
+        np.testing.assert_allclose(
+            state.expected_word_counts() - 0.3 * state.unlabelled_word_counts(),
+            expected,
+            atol=1e-9,
+        )
+        np.testing.assert_allclose(
+            state.expected_documents() - 0.3 * state.unlabelled_documents(), [0, 2, 1], atol=1e-9
+        )
+
+    labelled_part_is_exact()
+    for start in range(600, 900, 50):  # every stepwise update after it leaves it whole
+        assert learner.learn(texts[start : start + 50]).steps == 1
+        labelled_part_is_exact()
     # Routing sees them: the parameters are the combined counts'.
     params = state.parameters()
     totals = state.expected_word_counts().sum(axis=0) + state.vocabulary.n_active * 0.1
@@ -214,6 +221,9 @@ def test_during_the_warm_up_they_are_kept_and_used_by_every_fit():
     learner.learn(texts[:150])  # a provisional fit at 100 documents
     provisional = learner.state.provisional
     assert provisional is not None and provisional.labelled.ids() == [it.doc_id for it in items]
+    # The provisional fit started group 0 from the examples: it routes their topic there.
+    early = route_texts(provisional, texts[:150]).group
+    assert np.mean(early[labels[:150] == 2] == 0) >= 0.9
     late = LabelledItem("late", texts[int(np.flatnonzero(labels == 2)[0])], 0)
     learner.learn_labelled([late])
     assert "late" in learner.state.provisional.labelled  # at once, without a refit

@@ -21,6 +21,27 @@ docs <cursor>`` (:class:`state.reader.PageReader`), and learns it strictly in st
    a million entries holds the lease and commits its progress page after page instead of
    being taken over by the standby and thrown away.
 
+Corrections and examples (labelled entries)
+-------------------------------------------
+An entry of kind ``correction`` (an operator's correction or an example) is learned with
+``OnlineLearner.learn_labelled``, one of kind ``withdraw`` with ``withdraw_labelled``
+(``state.stream``). Where in the stream they take effect is fixed by the stream alone: a
+labelled entry with no document pending before it (every earlier document is in a learned
+unit) takes effect at once; one read while documents of an incomplete unit are pending takes
+effect right after that unit is learned, before the next. So the state is the same whatever
+the read page size, and equal to the core fed the same units and labelled items in that
+order. The watermark moves past a labelled entry only once it is applied, and the checkpoint's
+MULTI carries its effect with the watermark: a crash before it leaves nothing, the next worker
+reads the entry again (and a repeat would be a no-op anyway: the core is idempotent per id).
+Labelled entries are never passed over by a rollback's skip rules (an operator's correction is
+not junk), so a replay relearns them. One the core refuses (a group retired or merged since
+it was queued, the labelled limit reached) becomes a dead letter with the core's reason.
+
+For a correction of a document already learned as an unlabelled one, the worker keeps in
+``state.metadata`` a bounded record of its recent units (``state.corrections``): the stream id
+of each unit's last document, its size, step size and ``log_forgetting`` after it, and the
+warm-up's; the API reads it to say how much of the document's unlabelled weight remains.
+
 Groups that change
 ------------------
 A learning unit whose decisions changed the groups (``BatchReport.events``: births, merges,
@@ -81,9 +102,12 @@ from typing import Any
 import numpy as np
 import redis
 
-from mixture.online import BatchReport, OnlineLearner
+from mixture.errors import InputError
+from mixture.labelled import LabelledItem
+from mixture.online import BatchReport, OnlineLearner, warm_up_progress
 from mixture.serialize import state_from_bytes
 from state.connection import redis_from_url
+from state.corrections import record_unit, record_warm_up
 from state.errors import ModelNotFoundError, VersionConflictError
 from state.group_drift import (
     WordReference,
@@ -103,7 +127,15 @@ from state.reader import (
 )
 from state.records import CurrentState, WorkerStatus
 from state.store import Checkpoint, ModelStore, default_worker_name
-from state.stream import ZERO_ID, Document, SkipRanges, Undecodable, decode_entry
+from state.stream import (
+    ZERO_ID,
+    Document,
+    Labelled,
+    SkipRanges,
+    Undecodable,
+    Withdrawal,
+    decode_entry,
+)
 
 log = logging.getLogger(__name__)
 
@@ -114,13 +146,13 @@ _RETRYABLE = (redis.ConnectionError, redis.TimeoutError, redis.BusyLoadingError,
 class _Pending:
     """Entries read after the watermark and not yet handled, in stream order.
 
-    Two parallel lists: the stream ids as read, and per entry its text, an Undecodable, or None
-    (skipped by a replay). ``others`` counts the entries that are not texts, so the common case
-    (texts only) cuts units by slicing.
+    Two parallel lists: the stream ids as read, and per entry its text, an Undecodable, None
+    (skipped by a replay), or a labelled entry (Labelled, Withdrawal). ``others`` counts the
+    entries that are not texts, so the common case (texts only) cuts units by slicing.
     """
 
     ids: list[bytes] = field(default_factory=list)
-    items: list[str | Undecodable | None] = field(default_factory=list)
+    items: list[str | Undecodable | Labelled | Withdrawal | None] = field(default_factory=list)
     documents: int = 0
     others: int = 0
 
@@ -207,6 +239,7 @@ class Worker:
         self.conflicts = 0
         self.reconnects = 0
         self.errors = 0
+        self.labelled_applied = 0  # corrections, examples and withdrawals applied (this run)
         self.deleted = False
 
     # -- public ------------------------------------------------------------------------------
@@ -665,7 +698,12 @@ class Worker:
                 fields = dict(zip(fields[::2], fields[1::2], strict=False))
             raw_text = fields.get(b"text")
             raw_meta = fields.get(b"metadata")
-            if raw_text is not None and not skipping and (not raw_meta or raw_meta == b"{}"):
+            if (
+                raw_text is not None
+                and not skipping
+                and (not raw_meta or raw_meta == b"{}")
+                and b"kind" not in fields
+            ):
                 try:  # fast path: plain text, no metadata to check, no replay filter
                     text = raw_text.decode("utf-8")
                 except UnicodeDecodeError:
@@ -683,19 +721,33 @@ class Worker:
             ):
                 add_item(item.text)
                 documents += 1
-            else:
-                add_item(item if isinstance(item, Undecodable) else None)
+            elif isinstance(item, Document):
+                add_item(None)  # inside a rollback's skip rule
+                others += 1
+            else:  # undecodable, or labelled: never skipped (an operator's act is not junk)
+                add_item(item)
                 others += 1
         pending.documents += documents
         pending.others += others
         return self._learn_units(flush=False)
 
     def _learn_units(self, flush: bool) -> int:
-        """Learn whole units of batch_size documents (and the partial rest when flushing)."""
+        """Learn whole units of batch_size documents (and the partial rest when flushing).
+
+        Labelled entries with no document pending before them are applied first (at once);
+        those among or right after a unit's documents are applied right after that unit.
+        """
         assert self.learner is not None
         unit = self.config.batch_size
         pending = self._pending
         learned = 0
+        if pending.others and not isinstance(pending.items[0], str):
+            head = 0
+            while head < len(pending.items) and not isinstance(pending.items[head], str):
+                head += 1
+            if not self._apply_labelled(head):
+                return learned
+            self._handle(head)
         while pending.documents >= unit or (flush and pending.documents):
             take = min(unit, pending.documents)
             if pending.others == 0:  # texts only: the unit is a slice
@@ -713,22 +765,142 @@ class Worker:
                 # entries that carry no learning right after the unit are handled with it
                 while cut < len(pending.items) and not isinstance(pending.items[cut], str):
                     cut += 1
-            warming = not self.learner.state.warmed_up
+            state = self.learner.state
+            warming = not state.warmed_up
+            before = warm_up_progress(state).documents if warming else 0
+            forgetting_before = float(state.log_forgetting)
             report = self.learner.learn(texts)  # type: ignore[arg-type]
+            self._record_units(texts, cut, report, warming, before, forgetting_before)  # type: ignore[arg-type]
             if report.provisional_fits or (warming and report.warmed_up):
                 self._fit_to_serve = True  # a provisional or the warm-up fit: serve it soon
             self._report = self._report.merge(report)
             self._documents_since_checkpoint += len(texts)
             learned += len(texts)
-            self._handle(cut)
             pending.documents -= len(texts)
+            if pending.others and not self._apply_labelled(cut):
+                return learned  # the work was dropped (conflict, lease, delete)
+            self._handle(cut)
             if report.events:  # a change of the groups: a version of its own, at once
                 self._events.extend(report.events)
                 if not self.checkpoint() and self.learner is None:
                     return learned  # the work was dropped (conflict, lease, delete)
         if not pending.documents and pending.ids:
+            if pending.others and not self._apply_labelled(len(pending.ids)):
+                return learned
             self._handle(len(pending.ids))
         return learned
+
+    def _record_units(
+        self,
+        texts: list[str],
+        cut: int,
+        report: BatchReport,
+        warming: bool,
+        buffered_before: int,
+        forgetting_before: float,
+    ) -> None:
+        """Note the unit's stepwise updates (and the warm-up, when it ended here) in the
+        state's bounded record (``state.corrections``), by the stream id of their last text."""
+        pending = self._pending
+        if pending.others == 0:
+            text_ids = pending.ids[: len(texts)]
+        else:
+            text_ids = [
+                sid
+                for sid, item in zip(pending.ids[:cut], pending.items[:cut], strict=True)
+                if isinstance(item, str)
+            ]
+        state = self.learner.state if self.learner is not None else None
+        if state is None or not text_ids:
+            return
+        metadata = state.metadata
+        if warming and report.warmed_up:
+            # texts[:k] ended the warm-up, the rest were one stepwise update of m documents
+            # with tokens: walk back from the end over m texts with tokens (texts without any
+            # have no weight, so where they fall does not matter)
+            stepwise = sum(report.unit_documents)
+            tokenizer = state.tokenizer
+            k, seen = len(texts), 0
+            while k > 0 and seen < stepwise:
+                k -= 1
+                seen += 1 if tokenizer.tokenize(texts[k]) else 0
+            with_tokens = sum(1 for text in texts[:k] if tokenizer.tokenize(text))
+            if k > 0:
+                record_warm_up(
+                    metadata,
+                    text_ids[k - 1].decode(),
+                    buffered_before + with_tokens,
+                    forgetting_before,
+                )
+        last = text_ids[-1].decode()
+        for eta, documents, forgetting in zip(
+            report.unit_etas, report.unit_documents, report.unit_log_forgetting, strict=True
+        ):
+            if documents > 0:
+                record_unit(metadata, last, documents, eta, forgetting)
+
+    def _apply_labelled(self, cut: int) -> bool:
+        """Apply the labelled entries among the first ``cut`` pending entries, in order.
+
+        Runs of corrections go to ``learn_labelled`` together (it changes nothing when it
+        refuses one, so a refused run is retried one by one and only the refused become
+        dead letters), withdrawals to ``withdraw_labelled``. Returns False when the work was
+        dropped (a group change checkpointed and failed).
+        """
+        assert self.learner is not None
+        pending = self._pending
+        run: list[Labelled] = []
+        withdrawals: list[str] = []
+
+        def flush_run() -> None:
+            if run:
+                self._learn_labelled(list(run))
+                run.clear()
+            if withdrawals:
+                self.learner.withdraw_labelled(list(withdrawals))  # type: ignore[union-attr]
+                self.labelled_applied += len(withdrawals)
+                withdrawals.clear()
+
+        for item in pending.items[:cut]:
+            if isinstance(item, Labelled):
+                if withdrawals:
+                    flush_run()
+                run.append(item)
+            elif isinstance(item, Withdrawal):
+                if run:
+                    flush_run()
+                withdrawals.append(item.target)
+        flush_run()
+        return self.learner is not None
+
+    def _learn_labelled(self, items: list[Labelled]) -> None:
+        """``learn_labelled`` for a run of corrections; refused ones become dead letters."""
+        assert self.learner is not None
+        try:
+            report = self.learner.learn_labelled(
+                [LabelledItem(e.target, e.text, e.group, e.source) for e in items]
+            )
+        except InputError as exc:
+            if len(items) > 1:  # nothing was changed: find the refused, learn the rest in order
+                for entry in items:
+                    self._learn_labelled([entry])
+                return
+            entry = items[0]
+            reason = f"correction of {entry.target!r} to group {entry.group} refused: {exc}"
+            log.warning(
+                "model %r: entry %s to dead letters: %s",
+                self.model,
+                entry.stream_id,
+                reason,
+                extra=self._log_fields(),
+            )
+            self._dead.append(Undecodable(entry.stream_id, reason, entry.fields()))
+            return
+        self.labelled_applied += len(items)
+        if report.provisional_fits:
+            self._fit_to_serve = True
+        if report.events:
+            self._events.extend(report.events)
 
     def _handle(self, cut: int) -> None:
         """Mark the first ``cut`` pending entries handled (dead letters set aside)."""
