@@ -363,6 +363,20 @@ def test_dashboard_files_are_served_from_the_app_only(live: tuple[str, str, http
     assert "https://" not in script
 
 
+def steady(probe: Any) -> Any:
+    """``probe`` for wait_until, reading None while the page is redrawing the element it
+    looked at (the 5 s refresh replaces rows and cards whose content changed)."""
+    from selenium.common.exceptions import NoSuchElementException, StaleElementReferenceException
+
+    def read() -> Any:
+        try:
+            return probe()
+        except (StaleElementReferenceException, NoSuchElementException):
+            return None
+
+    return read
+
+
 def flagged_row(driver: Any, doc_id: str) -> Any:
     from selenium.webdriver.common.by import By
 
@@ -418,7 +432,9 @@ def test_dashboard_reassigns_and_confirms_flagged_messages_by_keyboard_and_count
     assert "reassign" in active.get_attribute("class") and active.is_enabled()
     active.send_keys(Keys.ENTER)
     wait_until(
-        lambda: "Reassigned to" in flagged_row(browser, "junk-2").text, 20, what="the row's result"
+        steady(lambda: "Reassigned to" in flagged_row(browser, "junk-2").text),
+        20,
+        what="the row's result",
     )
 
     # the API holds it as a correction of the chosen group, and the page counts it
@@ -447,7 +463,7 @@ def test_dashboard_reassigns_and_confirms_flagged_messages_by_keyboard_and_count
         browser.execute_script("arguments[0].focus()", confirm)
         browser.switch_to.active_element.send_keys(Keys.ENTER)
         wait_until(
-            lambda: "Confirmed to" in flagged_row(browser, other["id"]).text,
+            steady(lambda: "Confirmed to" in flagged_row(browser, other["id"]).text),
             20,
             what="the confirmation's result",
         )
@@ -466,7 +482,11 @@ def test_dashboard_reassigns_and_confirms_flagged_messages_by_keyboard_and_count
             what="the count on the page",
         )
         assert browser.execute_script("return document.documentElement.scrollWidth") <= 390
-        browser.execute_script("arguments[0].scrollIntoView()", flagged_row(browser, other["id"]))
+        # the screenshot shows the flagged panel's head (the count) and its first rows
+        browser.execute_script(
+            "document.getElementById('flagged-panel').scrollIntoView();"
+            "document.getElementById('toast').hidden = true;"
+        )
         browser.save_screenshot(str(ARTEFACTS / "dashboard-phone-corrected.png"))
     finally:
         phone_width(browser, None)
@@ -515,14 +535,19 @@ def test_dashboard_marks_stale_labels_and_keeps_one_by_keyboard(
         cards = browser.find_elements(By.CSS_SELECTOR, "#groups article.group[data-label-stale]")
         return {int(c.get_attribute("data-group")) for c in cards}
 
-    wait_until(lambda: marked() == stale, 20, what="the stale cards")
+    wait_until(steady(lambda: marked() == stale), 20, what="the stale cards")
     group = min(stale)
-    card = browser.find_element(By.CSS_SELECTOR, f"#groups article.group[data-group='{group}']")
-    assert "Label may no longer fit" in card.text
     browser.save_screenshot(str(ARTEFACTS / "dashboard-stale.png"))
-    keep = card.find_element(By.CSS_SELECTOR, "button.refresh-label")
-    assert str(group) in keep.get_attribute("aria-label")
-    browser.execute_script("arguments[0].focus()", keep)
-    browser.switch_to.active_element.send_keys(Keys.ENTER)
-    wait_until(lambda: group not in marked(), 20, what="the card no longer stale")
+
+    def keep_by_keyboard() -> bool:
+        card = browser.find_element(By.CSS_SELECTOR, f"#groups article.group[data-group='{group}']")
+        assert "Label may no longer fit" in card.text
+        keep = card.find_element(By.CSS_SELECTOR, "button.refresh-label")
+        assert str(group) in keep.get_attribute("aria-label")
+        browser.execute_script("arguments[0].focus()", keep)
+        browser.switch_to.active_element.send_keys(Keys.ENTER)
+        return True
+
+    wait_until(steady(keep_by_keyboard), 20, what="'Label still fits' pressed")
+    wait_until(steady(lambda: group not in marked()), 20, what="the card no longer stale")
     assert api.get(f"/models/{model}/groups/{group}").json()["label_stale"] is False
