@@ -107,8 +107,12 @@ class FlaggedDocuments:
         with self._lock:
             items = list(self._by_model.get(model, ()))
         for item in reversed(items):
-            if item.get("id") == doc_id:
-                return str(item.get("full_text") or item.get("text") or "")
+            if item.get("id") != doc_id:
+                continue
+            if item.get("full_text") is not None:
+                return str(item["full_text"])
+            # a record without the whole text: its listed text only when nothing was cut
+            return None if item.get("truncated") else str(item.get("text") or "")
         return None
 
     def forget(self, model: str) -> None:

@@ -473,6 +473,11 @@ class ServiceRuntime:
                 self.settings.typicality_min_documents,
                 ids,
             )
+        labels_version = _labels_version(store)
+        if previous is not None and previous.labels_version == labels_version:
+            sketches = previous.label_words  # unchanged labels: the words they were given to too
+        else:
+            sketches = store.label_sketches()
         loaded = LoadedModel(
             name=name,
             info=info,
@@ -480,13 +485,13 @@ class ServiceRuntime:
             version=version,
             state=state,
             checksum=digest,
-            labels_version=_labels_version(store),
+            labels_version=labels_version,
             labels=self._read_labels(name, store),
             typicality=typicality,
             review_threshold=float(info.options.review_threshold),
             review_unknown_share=self.settings.review_unknown_share,
             nbytes=state_memory(state),
-            label_words=store.label_sketches(),
+            label_words=sketches,
         )
         loaded.measure_labels()
         return loaded

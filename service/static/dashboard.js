@@ -211,6 +211,10 @@ function drawGroups(groups) {
   if (signature === view.groupSignature) return;
   view.groupSignature = signature;
   const box = $("groups");
+  // a redraw must not take the keyboard focus away: note the focused button, focus it again
+  const active = document.activeElement;
+  const focused = active && box.contains(active) && active.dataset.group != null
+    ? `button.${active.classList[0]}[data-group="${active.dataset.group}"]` : null;
   box.textContent = "";
   const maxWeight = Math.max(...groups.map((g) => g.weight), 1e-9);
   for (const group of groups) {
@@ -252,6 +256,8 @@ function drawGroups(groups) {
     }
     box.appendChild(card);
   }
+  const again = focused ? box.querySelector(focused) : null;
+  if (again) again.focus();
 }
 
 // How far a labelled group's words moved since its label was set; a warning when stale.
