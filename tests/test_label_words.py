@@ -155,3 +155,60 @@ def test_a_word_gone_from_the_vocabulary_counts_as_probability_zero(learned_stat
     assert now[0] == 0.0
     assert now[-1] == pytest.approx(sketch.rest + sketch.prob[0], rel=1e-3)
     assert sketch_divergence(altered, state, ids[0]) > 0.0
+
+
+class SketchStore:
+    """What LabelWatch reads from a ModelStore: the label counter and the sketches."""
+
+    def __init__(self, sketches: dict[int, WordSketch]) -> None:
+        self.sketches = dict(sketches)
+        self.version = 1
+        self.reads = 0
+
+    def labels_version(self) -> int:
+        return self.version
+
+    def label_sketches(self) -> dict[int, WordSketch]:
+        self.reads += 1
+        return dict(self.sketches)
+
+
+def test_the_worker_alerts_once_per_recorded_distribution_even_across_a_restart(
+    learned_state,  # type: ignore[no-untyped-def]
+) -> None:
+    """A sketch of another group's words stands in for a label whose group moved: the first
+    checkpoint alerts, the next ones do not (the mark rides in the state's metadata, so it
+    survives serialisation, i.e. a worker restart); a new sketch (the label set again) may
+    alert again; a cleared label leaves no mark."""
+    from mixture.serialize import state_from_bytes, state_to_bytes
+    from state.label_words import ALERT_KIND, ALERTED_KEY, LabelWatch
+
+    state = learned_state.copy()
+    ids = [int(g) for g in state.group_ids]
+    far = sketch_group(state, ids[2], 1, 10.0)  # group 2's words, recorded as group 0's label
+    near = sketch_group(state, ids[1], 1, 11.0)  # group 1's own words: not stale
+    assert far is not None and near is not None
+    store = SketchStore({ids[0]: far, ids[1]: near})
+    threshold = ModelOptions().label_stale_threshold
+    assert sketch_divergence(far, state, ids[0]) > threshold  # the premise
+
+    watch = LabelWatch(store)
+    first = watch.alerts(state, 5, threshold)
+    assert [a["kind"] for a in first] == [ALERT_KIND]
+    assert first[0]["reason"].startswith(f"group {ids[0]}:") and first[0]["version"] == 5
+    assert first[0]["value"] > first[0]["threshold"] == threshold
+    assert watch.alerts(state, 6, threshold) == []
+    assert store.reads == 1  # re-read only when the label counter moves
+
+    restarted = state_from_bytes(state_to_bytes(state))
+    assert LabelWatch(store).alerts(restarted, 7, threshold) == []
+
+    store.sketches[ids[0]] = WordSketch(far.words, far.prob, far.rest, 2, 20.0)  # set again
+    store.version += 1
+    again = watch.alerts(state, 8, threshold)
+    assert len(again) == 1 and again[0]["version"] == 8
+
+    del store.sketches[ids[0]]  # cleared
+    store.version += 1
+    assert watch.alerts(state, 9, threshold) == []
+    assert str(ids[0]) not in state.metadata[ALERTED_KEY]
