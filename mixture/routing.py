@@ -34,6 +34,7 @@ MOSTLY_UNKNOWN_WORDS = "mostly_unknown_words"
 ATYPICAL = "atypical"
 PROVISIONAL_MODEL = "provisional_model"
 NEW_GROUP = "new_group"
+LABEL_STALE = "label_stale"
 
 # name -> what it means, in words (the dashboard's text, the README's table)
 REVIEW_REASONS: dict[str, str] = {
@@ -43,6 +44,7 @@ REVIEW_REASONS: dict[str, str] = {
     ATYPICAL: "far less typical of its group than the group's recent messages",
     PROVISIONAL_MODEL: "answered by a provisional fit of the first messages (warm-up not done)",
     NEW_GROUP: "the group was born while learning and nobody has named it yet",
+    LABEL_STALE: "the group's words have moved away from those its label was given to",
 }
 
 
@@ -54,6 +56,7 @@ def review_reasons(
     *,
     provisional: bool = False,
     new_group: np.ndarray | None = None,
+    label_stale: np.ndarray | None = None,
 ) -> list[list[str]]:
     """The review reasons of every routed document, in the table's order.
 
@@ -72,6 +75,9 @@ def review_reasons(
     new_group : ndarray of bool (n,), optional
         The MAP group was born while learning and has no label or destination (the API knows
         the labels; offline has none).
+    label_stale : ndarray of bool (n,), optional
+        The MAP group's label is stale: its words moved away from those it was given to (the
+        API holds the labels' records; offline has none).
 
     Returns
     -------
@@ -85,6 +91,7 @@ def review_reasons(
     unknown = routing.unknown_tokens.tolist()
     flagged = [False] * n_docs if atypical is None else np.asarray(atypical).tolist()
     newborn = [False] * n_docs if new_group is None else np.asarray(new_group).tolist()
+    stale = [False] * n_docs if label_stale is None else np.asarray(label_stale).tolist()
     answers: list[list[str]] = []
     for i in range(n_docs):
         reasons = []
@@ -100,6 +107,8 @@ def review_reasons(
             reasons.append(PROVISIONAL_MODEL)
         if newborn[i]:
             reasons.append(NEW_GROUP)
+        if stale[i]:
+            reasons.append(LABEL_STALE)
         answers.append(reasons)
     return answers
 

@@ -16,7 +16,7 @@ address file a running ``serve`` wrote in its data folder, else MIXROUTE_HOST/PO
     mixroute feed FILE.jsonl [--wait]           # prints the stream ids it queued
     mixroute route DOCS.jsonl [--model NAME]    # through the API
     mixroute describe [--model NAME]
-    mixroute label GROUP --label TEXT [--destination TEXT]
+    mixroute label GROUP [--label TEXT] [--destination TEXT] [--refresh] [--replace] [--history]
     mixroute correct --id ID --group G [--text TEXT]   # or --file FILE.jsonl, --withdraw ID
     mixroute examples GROUP TEXT... [--file FILE.jsonl]
     mixroute flagged
@@ -47,6 +47,7 @@ import math
 import os
 import sys
 import tempfile
+import time
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -998,20 +999,65 @@ def _weights_by_id(row: dict[str, Any]) -> dict[int, float]:
 
 
 def cmd_label(args: argparse.Namespace) -> int:
-    if args.label is None and args.destination is None:
-        raise CommandError("give --label and/or --destination", EXIT_BAD_INPUT)
     client = ApiClient(args.api or default_api_url())
     name = _model_name(args)
-    body = {key: getattr(args, key) for key in ("label", "destination")}
-    group = client.request(
-        "PUT",
-        f"/models/{name}/groups/{args.group}/label",
-        json={k: v for k, v in body.items() if v is not None},
-    )
+    path = f"/models/{name}/groups/{args.group}/label"
+    if args.history:
+        return _print_label_history(client.get(f"{path}/history"), args.json)
+    for field in ("label", "destination"):
+        if getattr(args, field) is not None and getattr(args, f"clear_{field}"):
+            raise CommandError(f"give --{field} or --clear-{field}, not both", EXIT_BAD_INPUT)
+    if args.replace:
+        if args.refresh or args.clear_label or args.clear_destination:
+            raise CommandError(
+                "--replace sets both fields (a field left out is cleared); it takes no "
+                "--refresh or --clear-*",
+                EXIT_BAD_INPUT,
+            )
+        body: dict[str, Any] = {
+            k: getattr(args, k) for k in ("label", "destination") if getattr(args, k) is not None
+        }
+        group = client.request("PUT", path, json=body)
+    else:
+        body = {k: getattr(args, k) for k in ("label", "destination") if getattr(args, k)}
+        body.update({k: None for k in ("label", "destination") if getattr(args, f"clear_{k}")})
+        if args.refresh:
+            body["refresh"] = True
+        if not body:
+            raise CommandError(
+                "give --label, --destination, --clear-label, --clear-destination or --refresh "
+                "(or --history)",
+                EXIT_BAD_INPUT,
+            )
+        group = client.request("PATCH", path, json=body)
+    if args.json:
+        print(json.dumps(group, indent=2))
+        return EXIT_OK
+    divergence = group.get("label_divergence")
+    words = "-" if divergence is None else f"{divergence:.3f} bit"
+    stale = "  STALE" if group.get("label_stale") else ""
     print(
         f"group {group['group']} of {name}: label {group['label'] or '-'}, "
-        f"destination {group['destination'] or '-'}"
+        f"destination {group['destination'] or '-'}; words moved {words}{stale}"
     )
+    return EXIT_OK
+
+
+def _print_label_history(answer: dict[str, Any], as_json: bool) -> int:
+    if as_json:
+        print(json.dumps(answer, indent=2))
+        return EXIT_OK
+    rows = answer["history"]
+    if not rows:
+        print(f"group {answer['group']} of {answer['model']}: no label changes")
+    for row in rows:
+        when = time.strftime("%Y-%m-%d %H:%M:%S", time.gmtime(row["time"]))
+        given = ", ".join(f"{k}={v!r}" for k, v in row["fields"].items()) or "refresh"
+        words = "  words recorded" if row["words_recorded"] else ""
+        print(
+            f"{when}Z  version {row['version']}  {row['action']}: {given} -> label "
+            f"{row['label'] or '-'}, destination {row['destination'] or '-'}{words}"
+        )
     return EXIT_OK
 
 
@@ -1546,10 +1592,29 @@ def build_parser() -> argparse.ArgumentParser:
     api_options(p)
     p.set_defaults(func=cmd_drift)
 
-    p = sub.add_parser("label", help="name a group and say where its messages go")
+    p = sub.add_parser(
+        "label",
+        help="name a group and say where its messages go (changes only the fields given)",
+    )
     p.add_argument("group", type=int, help="group id (see `describe`)")
     p.add_argument("--label", help="the group's name, e.g. 'lost property'")
     p.add_argument("--destination", help="where its messages go, e.g. an address or queue")
+    p.add_argument("--clear-label", action="store_true", help="remove the group's label")
+    p.add_argument(
+        "--clear-destination", action="store_true", help="remove the group's destination"
+    )
+    p.add_argument(
+        "--refresh",
+        action="store_true",
+        help="record the group's words now as what the label describes (clears label_stale)",
+    )
+    p.add_argument(
+        "--replace",
+        action="store_true",
+        help="replace the whole label (HTTP PUT): a field not given is cleared",
+    )
+    p.add_argument("--history", action="store_true", help="print the group's label changes instead")
+    p.add_argument("--json", action="store_true", help="print JSON instead of text")
     api_options(p)
     p.set_defaults(func=cmd_label)
 

@@ -12,10 +12,12 @@ Two kinds of figures:
   heartbeat).
 
 The review-flag counting also keeps the most recent flagged documents of each model in memory
-(:class:`FlaggedDocuments`, ``flagged_documents_kept`` per model, text cut to 200 characters)
-for the dashboard, and beside them the whole text of each one that has an id and at most
-:data:`WHOLE_TEXT_CHARACTERS` characters (never served: a correction that names a flagged
-message by id finds its text there); they are lost when the process restarts.
+(:class:`FlaggedDocuments`, ``flagged_documents_kept`` per model, listed with the text cut to
+200 characters) for the dashboard; they are lost when the process restarts. Each keeps an id
+(the client's, else the stream id of a document queued with ``learn``, else a generated
+``flagged-...`` one) and its text up to ``flagged_text_chars``, so that a correction naming
+only the id (the dashboard's Confirm and Reassign) can be given its text:
+:meth:`FlaggedDocuments.text_for`.
 """
 
 from __future__ import annotations
@@ -26,6 +28,7 @@ import logging
 import re
 import threading
 import time
+import uuid
 from collections.abc import Iterator
 from typing import Any
 
@@ -44,9 +47,6 @@ log = logging.getLogger(__name__)
 _MODEL_PATH = re.compile(r"^/models/([A-Za-z0-9][A-Za-z0-9_.-]{0,63})$")
 _ROUTE_PATH = re.compile(r"^/models/([A-Za-z0-9][A-Za-z0-9_.-]{0,63})/(route|documents)$")
 SNIPPET_CHARACTERS = 200
-# Longest flagged text kept whole for corrections by id (a size choice: 50 kept messages a
-# model at most 1 MB each; common practice, no source)
-WHOLE_TEXT_CHARACTERS = 20_000
 # Routing latency buckets, seconds: single documents take well under a millisecond of model
 # time, batches of thousands take tens of milliseconds (common practice, no source).
 LATENCY_BUCKETS = (0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 1.0, 2.5, 5.0)
@@ -73,50 +73,51 @@ class FlaggedDocuments:
     ----------
     keep : int
         Documents kept per model (0 keeps none).
+    text_chars : int
+        Characters of each document's text kept for :meth:`text_for` (the listing shows the
+        first 200 only).
     """
 
-    def __init__(self, keep: int) -> None:
+    def __init__(self, keep: int, text_chars: int = 20_000) -> None:
         self.keep = keep
+        self.text_chars = text_chars
         self._by_model: dict[str, collections.deque[dict[str, Any]]] = {}
-        # per model: (id, whole text) of the kept records that have both, oldest first
-        self._texts: dict[str, collections.deque[tuple[str, str]]] = {}
         self._lock = threading.Lock()
 
-    def add(
-        self, model: str, records: list[dict[str, Any]], texts: list[str] | None = None
-    ) -> None:
-        """Keep ``records`` (newest last); ``texts``: each record's whole text, kept apart
-        (for :meth:`text_of`) when the record has an id and the text is not too long."""
+    def add(self, model: str, records: list[dict[str, Any]]) -> None:
+        """Keep ``records`` (dicts as listed, plus ``full_text``; the newest ``keep`` stay)."""
         if self.keep <= 0 or not records:
             return
         with self._lock:
             queue = self._by_model.setdefault(model, collections.deque(maxlen=self.keep))
             queue.extend(records)
-            if texts is not None:
-                whole = self._texts.setdefault(model, collections.deque(maxlen=self.keep))
-                for record, text in zip(records, texts, strict=True):
-                    if record.get("id") is not None and len(text) <= WHOLE_TEXT_CHARACTERS:
-                        whole.append((str(record["id"]), text))
-
-    def text_of(self, model: str, document_id: str) -> str | None:
-        """The whole text of the newest flagged message of that id, if it is kept."""
-        with self._lock:
-            for kept_id, text in reversed(self._texts.get(model, ())):
-                if kept_id == document_id:
-                    return text
-        return None
 
     def recent(self, model: str, count: int | None = None) -> list[dict[str, Any]]:
-        """Newest first."""
+        """Newest first, as listed (text cut to 200 characters, no full text)."""
         with self._lock:
             items = list(self._by_model.get(model, ()))
         items.reverse()
-        return items if count is None else items[:count]
+        items = items if count is None else items[:count]
+        return [{k: v for k, v in item.items() if k != "full_text"} for item in items]
+
+    def text_for(self, model: str, doc_id: str) -> str | None:
+        """The text of the newest flagged document of ``model`` with id ``doc_id`` (None when
+        none is held): what a correction that leaves the text out is learned with. The text
+        is the whole message up to ``text_chars`` characters."""
+        with self._lock:
+            items = list(self._by_model.get(model, ()))
+        for item in reversed(items):
+            if item.get("id") != doc_id:
+                continue
+            if item.get("full_text") is not None:
+                return str(item["full_text"])
+            # a record without the whole text: its listed text only when nothing was cut
+            return None if item.get("truncated") else str(item.get("text") or "")
+        return None
 
     def forget(self, model: str) -> None:
         with self._lock:
             self._by_model.pop(model, None)
-            self._texts.pop(model, None)
 
 
 class ServiceMetrics:
@@ -228,7 +229,6 @@ class RoutingMeter:
             return
         texts = scope.get("mixroute.texts") or []
         records = []
-        whole: list[str] = []
         now = time.time()
         for i, result in enumerate(results):
             if not result.get("review"):
@@ -239,10 +239,11 @@ class RoutingMeter:
             posterior = result.get("posterior") or []
             best = max((p["probability"] for p in posterior), default=None)
             text = texts[i] if i < len(texts) else ""
+            doc_id = result.get("id") or result.get("stream_id") or _generated_id()
             records.append(
                 {
                     "time": now,
-                    "id": result.get("id"),
+                    "id": doc_id,
                     "group": result.get("group"),
                     "label": result.get("label"),
                     "reasons": list(result.get("review_reasons", ())),
@@ -250,11 +251,16 @@ class RoutingMeter:
                     "version": answer.get("version"),
                     "text": text[:SNIPPET_CHARACTERS],
                     "truncated": len(text) > SNIPPET_CHARACTERS,
+                    "full_text": text[: self.flagged.text_chars],
                 }
             )
-            whole.append(text)
         if model != "_unknown":
-            self.flagged.add(model, records, whole)
+            self.flagged.add(model, records)
+
+
+def _generated_id() -> str:
+    """An id for a flagged document that came without one and was not queued."""
+    return f"flagged-{uuid.uuid4().hex[:16]}"
 
 
 class ModelCollector(Collector):
@@ -280,6 +286,17 @@ class ModelCollector(Collector):
         weight = GaugeMetricFamily(
             "mixroute_group_weight", "Mixture weight of each group.", labels=["model", "group"]
         )
+        label_divergence = GaugeMetricFamily(
+            "mixroute_label_divergence",
+            "JS divergence (bits) of each labelled group's words now from those its label was "
+            "given to; the label is stale above mixroute_label_stale_threshold.",
+            labels=["model", "group"],
+        )
+        label_threshold = GaugeMetricFamily(
+            "mixroute_label_stale_threshold",
+            "The model's label_stale_threshold (bits).",
+            labels=["model"],
+        )
         from_redis = {
             key: family(name, documentation, labels=["model"])
             for key, (family, name, documentation) in _REDIS_FAMILIES.items()
@@ -304,6 +321,9 @@ class ModelCollector(Collector):
             weights = state.weights().tolist() if state is not None else [1.0 / k] * k
             for group, value in zip(ids, weights, strict=True):
                 weight.add_metric([name, str(group)], value)
+            for group, value in sorted(loaded.label_divergence.items()):
+                label_divergence.add_metric([name, str(group)], value)
+            label_threshold.add_metric([name], loaded.label_stale_threshold)
             if not reachable:
                 continue
             try:
@@ -316,7 +336,8 @@ class ModelCollector(Collector):
             except REDIS_DOWN_ERRORS:
                 reachable = False
         redis_up.add_metric([], 1.0 if reachable else 0.0)
-        yield from (version, learned, weight, *from_redis.values(), redis_up)
+        yield from (version, learned, weight, label_divergence, label_threshold)
+        yield from (*from_redis.values(), redis_up)
 
     @staticmethod
     def _from_redis(
@@ -473,7 +494,7 @@ def install(app: FastAPI, settings: Settings) -> ServiceMetrics:
     registry = CollectorRegistry(auto_describe=True)
     service_metrics = ServiceMetrics(registry)
     registry.register(ModelCollector(app))
-    flagged = FlaggedDocuments(settings.flagged_documents_kept)
+    flagged = FlaggedDocuments(settings.flagged_documents_kept, settings.flagged_text_chars)
     app.state.metrics_registry = registry
     app.state.metrics = service_metrics
     app.state.flagged = flagged

@@ -26,6 +26,9 @@ When routing answers ``review: true``
 * ``provisional_model``: the model is still in its warm-up and answered with the provisional
   fit of the documents buffered so far (refitted at every doubling, so a group's number may
   mean another topic after the next refit). The typicality rule is silent for such answers.
+* ``label_stale``: the MAP group's label is stale: the group's words have moved further than
+  ``label_stale_threshold`` from the words its label was given to (``state.label_words``;
+  computed here at every load and label change, O(words recorded x K), not per request).
 
 The "far less typical" review rule
 ----------------------------------
@@ -66,6 +69,7 @@ from service.settings import Settings
 from state.errors import ModelNotFoundError
 from state.group_drift import group_ids_of
 from state.keys import NOTIFY_PATTERN, ModelKeys, model_of_notify_channel
+from state.label_words import WordSketch, label_divergences, sketch_group
 from state.registry import ModelInfo, Registry
 from state.store import ModelStore
 
@@ -243,6 +247,30 @@ class LoadedModel:
     review_unknown_share: float = 0.5
     loaded_at: float = field(default_factory=time.time)
     nbytes: int = 0  # memory of the loaded state and its derived parameters (the cache's cost)
+    # the words each label was given to, and how far each labelled group has moved from them
+    label_words: dict[int, WordSketch] = field(default_factory=dict)
+    label_divergence: dict[int, float] = field(default_factory=dict)
+
+    @property
+    def label_stale_threshold(self) -> float:
+        return float(self.info.options.label_stale_threshold)
+
+    def label_stale(self, group: int) -> bool:
+        """True when the group's label is stale (its words moved past the threshold)."""
+        value = self.label_divergence.get(group)
+        return value is not None and value > self.label_stale_threshold
+
+    @property
+    def routing_state(self) -> MixtureState | None:
+        """The state routing answers with (the provisional fit while warming up), or None."""
+        state = self.state
+        if state is None:
+            return None
+        return state if state.warmed_up else state.provisional
+
+    def measure_labels(self) -> None:
+        """Recompute every labelled group's divergence from its recorded words."""
+        self.label_divergence = label_divergences(self.label_words, self.routing_state)
 
     @property
     def n_groups(self) -> int:
@@ -445,20 +473,28 @@ class ServiceRuntime:
                 self.settings.typicality_min_documents,
                 ids,
             )
-        return LoadedModel(
+        labels_version = _labels_version(store)
+        if previous is not None and previous.labels_version == labels_version:
+            sketches = previous.label_words  # unchanged labels: the words they were given to too
+        else:
+            sketches = store.label_sketches()
+        loaded = LoadedModel(
             name=name,
             info=info,
             store=store,
             version=version,
             state=state,
             checksum=digest,
-            labels_version=_labels_version(store),
+            labels_version=labels_version,
             labels=self._read_labels(name, store),
             typicality=typicality,
             review_threshold=float(info.options.review_threshold),
             review_unknown_share=self.settings.review_unknown_share,
             nbytes=state_memory(state),
+            label_words=sketches,
         )
+        loaded.measure_labels()
+        return loaded
 
     def reload(self, name: str) -> LoadedModel:
         """Re-read one model now (after a rollback or a label change made by this process)."""
@@ -539,6 +575,8 @@ class ServiceRuntime:
                             self._keep(name, self._load(name, loaded))
                 elif labels_version != loaded.labels_version:
                     loaded.labels = self._read_labels(name, loaded.store)
+                    loaded.label_words = loaded.store.label_sketches()
+                    loaded.measure_labels()
                     loaded.labels_version = labels_version
             except ModelNotFoundError:
                 self.forget(name)
@@ -641,17 +679,58 @@ class ServiceRuntime:
     def set_label(
         self, name: str, group: int, label: str | None, destination: str | None
     ) -> dict[str, Any]:
-        """Store an operator's label and destination for one group (both None: clear)."""
+        """Replace an operator's label and destination for one group (both None: clear),
+        recording the group's words now as what the label is given to."""
         loaded = self.model(name)
         loaded.check_group(group)
-        record = _label_dict(
-            self.call(lambda: loaded.store.set_group_label(group, label, destination))
-        )
+        sketch = self._sketch(loaded, group)
+        record = self.call(lambda: loaded.store.set_group_label(group, label, destination, sketch))
+        return self._after_label_write(loaded, group, record, sketch, replace=True)
+
+    def patch_label(
+        self, name: str, group: int, changes: dict[str, str | None], refresh: bool = False
+    ) -> dict[str, Any]:
+        """Change only the given fields of one group's label. The group's words are recorded
+        anew when ``changes`` gives the label a text or ``refresh`` is true; otherwise the
+        words recorded before stay (a new destination says nothing about the content)."""
+        loaded = self.model(name)
+        loaded.check_group(group)
+        renew = refresh or changes.get("label") is not None
+        sketch = self._sketch(loaded, group) if renew else None
+        record = self.call(lambda: loaded.store.patch_group_label(group, changes, sketch))
+        return self._after_label_write(loaded, group, record, sketch, replace=False)
+
+    def _sketch(self, loaded: LoadedModel, group: int) -> WordSketch | None:
+        state = loaded.routing_state
+        if state is None:
+            return None
+        return sketch_group(state, group, loaded.version, time.time())
+
+    def _after_label_write(
+        self,
+        loaded: LoadedModel,
+        group: int,
+        record: Any,
+        sketch: WordSketch | None,
+        *,
+        replace: bool,
+    ) -> dict[str, Any]:
+        """Apply a label write of this process to the model in memory at once (other
+        replicas see it at their next poll: the label counter moved)."""
+        out = _label_dict(record)
         labels = {k: v for k, v in loaded.labels.items() if k != group}
-        if label is not None or destination is not None:
-            labels[group] = record
+        cleared = out["label"] is None and out["destination"] is None
+        if not cleared or out.get("merged_labels"):
+            labels[group] = out
+        words = dict(loaded.label_words)
+        if cleared or (replace and sketch is None):
+            words.pop(group, None)
+        elif sketch is not None:
+            words[group] = sketch
         loaded.labels = labels
-        return record
+        loaded.label_words = words
+        loaded.measure_labels()
+        return out
 
     # -- routing -----------------------------------------------------------------------------
     def route(self, loaded: LoadedModel, texts: list[str]) -> tuple[Routing, np.ndarray]:

@@ -219,6 +219,11 @@ class RouteResult(BaseModel):
     review_reasons: list[ReviewReason] = Field(  # type: ignore[valid-type]
         description="Every review rule that fired (mixture.routing.REVIEW_REASONS)."
     )
+    label_stale: bool = Field(
+        default=False,
+        description="The MAP group's label is stale: the group's words have moved away from "
+        "those the label was given to (further than the model's label_stale_threshold).",
+    )
     queued: bool = Field(
         default=False,
         description="True when this document was added to the stream for learning (false for "
@@ -344,6 +349,21 @@ class GroupOut(BaseModel):
     typicality: dict[str, float] | None = Field(
         default=None, description="Recent mean and spread of log-likelihood per token."
     )
+    label_stale: bool = Field(
+        default=False,
+        description="The label is stale: label_divergence is above label_stale_threshold.",
+    )
+    label_divergence: float | None = Field(
+        default=None,
+        description="JS divergence (bits) of the group's words now from those its label was "
+        "given to, on the recorded words (null: no words recorded).",
+    )
+    label_stale_threshold: float | None = Field(
+        default=None, description="The model's label_stale_threshold (bits)."
+    )
+    label_words_version: int | None = Field(
+        default=None, description="Model version the label's words were recorded at."
+    )
 
 
 class GroupList(BaseModel):
@@ -353,10 +373,50 @@ class GroupList(BaseModel):
 
 
 class LabelIn(StrictIn):
-    """Operator's name for a group and where its messages go."""
+    """Operator's name for a group and where its messages go (PUT: both replaced; a field
+    left out is cleared)."""
 
     label: str | None = Field(default=None, min_length=1, max_length=200)
     destination: str | None = Field(default=None, min_length=1, max_length=200)
+
+
+class LabelPatchIn(StrictIn):
+    """PATCH: only the fields given change (null clears one); ``refresh`` records the group's
+    words now as those the label is given to (so is any new label text)."""
+
+    label: str | None = Field(default=None, min_length=1, max_length=200)
+    destination: str | None = Field(default=None, min_length=1, max_length=200)
+    refresh: bool = Field(
+        default=False,
+        description="Record the group's words now as what the label describes (clears "
+        "label_stale until the words move again).",
+    )
+
+    def changes(self) -> dict[str, str | None]:
+        """The label fields the request gave (null included), by name."""
+        return {
+            name: getattr(self, name)
+            for name in ("label", "destination")
+            if name in self.model_fields_set
+        }
+
+
+class LabelChange(BaseModel):
+    time: float
+    action: Literal["set", "patch", "clear"] = Field(
+        description="set: PUT (whole replacement); patch: PATCH; clear: both fields now empty."
+    )
+    fields: dict[str, str | None] = Field(description="The fields the request gave.")
+    label: str | None = Field(description="The label after the change.")
+    destination: str | None = Field(description="The destination after the change.")
+    version: int = Field(description="Model version at the time.")
+    words_recorded: bool = Field(description="The group's words were recorded anew.")
+
+
+class LabelHistory(BaseModel):
+    model: str
+    group: int
+    history: list[LabelChange] = Field(description="Oldest first (the newest 50 are kept).")
 
 
 # -- corrections and examples (labelled documents) -------------------------------------------

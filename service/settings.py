@@ -119,6 +119,14 @@ class Settings(BaseSettings):
         description="Most recent documents flagged for review kept in this process's memory "
         "per model for the dashboard (0: none; text cut to 200 characters; lost at restart).",
     )
+    flagged_text_chars: int = Field(
+        default=20_000,
+        ge=200,
+        le=1_000_000,
+        description="Characters of each flagged document's text kept in memory, so that a "
+        "correction naming only its id (the dashboard's Confirm and Reassign) is learned from "
+        "the text (the listing shows 200).",
+    )
     api_key: SecretStr = Field(
         default=SecretStr(""),
         description="Key the command line sends to the API (client side; read or admin role).",

@@ -47,6 +47,10 @@ replay             string      JSON replay record: the last rollback and the ski
 notify             channel     pub/sub: the new version after each checkpoint / rollback
 labels             hash        operator labels per group: field = group id, value = JSON
 labels_version     string      counter bumped by every label change (cheap change check)
+label_words        hash        the words each label was given to: field = group id, value =
+                               JSON word sketch (``state.label_words.WordSketch``)
+label_history      hash        operator label changes per group: field = group id, value =
+                               JSON list of the newest records (time, fields, version), capped
 routed             stream      messages routed by the intake doors (IMAP, SMTP): id, time,
                                group, label, posterior, review, filed_to (no text; capped)
 routed_day:<date>  hash        messages routed that UTC day per group (field = group id;
@@ -127,6 +131,8 @@ class ModelKeys:
         "events",
         "heartbeat",
         "history",
+        "label_history",
+        "label_words",
         "labelled_queue",
         "labels",
         "labels_version",
@@ -167,6 +173,8 @@ class ModelKeys:
         self.notify = b + "notify"
         self.labels = b + "labels"
         self.labels_version = b + "labels_version"
+        self.label_words = b + "label_words"  # hash group id -> the words its label was given to
+        self.label_history = b + "label_history"  # hash group id -> JSON list of label changes
         self.labelled_queue = b + "labelled_queue"
         self.routed = b + "routed"
         self.events = b + "events"  # group events (births, merges, retirements), capped list
@@ -193,6 +201,8 @@ class ModelKeys:
             self.replay,
             self.labels,
             self.labels_version,
+            self.label_words,
+            self.label_history,
             self.labelled_queue,
             self.routed,
             self.events,

@@ -69,6 +69,20 @@ class ModelOptions:
         keep apart; here: too far to be the same topic); rule of thumb, no source.
     event_limit : int
         Group-event records kept (births, merges, retirements; the newest).
+    label_stale_threshold : float
+        A label is stale when its group's words have moved this far (Jensen-Shannon
+        divergence, base 2, on the compact record of the words the label was given to:
+        ``state.label_words``) from when it was set. 0.25 bit, on principle: a label is no
+        longer true when about half of its group is something else. A group a share f of
+        whose words come from a distribution disjoint from the labelled one P, i.e.
+        (1 - f) P + f J, is at JS h(f) = f/2 - log2(1 - f/2)/2 + (1 - f)/2 log2((1 - f) /
+        (1 - f/2)) from P; h(1/2) = 1.5 - 0.75 log2 3 = 0.311 bit over every word and at
+        least 0.276 on the compact record (its error bound), so 0.25 fires on any such half
+        take-over (h(0.4) = 0.236 does not), while the content drift alert
+        (``word_drift_threshold``) already fires at 0.1 bit for ordinary drift. Measured on
+        the invented ferry week (seeds 0-5 at 0.4 of its size, 0-2 at full size): the storm
+        day moves no group past 0.053, the junk burst takes the groups it lands in to 0.27-0.58
+        and leaves the others under 0.14 (tests/test_label_stale.py runs three of these).
     """
 
     checkpoint_documents: int = 1000
@@ -91,6 +105,7 @@ class ModelOptions:
     review_threshold: float = 0.6
     word_drift_threshold: float = 0.1
     event_limit: int = 1000
+    label_stale_threshold: float = 0.25
 
     def __post_init__(self) -> None:
         positive_int = (
@@ -127,6 +142,12 @@ class ModelOptions:
             raise OptionsError(
                 f"word_drift_threshold must be in [0, 1] (JS divergence, base 2), got "
                 f"{self.word_drift_threshold!r}"
+            )
+        _check_float("label_stale_threshold", self.label_stale_threshold, minimum=0.0, strict=True)
+        if self.label_stale_threshold > 1.0:
+            raise OptionsError(
+                f"label_stale_threshold must be in (0, 1] (JS divergence, base 2), got "
+                f"{self.label_stale_threshold!r}"
             )
         if self.review_threshold > 1.0:
             raise OptionsError(f"review_threshold must be in (0, 1], got {self.review_threshold!r}")

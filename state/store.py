@@ -10,13 +10,13 @@ part is described there):
 :mod:`state.snapshots`     immutable snapshots and their retention
 :mod:`state.rollback`      rollback and the skip rules of every replay
 :mod:`state.drift_history` history rows, drift report, alerts
-:mod:`state.labels`        operator labels per group
+:mod:`state.labels`        operator labels per group, their history and recorded words
 =========================  ================================================================
 """
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import redis
@@ -27,6 +27,7 @@ from state.errors import ModelNotFoundError
 from state.events import EventRecord, GroupEvents
 from state.handle import ModelHandle
 from state.keys import ModelKeys, validate_model_name
+from state.label_words import WordSketch
 from state.labels import GroupLabels
 from state.lease import Lease, default_worker_name
 from state.options import ModelOptions
@@ -274,6 +275,28 @@ class ModelStore:
         """Group events ever written, by kind."""
         return self.group_events.counts()
 
-    def set_group_label(self, group: int, label: str | None, destination: str | None) -> GroupLabel:
-        """Set (or, with both None, clear) the label and destination of one group."""
-        return self.labels.set(group, label, destination)
+    def set_group_label(
+        self,
+        group: int,
+        label: str | None,
+        destination: str | None,
+        sketch: WordSketch | None = None,
+    ) -> GroupLabel:
+        """Replace (or, with both None, clear) the label and destination of one group; see
+        :meth:`state.labels.GroupLabels.set`."""
+        return self.labels.set(group, label, destination, sketch)
+
+    def patch_group_label(
+        self, group: int, changes: Mapping[str, str | None], sketch: WordSketch | None = None
+    ) -> GroupLabel:
+        """Change only the given fields of one group's label; see
+        :meth:`state.labels.GroupLabels.patch`."""
+        return self.labels.patch(group, changes, sketch)
+
+    def label_sketches(self) -> dict[int, WordSketch]:
+        """The words each label was given to, by group id."""
+        return self.labels.sketches()
+
+    def label_history(self, group: int) -> list[dict[str, Any]]:
+        """One group's label changes, oldest first."""
+        return self.labels.history(group)

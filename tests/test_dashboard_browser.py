@@ -311,12 +311,14 @@ def test_dashboard_edits_a_label_through_the_page(
     group = wait_until(labelled, 20, what="the label through the API")
     assert group["destination"] == "timetable@example.invalid"
     card = "#groups article.group[data-group='1']"
-    wait_until(
-        lambda: "Timetable questions" in browser.find_element(By.CSS_SELECTOR, card).text,
-        20,
-        what="the new label on its card",
-    )
-    assert "timetable@example.invalid" in browser.find_element(By.CSS_SELECTOR, card).text
+
+    def card_text() -> str | None:
+        text = str(browser.find_element(By.CSS_SELECTOR, card).text)
+        return text if "Timetable questions" in text else None
+
+    # steady: the card may be redrawn while it is read
+    shown = wait_until(steady(card_text), 20, what="the new label on its card")
+    assert "timetable@example.invalid" in shown
     # the keyboard focus is back on the card's Edit button, not lost to the page
     focused = browser.switch_to.active_element
     assert focused.get_attribute("class") == "edit-label"
@@ -460,3 +462,193 @@ def test_dashboard_marks_rollbacks_in_the_palette_colours(
             browser.save_screenshot(str(ARTEFACTS / name))
         finally:
             phone_width(browser, None)
+
+
+def steady(probe: Any) -> Any:
+    """``probe`` for wait_until, reading None while the page is redrawing the element it
+    looked at (the 5 s refresh replaces rows and cards whose content changed)."""
+    from selenium.common.exceptions import NoSuchElementException, StaleElementReferenceException
+
+    def read() -> Any:
+        try:
+            return probe()
+        except (StaleElementReferenceException, NoSuchElementException):
+            return None
+
+    return read
+
+
+def flagged_row(driver: Any, doc_id: str) -> Any:
+    from selenium.webdriver.common.by import By
+
+    return driver.find_element(By.CSS_SELECTOR, f"#flagged tr[data-document='{doc_id}']")
+
+
+def corrections_shown(driver: Any) -> str:
+    from selenium.webdriver.common.by import By
+
+    return str(driver.find_element(By.ID, "corrections-count").text)
+
+
+def test_dashboard_reassigns_and_confirms_flagged_messages_by_keyboard_and_counts_them(
+    live: tuple[str, str, httpx.Client], browser: Any
+) -> None:
+    """Issue 12's browser test: a flagged message reassigned to another group from its row
+    (keyboard only: the picker, then Reassign), one confirmed at phone width, each sent as a
+    correction (POST .../corrections with the message's id) and counted from
+    GET .../corrections; the page never scrolls sideways."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+
+    base, model, api = live
+    ARTEFACTS.mkdir(exist_ok=True)
+    open_as_admin(browser, base, model)
+    flagged = api.get(f"/models/{model}/flagged", params={"count": 15}).json()["documents"]
+    target = next(d for d in flagged if d["id"] == "junk-2")
+    row = flagged_row(browser, "junk-2")
+    picker = row.find_element(By.CSS_SELECTOR, "select.group-picker")
+    # labelled controls: the picker has a <label for> and an accessible name, buttons say what
+    assert browser.find_element(By.CSS_SELECTOR, f"label[for='{picker.get_attribute('id')}']")
+    assert "junk-2" in picker.get_attribute("aria-label")
+    reassign = row.find_element(By.CSS_SELECTOR, "button.reassign")
+    assert reassign.get_attribute("disabled")  # nothing picked yet: the routed group
+    assert "junk-2" in row.find_element(By.CSS_SELECTOR, "button.confirm").get_attribute(
+        "aria-label"
+    )
+    # keyboard only: focus the picker, move to the next group, Tab past Confirm to Reassign
+    browser.execute_script("arguments[0].focus()", picker)
+    picker.send_keys(Keys.DOWN)
+    chosen = int(
+        flagged_row(browser, "junk-2")
+        .find_element(By.CSS_SELECTOR, "select.group-picker")
+        .get_attribute("value")
+    )
+    assert chosen != target["group"]
+    active = browser.switch_to.active_element
+    active.send_keys(Keys.TAB)
+    active = browser.switch_to.active_element
+    assert "confirm" in active.get_attribute("class")
+    active.send_keys(Keys.TAB)
+    active = browser.switch_to.active_element
+    assert "reassign" in active.get_attribute("class") and active.is_enabled()
+    active.send_keys(Keys.ENTER)
+    wait_until(
+        steady(lambda: "Reassigned to" in flagged_row(browser, "junk-2").text),
+        20,
+        what="the row's result",
+    )
+
+    # the API holds it as a correction of the chosen group, and the page counts it
+    def held() -> dict[str, Any] | None:
+        answer = api.get(f"/models/{model}/corrections").json()
+        docs = {d["id"]: d for d in answer["documents"]}
+        return answer if docs.get("junk-2", {}).get("group") == chosen else None
+
+    listed = wait_until(held, 30, what="the correction learned")
+    learned_count = listed["sources"].get("correction", 0)
+    wait_until(
+        lambda: corrections_shown(browser).startswith(f"corrections: {learned_count} learned"),
+        20,
+        what="the count on the page",
+    )
+    browser.save_screenshot(str(ARTEFACTS / "dashboard-corrected.png"))
+
+    # at phone width: no sideways scroll, and Confirm works from the keyboard
+    phone_width(browser, 390)
+    try:
+        open_as_admin(browser, base, model)
+        assert browser.execute_script("return document.documentElement.scrollWidth") <= 390
+        other = next(d for d in flagged if d["id"] not in ("junk-2",))
+        confirm = flagged_row(browser, other["id"]).find_element(By.CSS_SELECTOR, "button.confirm")
+        assert confirm.is_displayed()
+        browser.execute_script("arguments[0].focus()", confirm)
+        browser.switch_to.active_element.send_keys(Keys.ENTER)
+        wait_until(
+            steady(lambda: "Confirmed to" in flagged_row(browser, other["id"]).text),
+            20,
+            what="the confirmation's result",
+        )
+
+        def confirmed() -> dict[str, Any] | None:
+            answer = api.get(f"/models/{model}/corrections").json()
+            docs = {d["id"]: d for d in answer["documents"]}
+            return answer if docs.get(other["id"], {}).get("group") == other["group"] else None
+
+        listed = wait_until(confirmed, 30, what="the confirmation learned")
+        count = listed["sources"].get("correction", 0)
+        assert count == learned_count + 1
+        wait_until(
+            lambda: corrections_shown(browser).startswith(f"corrections: {count} learned"),
+            20,
+            what="the count on the page",
+        )
+        assert browser.execute_script("return document.documentElement.scrollWidth") <= 390
+        # the screenshot shows the flagged panel's head (the count) and its first rows
+        browser.execute_script(
+            "document.getElementById('flagged-panel').scrollIntoView();"
+            "document.getElementById('toast').hidden = true;"
+        )
+        browser.save_screenshot(str(ARTEFACTS / "dashboard-phone-corrected.png"))
+    finally:
+        phone_width(browser, None)
+
+
+def test_dashboard_marks_stale_labels_and_keeps_one_by_keyboard(
+    live: tuple[str, str, httpx.Client], browser: Any
+) -> None:
+    """The invented junk burst takes over a labelled group: its card is marked stale (as
+    GET .../groups says), and "Label still fits" (PATCH refresh) clears it. Runs last: it
+    feeds the junk day into the module's model."""
+    from selenium.webdriver.common.by import By
+    from selenium.webdriver.common.keys import Keys
+
+    from service.demo_data import default_days, generate_day
+    from service.testing import learned
+    from tests.ops_support import SCALE
+
+    base, model, api = live
+    ARTEFACTS.mkdir(exist_ok=True)
+    for group in api.get(f"/models/{model}/groups").json()["groups"]:
+        if not group["label"]:
+            answer = api.patch(
+                f"/models/{model}/groups/{group['group']}/label",
+                json={"label": f"topic {group['group']}"},
+            )
+            assert answer.status_code == 200, answer.text
+    before = api.get(f"/models/{model}").json()["documents_learned"]
+    junk_day = generate_day(default_days(SCALE)[4], seed=11)
+    fed = api.post(
+        f"/models/{model}/documents",
+        json={"documents": [{"id": m.id, "text": m.text} for m in junk_day]},
+    )
+    assert fed.status_code == 202, fed.text
+    wait_until(lambda: learned(api, model, before + len(junk_day)), 90, what="the junk day")
+
+    def stale_groups() -> set[int] | None:
+        groups = api.get(f"/models/{model}/groups").json()["groups"]
+        found = {g["group"] for g in groups if g["label_stale"]}
+        return found or None
+
+    stale = wait_until(stale_groups, 30, what="a stale label")
+    open_as_admin(browser, base, model)
+
+    def marked() -> set[int]:
+        cards = browser.find_elements(By.CSS_SELECTOR, "#groups article.group[data-label-stale]")
+        return {int(c.get_attribute("data-group")) for c in cards}
+
+    wait_until(steady(lambda: marked() == stale), 20, what="the stale cards")
+    group = min(stale)
+    browser.save_screenshot(str(ARTEFACTS / "dashboard-stale.png"))
+
+    def keep_by_keyboard() -> bool:
+        card = browser.find_element(By.CSS_SELECTOR, f"#groups article.group[data-group='{group}']")
+        assert "Label may no longer fit" in card.text
+        keep = card.find_element(By.CSS_SELECTOR, "button.refresh-label")
+        assert str(group) in keep.get_attribute("aria-label")
+        browser.execute_script("arguments[0].focus()", keep)
+        browser.switch_to.active_element.send_keys(Keys.ENTER)
+        return True
+
+    wait_until(steady(keep_by_keyboard), 20, what="'Label still fits' pressed")
+    wait_until(steady(lambda: group not in marked()), 20, what="the card no longer stale")
+    assert api.get(f"/models/{model}/groups/{group}").json()["label_stale"] is False

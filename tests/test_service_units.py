@@ -74,6 +74,9 @@ def test_review_reasons_follow_the_rule() -> None:
         provisional=False,
         group_ids=list(range(state.n_groups)),
         starting_groups=state.n_groups,
+        # group 0's label is stale (its words moved past the threshold), group 1's is not
+        label_divergence={0: 0.4, 1: 0.01},
+        label_stale=lambda group: group == 0,
     )
     results = build_results(loaded, documents, routing, atypical, None, None)  # type: ignore[arg-type]
     for result, posterior in zip(results, routing.posterior, strict=True):
@@ -81,6 +84,9 @@ def test_review_reasons_follow_the_rule() -> None:
         assert ("low_posterior" in result["review_reasons"]) == low
         assert result["review"] == bool(result["review_reasons"])
         assert result["label"] == ("L0" if result["group"] == 0 else None)
+        assert result["label_stale"] is (result["group"] == 0)
+        assert ("label_stale" in result["review_reasons"]) is (result["group"] == 0)
+    assert any(r["label_stale"] for r in results) and not all(r["label_stale"] for r in results)
     assert "atypical" in results[1]["review_reasons"]
     assert "mostly_unknown_words" in results[-2]["review_reasons"]
     assert results[-2]["known_tokens"] == 1 and results[-2]["unknown_tokens"] == 3

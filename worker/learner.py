@@ -116,6 +116,7 @@ from state.group_drift import (
     group_ids_of,
     word_reference,
 )
+from state.label_words import LabelWatch
 from state.options import ModelOptions
 from state.reader import (
     PageReader,
@@ -230,6 +231,7 @@ class Worker:
         self._word_references: deque[WordReference] = deque(maxlen=2)
         self._word_reference_age = 0  # checkpoints since the newer was taken
         self._word_alarms: set[int] = set()  # groups whose word-drift alert is standing
+        self._label_watch = LabelWatch(self.store)  # label-stale alerts, once per recorded words
         self._last_auto_snapshot_docs = 0
         self._last_auto_snapshot_time = time.time()
         self.holding = False
@@ -335,6 +337,10 @@ class Worker:
             return False
         self._last_lease = time.monotonic()
         alerts = self._drift_alerts(state) + self._content_alerts() + self._gap_alerts
+        # labels whose group's words moved away from those they were given to (state.label_words)
+        alerts += self._label_watch.alerts(
+            state, self.version + 1, self.options.label_stale_threshold
+        )
         snapshot_reason = self._snapshot_due(state)
         state.metadata["entries_read"] = self._entries_read()
         state.metadata["entries_read_watermark"] = self.handled

@@ -13,7 +13,7 @@ system's.
 The text of a correction may be left out: it is looked up by the message id, first in the
 stream (the client-id key holds the stream id of the document queued under that id, within
 the model's idempotency window), then among the messages this API process flagged for review
-(``GET .../flagged``; its memory keeps the whole text of those up to 20,000 characters).
+(``GET .../flagged``, which holds each text up to ``MIXROUTE_FLAGGED_TEXT_CHARS``).
 """
 
 from __future__ import annotations
@@ -68,10 +68,11 @@ def _check_count(n: int, where: str, settings: Settings) -> None:
         )
 
 
-def _flagged_text(request: Request, model: str, document_id: str) -> str | None:
-    """The whole text of a message this process flagged for review (None when not kept)."""
+def _flagged_text(request: Request, model: str, doc_id: str) -> str | None:
+    """The whole text (up to ``flagged_text_chars``) of a message this process flagged for
+    review, by id (the newest; None when not held): ``FlaggedDocuments.text_for``."""
     flagged = getattr(request.app.state, "flagged", None)
-    return None if flagged is None else flagged.text_of(model, document_id)
+    return None if flagged is None else flagged.text_for(model, doc_id)
 
 
 def learned_weight(loaded: LoadedModel, stream_id: str | None) -> tuple[bool, float | None]:
@@ -138,8 +139,9 @@ def queue_corrections(
         if text is None and stream_text is not None:
             text, source = stream_text, "stream"
         if text is None:
-            text = _flagged_text(request, model, doc.id)
-            source = "flagged"
+            held = _flagged_text(request, model, doc.id)
+            if held is not None:
+                text, source = held, "flagged"
         if text is None or not text.strip():
             where = "gone from the stream (retention)" if stream_id else "not in the stream"
             raise InvalidFieldError(

@@ -7,9 +7,10 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Query
 
 from mixture.describe import describe_groups
+from service.errors import InvalidFieldError
 from service.routers import COMMON_RESPONSES, Runtime, StrictJsonRoute
-from service.runtime import LoadedModel
-from service.schemas import GroupList, GroupOut, LabelIn, Problem
+from service.runtime import GroupNotFoundError, LoadedModel
+from service.schemas import GroupList, GroupOut, LabelHistory, LabelIn, LabelPatchIn, Problem
 
 router = APIRouter(tags=["groups"], responses=COMMON_RESPONSES, route_class=StrictJsonRoute)
 
@@ -35,6 +36,7 @@ def group_dicts(
     for g, group_id in enumerate(ids):
         summary = by_position.get(g)
         label = loaded.labels.get(group_id) or {}
+        sketch = loaded.label_words.get(group_id)
         out.append(
             {
                 "group": group_id,
@@ -57,6 +59,10 @@ def group_dicts(
                     "mean": typicality["mean"][g],
                     "std": typicality["std"][g],
                 },
+                "label_stale": loaded.label_stale(group_id),
+                "label_divergence": loaded.label_divergence.get(group_id),
+                "label_stale_threshold": loaded.label_stale_threshold,
+                "label_words_version": sketch.version if sketch is not None else None,
             }
         )
     return out
@@ -106,7 +112,49 @@ def get_group(
     summary="Set a group's label and destination",
 )
 def set_label(model: str, group: int, body: LabelIn, runtime: Runtime) -> dict[str, Any]:
-    """Name a group and say where its messages go; routing answers carry both from now on."""
+    """Name a group and say where its messages go; routing answers carry both from now on.
+
+    A whole replacement: a field left out is cleared (PATCH changes only the fields given).
+    The group's words now are recorded as what the label is given to."""
     runtime.set_label(model, group, body.label, body.destination)
     loaded = runtime.model(model)
     return group_dicts(loaded, 10, 3.0)[loaded.position_of(group)]
+
+
+@router.patch(
+    "/models/{model}/groups/{group}/label",
+    response_model=GroupOut,
+    responses=NOT_FOUND,
+    summary="Change some fields of a group's label",
+)
+def patch_label(model: str, group: int, body: LabelPatchIn, runtime: Runtime) -> dict[str, Any]:
+    """Change only the fields given (``null`` clears one). A new label text or
+    ``refresh: true`` records the group's words now as what the label is given to (clearing
+    ``label_stale``); a change of destination alone keeps the words recorded before."""
+    changes = body.changes()
+    if not changes and not body.refresh:
+        raise InvalidFieldError(
+            "give at least one of label, destination (null clears it) or refresh: true", "body"
+        )
+    runtime.patch_label(model, group, changes, body.refresh)
+    loaded = runtime.model(model)
+    return group_dicts(loaded, 10, 3.0)[loaded.position_of(group)]
+
+
+@router.get(
+    "/models/{model}/groups/{group}/label/history",
+    response_model=LabelHistory,
+    responses=NOT_FOUND,
+    summary="A group's label changes",
+)
+def label_history(model: str, group: int, runtime: Runtime) -> dict[str, Any]:
+    """Every PUT and PATCH of the group's label, oldest first (the newest 50): time, action,
+    the fields given, the label and destination after it, the model version at the time.
+    A retired or absorbed group's history stays readable."""
+    loaded = runtime.model(model)
+    history = runtime.call(lambda: loaded.store.label_history(group))
+    if not history and group not in loaded.group_ids:
+        raise GroupNotFoundError(
+            f"model {model!r} has groups {loaded.group_ids} and no label history for group {group}"
+        )
+    return {"model": model, "group": group, "history": history}

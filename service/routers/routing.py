@@ -48,6 +48,8 @@ def build_results(
         return group_id >= starting and not (label and (label["label"] or label["destination"]))
 
     new_group = np.array([unnamed_newborn(ids[g]) for g in groups], dtype=bool)
+    stale_ids = {g for g in loaded.label_divergence if loaded.label_stale(g)}
+    stale = [ids[g] in stale_ids for g in groups]
     all_reasons = review_reasons(
         routing,
         loaded.review_threshold,
@@ -55,6 +57,7 @@ def build_results(
         atypical,
         provisional=loaded.provisional,
         new_group=new_group,
+        label_stale=np.array(stale, dtype=bool) if stale_ids else None,
     )
     margins = routing.margin.tolist()
     llpt = routing.log_likelihood_per_token.tolist()
@@ -83,6 +86,7 @@ def build_results(
                 "review_reasons": reasons,
                 "queued": stream_id is not None,
                 "stream_id": stream_id,
+                "label_stale": stale[i],
             }
         )
     return results

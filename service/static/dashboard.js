@@ -9,7 +9,9 @@ const REFRESH_MS = 5000;
 const SVG_NS = "http://www.w3.org/2000/svg";
 
 const view = { model: null, role: null, keysRequired: false, snapshots: [], busy: false, again: false,
-               editing: null, reasonWords: null, palette: null };
+               editing: null, reasonWords: null, palette: null, groups: [],
+               // flagged messages: the group picked per message id, and what was sent for it
+               picked: {}, corrected: {} };
 
 function $(id) { return document.getElementById(id); }
 function colour(group) {
@@ -274,6 +276,10 @@ function drawGroups(groups) {
   if (signature === view.groupSignature) return;
   view.groupSignature = signature;
   const box = $("groups");
+  // a redraw must not take the keyboard focus away: note the focused button, focus it again
+  const active = document.activeElement;
+  const focused = active && box.contains(active) && active.dataset.group != null
+    ? `button.${active.classList[0]}[data-group="${active.dataset.group}"]` : null;
   box.textContent = "";
   const maxWeight = Math.max(...groups.map((g) => g.weight), 1e-9);
   for (const group of groups) {
@@ -294,6 +300,19 @@ function drawGroups(groups) {
       document.createTextNode(group.distinctive_terms.map((t) => t.term).join(", ") || "–")]);
     const card = el("article", { class: "group", "data-group": group.group,
       style: `border-top-color:${colour(group.group)}` }, [title, size, bar, top, distinct]);
+    const moved = labelMoved(group);
+    if (moved) card.appendChild(moved);
+    if (group.label_stale) {
+      card.classList.add("label-stale");
+      card.dataset.labelStale = "true";
+    }
+    if (view.role === "admin" && group.label_stale) {
+      const still = el("button", { type: "button", class: "refresh-label", "data-group": group.group,
+        text: "Label still fits",
+        "aria-label": `Keep the label of group ${group.group}: record its words now as what the label describes` });
+      still.addEventListener("click", () => refreshLabel(group, still));
+      card.appendChild(still);
+    }
     if (view.role === "admin") {
       const edit = el("button", { type: "button", class: "edit-label", "data-group": group.group,
         text: "Edit label", "aria-label": `Edit the label and destination of group ${group.group}` });
@@ -301,6 +320,38 @@ function drawGroups(groups) {
       card.appendChild(edit);
     }
     box.appendChild(card);
+  }
+  const again = focused ? box.querySelector(focused) : null;
+  if (again) again.focus();
+}
+
+// How far a labelled group's words moved since its label was set; a warning when stale.
+function labelMoved(group) {
+  if (group.label_divergence == null) return null;
+  const value = group.label_divergence.toFixed(3);
+  const limit = group.label_stale_threshold != null ? group.label_stale_threshold.toFixed(2) : "?";
+  const since = group.label_words_version != null ? ` since version ${group.label_words_version}` : "";
+  if (!group.label_stale) {
+    return el("div", { class: "label-moved", text: `words moved ${value} bit${since} (stale above ${limit})` });
+  }
+  return el("p", { class: "label-warning", role: "note" }, [
+    el("strong", { text: "Label may no longer fit. " }),
+    document.createTextNode(`The group's words moved ${value} bit${since}, above ${limit}: ` +
+      "check its terms, then edit the label or keep it."),
+  ]);
+}
+
+async function refreshLabel(group, button) {
+  button.disabled = true;
+  try {
+    await api("PATCH", `/models/${encodeURIComponent(view.model)}/groups/${group.group}/label`,
+      { refresh: true });
+    toast(`Group ${group.group}: its words now are what the label describes.`);
+    view.groupSignature = null; view.focusGroup = group.group;
+    await refresh();
+  } catch (error) {
+    button.disabled = false;
+    toast(`Keeping the label failed: ${error.message}`, true);
   }
 }
 
@@ -430,10 +481,17 @@ function emptyRow(body, columns, text) {
 }
 
 function drawFlagged(documents, labels) {
+  // redraw only on a change, so a picker or a button never moves under the pointer or focus
+  const signature = JSON.stringify([view.model, view.role, documents, labels, view.corrected,
+    view.groups.map((g) => g.group), view.reasonWords ? 1 : 0]);
+  if (signature === view.flaggedSignature) return;
+  const active = document.activeElement;
+  const focusId = active && active.closest && active.closest("#flagged") ? active.id : null;
+  view.flaggedSignature = signature;
   const body = $("flagged");
   body.textContent = "";
-  if (!documents.length) { emptyRow(body, 5, "nothing flagged since this API process started"); return; }
-  for (const doc of documents) {
+  if (!documents.length) { emptyRow(body, 6, "nothing flagged since this API process started"); return; }
+  documents.forEach((doc, row) => {
     // each reason in words, its name beside it (the name the API's review_reasons carry)
     const words = view.reasonWords || {};
     const reasons = cell("why it needs a look", { class: "why" }, [el("ul", { class: "reasons" },
@@ -441,15 +499,92 @@ function drawFlagged(documents, labels) {
         document.createTextNode(words[r] || r), document.createTextNode(" "),
         ...(words[r] ? [el("code", { text: `(${r})` })] : []),
       ])))]);
-    body.appendChild(el("tr", {}, [
+    body.appendChild(el("tr", { "data-document": doc.id }, [
       cell("when", { text: clock(doc.time) }),
       cell("document", { text: doc.id || "–" }),
       cell("group", { text: `${groupName(doc.group, labels)}` +
         (doc.probability != null ? ` (${doc.probability.toFixed(2)})` : "") }),
       reasons,
       cell("text", { class: "text", text: doc.text + (doc.truncated ? " …" : "") }),
+      cell("correction", { class: "correct" }, correctionControls(doc, row, labels)),
     ]));
+  });
+  if (focusId && $(focusId)) $(focusId).focus();
+}
+
+// Confirm (the group it was routed to) or Reassign (the group picked) one flagged message: a
+// correction the model learns as a labelled document (POST .../corrections, admin role).
+function correctionControls(doc, row, labels) {
+  const done = view.corrected[doc.id];
+  const status = el("span", { class: "correct-status", role: "status", id: `correct-status-${row}`,
+    text: done ? done.text : "" });
+  if (done && done.error) status.classList.add("error");
+  if (view.role !== "admin") {
+    return [el("span", { class: "small", text: "needs the admin role" }), status];
   }
+  const pickerId = `correct-group-${row}`;
+  const picker = el("select", { id: pickerId, class: "group-picker",
+    "aria-label": `Group for message ${doc.id}` });
+  const ids = view.groups.length ? view.groups.map((g) => g.group) : [doc.group];
+  if (!ids.includes(doc.group)) ids.unshift(doc.group);
+  const picked = view.picked[doc.id] != null ? view.picked[doc.id] : doc.group;
+  for (const g of ids) {
+    const option = el("option", { value: String(g),
+      text: groupName(g, labels) + (g === doc.group ? " (routed)" : "") });
+    if (g === picked) option.selected = true;
+    picker.appendChild(option);
+  }
+  const confirm = el("button", { type: "button", class: "confirm", id: `correct-confirm-${row}`,
+    text: "Confirm", "aria-label": `Confirm message ${doc.id} belongs to ${groupName(doc.group, labels)}` });
+  const reassign = el("button", { type: "button", class: "reassign", id: `correct-reassign-${row}`,
+    text: "Reassign", "aria-label": `Reassign message ${doc.id} to the group picked` });
+  reassign.disabled = picked === doc.group;
+  picker.addEventListener("change", () => {
+    view.picked[doc.id] = Number(picker.value);
+    reassign.disabled = Number(picker.value) === doc.group;
+  });
+  const send = async (group, verb) => {
+    confirm.disabled = true; reassign.disabled = true;
+    status.textContent = "sending…";
+    try {
+      const answer = await api("POST", `/models/${encodeURIComponent(view.model)}/corrections`,
+        { documents: [{ id: doc.id, group }] });
+      const queued = answer.corrections && answer.corrections[0];
+      const text = `${verb} to ${groupName(group, labels)}: queued` +
+        (queued && queued.stream_id ? ` (${queued.stream_id})` : "");
+      view.corrected[doc.id] = { group, text };
+      status.textContent = text;
+      toast(`Message ${doc.id} ${verb.toLowerCase()} to ${groupName(group, labels)}; ` +
+        "the model learns it as a labelled message.");
+      refresh();
+    } catch (error) {
+      const text = `not sent: ${error.message}`;
+      view.corrected[doc.id] = { group, text, error: true };
+      status.textContent = text;
+      status.classList.add("error");
+      confirm.disabled = false; reassign.disabled = Number(picker.value) === doc.group;
+      toast(`The correction of ${doc.id} failed: ${error.message}`, true);
+    }
+  };
+  confirm.addEventListener("click", () => send(doc.group, "Confirmed"));
+  reassign.addEventListener("click", () => send(Number(picker.value), "Reassigned"));
+  const label = el("label", { for: pickerId, class: "visually-hidden", text: `group for ${doc.id}` });
+  return [el("div", { class: "correct-row" }, [label, picker, confirm, reassign]), status];
+}
+
+function drawCorrections(answer, error) {
+  const node = $("corrections-count");
+  if (error) {
+    node.textContent = `corrections: unknown (${error.message})`;
+    node.dataset.count = "";
+    return;
+  }
+  const learned = (answer.sources && answer.sources.correction) || 0;
+  const examples = (answer.sources && answer.sources.example) || 0;
+  node.textContent = `corrections: ${learned} learned` +
+    (examples ? `, ${examples} examples` : "") + `, ${answer.queued} queued`;
+  node.dataset.count = String(learned);
+  node.dataset.queued = String(answer.queued);
 }
 
 function drawDaily(days, labels) {
@@ -595,6 +730,7 @@ async function refresh() {
       alerts: `${base}/drift/alerts?count=500`,
       groups: `${base}/groups?top=8`,
       flagged: `${base}/flagged?count=15`,
+      corrections: `${base}/corrections?count=0`,
       snapshots: `${base}/snapshots`,
       events: `${base}/events?limit=500`,
       daily: `${base}/routed/daily?days=7`,
@@ -611,8 +747,9 @@ async function refresh() {
       else if (n === "ready" && result.reason.data && result.reason.data.models) got[n] = result.reason.data;
       else failed[n] = result.reason;
     });
-    const refused = Object.values(failed).find((e) => e.status === 401 || e.status === 403);
-    if (refused) throw refused;
+    const refused = Object.entries(failed).find(([n, e]) => n !== "corrections" &&
+      (e.status === 401 || e.status === 403));
+    if (refused) throw refused[1];
     // the model answers from memory without its stream: the backlog is what did not answer
     if (got.model && !got.model.stream) failed.stream = new Error("the stream did not answer");
 
@@ -634,6 +771,7 @@ async function refresh() {
         got.snapshots ? got.snapshots.snapshots : []);
     }
     if (got.alerts) drawAlerts(got.alerts.alerts);
+    if (got.groups) view.groups = got.groups.groups;
     if (got.groups && view.editing === null) drawGroups(got.groups.groups);
     if (view.focusGroup != null) {
       const button = document.querySelector(`button.edit-label[data-group="${view.focusGroup}"]`);
@@ -644,6 +782,7 @@ async function refresh() {
       ? "size = mixture weight and expected documents; Edit label names a group and its destination"
       : "size = mixture weight and expected documents; labels need the admin role";
     if (got.flagged) drawFlagged(got.flagged.documents, labels);
+    drawCorrections(got.corrections, failed.corrections);
     if (got.daily) drawDaily(got.daily.days, labels);
     if (got.snapshots) drawSnapshots(got.snapshots.snapshots);
     drawHealth(got.ready, got.model, model.name);
