@@ -103,7 +103,7 @@ class FlaggedDocuments:
     def text_for(self, model: str, doc_id: str) -> str | None:
         """The text of the newest flagged document of ``model`` with id ``doc_id`` (None when
         none is held): what a correction that leaves the text out is learned with. The text
-        is the whole message up to ``text_chars`` characters."""
+        is the whole message; one longer than ``text_chars`` characters is not held."""
         with self._lock:
             items = list(self._by_model.get(model, ()))
         for item in reversed(items):
@@ -251,7 +251,8 @@ class RoutingMeter:
                     "version": answer.get("version"),
                     "text": text[:SNIPPET_CHARACTERS],
                     "truncated": len(text) > SNIPPET_CHARACTERS,
-                    "full_text": text[: self.flagged.text_chars],
+                    # a text over the bound is not kept: a correction must never learn a cut message
+                    "full_text": text if len(text) <= self.flagged.text_chars else None,
                 }
             )
         if model != "_unknown":

@@ -125,7 +125,7 @@ class Settings(BaseSettings):
         le=1_000_000,
         description="Characters of each flagged document's text kept in memory, so that a "
         "correction naming only its id (the dashboard's Confirm and Reassign) is learned from "
-        "the text (the listing shows 200).",
+        "the text; a longer one is not kept and must be sent (the listing shows 200).",
     )
     api_key: SecretStr = Field(
         default=SecretStr(""),
