@@ -67,10 +67,11 @@ from scipy.spatial.distance import jensenshannon
 
 from mixture.em import e_step, fit_batch_em
 from mixture.errors import InputError
-from mixture.kernels import softmax_rows
+from mixture.kernels import smoothed_log_word_prob, softmax_rows
 from mixture.lifecycle_config import LifecycleConfig
 from mixture.novelty import (
     GroupEvidence,
+    UnitEStep,
     dirichlet_multinomial_log_marginal,
     observe_unit,
     overlap_coefficients,
@@ -400,9 +401,7 @@ def _merges(
         if first in touched or second in touched:
             continue
         a, b = position_of(state, first), position_of(state, second)
-        params = state.parameters()
-        p = np.exp(params.log_word_prob[:, a][params.active])
-        q = np.exp(params.log_word_prob[:, b][params.active])
+        p, q = _word_distributions(state, (a, b))
         divergence = float(jensenshannon(p, q, base=2) ** 2)
         if divergence >= config.merge_divergence:
             continue
@@ -424,6 +423,25 @@ def _merges(
             )
         )
     return events
+
+
+def _word_distributions(state: MixtureState, positions: tuple[int, ...]) -> np.ndarray:
+    """Word distributions over the active words of some groups, one per row: O(V) per group.
+
+    The same smoothed estimates as the E-step's (``MixtureState.log_word_prob_rows``, with the
+    running totals), for a few columns only: the whole V x K parameters would cost more than
+    the window's learning (derive_parameters is the dense cost of an EM iteration).
+    """
+    columns = list(positions)
+    ids = np.flatnonzero(state.vocabulary.active_mask())
+    scale = state.count_scale
+    log_prob = smoothed_log_word_prob(
+        state.unscaled_word[ids[:, None], columns] * scale,
+        state.unscaled_total[columns] * scale,
+        state.vocabulary.n_active,
+        state.config.word_pseudocount,
+    )
+    return np.exp(log_prob.T)
 
 
 def birth_log_bayes_factor(
@@ -554,9 +572,7 @@ def _split_buffer(
     return labels
 
 
-def unit_observer(
-    state: MixtureState, unit: sp.csr_matrix
-) -> Callable[[np.ndarray, np.ndarray, np.ndarray], None]:
+def unit_observer(state: MixtureState, unit: sp.csr_matrix) -> Callable[[UnitEStep], None]:
     """The ``observe`` hook of :func:`mixture.online.stepwise_update` for one unit.
 
     Parameters
@@ -566,29 +582,35 @@ def unit_observer(
     unit : csr_matrix (m, capacity)
         The unit's counts. A token is unknown when its word has no mass in any group before
         the unit (new to the model, whichever way the stream was cut into calls).
+
+    Notes
+    -----
+    Everything here works on the E-step's own restriction to the unit's words
+    (``UnitEStep``): the unknown-word test looks at each distinct word once (O(words x K))
+    and the unit is not re-indexed; only novel documents are mapped back to vocabulary ids.
     """
     config = state.config.lifecycle
     evidence = ensure_evidence(state)
     start = state.documents_learned
-    log_weights = state.log_weights()
+    capacity = unit.shape[1]
 
-    def observe(has_tokens: np.ndarray, resp: np.ndarray, log_norm: np.ndarray) -> None:
-        rows = unit[has_tokens] if not has_tokens.all() else unit
-        token_rows = np.repeat(np.arange(rows.shape[0]), np.diff(rows.indptr))
-        lengths = np.bincount(token_rows, weights=rows.data, minlength=rows.shape[0])
-        seen = state.unscaled_word[rows.indices].sum(axis=1) > 0  # before the update
-        new = ~seen
-        unknown = np.bincount(token_rows[new], weights=rows.data[new], minlength=rows.shape[0])
+    def observe(step: UnitEStep) -> None:
+        counts = step.counts
+        seen = state.unscaled_word[step.words].sum(axis=1) > 0  # before the update
+        new_words = (~seen).astype(np.float64)
+        unknown = np.zeros(counts.shape[0]) if seen.all() else counts @ new_words
         observe_unit(
             evidence,
             config,
-            rows,
-            resp,
-            log_norm,
-            log_weights,
-            lengths,
+            counts,
+            step.resp,
+            step.log_norm,
+            step.log_weights,
+            step.lengths,
             unknown,
-            start + np.flatnonzero(has_tokens),
+            start + np.flatnonzero(step.present),
+            words=step.words,
+            columns=capacity,
         )
 
     return observe

@@ -67,6 +67,37 @@ def dirichlet_multinomial_log_marginal(
     )
 
 
+@dataclass(frozen=True)
+class UnitEStep:
+    """One learning unit's E-step, as mixture.online has it before the update.
+
+    Attributes
+    ----------
+    present : ndarray (m_all,) of bool
+        Which rows of the unit had tokens (the rows below are those).
+    counts : csr_matrix (m, n_words)
+        Their counts over the unit's words only (column j is vocabulary id ``words[j]``).
+    words : ndarray (n_words,)
+        Vocabulary ids of the unit's words, sorted.
+    lengths : ndarray (m,)
+        Tokens per document.
+    resp : ndarray (m, K)
+        Posteriors under the parameters before the update (read only).
+    log_norm : ndarray (m,)
+        log p(d) under the mixture.
+    log_weights : ndarray (K,)
+        Log mixture weights used for ``resp``.
+    """
+
+    present: np.ndarray
+    counts: sp.csr_matrix
+    words: np.ndarray
+    lengths: np.ndarray
+    resp: np.ndarray
+    log_norm: np.ndarray
+    log_weights: np.ndarray
+
+
 @dataclass
 class GroupEvidence:
     """Lifecycle evidence of a state with K groups (arrays indexed by group position).
@@ -347,6 +378,8 @@ def observe_unit(
     lengths: np.ndarray,
     unknown_tokens: np.ndarray,
     ordinals: np.ndarray,
+    words: np.ndarray | None = None,
+    columns: int = 0,
 ) -> int:
     """Update the evidence with one unit's E-step and buffer its novel documents.
 
@@ -355,7 +388,7 @@ def observe_unit(
     evidence : GroupEvidence
         Changed in place.
     config : LifecycleConfig
-    counts : csr_matrix (m, capacity)
+    counts : csr_matrix (m, capacity), or (m, n_words) with ``words``
         The unit's documents with evidence (rows of ``resp``).
     resp : ndarray (m, K)
         Posteriors under the parameters before the unit's update.
@@ -369,6 +402,10 @@ def observe_unit(
         Tokens of words the model had not seen before this unit.
     ordinals : ndarray (m,) int64
         Stream positions of the documents.
+    words : ndarray (n_words,), optional
+        Vocabulary id of each column of ``counts`` (None: the columns are vocabulary ids).
+    columns : int
+        With ``words``: the width of the buffered rows (the vocabulary's capacity).
 
     Returns
     -------
@@ -382,8 +419,13 @@ def observe_unit(
         map_log_lik = np.log(resp[rows, groups]) + log_norm - log_weights[groups]
     per_token = map_log_lik / lengths
 
-    mean = evidence.typical_mean()[groups]
-    std = evidence.typical_std()[groups]
+    with np.errstate(invalid="ignore", divide="ignore"):  # typical_mean and typical_std, once
+        group_mean = np.where(
+            evidence.typical_weight > 0, evidence.typical_sum / evidence.typical_weight, np.nan
+        )
+        group_var = evidence.typical_square / evidence.typical_weight - group_mean**2
+    mean = group_mean[groups]
+    std = np.sqrt(np.maximum(group_var, 0.0))[groups]
     judged = evidence.typical_weight[groups] >= config.typicality_min_documents
     with np.errstate(invalid="ignore", divide="ignore"):
         far_below = judged & (per_token < mean - config.novelty_z * std)
@@ -404,7 +446,13 @@ def observe_unit(
 
     chosen = np.flatnonzero(novel)
     if chosen.size:
-        evidence.push(counts[chosen], ordinals[chosen], config, log_norm[chosen])
+        rows = counts[chosen]
+        if words is not None:  # back to vocabulary ids (same entries, same order)
+            rows = sp.csr_matrix(
+                (rows.data, words[rows.indices], rows.indptr),
+                shape=(chosen.size, max(columns, int(words[-1]) + 1)),
+            )
+        evidence.push(rows, ordinals[chosen], config, log_norm[chosen])
     return int(chosen.size)
 
 

@@ -37,6 +37,7 @@ from mixture.em import fit_pending, validate_counts
 from mixture.errors import InputError
 from mixture.kernels import softmax_rows
 from mixture.lifecycle import GroupEvent, run_due_decisions, seed_typicality, unit_observer
+from mixture.novelty import UnitEStep
 from mixture.stats import MixtureState
 
 
@@ -82,7 +83,7 @@ def stepwise_update(
     state: MixtureState,
     counts: sp.spmatrix,
     *,
-    observe: Callable[[np.ndarray, np.ndarray, np.ndarray], None] | None = None,
+    observe: Callable[[UnitEStep], None] | None = None,
 ) -> BatchReport:
     """Apply stepwise EM updates with a mini-batch of counts.
 
@@ -98,10 +99,11 @@ def stepwise_update(
         Warmed up; changed in place.
     counts : sparse matrix of shape (m, capacity)
         Word counts of the batch over the state's vocabulary ids.
-    observe : callable (evidence, resp, log_norm), optional
-        Called with the E-step before the state changes: which rows had tokens (bool, (m,)),
-        their posteriors and their log p(d) (the group lifecycle's evidence). Only for a batch
-        of at most ``batch_size`` rows (one update), since it is built for one unit.
+    observe : callable (UnitEStep), optional
+        Called with the E-step before the state changes (the group lifecycle's evidence):
+        which rows had tokens, their counts over the batch's words, their posteriors and
+        log p(d) (mixture.novelty.UnitEStep). Only for a batch of at most ``batch_size`` rows
+        (one update), since it is built for one unit.
 
     Returns
     -------
@@ -133,7 +135,7 @@ def stepwise_update(
 def _update_unit(
     state: MixtureState,
     matrix: sp.csr_matrix,
-    observe: Callable[[np.ndarray, np.ndarray, np.ndarray], None] | None = None,
+    observe: Callable[[UnitEStep], None] | None = None,
 ) -> BatchReport:
     """One stepwise update with at most ``batch_size`` validated rows."""
     # Row sums from the raw arrays (scipy's sum costs more than the rest of a small update).
@@ -169,7 +171,9 @@ def _update_unit(
     elif possible.any():
         report.log_likelihood_per_token = float(log_norm[possible].sum() / lengths[possible].sum())
     if observe is not None:
-        observe(evidence, resp, log_norm)
+        # What the E-step already has (the batch's words, row lengths, log weights): the
+        # observer then costs O(words in the unit x K) with no sparse re-indexing of its own.
+        observe(UnitEStep(evidence, local_counts, rows, lengths, resp, log_norm, log_weights))
 
     batch_word = np.asarray(local_counts.T @ resp) / m  # average per document
     batch_docs = resp.sum(axis=0) / m
