@@ -332,6 +332,7 @@ def run_due_decisions(state: MixtureState) -> list[GroupEvent]:
     evidence = state.evidence
     if evidence is None or evidence.window_documents < config.check_every_documents:
         return []
+    apply_held_scale(state)
     events: list[GroupEvent] = []
     events += _retirements(state, evidence, config)
     events += _merges(state, evidence, config)
@@ -343,6 +344,32 @@ def run_due_decisions(state: MixtureState) -> list[GroupEvent]:
     evidence.window_documents = 0.0
     evidence.window_start = state.documents_learned
     return events
+
+
+def apply_held_scale(state: MixtureState) -> None:
+    """Give each group's word statistics the forgetting they were spared (O(V) per group
+    whose factor is not 1; ``lifecycle.forget_by_own_traffic``, see mixture.novelty).
+
+    Per group k and unit t, stepwise EM does s_k <- (1 - eta_t) s_k + eta_t b_kt for all
+    groups alike; own-traffic forgetting wants s_k <- (1 - eta_t) ** u_kt s_k + eta_t b_kt.
+    Between windows the state keeps the first recursion's column times exp(-H_kt) for the
+    units' additions (H_kt: the owed log factor, sum of (u - 1) ln(1 - eta), up to t), so
+    multiplying the column by exp(H_k) here gives the second recursion exactly; in between,
+    each group's column is the exact one times a per-group constant, so its word
+    distribution is exact up to the pseudo-count's share.
+    """
+    evidence = state.evidence
+    if evidence is None or evidence.held_log_scale is None:
+        return
+    owed = np.flatnonzero(evidence.held_log_scale != 0.0)
+    if owed.size == 0:
+        return
+    factor = np.exp(evidence.held_log_scale[owed])
+    state.unscaled_word[:, owed] *= factor
+    state.unscaled_total = state.unscaled_total.copy()
+    state.unscaled_total[owed] *= factor
+    evidence.held_log_scale = np.zeros(state.n_groups)
+    state.touch()
 
 
 def _retirements(
@@ -572,7 +599,9 @@ def _split_buffer(
     return labels
 
 
-def unit_observer(state: MixtureState, unit: sp.csr_matrix) -> Callable[[UnitEStep], None]:
+def unit_observer(
+    state: MixtureState, unit: sp.csr_matrix
+) -> Callable[[UnitEStep], np.ndarray | None]:
     """The ``observe`` hook of :func:`mixture.online.stepwise_update` for one unit.
 
     Parameters
@@ -588,13 +617,15 @@ def unit_observer(state: MixtureState, unit: sp.csr_matrix) -> Callable[[UnitESt
     Everything here works on the E-step's own restriction to the unit's words
     (``UnitEStep``): the unknown-word test looks at each distinct word once (O(words x K))
     and the unit is not re-indexed; only novel documents are mapped back to vocabulary ids.
+    With ``forget_by_own_traffic`` the hook returns the per-group factors of the unit's word
+    statistics (see :func:`apply_held_scale`).
     """
     config = state.config.lifecycle
     evidence = ensure_evidence(state)
     start = state.documents_learned
     capacity = unit.shape[1]
 
-    def observe(step: UnitEStep) -> None:
+    def observe(step: UnitEStep) -> np.ndarray | None:
         counts = step.counts
         seen = state.unscaled_word[step.words].sum(axis=1) > 0  # before the update
         new_words = (~seen).astype(np.float64)
@@ -611,6 +642,14 @@ def unit_observer(state: MixtureState, unit: sp.csr_matrix) -> Callable[[UnitESt
             start + np.flatnonzero(step.present),
             words=step.words,
             columns=capacity,
+            step=step.step,
         )
+        if not config.forget_by_own_traffic:
+            return None
+        # The column is multiplied by exp(held) at the window's end (apply_held_scale); this
+        # unit's statistics enter divided by what is owed so far, so after that each one
+        # carries exactly the forgetting owed for the units after it.
+        assert evidence.held_log_scale is not None
+        return np.exp(-evidence.held_log_scale)
 
     return observe
