@@ -8,7 +8,10 @@
    before it read with XREAD, for comparison with earlier figures; with the absolute figure
    (target >= 20,000 documents per second). The worker's figure includes decoding, the
    tokenizer, stepwise EM and its checkpoints (state bytes, history row in one MULTI).
-   The same again with the group lifecycle on (target: still >= 0.5 of the bare loop).
+   The same with the group lifecycle on (target: still >= 0.5 of the bare loop), paired: two
+   models (lifecycle off and on) learn the same texts, and each repeat times the bare loop,
+   then both workers in alternating order, so the three figures of a repeat share the same
+   minute of a shared machine; medians over the repeats of each ratio.
    For scale, mixture/ alone (``OnlineLearner.learn`` in the same units, no Redis) is timed
    on the same texts too: the worker can be no faster than that.
 2. One checkpoint for K = 50 groups and V = 100,000 words: seconds for ``state_to_bytes`` +
@@ -237,6 +240,103 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int, lifecycle: bool
     print(f"  ratio worker / bare loop  : {statistics.median(ratios):12.3f}   (target >= 0.5)")
     print(f"  ratio worker / unconverted: {statistics.median(raw_ratios):12.3f}")
     print(f"  ratio worker / group loop : {statistics.median(group_ratios):12.3f}")
+
+
+def _throughput_setup(
+    server: EmbeddedRedis, name: str, lifecycle: bool
+) -> tuple[ModelStore, ModelOptions]:
+    """A model of the throughput runs, warmed up (its cold start outside the measurement)."""
+    client = server.client()
+    config = MixtureConfig(
+        n_groups=8,
+        warmup_documents=1000,
+        batch_size=256,
+        n_restarts=2,
+        max_iter=50,
+        vocabulary_limit=100_000,
+        lifecycle=LifecycleConfig(enabled=lifecycle),
+    )
+    options = ModelOptions(
+        checkpoint_documents=5000,
+        checkpoint_seconds=1.0,
+        flush_partial_seconds=0.05,
+        read_count=1000,
+        read_block_ms=50,
+        snapshot_every_documents=None,
+        snapshot_every_seconds=None,
+        stream_max_length=None,
+        stream_max_age_seconds=None,
+    )
+    Registry(client).create(name, config, options)
+    store = ModelStore(client, name)
+    warm = short_messages(config.warmup_documents, seed=1)
+    store.enqueue(warm)
+    worker_run(store, options, len(warm))
+    return store, options
+
+
+def lifecycle_pair(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
+    """Lifecycle off and on against the bare XREAD loop, paired within each repeat.
+
+    Two models learn the same texts; each repeat times the bare loop over the off model's
+    new entries, then the two workers (the order alternating between repeats), then the bare
+    loop again over the on model's entries. A worker's ratio is its time over the mean of the
+    two bare loops. The on/off share is also given in the worker's CPU seconds (this
+    process's), which the other jobs of a shared machine disturb less than wall time.
+    """
+    models = {
+        enabled: _throughput_setup(server, f"bench-pair-{'on' if enabled else 'off'}", enabled)
+        for enabled in (False, True)
+    }
+    learned = 1000
+    ratios: dict[bool, list[float]] = {False: [], True: []}
+    rates: dict[bool, list[float]] = {False: [], True: []}
+    bare_rates, kept, cpu_kept = [], [], []
+    for rep in range(repeats):
+        texts = short_messages(n_docs, seed=100 + rep)
+        starts = {}
+        for enabled, (store, _) in models.items():
+            starts[enabled] = store.last_stream_id()
+            for i in range(0, n_docs, 5000):
+                store.enqueue(texts[i : i + 5000])
+        learned += n_docs
+        store_off = models[False][0]
+        bare = bare_loop(store_off, starts[False], n_docs, models[False][1].read_count)
+        seconds, cpu = {}, {}
+        for enabled in (False, True) if rep % 2 == 0 else (True, False):
+            store, options = models[enabled]
+            began_cpu = time.process_time()  # this process is the worker (Redis runs apart)
+            seconds[enabled] = worker_run(store, options, learned)
+            cpu[enabled] = time.process_time() - began_cpu
+        store_on = models[True][0]
+        bare = (bare + bare_loop(store_on, starts[True], n_docs, models[True][1].read_count)) / 2
+        bare_rates.append(n_docs / bare)
+        for enabled in (False, True):
+            ratios[enabled].append(bare / seconds[enabled])
+            rates[enabled].append(n_docs / seconds[enabled])
+        kept.append(seconds[False] / seconds[True])
+        cpu_kept.append(cpu[False] / cpu[True])
+    events = len(models[True][0].events(10_000))
+    print(
+        f"lifecycle off and on, paired: same texts, {n_docs} documents x {repeats} runs, "
+        f"K=8 at the start ({events} group events with the lifecycle on)"
+    )
+    print(f"  bare XREAD loop           : {statistics.median(bare_rates):12,.0f} entries/s")
+    for enabled in (False, True):
+        word = "on " if enabled else "off"
+        print(
+            f"  worker, lifecycle {word}     : {statistics.median(rates[enabled]):12,.0f} "
+            f"documents/s   ratio to the bare loop {statistics.median(ratios[enabled]):.3f}"
+            f"   (runs: {', '.join(f'{r:.3f}' for r in ratios[enabled])})"
+        )
+    print(
+        f"  lifecycle on / off        : {statistics.median(kept):12.3f}   (worker time off over"
+        " on, per repeat; the lifecycle's own cost)"
+    )
+    print(
+        f"  same in worker CPU seconds: {statistics.median(cpu_kept):12.3f}   (less exposed to"
+        " the machine's other load than wall time)"
+    )
 
 
 def drain(store: ModelStore, options: ModelOptions) -> float:
@@ -470,7 +570,7 @@ def main(argv: list[str] | None = None) -> None:
     n_docs, repeats = (20_000, 1) if args.quick else (60_000, 3)
     with tempfile.TemporaryDirectory() as folder, EmbeddedRedis(folder) as server:
         throughput(server, n_docs, repeats)
-        throughput(server, n_docs, repeats, lifecycle=True)
+        lifecycle_pair(server, n_docs, max(repeats, 5))
         correction_cost(server, n_docs, repeats, 0.01)
         checkpoint_cost(server, 2 if args.quick else 3)
         replay_under_traffic(server, 100_000 if args.quick else 1_000_000, 1000.0)

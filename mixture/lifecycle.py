@@ -67,10 +67,11 @@ from scipy.spatial.distance import jensenshannon
 
 from mixture.em import e_step, fit_batch_em
 from mixture.errors import InputError
-from mixture.kernels import softmax_rows
+from mixture.kernels import smoothed_log_word_prob, softmax_rows
 from mixture.lifecycle_config import LifecycleConfig
 from mixture.novelty import (
     GroupEvidence,
+    UnitEStep,
     dirichlet_multinomial_log_marginal,
     observe_unit,
     overlap_coefficients,
@@ -342,6 +343,7 @@ def run_due_decisions(state: MixtureState) -> list[GroupEvent]:
     evidence = state.evidence
     if evidence is None or evidence.window_documents < config.check_every_documents:
         return []
+    apply_held_scale(state)
     events: list[GroupEvent] = []
     events += _retirements(state, evidence, config)
     events += _merges(state, evidence, config)
@@ -353,6 +355,32 @@ def run_due_decisions(state: MixtureState) -> list[GroupEvent]:
     evidence.window_documents = 0.0
     evidence.window_start = state.documents_learned
     return events
+
+
+def apply_held_scale(state: MixtureState) -> None:
+    """Give each group's word statistics the forgetting they were spared (O(V) per group
+    whose factor is not 1; ``lifecycle.forget_by_own_traffic``, see mixture.novelty).
+
+    Per group k and unit t, stepwise EM does s_k <- (1 - eta_t) s_k + eta_t b_kt for all
+    groups alike; own-traffic forgetting wants s_k <- (1 - eta_t) ** u_kt s_k + eta_t b_kt.
+    Between windows the state keeps the first recursion's column times exp(-H_kt) for the
+    units' additions (H_kt: the owed log factor, sum of (u - 1) ln(1 - eta), up to t), so
+    multiplying the column by exp(H_k) here gives the second recursion exactly; in between,
+    each group's column is the exact one times a per-group constant, so its word
+    distribution is exact up to the pseudo-count's share.
+    """
+    evidence = state.evidence
+    if evidence is None or evidence.held_log_scale is None:
+        return
+    owed = np.flatnonzero(evidence.held_log_scale != 0.0)
+    if owed.size == 0:
+        return
+    factor = np.exp(evidence.held_log_scale[owed])
+    state.unscaled_word[:, owed] *= factor
+    state.unscaled_total = state.unscaled_total.copy()
+    state.unscaled_total[owed] *= factor
+    evidence.held_log_scale = np.zeros(state.n_groups)
+    state.touch()
 
 
 def _retirements(
@@ -417,9 +445,7 @@ def _merges(
         if state.labelled.holds_group(first) and state.labelled.holds_group(second):
             continue  # operators' labels say the two are different groups
         a, b = position_of(state, first), position_of(state, second)
-        params = state.parameters()
-        p = np.exp(params.log_word_prob[:, a][params.active])
-        q = np.exp(params.log_word_prob[:, b][params.active])
+        p, q = _word_distributions(state, (a, b))
         divergence = float(jensenshannon(p, q, base=2) ** 2)
         if divergence >= config.merge_divergence:
             continue
@@ -444,6 +470,25 @@ def _merges(
             )
         )
     return events
+
+
+def _word_distributions(state: MixtureState, positions: tuple[int, ...]) -> np.ndarray:
+    """Word distributions over the active words of some groups, one per row: O(V) per group.
+
+    The same smoothed estimates as the E-step's (``MixtureState.log_word_prob_rows``, with the
+    running totals), for a few columns only: the whole V x K parameters would cost more than
+    the window's learning (derive_parameters is the dense cost of an EM iteration).
+    """
+    columns = list(positions)
+    ids = np.flatnonzero(state.vocabulary.active_mask())
+    scale = state.count_scale
+    log_prob = smoothed_log_word_prob(
+        state.unscaled_word[ids[:, None], columns] * scale,
+        state.unscaled_total[columns] * scale,
+        state.vocabulary.n_active,
+        state.config.word_pseudocount,
+    )
+    return np.exp(log_prob.T)
 
 
 def birth_log_bayes_factor(
@@ -576,7 +621,7 @@ def _split_buffer(
 
 def unit_observer(
     state: MixtureState, unit: sp.csr_matrix
-) -> Callable[[np.ndarray, np.ndarray, np.ndarray], None]:
+) -> Callable[[UnitEStep], np.ndarray | None]:
     """The ``observe`` hook of :func:`mixture.online.stepwise_update` for one unit.
 
     Parameters
@@ -586,29 +631,45 @@ def unit_observer(
     unit : csr_matrix (m, capacity)
         The unit's counts. A token is unknown when its word has no mass in any group before
         the unit (new to the model, whichever way the stream was cut into calls).
+
+    Notes
+    -----
+    Everything here works on the E-step's own restriction to the unit's words
+    (``UnitEStep``): the unknown-word test looks at each distinct word once (O(words x K))
+    and the unit is not re-indexed; only novel documents are mapped back to vocabulary ids.
+    With ``forget_by_own_traffic`` the hook returns the per-group factors of the unit's word
+    statistics (see :func:`apply_held_scale`).
     """
     config = state.config.lifecycle
     evidence = ensure_evidence(state)
     start = state.documents_learned
-    log_weights = state.log_weights()
+    capacity = unit.shape[1]
 
-    def observe(has_tokens: np.ndarray, resp: np.ndarray, log_norm: np.ndarray) -> None:
-        rows = unit[has_tokens] if not has_tokens.all() else unit
-        token_rows = np.repeat(np.arange(rows.shape[0]), np.diff(rows.indptr))
-        lengths = np.bincount(token_rows, weights=rows.data, minlength=rows.shape[0])
-        seen = state.unscaled_word[rows.indices].sum(axis=1) > 0  # before the update
-        new = ~seen
-        unknown = np.bincount(token_rows[new], weights=rows.data[new], minlength=rows.shape[0])
+    def observe(step: UnitEStep) -> np.ndarray | None:
+        counts = step.counts
+        seen = state.unscaled_word[step.words].sum(axis=1) > 0  # before the update
+        new_words = (~seen).astype(np.float64)
+        unknown = np.zeros(counts.shape[0]) if seen.all() else counts @ new_words
         observe_unit(
             evidence,
             config,
-            rows,
-            resp,
-            log_norm,
-            log_weights,
-            lengths,
+            counts,
+            step.resp,
+            step.log_norm,
+            step.log_weights,
+            step.lengths,
             unknown,
-            start + np.flatnonzero(has_tokens),
+            start + np.flatnonzero(step.present),
+            words=step.words,
+            columns=capacity,
+            step=step.step,
         )
+        if not config.forget_by_own_traffic:
+            return None
+        # The column is multiplied by exp(held) at the window's end (apply_held_scale); this
+        # unit's statistics enter divided by what is owed so far, so after that each one
+        # carries exactly the forgetting owed for the units after it.
+        assert evidence.held_log_scale is not None
+        return np.exp(-evidence.held_log_scale)
 
     return observe

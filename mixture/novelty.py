@@ -67,6 +67,40 @@ def dirichlet_multinomial_log_marginal(
     )
 
 
+@dataclass(frozen=True)
+class UnitEStep:
+    """One learning unit's E-step, as mixture.online has it before the update.
+
+    Attributes
+    ----------
+    present : ndarray (m_all,) of bool
+        Which rows of the unit had tokens (the rows below are those).
+    counts : csr_matrix (m, n_words)
+        Their counts over the unit's words only (column j is vocabulary id ``words[j]``).
+    words : ndarray (n_words,)
+        Vocabulary ids of the unit's words, sorted.
+    lengths : ndarray (m,)
+        Tokens per document.
+    resp : ndarray (m, K)
+        Posteriors under the parameters before the update (read only).
+    log_norm : ndarray (m,)
+        log p(d) under the mixture.
+    log_weights : ndarray (K,)
+        Log mixture weights used for ``resp``.
+    step : float
+        The unit's step size eta (the update shrinks the statistics by 1 - eta).
+    """
+
+    present: np.ndarray
+    counts: sp.csr_matrix
+    words: np.ndarray
+    lengths: np.ndarray
+    resp: np.ndarray
+    log_norm: np.ndarray
+    log_weights: np.ndarray
+    step: float
+
+
 @dataclass
 class GroupEvidence:
     """Lifecycle evidence of a state with K groups (arrays indexed by group position).
@@ -96,6 +130,11 @@ class GroupEvidence:
         learned it): the prequential score of the "no new group" side of the birth test. NaN
         for documents buffered by a state that did not record it (scored under the current
         mixture instead).
+    held_log_scale : ndarray (K,)
+        Per group, the log of the factor its word statistics are owed for the forgetting they
+        were spared since the last window (``lifecycle.forget_by_own_traffic``): applied to
+        the group's column once per window (mixture.lifecycle.apply_held_scale), so a unit
+        costs O(K) for it.
     """
 
     typical_weight: np.ndarray
@@ -110,6 +149,11 @@ class GroupEvidence:
     buffer: sp.csr_matrix
     buffer_ordinals: np.ndarray
     buffer_log_lik: np.ndarray = field(default_factory=lambda: np.zeros(0))
+    held_log_scale: np.ndarray | None = None
+
+    def __post_init__(self) -> None:
+        if self.held_log_scale is None:
+            self.held_log_scale = np.zeros(self.typical_weight.shape[0])
 
     @classmethod
     def empty(cls, n_groups: int, capacity: int, start: int = 0) -> GroupEvidence:
@@ -237,7 +281,13 @@ class GroupEvidence:
     def append_group(self, born_at: int) -> None:
         """Room for a new last group, with no evidence yet."""
         k = self.n_groups
-        for name in ("typical_weight", "typical_sum", "typical_square", "window_mass"):
+        for name in (
+            "typical_weight",
+            "typical_sum",
+            "typical_square",
+            "window_mass",
+            "held_log_scale",
+        ):
             setattr(self, name, np.append(getattr(self, name), 0.0))
         shared = np.zeros((k + 1, k + 1))
         shared[:k, :k] = self.window_shared
@@ -254,6 +304,7 @@ class GroupEvidence:
             "window_mass",
             "quiet_windows",
             "born_at",
+            "held_log_scale",
         ):
             setattr(self, name, np.delete(getattr(self, name), position))
         shared = np.delete(np.delete(self.window_shared, position, axis=0), position, axis=1)
@@ -294,6 +345,7 @@ class GroupEvidence:
             "buffer.shape": np.asarray(buffer.shape, dtype=np.int64),
             "buffer_ordinals": self.buffer_ordinals.astype(np.int64),
             "buffer_log_lik": self.buffer_log_lik.astype(np.float64),
+            "held_log_scale": np.asarray(self.held_log_scale, dtype=np.float64),
         }
 
     @classmethod
@@ -321,9 +373,19 @@ class GroupEvidence:
             buffer_log_lik=np.array(
                 arrays.get("buffer_log_lik", np.full(shape[0], np.nan)), dtype=np.float64
             ),
+            # States written before the own-traffic forgetting: nothing owed.
+            held_log_scale=np.array(
+                arrays.get("held_log_scale", np.zeros(n_groups)), dtype=np.float64
+            ),
         )
         k = n_groups
-        for name in ("typical_weight", "typical_sum", "typical_square", "window_mass"):
+        for name in (
+            "typical_weight",
+            "typical_sum",
+            "typical_square",
+            "window_mass",
+            "held_log_scale",
+        ):
             if getattr(evidence, name).shape != (k,):
                 raise ValueError(f"lifecycle evidence {name} does not have {k} groups")
         if evidence.window_shared.shape != (k, k) or evidence.quiet_windows.shape != (k,):
@@ -347,6 +409,9 @@ def observe_unit(
     lengths: np.ndarray,
     unknown_tokens: np.ndarray,
     ordinals: np.ndarray,
+    words: np.ndarray | None = None,
+    columns: int = 0,
+    step: float = 0.0,
 ) -> int:
     """Update the evidence with one unit's E-step and buffer its novel documents.
 
@@ -355,7 +420,7 @@ def observe_unit(
     evidence : GroupEvidence
         Changed in place.
     config : LifecycleConfig
-    counts : csr_matrix (m, capacity)
+    counts : csr_matrix (m, capacity), or (m, n_words) with ``words``
         The unit's documents with evidence (rows of ``resp``).
     resp : ndarray (m, K)
         Posteriors under the parameters before the unit's update.
@@ -369,6 +434,12 @@ def observe_unit(
         Tokens of words the model had not seen before this unit.
     ordinals : ndarray (m,) int64
         Stream positions of the documents.
+    words : ndarray (n_words,), optional
+        Vocabulary id of each column of ``counts`` (None: the columns are vocabulary ids).
+    columns : int
+        With ``words``: the width of the buffered rows (the vocabulary's capacity).
+    step : float
+        The unit's stepwise step size eta (used by ``forget_by_own_traffic``).
 
     Returns
     -------
@@ -382,8 +453,13 @@ def observe_unit(
         map_log_lik = np.log(resp[rows, groups]) + log_norm - log_weights[groups]
     per_token = map_log_lik / lengths
 
-    mean = evidence.typical_mean()[groups]
-    std = evidence.typical_std()[groups]
+    with np.errstate(invalid="ignore", divide="ignore"):  # typical_mean and typical_std, once
+        group_mean = np.where(
+            evidence.typical_weight > 0, evidence.typical_sum / evidence.typical_weight, np.nan
+        )
+        group_var = evidence.typical_square / evidence.typical_weight - group_mean**2
+    mean = group_mean[groups]
+    std = np.sqrt(np.maximum(group_var, 0.0))[groups]
     judged = evidence.typical_weight[groups] >= config.typicality_min_documents
     with np.errstate(invalid="ignore", divide="ignore"):
         far_below = judged & (per_token < mean - config.novelty_z * std)
@@ -393,8 +469,17 @@ def observe_unit(
     keep = ~novel & np.isfinite(per_token)
     evidence.add_typicality(groups[keep], per_token[keep], config.typicality_half_life)
 
-    evidence.window_mass += resp.sum(axis=0)
+    unit_mass = resp.sum(axis=0)
+    evidence.window_mass += unit_mass
     evidence.window_documents += m
+    if config.forget_by_own_traffic and step > 0:
+        # The stepwise update shrinks every group's statistics by (1 - eta). A group's word
+        # statistics should shrink only for the traffic it received: by (1 - eta) ** u with
+        # u = (its share of the unit) / (its weight), at most 1 (a stationary group's u
+        # averages 1; a group whose topic stopped has u near 0 and keeps its distribution).
+        # The difference is owed to the group and applied once per window.
+        traffic = np.minimum(unit_mass / (m * np.exp(log_weights)), 1.0)
+        evidence.held_log_scale += (traffic - 1.0) * np.log1p(-step)
     if k > 1:
         top_two = np.argpartition(resp, k - 2, axis=1)[:, k - 2 :]
         shared = resp[rows, top_two[:, 0]]  # the runner-up's posterior is the smaller one
@@ -404,7 +489,13 @@ def observe_unit(
 
     chosen = np.flatnonzero(novel)
     if chosen.size:
-        evidence.push(counts[chosen], ordinals[chosen], config, log_norm[chosen])
+        rows = counts[chosen]
+        if words is not None:  # back to vocabulary ids (same entries, same order)
+            rows = sp.csr_matrix(
+                (rows.data, words[rows.indices], rows.indptr),
+                shape=(chosen.size, max(columns, int(words[-1]) + 1)),
+            )
+        evidence.push(rows, ordinals[chosen], config, log_norm[chosen])
     return int(chosen.size)
 
 

@@ -38,6 +38,7 @@ from mixture.errors import InputError
 from mixture.kernels import softmax_rows
 from mixture.labelled import LabelledItem, add_items, check_items
 from mixture.lifecycle import GroupEvent, run_due_decisions, seed_typicality, unit_observer
+from mixture.novelty import UnitEStep
 from mixture.stats import MixtureState
 
 
@@ -93,7 +94,7 @@ def stepwise_update(
     state: MixtureState,
     counts: sp.spmatrix,
     *,
-    observe: Callable[[np.ndarray, np.ndarray, np.ndarray], None] | None = None,
+    observe: Callable[[UnitEStep], np.ndarray | None] | None = None,
 ) -> BatchReport:
     """Apply stepwise EM updates with a mini-batch of counts.
 
@@ -109,10 +110,13 @@ def stepwise_update(
         Warmed up; changed in place.
     counts : sparse matrix of shape (m, capacity)
         Word counts of the batch over the state's vocabulary ids.
-    observe : callable (evidence, resp, log_norm), optional
-        Called with the E-step before the state changes: which rows had tokens (bool, (m,)),
-        their posteriors and their log p(d) (the group lifecycle's evidence). Only for a batch
-        of at most ``batch_size`` rows (one update), since it is built for one unit.
+    observe : callable (UnitEStep) -> ndarray (K,) or None, optional
+        Called with the E-step before the state changes (the group lifecycle's evidence):
+        which rows had tokens, their counts over the batch's words, their posteriors and
+        log p(d) (mixture.novelty.UnitEStep). Only for a batch of at most ``batch_size`` rows
+        (one update), since it is built for one unit. What it returns, when not None,
+        multiplies each group's word statistics of the unit before they are added (the
+        lifecycle's ``forget_by_own_traffic``).
 
     Returns
     -------
@@ -144,7 +148,7 @@ def stepwise_update(
 def _update_unit(
     state: MixtureState,
     matrix: sp.csr_matrix,
-    observe: Callable[[np.ndarray, np.ndarray, np.ndarray], None] | None = None,
+    observe: Callable[[UnitEStep], np.ndarray | None] | None = None,
 ) -> BatchReport:
     """One stepwise update with at most ``batch_size`` validated rows."""
     # Row sums from the raw arrays (scipy's sum costs more than the rest of a small update).
@@ -179,9 +183,6 @@ def _update_unit(
         report.log_likelihood_per_token = float(log_norm.sum() / lengths.sum())
     elif possible.any():
         report.log_likelihood_per_token = float(log_norm[possible].sum() / lengths[possible].sum())
-    if observe is not None:
-        observe(evidence, resp, log_norm)
-
     batch_word = np.asarray(local_counts.T @ resp) / m  # average per document
     batch_docs = resp.sum(axis=0) / m
 
@@ -194,6 +195,14 @@ def _update_unit(
     eta = state.config.step_size(state.step)
     if fraction != 1.0:
         eta = -float(np.expm1(fraction * np.log1p(-eta)))
+    if observe is not None:
+        # What the E-step already has (the batch's words, row lengths, log weights): the
+        # observer then costs O(words in the unit x K) with no sparse re-indexing of its own.
+        factors = observe(
+            UnitEStep(evidence, local_counts, rows, lengths, resp, log_norm, log_weights, eta)
+        )
+        if factors is not None:  # per-group weights of this unit's word statistics
+            batch_word = batch_word * factors
     state.running_scale *= 1.0 - eta
     gain = eta / state.running_scale
     state.unscaled_word[rows] += gain * batch_word
