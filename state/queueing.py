@@ -29,6 +29,7 @@ from mixture.errors import InputError
 from state.errors import ModelNotFoundError, StreamFullError
 from state.handle import ModelHandle, loads_or_none
 from state.records import EnqueueResult, dumps
+from state.replicas import confirm_replicas, replica_requirement
 from state.stream import ZERO_ID
 
 MAX_CLIENT_ID_LENGTH = 256
@@ -156,6 +157,10 @@ class DocumentQueue:
             its first chunk).
         ModelNotFoundError
             When the model was deleted.
+        ReplicasUnconfirmedError
+            When replicas are required (:mod:`state.replicas`) and did not confirm the
+            documents in time: they are on the primary, and a repeat with the same client
+            ids does not queue them twice.
         """
         encoded = _encode(texts, ids, metadata)
         handle = self.handle
@@ -164,6 +169,7 @@ class DocumentQueue:
         ttl_ms = str(int(options.id_ttl_seconds * 1000))
         cap = "" if options.stream_max_length is None else str(options.stream_max_length)
         stream_ids: list[str | None] = []
+        chunk_ends: list[str] = []  # the last new entry of each chunk (for the replicas)
         for start in range(0, len(encoded), ENQUEUE_CHUNK):
             chunk = encoded[start : start + ENQUEUE_CHUNK]
             later = len(encoded) - start - len(chunk) if start == 0 else 0
@@ -179,7 +185,32 @@ class DocumentQueue:
             except redis.ResponseError as exc:
                 self._raise_refusal(exc, len(encoded))
             stream_ids += [None if r is None else r.decode() for r in reply]
+            last_new = next((r for r in reversed(reply) if r is not None), None)
+            if last_new is not None:
+                chunk_ends.append(last_new.decode())
+        if replica_requirement().active:
+            self._confirm(encoded, chunk_ends)
         return EnqueueResult(stream_ids, sum(1 for r in stream_ids if r is None))
+
+    def _confirm(self, encoded: list[tuple[str, str, bytes, bool]], chunk_ends: list[str]) -> None:
+        """Wait for the replicas: the last new entry of every chunk, or (all repeats) the
+        last client id's key, must be on the slot's primary and confirmed."""
+        keys = self.handle.keys
+        what = f"{len(encoded)} documents for model {self.handle.model!r}"
+        if chunk_ends:
+            confirm_replicas(
+                self.handle.redis, keys.replica_fence, keys.docs, "stream", chunk_ends, what=what
+            )
+            return
+        given = [client_id for client_id, _, _, was_given in encoded if was_given]
+        if given:  # every document was a repeat: its first enqueue must be on the replicas
+            confirm_replicas(
+                self.handle.redis,
+                keys.replica_fence,
+                keys.client_id(given[-1]),
+                "exists",
+                what=what,
+            )
 
     def _raise_refusal(self, exc: redis.ResponseError, n: int) -> NoReturn:
         text = str(exc)

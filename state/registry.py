@@ -17,6 +17,7 @@ from state.connection import is_cluster
 from state.errors import ModelExistsError, ModelNotFoundError, StateError
 from state.keys import (
     GENERATION_KEY,
+    GLOBAL_REPLICA_FENCE_KEY,
     LEGACY_GLOBAL_KEYS,
     REGISTRY_KEY,
     ModelKeys,
@@ -24,6 +25,7 @@ from state.keys import (
 )
 from state.options import ModelOptions
 from state.records import dumps
+from state.replicas import confirm_replicas, replica_requirement
 
 
 @dataclass(frozen=True)
@@ -145,6 +147,21 @@ class Registry:
         if not self.redis.set(keys.config, dumps(info.to_dict()), nx=True):
             raise ModelExistsError(f"model {name!r} already exists")
         self.redis.sadd(REGISTRY_KEY, name)
+        if replica_requirement().active:
+            # the config and the registry live in two slots (two primaries in a cluster)
+            what, hint = f"model {name!r}", "it exists: a repeated create answers that"
+            confirm_replicas(
+                self.redis, keys.replica_fence, keys.config, "exists", what=what, retry_hint=hint
+            )
+            confirm_replicas(
+                self.redis,
+                GLOBAL_REPLICA_FENCE_KEY,
+                REGISTRY_KEY,
+                "member",
+                [name],
+                what=what,
+                retry_hint=hint,
+            )
         return info
 
     def list(self) -> list[str]:
