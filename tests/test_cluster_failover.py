@@ -47,16 +47,25 @@ from state.registry import Registry
 from state.replicas import require_replicas
 from state.store import ModelStore
 from tests.cluster_support import LocalCluster, cluster_binaries
+from tests.worker_support import (
+    assert_same_state,
+    create_model,
+    fast_options,
+    ferry_texts,
+    reference_state,
+    small_config,
+    wait_for,
+)
 from worker.learner import Worker
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore")
     from fastapi.testclient import TestClient
 
-pytestmark = [
-    pytest.mark.redis,
-    pytest.mark.skipif(cluster_binaries() is None, reason="needs redis-server and redis-cli"),
-]
+pytestmark = pytest.mark.redis
+needs_cluster = pytest.mark.skipif(
+    cluster_binaries() is None, reason="needs redis-server and redis-cli"
+)
 
 BATCH = 5  # documents per request
 
@@ -125,6 +134,7 @@ def stream_ids(client: Any, keys: ModelKeys) -> list[str]:
     return [fields[b"id"].decode() for _, fields in client.xrange(keys.docs)]
 
 
+@needs_cluster
 def test_failover_loses_nothing_acknowledged_and_learns_nothing_twice(
     cluster: LocalCluster, cluster_mode: None, caplog: pytest.LogCaptureFixture
 ) -> None:
@@ -240,3 +250,58 @@ def _answers(port: int) -> bool:
             return sock.recv(16).startswith(b"+PONG")
     except OSError:
         return False
+
+
+def test_a_checkpoint_lost_without_an_error_is_reloaded_never_written_over(
+    redis_client: Any, model_name: str
+) -> None:
+    """The fence alone, with no connection error to warn the worker (on one private server).
+
+    What a promotion does to the model is done by hand: every key of the model is put back to
+    what it held at an earlier checkpoint (DUMP, then RESTORE: the promoted replica's copy),
+    after the worker has checkpointed more on top. The worker, which saw no error, still holds
+    the newer state; the client repeats the documents the loss took. Reference: the state
+    that mixture/ learns from the surviving stream fed directly, in the same units
+    (tests/worker_support.reference_state); a worker that wrote its state over the older one
+    would have learned the repeated documents twice and differ from it.
+    """
+    store = create_model(redis_client, model_name, small_config(), fast_options())
+    keys = ModelKeys(model_name)
+    texts = ferry_texts(700, seed=4)
+    ids = [f"doc-{i}" for i in range(700)]
+    store.enqueue(texts[:400], ids=ids[:400])
+    worker = Worker(redis_client, model_name)
+    wait_for(lambda: worker.run_once() >= 0 and _learned(store, 400), what="400 learned")
+    kept = {
+        key: (redis_client.dump(key), redis_client.pttl(key))
+        for key in redis_client.scan_iter(match=keys.pattern())
+    }
+    version_kept = store.version()
+    store.enqueue(texts[400:600], ids=ids[400:600])
+    wait_for(lambda: worker.run_once() >= 0 and _learned(store, 600), what="600 learned")
+    assert store.version() > version_kept and worker.version == store.version()
+
+    # the failover: the model's keys as the promoted replica holds them
+    pipe = redis_client.pipeline(transaction=True)
+    pipe.delete(*redis_client.scan_iter(match=keys.pattern()))
+    for key, (dumped, ttl) in kept.items():
+        pipe.restore(key, max(int(ttl), 0), dumped)
+    pipe.execute()
+    assert store.version() == version_kept and redis_client.xlen(keys.docs) == 400
+    # the client repeats what the loss took (same ids, queued again: their id keys went too)
+    again = store.enqueue(texts[400:700], ids=ids[400:700])
+    assert again.duplicates == 0
+    wait_for(lambda: worker.run_once() >= 0 and _learned(store, 700), what="700 learned")
+
+    state = store.load_state()
+    assert state is not None and state.documents_learned == 700
+    assert_same_state(state, reference_state(texts, store.info.config))
+
+
+def _learned(store: ModelStore, documents: int) -> bool:
+    """The current checkpoint holds ``documents`` and its watermark is the stream's end."""
+    summary = store.summary() or {}
+    return (
+        summary.get("documents_learned") == documents
+        and summary.get("watermark") == store.last_stream_id()
+    )
