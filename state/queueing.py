@@ -26,7 +26,7 @@ from typing import Any, NoReturn
 import redis
 
 from mixture.errors import InputError
-from state.errors import ModelNotFoundError, StreamFullError
+from state.errors import ModelNotFoundError, ReplicasUnconfirmedError, StreamFullError
 from state.handle import ModelHandle, loads_or_none
 from state.records import EnqueueResult, dumps
 from state.replicas import confirm_replicas, replica_requirement
@@ -217,6 +217,12 @@ class DocumentQueue:
         model = self.handle.model
         if "NOMODEL" in text:
             raise ModelNotFoundError(f"model {model!r} does not exist") from exc
+        if text.startswith("NOREPLICAS"):  # the primary's min-replicas-to-write refused it
+            raise ReplicasUnconfirmedError(
+                f"model {model!r}: the primary refused the documents: {text}; nothing was "
+                "queued, retry after 1 s",
+                retry_after_seconds=1,
+            ) from exc
         if "STREAMFULL" in text:
             backlog = text.rsplit(" ", 1)[-1]
             cap = self.handle.options.stream_max_length
