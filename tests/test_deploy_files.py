@@ -11,6 +11,7 @@ from __future__ import annotations
 import os
 import re
 import shlex
+import shutil
 import subprocess
 import tomllib
 from pathlib import Path
@@ -407,7 +408,7 @@ def test_dashboard_files_ship_in_the_package() -> None:
 
 CLUSTER_COMPOSE = ROOT / "deploy" / "compose.cluster.yml"
 CLUSTER_CONF = ROOT / "deploy" / "redis-cluster.conf"
-K8S_CLUSTER = K8S / "cluster"
+K8S_CLUSTER = ROOT / "deploy" / "k8s-cluster"
 
 
 def _created_nodes(script: str) -> tuple[list[str], str]:
@@ -473,8 +474,8 @@ def test_cluster_compose_environment_is_read_by_settings(monkeypatch: pytest.Mon
 
 def test_cluster_overlay_replaces_the_single_redis() -> None:
     kustomization = yaml.safe_load((K8S_CLUSTER / "kustomization.yaml").read_text())
-    assert ".." in kustomization["resources"]
-    listed = {r for r in kustomization["resources"] if r != ".."}
+    assert "../k8s" in kustomization["resources"]
+    listed = {r for r in kustomization["resources"] if r != "../k8s"}
     patch_files = {p["path"] for p in kustomization["patches"] if "path" in p}
     present = {p.name for p in K8S_CLUSTER.glob("*.yaml")} - {"kustomization.yaml"}
     assert listed | patch_files == present
@@ -570,3 +571,27 @@ def test_a_real_redis_accepts_the_cluster_configuration(tmp_path: Path) -> None:
         server.kill()
         server.wait(timeout=10)
         client.close()
+
+
+@pytest.mark.skipif(shutil.which("kubectl") is None, reason="needs kubectl (kustomize built in)")
+def test_kustomize_renders_the_cluster_overlay() -> None:
+    """Source: kustomize itself (``kubectl kustomize``, no cluster needed) builds the overlay:
+    the single Redis is gone, each Deployment keeps one container, now with the cluster
+    settings."""
+    done = subprocess.run(
+        ["kubectl", "kustomize", str(K8S_CLUSTER)], capture_output=True, text=True, timeout=60
+    )
+    assert done.returncode == 0, done.stderr
+    docs = [d for d in yaml.safe_load_all(done.stdout) if d]
+    names = {(d["kind"], d["metadata"]["name"]) for d in docs}
+    assert ("StatefulSet", "mixroute-redis") not in names
+    assert ("StatefulSet", "mixroute-redis-cluster") in names
+    assert ("Job", "mixroute-redis-cluster-join") in names
+    for doc in docs:
+        if doc["kind"] != "Deployment":
+            continue
+        (container,) = pod_spec(doc)["containers"]
+        env = {e["name"]: e.get("value") for e in container["env"]}
+        assert env["MIXROUTE_REDIS_CLUSTER"] == "true"
+        assert env["MIXROUTE_REDIS_WAIT_REPLICAS"] == "1"
+        assert env["MIXROUTE_REDIS_URL"].startswith("redis://mixroute-redis-cluster-0.")
