@@ -304,3 +304,47 @@ def _learned(store: ModelStore, documents: int | None) -> bool:
     return summary.get("watermark") == store.last_stream_id() and (
         documents is None or summary.get("documents_learned") == documents
     )
+
+
+def test_the_durability_settings_are_checked() -> None:
+    from pydantic import ValidationError
+
+    from state.replicas import ReplicaRequirement, requirement_from_environment
+
+    env = {"MIXROUTE_REDIS_WAIT_REPLICAS": "2", "MIXROUTE_REDIS_WAIT_TIMEOUT": "0.25"}
+    assert requirement_from_environment(env) == ReplicaRequirement(2, 0.25)
+    assert not requirement_from_environment({}).active
+    for bad, name in (
+        ({"MIXROUTE_REDIS_WAIT_REPLICAS": "one"}, "MIXROUTE_REDIS_WAIT_REPLICAS"),
+        ({"MIXROUTE_REDIS_WAIT_REPLICAS": "1.5"}, "MIXROUTE_REDIS_WAIT_REPLICAS"),
+        ({"MIXROUTE_REDIS_WAIT_TIMEOUT": "0"}, "MIXROUTE_REDIS_WAIT_TIMEOUT"),
+    ):
+        with pytest.raises(ValueError, match=name):
+            requirement_from_environment(bad)
+    # WAIT blocks the connection: a wait as long as the socket timeout would time out instead
+    with pytest.raises(ValidationError, match="redis_wait_timeout"):
+        Settings(redis_wait_replicas=1, redis_wait_timeout=1.0, redis_timeout=1.0)
+    assert ReplicaRequirement(1, 0.0001).timeout_ms == 1  # WAIT 0 would block forever
+
+
+def test_without_replicas_a_required_wait_is_a_503_and_the_repeat_queues_nothing_twice(
+    redis_url: str, model_name: str
+) -> None:
+    """One server with no replica: a wait for one can never be confirmed, so queueing answers
+    503 with Retry-After; the document is on the server, and the repeat with its id is a
+    duplicate, not a second entry (the enqueue script's id check)."""
+    settings = Settings(redis_url=redis_url, redis_wait_replicas=1, redis_wait_timeout=0.05)
+    try:
+        with TestClient(create_app(settings)) as http:
+            made = http.post("/models", json={"name": model_name, "config": {"n_groups": 2}})
+            assert made.status_code == 503, made.text  # creation waits too
+            body = {"documents": [{"id": "only-once", "text": "ferry late again"}]}
+            for _ in range(2):
+                answer = http.post(f"/models/{model_name}/documents", json=body)
+                assert answer.status_code == 503 and answer.headers["retry-after"] == "1"
+                assert "not confirmed by 1 replica" in answer.json()["detail"]
+    finally:
+        require_replicas(0)
+    client = redis_from_url(redis_url)
+    assert client.xlen(ModelKeys(model_name).docs) == 1
+    client.close()
