@@ -36,6 +36,7 @@ from state.errors import (
     ModelExistsError,
     ModelNotFoundError,
     OptionsError,
+    ReplicasUnconfirmedError,
     SnapshotNotFoundError,
     StreamFullError,
     VersionConflictError,
@@ -211,6 +212,12 @@ def install_error_handlers(app: FastAPI) -> None:
         response.headers["Retry-After"] = str(exc.retry_after_seconds)
         return response
 
+    async def unconfirmed(_: Request, exc: ReplicasUnconfirmedError) -> JSONResponse:
+        # on the primary but not on enough replicas (MIXROUTE_REDIS_WAIT_REPLICAS): retry
+        response = _json_problem(503, str(exc))
+        response.headers["Retry-After"] = str(exc.retry_after_seconds)
+        return response
+
     app.add_exception_handler(RequestValidationError, validation)  # type: ignore[arg-type]
     app.add_exception_handler(StarletteHTTPException, http_error)  # type: ignore[arg-type]
     app.add_exception_handler(Exception, internal)
@@ -218,6 +225,7 @@ def install_error_handlers(app: FastAPI) -> None:
     app.add_exception_handler(RedisUnavailableError, unavailable)  # type: ignore[arg-type]
     app.add_exception_handler(InvalidFieldError, invalid_field)  # type: ignore[arg-type]
     app.add_exception_handler(StreamFullError, stream_full)  # type: ignore[arg-type]
+    app.add_exception_handler(ReplicasUnconfirmedError, unconfirmed)  # type: ignore[arg-type]
     app.add_exception_handler(ConfigError, simple(422, with_field=True))
     app.add_exception_handler(OptionsError, simple(422, with_field=True))
     app.add_exception_handler(InputError, simple(422))
@@ -316,6 +324,10 @@ def create_app(
                 socket_timeout=settings.redis_timeout,
                 socket_connect_timeout=settings.redis_timeout,
             )
+        from state.replicas import require_replicas
+
+        # this process's enqueues, checkpoints and creations wait for the replicas
+        require_replicas(settings.redis_wait_replicas, settings.redis_wait_timeout)
         if settings.model_threads is not None:
             from mixture.sweep import set_worker_threads
 

@@ -250,8 +250,11 @@ def work(model: str | None = None, data_dir: str | Path | None = None, processes
         )
     _configure_logging(settings)  # only once the command is really going to run
     from state.connection import use_cluster_client
+    from state.replicas import require_replicas
 
     use_cluster_client(settings.redis_cluster)
+    # the checkpoints wait for the replicas (pool members read the same variables)
+    require_replicas(settings.redis_wait_replicas, settings.redis_wait_timeout)
     done = threading.Event()
 
     def on_signal(signum: int, frame: FrameType | None) -> None:

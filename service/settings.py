@@ -10,7 +10,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Literal
 
-from pydantic import AliasChoices, Field, SecretStr
+from pydantic import AliasChoices, Field, SecretStr, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 
@@ -28,6 +28,22 @@ class Settings(BaseSettings):
         default=False,
         description="The Redis URL names a node of a Redis Cluster: use redis-py's cluster "
         "client (it finds the other nodes; every model's keys share one slot).",
+    )
+    redis_wait_replicas: int = Field(
+        default=0,
+        ge=0,
+        le=16,
+        description="Replicas that must confirm each enqueue, checkpoint and model creation "
+        "(WAIT on the primary of the model's slot) before it is acknowledged; not confirmed "
+        "in time, queueing answers 503 with Retry-After (retry with the same ids). 0: no "
+        "waiting (a single server; a failover may lose acknowledged writes). Set it only "
+        "when every primary has that many replicas.",
+    )
+    redis_wait_timeout: float = Field(
+        default=0.5,
+        gt=0.0,
+        le=30.0,
+        description="Longest wait for the replicas per write, seconds (below redis_timeout).",
     )
     data_dir: Path = Field(
         default=Path("data"), description="Folder of the embedded Redis database file."
@@ -145,6 +161,18 @@ class Settings(BaseSettings):
         "model stays loaded). Models load on their first request; past the budget the least "
         "recently used are dropped and read again from Redis when asked for.",
     )
+
+    @model_validator(mode="after")
+    def _wait_within_socket_timeout(self) -> Settings:
+        """WAIT blocks the connection: a wait as long as the socket timeout would end in a
+        timeout error instead of an answer."""
+        if self.redis_wait_replicas and self.redis_wait_timeout >= self.redis_timeout:
+            raise ValueError(
+                f"redis_wait_timeout ({self.redis_wait_timeout} s) must be below redis_timeout "
+                f"({self.redis_timeout} s): MIXROUTE_REDIS_WAIT_TIMEOUT or MIXROUTE_REDIS_TIMEOUT"
+            )
+        return self
+
     metrics_public: bool = Field(
         default=False,
         description="Serve /metrics without a key (for a scraper that cannot send one; the "

@@ -71,6 +71,8 @@ PREFIX = "mixroute"
 GLOBAL_TAG = "{_global}"  # not a valid model name: never one model's tag
 REGISTRY_KEY = f"{PREFIX}:{GLOBAL_TAG}:models"
 GENERATION_KEY = f"{PREFIX}:{GLOBAL_TAG}:generation_seq"
+# set (with a TTL) only so that WAIT has a write to wait for after a registry write
+GLOBAL_REPLICA_FENCE_KEY = f"{PREFIX}:{GLOBAL_TAG}:replica_fence"
 # zset of the live members of the worker pool: member name scored by its expiry (Redis ms)
 POOL_MEMBERS_KEY = f"{PREFIX}:{GLOBAL_TAG}:pool_members"
 # (registry, generation counter) as named before they shared a slot
@@ -140,6 +142,7 @@ class ModelKeys:
         "model",
         "notify",
         "replay",
+        "replica_fence",
         "routed",
         "snapshot_seq",
         "snapshots",
@@ -179,6 +182,8 @@ class ModelKeys:
         self.routed = b + "routed"
         self.events = b + "events"  # group events (births, merges, retirements), capped list
         self.event_counts = b + "event_counts"  # hash kind -> events ever written (metrics)
+        # set (with a TTL) only so that WAIT has a write to wait for (state.replicas)
+        self.replica_fence = b + "replica_fence"
 
     def fixed(self) -> list[str]:
         """Every key of the model whose name does not depend on an id (not the channel)."""
@@ -207,6 +212,7 @@ class ModelKeys:
             self.routed,
             self.events,
             self.event_counts,
+            self.replica_fence,
         ]
 
     def snapshot(self, snapshot_id: str) -> str:

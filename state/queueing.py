@@ -35,9 +35,10 @@ from typing import Any, NoReturn
 import redis
 
 from mixture.errors import InputError
-from state.errors import ModelNotFoundError, StreamFullError
+from state.errors import ModelNotFoundError, ReplicasUnconfirmedError, StreamFullError
 from state.handle import ModelHandle, loads_or_none
 from state.records import EnqueueResult, dumps
+from state.replicas import confirm_replicas, replica_requirement
 from state.stream import LABELLED_QUEUE_LUA, ZERO_ID, parse_stream_id
 
 MAX_CLIENT_ID_LENGTH = 256
@@ -217,6 +218,10 @@ class DocumentQueue:
             its first chunk).
         ModelNotFoundError
             When the model was deleted.
+        ReplicasUnconfirmedError
+            When replicas are required (:mod:`state.replicas`) and did not confirm the
+            documents in time: they are on the primary, and a repeat with the same client
+            ids does not queue them twice.
         """
         encoded = _encode(texts, ids, metadata)
         handle = self.handle
@@ -225,6 +230,7 @@ class DocumentQueue:
         ttl_ms = str(int(options.id_ttl_seconds * 1000))
         cap = "" if options.stream_max_length is None else str(options.stream_max_length)
         stream_ids: list[str | None] = []
+        chunk_ends: list[str] = []  # the last new entry of each chunk (for the replicas)
         for start in range(0, len(encoded), ENQUEUE_CHUNK):
             chunk = encoded[start : start + ENQUEUE_CHUNK]
             later = len(encoded) - start - len(chunk) if start == 0 else 0
@@ -240,6 +246,11 @@ class DocumentQueue:
             except redis.ResponseError as exc:
                 self._raise_refusal(exc, len(encoded))
             stream_ids += [None if r is None else r.decode() for r in reply]
+            last_new = next((r for r in reversed(reply) if r is not None), None)
+            if last_new is not None:
+                chunk_ends.append(last_new.decode())
+        if replica_requirement().active:
+            self._confirm(encoded, chunk_ends)
         return EnqueueResult(stream_ids, sum(1 for r in stream_ids if r is None))
 
     def enqueue_labelled(self, entries: Sequence[Sequence[str | bytes]]) -> list[str]:
@@ -287,7 +298,19 @@ class DocumentQueue:
             )
         except redis.ResponseError as exc:
             self._raise_refusal(exc, len(entries))
-        return [r.decode() for r in reply]
+        stream_ids = [r.decode() for r in reply]
+        if stream_ids and replica_requirement().active:
+            # acknowledged corrections are as durable as acknowledged documents
+            confirm_replicas(
+                self.handle.redis,
+                keys.replica_fence,
+                keys.docs,
+                "stream",
+                [stream_ids[-1]],
+                what=f"{len(entries)} labelled entries for model {self.handle.model!r}",
+                retry_hint="retry: a repeated correction is learned once (same id, same group)",
+            )
+        return stream_ids
 
     def labelled_queued(self) -> int:
         """Labelled entries (corrections, examples, withdrawals) after the watermark: queued
@@ -335,11 +358,37 @@ class DocumentQueue:
             found[sid] = text
         return [(None, None) if s is None else (s, found.get(s)) for s in stream_ids]
 
+    def _confirm(self, encoded: list[tuple[str, str, bytes, bool]], chunk_ends: list[str]) -> None:
+        """Wait for the replicas: the last new entry of every chunk, or (all repeats) the
+        last client id's key, must be on the slot's primary and confirmed."""
+        keys = self.handle.keys
+        what = f"{len(encoded)} documents for model {self.handle.model!r}"
+        if chunk_ends:
+            confirm_replicas(
+                self.handle.redis, keys.replica_fence, keys.docs, "stream", chunk_ends, what=what
+            )
+            return
+        given = [client_id for client_id, _, _, was_given in encoded if was_given]
+        if given:  # every document was a repeat: its first enqueue must be on the replicas
+            confirm_replicas(
+                self.handle.redis,
+                keys.replica_fence,
+                keys.client_id(given[-1]),
+                "exists",
+                what=what,
+            )
+
     def _raise_refusal(self, exc: redis.ResponseError, n: int) -> NoReturn:
         text = str(exc)
         model = self.handle.model
         if "NOMODEL" in text:
             raise ModelNotFoundError(f"model {model!r} does not exist") from exc
+        if text.startswith("NOREPLICAS"):  # the primary's min-replicas-to-write refused it
+            raise ReplicasUnconfirmedError(
+                f"model {model!r}: the primary refused the documents: {text}; nothing was "
+                "queued, retry after 1 s",
+                retry_after_seconds=1,
+            ) from exc
         if "STREAMFULL" in text:
             backlog = text.rsplit(" ", 1)[-1]
             cap = self.handle.options.stream_max_length

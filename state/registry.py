@@ -18,6 +18,7 @@ from state.connection import is_cluster
 from state.errors import ModelExistsError, ModelNotFoundError, OptionsError, StateError
 from state.keys import (
     GENERATION_KEY,
+    GLOBAL_REPLICA_FENCE_KEY,
     LEGACY_GLOBAL_KEYS,
     REGISTRY_KEY,
     ModelKeys,
@@ -25,6 +26,7 @@ from state.keys import (
 )
 from state.options import ModelOptions
 from state.records import GroupLabel, dumps
+from state.replicas import confirm_replicas, replica_requirement
 from state.stream import LABELLED_QUEUE_LUA, correction_fields, example_id
 
 MAX_LABEL_LENGTH = 200  # as state.labels refuses longer labels and destinations
@@ -215,6 +217,21 @@ class Registry:
         else:
             self._create_seeded(keys, info, seeds)
         self.redis.sadd(REGISTRY_KEY, name)
+        if replica_requirement().active:
+            # the config and the registry live in two slots (two primaries in a cluster)
+            what, hint = f"model {name!r}", "it exists: a repeated create answers that"
+            confirm_replicas(
+                self.redis, keys.replica_fence, keys.config, "exists", what=what, retry_hint=hint
+            )
+            confirm_replicas(
+                self.redis,
+                GLOBAL_REPLICA_FENCE_KEY,
+                REGISTRY_KEY,
+                "member",
+                [name],
+                what=what,
+                retry_hint=hint,
+            )
         return info
 
     def _create_seeded(self, keys: ModelKeys, info: ModelInfo, seeds: Sequence[Seed]) -> None:

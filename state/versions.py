@@ -22,6 +22,7 @@ counter is WATCHed then too, so a label set racing the change conflicts the chec
 from __future__ import annotations
 
 import json
+import logging
 import time
 from dataclasses import dataclass, field
 from typing import Any
@@ -32,7 +33,7 @@ from redis.cluster import ClusterPipeline
 
 from mixture.serialize import checksum, state_from_bytes, state_to_bytes
 from mixture.stats import MixtureState
-from state.errors import VersionConflictError
+from state.errors import ReplicasUnconfirmedError, VersionConflictError
 from state.events import EventRecord, GroupEvents, event_alert, event_record
 from state.group_drift import group_ids_of
 from state.handle import ModelHandle, loads_or_none
@@ -44,8 +45,11 @@ from state.records import (
     VersionRecord,
     dumps,
 )
+from state.replicas import confirm_replicas, replica_requirement
 from state.snapshots import Snapshots
 from state.stream import ZERO_ID, Undecodable, parse_stream_id
+
+log = logging.getLogger(__name__)
 
 
 @dataclass
@@ -260,7 +264,33 @@ class Versions:
                     f"model {self.handle.model!r} changed during the checkpoint "
                     "(rollback, lease or delete)"
                 ) from exc
+        if replica_requirement().active:
+            self._confirm(write.version)
         return write.version
+
+    def _confirm(self, version: int) -> None:
+        """Wait for the replicas to hold ``version`` (:mod:`state.replicas`).
+
+        Not confirmed, the version stands on the primary and is logged: learning goes on. Were
+        it lost in a failover, the promoted replica's older version is what the worker's next
+        step reads (and its next WATCH checks): it reloads that version and learns its
+        entries again from its watermark (they were confirmed when queued), never writing
+        over it.
+        """
+        keys = self.handle.keys
+        try:
+            confirm_replicas(
+                self.handle.redis,
+                keys.replica_fence,
+                keys.version,
+                "equals",
+                [str(version)],
+                what=f"checkpoint version {version} of model {self.handle.model!r}",
+                retry_hint="learning goes on; a failover would make the worker reload and learn "
+                "those documents again",
+            )
+        except ReplicasUnconfirmedError as exc:
+            log.warning("%s", exc, extra={"model": self.handle.model, "version": version})
 
     def _check(self, pipe: redis.client.Pipeline, cp: Checkpoint) -> int:
         """WATCH and check generation, version and lease; the current version."""

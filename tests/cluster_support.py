@@ -4,7 +4,9 @@ machine's ``redis-server`` in cluster mode on free loopback ports, joined by
 them where missing).
 
 Each node also listens on its port + 10000 (the cluster bus), so a port is taken only when both
-it and its bus port are free.
+it and its bus port are free. Nodes are kept small (``maxmemory`` 64 MB, refusing writes past
+it rather than evicting) and allow ``DEBUG`` from loopback (``DEBUG SLEEP`` makes a primary
+unresponsive for the failover tests).
 """
 
 from __future__ import annotations
@@ -17,6 +19,8 @@ import subprocess
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
+
+import redis
 
 BUS_OFFSET = 10_000  # the cluster bus port is the client port + 10000 (Redis's fixed rule)
 
@@ -96,7 +100,27 @@ class LocalCluster:
             if time.monotonic() > deadline:
                 raise RuntimeError("the Redis Cluster did not become ok")
             time.sleep(0.1)
+        if self.replicas:
+            self.wait_replicas_in_sync(timeout)
         return self
+
+    def wait_replicas_in_sync(self, timeout: float = 30.0) -> None:
+        """Wait until every running replica's link to its primary is up (its first sync done)."""
+        deadline = time.monotonic() + timeout
+        while True:
+            replicas = [p for p, of in self.topology().items() if of is not None]
+            if replicas and all(self._link_up(p) for p in replicas if p in self.processes):
+                return
+            if time.monotonic() > deadline:
+                raise RuntimeError("the replicas did not finish their sync")
+            time.sleep(0.1)
+
+    def _link_up(self, port: int) -> bool:
+        try:
+            info = self.node(port, socket_timeout=2).info("replication")
+        except redis.RedisError:
+            return False
+        return info.get("master_link_status") == "up"
 
     def _launch(self, server: str, port: int) -> None:
         node_dir = self.folder / str(port)
@@ -128,6 +152,12 @@ class LocalCluster:
                 "",
                 "--logfile",
                 str(node_dir / "redis.log"),
+                "--maxmemory",
+                "64mb",
+                "--maxmemory-policy",
+                "noeviction",
+                "--enable-debug-command",
+                "local",
             ],
             stdin=subprocess.DEVNULL,
             stdout=subprocess.DEVNULL,
@@ -159,6 +189,77 @@ class LocalCluster:
         process = self.processes.pop(port)
         process.send_signal(signal.SIGKILL)
         process.wait()
+
+    def restart(self, port: int, timeout: float = 30.0) -> None:
+        """Start the node on ``port`` again from its folder (its nodes.conf and AOF): it
+        rejoins the cluster (a primary that was failed over comes back as a replica)."""
+        binaries = cluster_binaries()
+        assert binaries is not None
+        self._launch(binaries[0], port)
+        self._wait_ping(binaries[1], port, timeout)
+
+    def pause(self, port: int) -> None:
+        """SIGSTOP the node on ``port``: it answers nothing and reads nothing."""
+        self.processes[port].send_signal(signal.SIGSTOP)
+
+    def resume(self, port: int) -> None:
+        """SIGCONT a paused node."""
+        self.processes[port].send_signal(signal.SIGCONT)
+
+    def node(self, port: int, **kwargs: object) -> redis.Redis:
+        """A plain client of the one node on ``port`` (not the cluster client)."""
+        return redis.Redis(host="127.0.0.1", port=port, **kwargs)  # type: ignore[arg-type]
+
+    def _ask(self, *command: str) -> str:
+        """A command's reply as redis-cli prints it, from the first running node that answers."""
+        binaries = cluster_binaries()
+        assert binaries is not None
+        for port in self.processes:
+            try:
+                done = subprocess.run(
+                    [binaries[1], "-p", str(port), *command],
+                    capture_output=True,
+                    text=True,
+                    check=False,
+                    timeout=3,
+                )
+            except subprocess.TimeoutExpired:
+                continue  # a paused or sleeping node
+            if done.returncode == 0 and done.stdout.strip() and "ERR" not in done.stdout[:5]:
+                return done.stdout
+        raise RuntimeError(f"no node of the cluster answers {' '.join(command)}")
+
+    def topology(self) -> dict[int, int | None]:
+        """Port -> the port of its primary (None for a primary), from CLUSTER NODES (the
+        cluster's own view; failed nodes left out)."""
+        rows = [line.split() for line in self._ask("cluster", "nodes").splitlines() if line]
+        port_of = {r[0]: int(r[1].split("@")[0].rsplit(":", 1)[1]) for r in rows}
+        out: dict[int, int | None] = {}
+        for r in rows:
+            flags = r[2].split(",")
+            if "fail" in flags or "noaddr" in flags:
+                continue
+            out[port_of[r[0]]] = None if "master" in flags else port_of.get(r[3])
+        return out
+
+    def primary_of(self, key: str) -> int:
+        """Port of the primary serving ``key``'s slot (CLUSTER KEYSLOT, then CLUSTER NODES)."""
+        slot = int(self._ask("cluster", "keyslot", key).strip())
+        for line in self._ask("cluster", "nodes").splitlines():
+            r = line.split()
+            if not r or "master" not in r[2].split(",") or "fail" in r[2].split(","):
+                continue
+            for part in r[8:]:
+                if part.startswith("["):
+                    continue  # a slot being migrated
+                low, _, high = part.partition("-")
+                if int(low) <= slot <= int(high or low):
+                    return int(r[1].split("@")[0].rsplit(":", 1)[1])
+        raise RuntimeError(f"no primary serves the slot of {key!r}")
+
+    def replicas_of(self, primary: int) -> list[int]:
+        """Ports of the replicas of the primary on ``primary``."""
+        return [port for port, of in self.topology().items() if of == primary]
 
     def stop(self) -> None:
         """SIGTERM every node still running and wait for it."""

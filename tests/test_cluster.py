@@ -9,8 +9,13 @@ and a SCAN of every primary node says which keys exist.
 
 from __future__ import annotations
 
+import os
+import signal
+import subprocess
+import sys
 import uuid
 import warnings
+from collections import Counter
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -171,3 +176,68 @@ def test_legacy_global_keys_are_adopted_on_a_single_server(redis_client: object)
     finally:
         redis_client.srem(REGISTRY_KEY, "legacy-model")  # type: ignore[attr-defined]
         redis_client.delete(old_registry, old_counter)  # type: ignore[attr-defined]
+
+
+def test_worker_pool_of_two_processes_shares_four_models_on_the_cluster(
+    cluster: LocalCluster, client: object
+) -> None:
+    """``mixroute work --processes 2`` with MIXROUTE_REDIS_CLUSTER: the two pool members hold
+    two of the four models each, and every model is learned once. Reference: mixture/ fed each
+    model's documents directly in stream order (tests/worker_support.reference_state); two
+    members learning one model, or a hand-over that re-learned entries, would differ from it.
+    """
+    from state.lease import lease_holders
+    from tests.worker_support import (
+        assert_same_state,
+        create_model,
+        fast_options,
+        ferry_texts,
+        learned_all,
+        reference_state,
+        small_config,
+        wait_for,
+    )
+
+    config = small_config()
+    models = [f"pool-{uuid.uuid4().hex[:8]}-{i}" for i in range(4)]
+    texts = {m: ferry_texts(600, seed=70 + i) for i, m in enumerate(models)}
+    stores = {}
+    for model in models:
+        stores[model] = create_model(client, model, config, fast_options())  # type: ignore[arg-type]
+        stores[model].enqueue(texts[model], ids=[f"d{j}" for j in range(600)])
+    env = {
+        **os.environ,
+        "REDIS_URL": cluster.url,
+        "MIXROUTE_REDIS_CLUSTER": "true",
+        "MIXROUTE_LOG_LEVEL": "WARNING",
+    }
+    pool = subprocess.Popen(
+        [sys.executable, "-m", "service.cli", "work", "--processes", "2"],
+        cwd=Path(__file__).resolve().parent.parent,
+        env=env,
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.PIPE,
+    )
+    try:
+
+        def two_each() -> bool:
+            holders = lease_holders(client, models)  # type: ignore[arg-type]
+            counts = Counter(holders.values())
+            return None not in counts and sorted(counts.values()) == [2, 2]
+
+        wait_for(two_each, timeout=90, what="4 leases held 2 and 2 by the two members")
+        for model in models:
+            wait_for(learned_all(stores[model], 600), timeout=120, what=f"{model} learned")
+        assert two_each()
+    finally:
+        pool.send_signal(signal.SIGTERM)
+        code = pool.wait(90)
+        err = pool.stderr.read().decode() if pool.stderr else ""
+        if pool.stderr:
+            pool.stderr.close()
+    assert code == 0, err
+    for model in models:
+        state = stores[model].load_state()
+        assert state.documents_learned == 600
+        assert_same_state(state, reference_state(texts[model], config))
+        Registry(client).delete(model)

@@ -11,6 +11,7 @@ from __future__ import annotations
 import os
 import re
 import shlex
+import shutil
 import subprocess
 import tomllib
 from pathlib import Path
@@ -89,8 +90,17 @@ def setting_env_names() -> set[str]:
     return names
 
 
-def compose() -> dict[str, Any]:
-    return yaml.safe_load(COMPOSE.read_text())  # type: ignore[no-any-return]
+def compose(path: Path = COMPOSE) -> dict[str, Any]:
+    return yaml.safe_load(path.read_text())  # type: ignore[no-any-return]
+
+
+def assert_worker_pool(service: dict[str, Any]) -> None:
+    """A compose worker service runs the pool: `work` without --model, several member
+    processes, several containers (the members share the models)."""
+    args = mixroute_command(service["command"])
+    assert args.command == "work" and not getattr(args, "model", None)
+    assert args.processes >= 2
+    assert service["deploy"]["replicas"] >= 2
 
 
 def manifests() -> list[dict[str, Any]]:
@@ -172,18 +182,17 @@ def test_every_copied_source_exists() -> None:
 
 def test_compose_services_images_commands_ports() -> None:
     services = compose()["services"]
-    assert set(services) == {"redis", "api", "worker-1", "worker-2"}
+    assert set(services) == {"redis", "api", "worker"}
     assert services["redis"]["image"].startswith("redis:7")
-    images = {services[name]["image"] for name in ("api", "worker-1", "worker-2")}
+    images = {services[name]["image"] for name in ("api", "worker")}
     assert len(images) == 1, "the API and the workers run the same image"
-    for name in ("api", "worker-1", "worker-2"):
+    for name in ("api", "worker"):
         build = services[name]["build"]
         assert (ROOT / build["context"] / build["dockerfile"]).resolve() == DOCKERFILE
         assert services[name]["depends_on"]["redis"]["condition"] == "service_healthy"
     api = mixroute_command(services["api"]["command"])
     assert api.command == "serve" and api.no_worker
-    for name in ("worker-1", "worker-2"):
-        assert mixroute_command(services[name]["command"]).command == "work"
+    assert_worker_pool(services["worker"])
     # the API is published on the host's loopback only, on the port it listens on
     host_ip, _host_port, container_port = services["api"]["ports"][0].split(":")
     assert (
@@ -202,8 +211,7 @@ def test_compose_health_checks() -> None:
     api_check = " ".join(services["api"]["healthcheck"]["test"])
     port = services["api"]["environment"]["MIXROUTE_PORT"]
     assert f"127.0.0.1:{port}/health" in api_check and "/health" in route_paths()
-    for name in ("worker-1", "worker-2"):
-        assert "MIXROUTE_REDIS_URL" in " ".join(services[name]["healthcheck"]["test"])
+    assert "MIXROUTE_REDIS_URL" in " ".join(services["worker"]["healthcheck"]["test"])
 
 
 def test_compose_redis_volume_and_configuration() -> None:
@@ -222,7 +230,7 @@ def test_compose_redis_volume_and_configuration() -> None:
 def test_compose_environment_is_read_by_settings(monkeypatch: pytest.MonkeyPatch) -> None:
     known = setting_env_names()
     services = compose()["services"]
-    for name in ("api", "worker-1", "worker-2"):
+    for name in ("api", "worker"):
         env = {k: substituted(str(v)) for k, v in services[name]["environment"].items()}
         unknown = {k for k in env if k.startswith("MIXROUTE_")} - known
         assert not unknown, f"{name}: {unknown} are not settings"
@@ -347,7 +355,8 @@ def test_manifests_workloads_images_commands_probes() -> None:
     (api_container,) = pod_spec(api)["containers"]
     assert mixroute_command(api_container["args"]).command == "serve"
     (worker_container,) = pod_spec(worker)["containers"]
-    assert mixroute_command(worker_container["args"]).command == "work"
+    pool = mixroute_command(worker_container["args"])
+    assert pool.command == "work" and not getattr(pool, "model", None) and pool.processes >= 2
     for probe in ("livenessProbe", "readinessProbe"):
         assert api_container[probe]["httpGet"]["path"] in routes
         assert api_container[probe]["httpGet"]["port"] == api_container["ports"][0]["name"]
@@ -393,3 +402,196 @@ def test_dashboard_files_ship_in_the_package() -> None:
     for path in files:
         assert path.is_file(), f"{path} (subfolders are not matched by the package data)"
         assert any(fnmatch(f"static/{path.name}", p) for p in patterns), path.name
+
+
+# -- Redis Cluster: compose file, Kubernetes overlay, node configuration --------------------------
+
+CLUSTER_COMPOSE = ROOT / "deploy" / "compose.cluster.yml"
+CLUSTER_CONF = ROOT / "deploy" / "redis-cluster.conf"
+K8S_CLUSTER = ROOT / "deploy" / "k8s-cluster"
+
+
+def _created_nodes(script: str) -> tuple[list[str], str]:
+    """The hosts a join script passes to `redis-cli --cluster create`, and its options."""
+    loop = re.search(r"for i in ([\d ]+); do", script)
+    host = re.search(r"getent hosts (\S+)", script)
+    assert loop and host, script
+    create = script[script.index("redis-cli --cluster create") :]
+    pattern = re.sub(r"\$+i", "{}", host.group(1))  # $i in a shell, $$i in compose
+    return [pattern.format(i) for i in loop.group(1).split()], create
+
+
+def test_cluster_compose_runs_six_nodes_a_join_and_the_pool() -> None:
+    data = compose(CLUSTER_COMPOSE)
+    services = data["services"]
+    nodes = sorted(n for n in services if n.startswith("redis-node-"))
+    assert len(nodes) == 6
+    for name in nodes:
+        node = services[name]
+        assert node["image"].startswith("redis:7")
+        conf, *options = node["command"][1:]
+        # the node's configuration is deploy/redis-cluster.conf, which includes redis.conf
+        mounts = dict(v.split(":")[:2] for v in node["volumes"])
+        assert (CLUSTER_COMPOSE.parent / mounts_inverse(mounts, conf)).resolve() == CLUSTER_CONF
+        include = re.search(r"(?m)^include (\S+)", CLUSTER_CONF.read_text()).group(1)  # type: ignore[union-attr]
+        assert (CLUSTER_COMPOSE.parent / mounts_inverse(mounts, include)).resolve() == REDIS_CONF
+        assert options == ["--cluster-announce-hostname", name]
+        assert mounts[name] == "/data" and name in data["volumes"]
+    hosts, create = _created_nodes(services["redis-cluster-init"]["command"][-1])
+    assert sorted(hosts) == nodes and "--cluster-replicas 1" in create
+    for name in nodes:
+        assert services["redis-cluster-init"]["depends_on"][name]["condition"] == "service_healthy"
+    for name in ("api", "worker"):
+        build = services[name]["build"]
+        assert (CLUSTER_COMPOSE.parent / build["context"] / build["dockerfile"]).resolve() == (
+            DOCKERFILE
+        )
+        condition = services[name]["depends_on"]["redis-cluster-init"]["condition"]
+        assert condition == "service_completed_successfully"
+    assert_worker_pool(services["worker"])
+
+
+def mounts_inverse(mounts: dict[str, str], target: str) -> str:
+    """The host path mounted at ``target``."""
+    return next(host for host, inside in mounts.items() if inside == target)
+
+
+def test_cluster_compose_environment_is_read_by_settings(monkeypatch: pytest.MonkeyPatch) -> None:
+    services = compose(CLUSTER_COMPOSE)["services"]
+    known = setting_env_names()
+    for name in ("api", "worker"):
+        env = {k: substituted(str(v)) for k, v in services[name]["environment"].items()}
+        assert not {k for k in env if k.startswith("MIXROUTE_")} - known
+        for key in list(os.environ):
+            if key.startswith("MIXROUTE_") or key == "REDIS_URL":
+                monkeypatch.delenv(key)
+        for key, value in env.items():
+            monkeypatch.setenv(key, value)
+        settings = Settings()
+        assert settings.redis_cluster and settings.redis_wait_replicas == 1
+        assert settings.redis_url == "redis://redis-node-0:6379/0"
+
+
+def test_cluster_overlay_replaces_the_single_redis() -> None:
+    kustomization = yaml.safe_load((K8S_CLUSTER / "kustomization.yaml").read_text())
+    assert "../k8s" in kustomization["resources"]
+    listed = {r for r in kustomization["resources"] if r != "../k8s"}
+    patch_files = {p["path"] for p in kustomization["patches"] if "path" in p}
+    present = {p.name for p in K8S_CLUSTER.glob("*.yaml")} - {"kustomization.yaml"}
+    assert listed | patch_files == present
+    deleted = {
+        (d["kind"], d["metadata"]["name"])
+        for p in kustomization["patches"]
+        if "patch" in p
+        for d in [yaml.safe_load(p["patch"])]
+        if d.get("$patch") == "delete"
+    }
+    single = {
+        (d["kind"], d["metadata"]["name"]) for d in manifests() if "redis" in d["metadata"]["name"]
+    }
+    assert deleted == single, "every object of the single Redis is removed"
+    # each Deployment's patch names its own container (a strategic merge adds unknown ones)
+    base = {d["metadata"]["name"]: d for d in manifests() if d["kind"] == "Deployment"}
+    for path in patch_files:
+        patch = yaml.safe_load((K8S_CLUSTER / path).read_text())
+        target = base[patch["metadata"]["name"]]
+        (container,) = pod_spec(patch)["containers"]
+        assert container["name"] == pod_spec(target)["containers"][0]["name"]
+        env = {e["name"]: e["value"] for e in container["env"]}
+        assert set(env) <= setting_env_names()
+        settings = Settings(
+            redis_url=env["MIXROUTE_REDIS_URL"],
+            redis_cluster=env["MIXROUTE_REDIS_CLUSTER"],
+            redis_wait_replicas=env["MIXROUTE_REDIS_WAIT_REPLICAS"],
+            redis_wait_timeout=env["MIXROUTE_REDIS_WAIT_TIMEOUT"],
+        )
+        assert settings.redis_cluster and settings.redis_wait_replicas == 1
+        host = settings.redis_url.split("//")[1].split(":")[0]
+        assert host.endswith(".mixroute-redis-cluster") and host.startswith(
+            "mixroute-redis-cluster-"
+        )
+
+
+def test_cluster_statefulset_and_join_job() -> None:
+    docs = [d for d in yaml.safe_load_all((K8S_CLUSTER / "redis-cluster.yaml").read_text()) if d]
+    by_kind = {d["kind"]: d for d in docs}
+    config = by_kind["ConfigMap"]["data"]
+    assert config["redis.conf"] == REDIS_CONF.read_text()
+    assert config["redis-cluster.conf"] == CLUSTER_CONF.read_text()
+    service = by_kind["Service"]
+    assert service["spec"]["clusterIP"] == "None"
+    ports = {p["name"]: p["port"] for p in service["spec"]["ports"]}
+    assert ports["bus"] == ports["redis"] + 10_000  # Redis Cluster's fixed bus offset
+    stateful = by_kind["StatefulSet"]
+    assert stateful["spec"]["replicas"] == 6
+    assert stateful["spec"]["serviceName"] == service["metadata"]["name"]
+    (container,) = pod_spec(stateful)["containers"]
+    mounts = {m["name"]: m["mountPath"] for m in container["volumeMounts"]}
+    assert container["command"] == ["redis-server", f"{mounts['config']}/redis-cluster.conf"]
+    include = re.search(r"(?m)^include (\S+)", CLUSTER_CONF.read_text()).group(1)  # type: ignore[union-attr]
+    assert include == f"{mounts['config']}/redis.conf" and mounts["data"] == "/data"
+    (job,) = pod_spec(by_kind["Job"])["containers"]
+    hosts, create = _created_nodes(job["command"][-1])
+    name = stateful["metadata"]["name"]
+    assert hosts == [f"{name}-{i}.{service['metadata']['name']}" for i in range(6)]
+    assert "--cluster-replicas 1" in create
+
+
+@pytest.mark.skipif(not Path("/usr/bin/redis-server").exists(), reason="needs redis-server 7")
+def test_a_real_redis_accepts_the_cluster_configuration(tmp_path: Path) -> None:
+    """Source: the Redis server itself, which refuses an unknown or invalid directive (and a
+    cluster directive without cluster support); the include points at a test copy of
+    redis.conf with only the address, port and folder changed."""
+    import redis
+
+    base = REDIS_CONF.read_text()
+    base = re.sub(r"(?m)^dir .*$", f"dir {tmp_path}", base)
+    base = re.sub(r"(?m)^bind .*$", "bind 127.0.0.1", base)
+    base = re.sub(r"(?m)^port .*$", "port 0", base)
+    (tmp_path / "redis.conf").write_text(base + f"\nunixsocket {tmp_path}/redis.sock\n")
+    text = re.sub(r"(?m)^include .*$", f"include {tmp_path}/redis.conf", CLUSTER_CONF.read_text())
+    conf = tmp_path / "redis-cluster.conf"
+    conf.write_text(text)
+    server = subprocess.Popen(
+        ["/usr/bin/redis-server", str(conf)],
+        stdout=subprocess.PIPE,
+        stderr=subprocess.STDOUT,
+        text=True,
+    )
+    client = redis.Redis(unix_socket_path=str(tmp_path / "redis.sock"), decode_responses=True)
+    try:
+        wait_until(lambda: _answers(client, server), 20, 0.02, "the test Redis to start")
+        if server.poll() is not None:
+            pytest.fail(f"redis-server refused deploy/redis-cluster.conf:\n{server.stdout.read()}")  # type: ignore[union-attr]
+        assert client.config_get("cluster-enabled")["cluster-enabled"] == "yes"
+        assert client.config_get("appendonly")["appendonly"] == "yes"  # from the include
+        assert client.config_get("maxmemory-policy")["maxmemory-policy"] == "noeviction"
+        assert client.config_get("min-replicas-to-write")["min-replicas-to-write"] == "0"
+    finally:
+        server.kill()
+        server.wait(timeout=10)
+        client.close()
+
+
+@pytest.mark.skipif(shutil.which("kubectl") is None, reason="needs kubectl (kustomize built in)")
+def test_kustomize_renders_the_cluster_overlay() -> None:
+    """Source: kustomize itself (``kubectl kustomize``, no cluster needed) builds the overlay:
+    the single Redis is gone, each Deployment keeps one container, now with the cluster
+    settings."""
+    done = subprocess.run(
+        ["kubectl", "kustomize", str(K8S_CLUSTER)], capture_output=True, text=True, timeout=60
+    )
+    assert done.returncode == 0, done.stderr
+    docs = [d for d in yaml.safe_load_all(done.stdout) if d]
+    names = {(d["kind"], d["metadata"]["name"]) for d in docs}
+    assert ("StatefulSet", "mixroute-redis") not in names
+    assert ("StatefulSet", "mixroute-redis-cluster") in names
+    assert ("Job", "mixroute-redis-cluster-join") in names
+    for doc in docs:
+        if doc["kind"] != "Deployment":
+            continue
+        (container,) = pod_spec(doc)["containers"]
+        env = {e["name"]: e.get("value") for e in container["env"]}
+        assert env["MIXROUTE_REDIS_CLUSTER"] == "true"
+        assert env["MIXROUTE_REDIS_WAIT_REPLICAS"] == "1"
+        assert env["MIXROUTE_REDIS_URL"].startswith("redis://mixroute-redis-cluster-0.")

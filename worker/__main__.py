@@ -18,6 +18,7 @@ from mixture.sweep import set_worker_threads
 from state.connection import redis_from_url
 from state.errors import ModelNotFoundError
 from state.logs import configure_logging
+from state.replicas import require_replicas, requirement_from_environment
 from worker.learner import Worker
 
 
@@ -65,6 +66,11 @@ def main(argv: list[str] | None = None) -> int:
             "no Redis: set REDIS_URL or pass --redis-url (a worker process needs the "
             "shared Redis; the embedded server runs workers in-process)"
         )
+    try:  # the service's durability setting (checkpoints wait for the replicas)
+        requirement = requirement_from_environment(os.environ)
+    except ValueError as exc:
+        parser.error(str(exc))
+    require_replicas(requirement.replicas, requirement.timeout_seconds)
     client = redis_from_url(args.redis_url, cluster=args.redis_cluster)
     try:
         worker = Worker(client, args.model, name=args.name)

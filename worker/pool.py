@@ -46,6 +46,7 @@ from state.connection import redis_from_url, use_cluster_client
 from state.errors import ModelNotFoundError
 from state.lease import PoolRoster, default_worker_name, lease_holders
 from state.registry import Registry
+from state.replicas import require_replicas, requirement_from_environment
 from worker.learner import Worker
 
 log = logging.getLogger(__name__)
@@ -300,6 +301,11 @@ def main(argv: list[str] | None = None) -> int:
     use_cluster_client(
         os.environ.get("MIXROUTE_REDIS_CLUSTER", "").strip().lower() in ("1", "true", "yes", "on")
     )
+    try:
+        requirement = requirement_from_environment(os.environ)
+    except ValueError as exc:
+        parser.error(str(exc))
+    require_replicas(requirement.replicas, requirement.timeout_seconds)
     member = PoolMember(
         args.redis_url, name=args.name, tick_seconds=args.tick, roster_ttl_seconds=args.roster_ttl
     )
