@@ -6,8 +6,10 @@ process subscribes to all of them (one pattern) and reloads the model named by a
 new version is served within milliseconds. A poller thread is the fallback for notices that
 never arrive (a pub/sub connection being re-made, a Redis that drops them): every
 ``reload_poll_interval`` seconds (5 s by default), and at once after each (re)subscription, it
-reads the version, the label counter and the existence of every loaded model in one pipelined
-round trip, and reloads the state bytes only when the version moved. When Redis stops
+reads the version, the state's checksum, the label counter and the existence of every loaded
+model in one pipelined round trip, and reloads the state bytes only when the version or the
+checksum moved (a failover can lose a version the API had loaded; the worker then makes
+another state under the same number). When Redis stops
 answering, the poller marks the runtime *degraded*:
 routing keeps answering from the parameters in memory and says so, while every call that must
 reach Redis (queueing, snapshots, labels, ...) fails fast with :class:`RedisUnavailableError`, which
@@ -556,10 +558,13 @@ class ServiceRuntime:
             keys = ModelKeys(name)
             pipe.exists(keys.config)
             pipe.get(keys.version)
+            pipe.get(keys.state_checksum)
             pipe.get(keys.labels_version)
         replies = pipe.execute()
         for index, name in enumerate(names):
-            exists, raw_version, raw_labels_version = replies[3 * index : 3 * index + 3]
+            exists, raw_version, raw_checksum, raw_labels_version = replies[
+                4 * index : 4 * index + 4
+            ]
             loaded = self.models.get(name)
             if loaded is None:
                 continue
@@ -568,8 +573,14 @@ class ServiceRuntime:
                 continue
             version = int(raw_version) if raw_version else 0
             labels_version = int(raw_labels_version) if raw_labels_version else 0
+            # a version written before the checksum key existed has none: compare numbers only
+            remade = raw_checksum is not None and raw_checksum.decode() != loaded.checksum
             try:
-                if version != loaded.version or (loaded.state is None and version > 0):
+                if (
+                    version != loaded.version
+                    or (loaded.state is None and version > 0)
+                    or (version > 0 and remade)
+                ):
                     with self._lock:
                         if name in self.models:  # not evicted meanwhile
                             self._keep(name, self._load(name, loaded))
@@ -599,11 +610,8 @@ class ServiceRuntime:
         if name is None or loaded is None:
             return  # not loaded here: it is read fresh on first use
         self.notices += 1
-        try:
-            if data is not None and int(data) == loaded.version:
-                return  # already loaded (this process made the change)
-        except ValueError:
-            pass
+        if data is not None and _notice_matches(data, loaded):
+            return  # already loaded (this process made the change)
         try:
             self._refresh([name])
         except REDIS_DOWN_ERRORS as exc:
@@ -785,6 +793,21 @@ def state_memory(state: MixtureState | None) -> int:
         return sum(size_of(v, depth - 1) for v in attributes.values())
 
     return size_of(state, 5)
+
+
+def _notice_matches(data: bytes | str, loaded: LoadedModel) -> bool:
+    """Whether a notice (``"<version> <checksum>"``, or an older ``"<version>"``) names the
+    state already loaded: the same number and, when the notice carries one, the same checksum.
+    """
+    text = data.decode() if isinstance(data, bytes) else data
+    parts = text.split()
+    try:
+        version = int(parts[0]) if parts else -1
+    except ValueError:
+        return False
+    if version != loaded.version:
+        return False
+    return len(parts) < 2 or parts[1] == loaded.checksum
 
 
 def _labels_version(store: ModelStore) -> int:

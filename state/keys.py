@@ -32,6 +32,9 @@ id:<client id>     string      marks a client id as seen (TTL = idempotency wind
 state              string      current state bytes (mixture.serialize)
 state_meta         string      JSON summary of the current state (version, weights, checksum,
                                ``entries_read`` when the state's line counts it)
+state_checksum     string      checksum of the current state bytes (written with ``version``):
+                               the API's poll compares both, so a version number that a
+                               failover lost and the worker then re-made is reloaded
 version            string      current version number (int)
 watermark          string      last stream id applied to the current state
 history            list        JSON drift-history rows, one per checkpoint (capped)
@@ -147,6 +150,7 @@ class ModelKeys:
         "snapshot_seq",
         "snapshots",
         "state",
+        "state_checksum",
         "state_meta",
         "version",
         "watermark",
@@ -163,6 +167,7 @@ class ModelKeys:
         self.dead_letters = b + "dead"
         self.state = b + "state"
         self.state_meta = b + "state_meta"
+        self.state_checksum = b + "state_checksum"
         self.version = b + "version"
         self.watermark = b + "watermark"
         self.history = b + "history"
@@ -194,6 +199,7 @@ class ModelKeys:
             self.dead_letters,
             self.state,
             self.state_meta,
+            self.state_checksum,
             self.version,
             self.watermark,
             self.history,

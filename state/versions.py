@@ -115,16 +115,18 @@ _PUBLISH_LUA = "return redis.call('PUBLISH', ARGV[1], ARGV[2])"
 def write_version(pipe: redis.client.Pipeline, handle: ModelHandle, w: VersionWrite) -> None:
     """Queue, inside the caller's MULTI, every write of a new version.
 
-    State bytes, version number, watermark, ``state_meta`` (the summary, with
-    ``entries_read`` when the state counts it), the lineage record, the drift-history row
-    (capped lists) and the ``notify`` message. Used by checkpoints and rollbacks alike.
+    State bytes, version number and the bytes' checksum, watermark, ``state_meta`` (the
+    summary, with ``entries_read`` when the state counts it), the lineage record, the
+    drift-history row (capped lists) and the ``notify`` message (``"<version> <checksum>"``).
+    Used by checkpoints and rollbacks alike.
     """
     keys, options = handle.keys, handle.options
     summary = state_summary(w.state)
+    digest = checksum(w.data)
     meta = {
         "version": w.version,
         "watermark": w.watermark,
-        "checksum": checksum(w.data),
+        "checksum": digest,
         "size": len(w.data),
         "time": w.time,
         **summary,
@@ -155,18 +157,22 @@ def write_version(pipe: redis.client.Pipeline, handle: ModelHandle, w: VersionWr
     )
     pipe.set(keys.state, w.data)
     pipe.set(keys.version, w.version)
+    pipe.set(keys.state_checksum, digest)
     pipe.set(keys.watermark, w.watermark)
     pipe.set(keys.state_meta, dumps(meta))
     pipe.rpush(keys.lineage, dumps(record.to_dict()))
     pipe.ltrim(keys.lineage, -options.lineage_limit, -1)
     pipe.rpush(keys.history, dumps(row.to_dict()))
     pipe.ltrim(keys.history, -options.history_limit, -1)
+    # the checksum rides along: after a failover lost a version, the re-made one has the same
+    # number but other bytes, and a reader that compared numbers only would keep the lost one
+    notice = f"{w.version} {digest}"
     if isinstance(pipe, ClusterPipeline):
         # a cluster pipeline refuses PUBLISH (it has no key to route by); a script keyed by
         # one of the model's keys stays in the transaction's slot and publishes cluster-wide
-        pipe.execute_command("EVAL", _PUBLISH_LUA, 1, keys.version, keys.notify, str(w.version))
+        pipe.execute_command("EVAL", _PUBLISH_LUA, 1, keys.version, keys.notify, notice)
     else:
-        pipe.publish(keys.notify, str(w.version))
+        pipe.publish(keys.notify, notice)
 
 
 class Versions:

@@ -3,19 +3,27 @@ pipelined round trip for every loaded model, still catches what the notices miss
 
 from __future__ import annotations
 
+import os
+import time
 import warnings
 from collections.abc import Iterator
 
+import numpy as np
 import pytest
 import redis
 
 from mixture.config import MixtureConfig
+from mixture.em import fit_texts
+from mixture.serialize import state_from_bytes
+from mixture.stats import MixtureState
 from service.app import create_app
 from service.runtime import ServiceRuntime
 from service.settings import Settings
 from service.testing import first_checkpoint, wait_until
 from state.keys import NOTIFY_PATTERN, ModelKeys, model_of_notify_channel
+from state.records import WorkerStatus
 from state.registry import Registry
+from state.store import Checkpoint, ModelStore
 
 with warnings.catch_warnings():
     warnings.simplefilter("ignore")
@@ -136,3 +144,64 @@ def test_the_poll_is_one_round_trip_for_every_model(
     finally:
         for name in names[:-1]:
             registry.delete(name)
+
+
+def _commit(store: ModelStore, state: MixtureState) -> None:
+    status = WorkerStatus("failover-test", os.getpid(), "test", time.time(), 0, 0)
+    assert store.hold_lease(status)
+    store.commit_checkpoint(Checkpoint("failover-test", store.version(), state, "0-0"))
+    store.release_lease("failover-test")
+
+
+def _fitted(seed: int) -> MixtureState:
+    # invented ferry-inbox messages; two seeds give two different states of one config
+    texts = [
+        "ferry late storm harbour",
+        "refund ticket booking fare",
+        "lost bag cabin deck",
+        "storm delay crossing wind",
+        "ticket refund voucher payment",
+        "bag locker lost found",
+    ] * 3
+    state, _ = fit_texts(texts, MixtureConfig(n_groups=2), seed=seed)
+    return state
+
+
+def test_a_version_number_remade_after_a_failover_is_reloaded(
+    redis_url: str, redis_client: redis.Redis, model_name: str
+) -> None:
+    """A failover can lose version 1 after the API loaded it; the worker then makes another
+    version 1 from the stream. The number alone would hide the change: the checksum shows it."""
+    registry = Registry(redis_client)
+    registry.create(model_name, MixtureConfig(n_groups=2))
+    runtime = ServiceRuntime(Settings(redis_url=redis_url, reload_poll_interval=60.0), redis_client)
+    try:
+        store = ModelStore(redis_client, model_name)
+        _commit(store, _fitted(seed=0))
+        lost = runtime.model(model_name)
+        assert lost.version == 1
+        # what the promoted replica holds: version 1 never arrived; then a new version 1
+        keys = ModelKeys(model_name)
+        redis_client.delete(keys.state, keys.version, keys.state_checksum, keys.state_meta)
+        remade_state = _fitted(seed=3)
+        _commit(store, remade_state)
+        remade = store.current()
+        assert remade is not None and remade.version == 1 and remade.checksum != lost.checksum
+        # a notice carrying the old form (the number only) cannot tell them apart
+        runtime.on_notice(keys.notify, b"1")
+        assert runtime.models[model_name].checksum == lost.checksum
+        # the notice a checkpoint now sends carries the checksum: reloaded
+        runtime.on_notice(keys.notify, f"1 {remade.checksum}".encode())
+        assert runtime.models[model_name].checksum == remade.checksum
+        # and the poll, for the notices that never arrive
+        redis_client.delete(keys.state, keys.version, keys.state_checksum, keys.state_meta)
+        _commit(store, _fitted(seed=5))
+        third = store.current()
+        assert third is not None and third.version == 1 and third.checksum != remade.checksum
+        runtime.poll_once()
+        assert runtime.models[model_name].checksum == third.checksum
+        assert np.array_equal(
+            runtime.models[model_name].state.weights(), state_from_bytes(third.data).weights()
+        )
+    finally:
+        registry.delete(model_name)
