@@ -22,7 +22,7 @@ relabel or merge by that document's words alone. They are integer counts, so wit
 document is exact: the sums, and the parameters, afterwards are those of never having had it.
 
 Groups are named by stable ids (``state.group_ids``); a labelled document names its group's
-id, mapped to an array position only when the statistics are summed. A birth never gets
+id, mapped to an array position only when the statistics are read. A birth never gets
 labelled documents; a merge moves them to the survivor (mixture.lifecycle).
 
 How much of an unlabelled document remains
