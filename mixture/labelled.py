@@ -516,12 +516,30 @@ class LabelledSet:
         not a whole number (labelled documents are counted from text).
         """
         row = sp.csr_matrix(row, dtype=np.float64)
-        row.sum_duplicates()
-        row.sort_indices()
-        indices = row.indices.astype(np.int64)
-        data = row.data.astype(np.float64)
+        row.sum_duplicates()  # sorted, distinct word ids
+        return self.put_counts(doc_id, group_id, source, excerpt, row.indices, row.data)
+
+    def put_counts(
+        self,
+        doc_id: str,
+        group_id: int,
+        source: str,
+        excerpt: str,
+        indices: np.ndarray,
+        data: np.ndarray,
+    ) -> bool:
+        """:meth:`put` with the row given as sorted, distinct word ids and their counts (a
+        canonical CSR row's ``indices`` and ``data``, e.g. a slice of ``count_texts``' counts:
+        no sparse matrix is built per document)."""
+        indices = np.asarray(indices, dtype=np.int64)
+        data = np.asarray(data, dtype=np.float64)
+        if indices.shape != data.shape or np.any(np.diff(indices) <= 0):
+            raise InputError(f"word ids of labelled document {doc_id!r} must be sorted, distinct")
         keep = data > 0
-        indices, data = indices[keep], data[keep]
+        if not keep.all():
+            indices, data = indices[keep], data[keep]
+        else:  # own copies: the caller's arrays may be views of a batch
+            indices, data = indices.copy(), data.copy()
         if not np.all(np.floor(data) == data):
             raise InputError(f"counts of labelled document {doc_id!r} must be whole numbers")
         index = self._index.get(doc_id)
@@ -788,18 +806,20 @@ def add_items(state: MixtureState, items: Sequence[LabelledItem]) -> AddedItems:
     replaced = state.labelled.word_ids_of([item.doc_id for item in items])
     batch = count_texts([item.text for item in items], state.tokenizer, state.vocabulary, True)
     state.ensure_capacity()
-    counts = batch.counts
+    counts = batch.counts  # canonical CSR (count_texts sums duplicates): rows by slice
     changed = 0
     for index, item in enumerate(items):
-        changed += state.labelled.put(
+        start, stop = counts.indptr[index], counts.indptr[index + 1]
+        changed += state.labelled.put_counts(
             item.doc_id,
             int(item.group_id),
             item.source,
             item.text[:EXCERPT_CHARACTERS],
-            counts[index],
+            counts.indices[start:stop],
+            counts.data[start:stop],
         )
     if changed:
         state.touch()
         # A replaced text's words that nothing else holds leave with it.
         state.retire_unused_words(replaced)
-    return AddedItems(changed, int(counts.sum()), batch.new_words)
+    return AddedItems(changed, int(counts.data.sum()), batch.new_words)

@@ -216,3 +216,16 @@ def test_a_merge_moves_the_sums_to_the_survivor() -> None:
     words, docs, _ = _reference_counts(state)
     np.testing.assert_array_equal(state.expected_word_counts(), words)
     np.testing.assert_array_equal(state.expected_documents(), docs)
+
+
+def test_put_counts_takes_a_canonical_row_and_copies_it() -> None:
+    labelled = LabelledSet()
+    indices, data = np.array([1, 4]), np.array([2.0, 1.0])
+    assert labelled.put_counts("a", 3, "correction", "", indices, data)
+    data[0] = 7.0  # the caller's batch changes later: the set keeps its own counts
+    assert labelled.sums.by_group() == {3: (1, 1, 3, {1: 2, 4: 1})} == recount(labelled)
+    with pytest.raises(InputError, match="sorted, distinct"):
+        labelled.put_counts("b", 3, "correction", "", np.array([4, 1]), np.array([1.0, 1.0]))
+    with pytest.raises(InputError, match="sorted, distinct"):
+        labelled.put_counts("b", 3, "correction", "", np.array([1, 1]), np.array([1.0, 1.0]))
+    assert labelled.ids() == ["a"]
