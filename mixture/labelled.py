@@ -150,8 +150,8 @@ class LabelledSums:
     (whole numbers below 2**53 add exactly in any order), so parameters derived from them are
     bit-identical to those of summing the documents again.
 
-    Memory: words the labelled documents use x groups they name, never more than the state's
-    own (capacity, K) statistics. Rows of words no document uses any more stay (zero) until
+    Memory: words the labelled documents use x groups they name (8 bytes each, allocated by
+    doubling), so of the order of the state's own (capacity, K) statistics at most. Rows of words no document uses any more stay (zero) until
     the next vocabulary compaction rebuilds the sums; the column of a group no document names
     any more is reused.
     """
