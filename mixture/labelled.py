@@ -76,6 +76,9 @@ LABELLED_SOURCES = ("correction", "example")
 EXCERPT_CHARACTERS = 200
 # Longest document id accepted (client ids in the stream are of this order).
 _MAX_ID_LENGTH = 512
+# Up to this many documents a removal deletes in place; more rebuild the lists once (a removal
+# in place moves the tail of each list once per document).
+_REMOVE_IN_PLACE = 16
 
 
 @dataclass(frozen=True)
@@ -151,9 +154,9 @@ class LabelledSums:
     bit-identical to those of summing the documents again.
 
     Memory: words the labelled documents use x groups they name (8 bytes each, allocated by
-    doubling), so of the order of the state's own (capacity, K) statistics at most. Rows of words no document uses any more stay (zero) until
-    the next vocabulary compaction rebuilds the sums; the column of a group no document names
-    any more is reused.
+    doubling), so of the order of the state's own (capacity, K) statistics at most. Rows of
+    words no document uses any more stay (zero) until the next vocabulary compaction rebuilds
+    the sums; the column of a group no document names any more is reused.
     """
 
     def __init__(self) -> None:
@@ -578,14 +581,30 @@ class LabelledSet:
             return 0
         for i in drop:
             self._sums.subtract(self._groups[i], self._indices[i], self._data[i].astype(np.int64))
-        keep = [i for i in range(len(self._ids)) if i not in drop]
-        self._ids = [self._ids[i] for i in keep]
-        self._groups = [self._groups[i] for i in keep]
-        self._sources = [self._sources[i] for i in keep]
-        self._excerpts = [self._excerpts[i] for i in keep]
-        self._indices = [self._indices[i] for i in keep]
-        self._data = [self._data[i] for i in keep]
-        self._index = {d: i for i, d in enumerate(self._ids)}
+        columns = (
+            self._ids,
+            self._groups,
+            self._sources,
+            self._excerpts,
+            self._indices,
+            self._data,
+        )
+        if len(drop) <= _REMOVE_IN_PLACE:
+            # A few: delete in place (a memmove per list) and renumber only the ids after the
+            # first gap, instead of rebuilding every list in Python.
+            for d in [self._ids[i] for i in drop]:
+                del self._index[d]
+            for i in sorted(drop, reverse=True):
+                for column in columns:
+                    del column[i]
+            first = min(drop)
+            for i in range(first, len(self._ids)):
+                self._index[self._ids[i]] = i
+        else:
+            keep = [i for i in range(len(self._ids)) if i not in drop]
+            for column in columns:
+                column[:] = [column[i] for i in keep]
+            self._index = {d: i for i, d in enumerate(self._ids)}
         self.revision += 1
         return len(drop)
 
@@ -688,12 +707,15 @@ class LabelledSet:
             raise StateFormatError("labelled counts must be whole numbers")
         if indices.size and indices.min() < 0:
             raise StateFormatError("labelled counts name negative word ids")
+        # Within each document the word ids increase (steps across two documents aside).
+        steps = np.diff(indices) > 0
+        steps[indptr[1:-1][(indptr[1:-1] > 0) & (indptr[1:-1] < indices.size)] - 1] = True
+        if not steps.all():
+            raise StateFormatError("a labelled document's word ids must be sorted, distinct")
         out = cls()
         for i in range(n):
             if not isinstance(ids[i], str) or sources[i] not in LABELLED_SOURCES:
                 raise StateFormatError("labelled documents hold a bad id or source")
-            if np.any(np.diff(indices[indptr[i] : indptr[i + 1]]) <= 0):
-                raise StateFormatError("a labelled document's word ids must be sorted, distinct")
             out._index[ids[i]] = i
             out._ids.append(ids[i])
             out._groups.append(int(groups[i]))

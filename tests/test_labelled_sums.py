@@ -229,3 +229,24 @@ def test_put_counts_takes_a_canonical_row_and_copies_it() -> None:
     with pytest.raises(InputError, match="sorted, distinct"):
         labelled.put_counts("b", 3, "correction", "", np.array([1, 1]), np.array([1.0, 1.0]))
     assert labelled.ids() == ["a"]
+
+
+@pytest.mark.parametrize("n_removed", [1, 3, 17, 30])
+def test_removal_keeps_the_order_and_the_index_in_place_or_rebuilt(n_removed: int) -> None:
+    # Up to 16 documents are deleted in place, more rebuild the lists: both close the gaps.
+    labelled = LabelledSet()
+    rng = np.random.default_rng(n_removed)
+    for i in range(40):
+        counts = [int(c) for c in rng.integers(0, 3, size=N_WORDS)]
+        labelled.put(f"d{i}", i % 3, "correction", f"text {i}", _row(counts))
+    removed = [f"d{i}" for i in rng.choice(40, size=n_removed, replace=False)]
+    assert labelled.remove([*removed, "unknown"]) == n_removed
+    expected = [f"d{i}" for i in range(40) if f"d{i}" not in removed]
+    assert labelled.ids() == expected
+    assert [labelled.group_of(d) for d in expected] == [int(d[1:]) % 3 for d in expected]
+    assert [item["excerpt"] for item in labelled.documents()] == [f"text {d[1:]}" for d in expected]
+    assert all(labelled.group_of(d) is None for d in removed)
+    assert labelled.sums.by_group() == recount(labelled)
+    # The index still finds every document: replacing one keeps its place.
+    labelled.put(expected[-1], 2, "example", "moved", _row([1] * N_WORDS))
+    assert labelled.ids() == expected and labelled.sums.by_group() == recount(labelled)
