@@ -16,12 +16,13 @@ labeled and unlabeled documents using EM" (Machine Learning 39):
   with Kish's effective number of documents (mixture.stats). Labelled counts are real counts:
   they never decay.
 
-The labelled statistics are always derived from the set (per-group sums cached by the set's
-revision and the state's group ids), never folded into the running average, so that
-withdrawing a document is exact: the parameters afterwards are those of never having had it.
+The labelled statistics are never folded into the running average: the set keeps running
+per-group sums beside its documents (:class:`LabelledSums`), changed by each add, withdrawal,
+relabel or merge by that document's words alone. They are integer counts, so withdrawing a
+document is exact: the sums, and the parameters, afterwards are those of never having had it.
 
 Groups are named by stable ids (``state.group_ids``); a labelled document names its group's
-id, mapped to an array position only when the statistics are summed. A birth never gets
+id, mapped to an array position only when the statistics are read. A birth never gets
 labelled documents; a merge moves them to the survivor (mixture.lifecycle).
 
 How much of an unlabelled document remains
@@ -63,6 +64,7 @@ __all__ = [
     "LabelledCounts",
     "LabelledItem",
     "LabelledSet",
+    "LabelledSums",
     "remaining_documents",
     "remaining_weight",
 ]
@@ -74,6 +76,9 @@ LABELLED_SOURCES = ("correction", "example")
 EXCERPT_CHARACTERS = 200
 # Longest document id accepted (client ids in the stream are of this order).
 _MAX_ID_LENGTH = 512
+# Up to this many documents a removal deletes in place; more rebuild the lists once (a removal
+# in place moves the tail of each list once per document).
+_REMOVE_IN_PLACE = 16
 
 
 @dataclass(frozen=True)
@@ -133,13 +138,264 @@ class LabelledCounts:
         return int(self.groups.shape[0])
 
 
+class LabelledSums:
+    """Running per-group sums of the labelled documents, keyed by stable group id.
+
+    One row per word that labelled documents used (``word_ids``; ``row_of_word`` maps back),
+    one column per group id they name; a dense int64 block rows x columns of word counts, and
+    per column the documents naming the group (``members``), those with at least one token
+    (``documents``: only they count, as in stepwise and batch EM) and their tokens. Adding or
+    taking out a document touches its words' rows only: O(words of the document).
+
+    Integer counts: labelled documents carry whole word counts (counted from text), and int64
+    addition is exact, so any sequence of adds and withdrawals leaves exactly the sums of the
+    documents held, never a drift. Read as float64 they equal a float sum of the same counts
+    (whole numbers below 2**53 add exactly in any order), so parameters derived from them are
+    bit-identical to those of summing the documents again.
+
+    Memory: words the labelled documents use x groups they name (8 bytes each, allocated by
+    doubling), so of the order of the state's own (capacity, K) statistics at most. Rows of
+    words no document uses any more stay (zero) until the next vocabulary compaction rebuilds
+    the sums; the column of a group no document names any more is reused.
+    """
+
+    def __init__(self) -> None:
+        self._row_of_word = np.full(0, -1, dtype=np.int64)
+        self._word_ids = np.zeros(0, dtype=np.int64)
+        self._n_rows = 0
+        self._counts = np.zeros((0, 0), dtype=np.int64)
+        self._column: dict[int, int] = {}
+        self._free: list[int] = []
+        self._members = np.zeros(0, dtype=np.int64)
+        self._documents = np.zeros(0, dtype=np.int64)
+        self._tokens = np.zeros(0, dtype=np.int64)
+
+    @classmethod
+    def recount(
+        cls, groups: Sequence[int], indices: Sequence[np.ndarray], data: Sequence[np.ndarray]
+    ) -> LabelledSums:
+        """The sums of the given documents counted from scratch (a state read from bytes, a
+        vocabulary compaction). ``indices[i]`` are distinct word ids, ``data[i]`` their whole
+        counts."""
+        out = cls()
+        n = len(groups)
+        if not n:
+            return out
+        group_ids = np.asarray(groups, dtype=np.int64)
+        columns, doc_column = np.unique(group_ids, return_inverse=True)
+        lengths = np.fromiter((i.size for i in indices), dtype=np.int64, count=n)
+        words = np.concatenate(indices).astype(np.int64)
+        counts = np.concatenate(data).astype(np.int64)
+        word_ids, entry_row = np.unique(words, return_inverse=True)
+        out._grow_rows(word_ids.size)
+        out._grow_columns(columns.size)
+        out._word_ids[: word_ids.size] = word_ids
+        out._n_rows = int(word_ids.size)
+        if word_ids.size:
+            out._grow_word_map(int(word_ids[-1]) + 1)
+            out._row_of_word[word_ids] = np.arange(word_ids.size)
+        np.add.at(out._counts, (entry_row, np.repeat(doc_column, lengths)), counts)
+        doc_tokens = np.zeros(n, dtype=np.int64)
+        np.add.at(doc_tokens, np.repeat(np.arange(n), lengths), counts)
+        out._members[: columns.size] = np.bincount(doc_column, minlength=columns.size)
+        out._documents[: columns.size] = np.bincount(
+            doc_column[doc_tokens > 0], minlength=columns.size
+        )
+        np.add.at(out._tokens, doc_column, doc_tokens)
+        out._column = {int(g): c for c, g in enumerate(columns)}
+        return out
+
+    # ---- reading ---------------------------------------------------------------------------
+    @property
+    def word_ids(self) -> np.ndarray:
+        """Word id of each row, shape (R,) (a view: valid until the next change)."""
+        return self._word_ids[: self._n_rows]
+
+    @property
+    def counts(self) -> np.ndarray:
+        """Word counts, shape (R, allocated columns) int64 (a view: valid until a change)."""
+        return self._counts[: self._n_rows]
+
+    def rows_of(self, word_ids: np.ndarray) -> np.ndarray:
+        """Row of each word id, -1 for a word no labelled document used."""
+        ids = np.asarray(word_ids, dtype=np.int64)
+        rows = np.full(ids.shape, -1, dtype=np.int64)
+        inside = ids < self._row_of_word.size
+        rows[inside] = self._row_of_word[ids[inside]]
+        return rows
+
+    def column_of(self, group_id: int) -> int:
+        """Column of a group id, -1 when no labelled document names it."""
+        return self._column.get(int(group_id), -1)
+
+    def columns_of(self, group_ids: np.ndarray) -> np.ndarray:
+        """Column of each group id (-1 for a group no labelled document names)."""
+        return np.array([self._column.get(int(g), -1) for g in group_ids], dtype=np.int64)
+
+    def group_ids(self) -> list[int]:
+        """Group ids that labelled documents name."""
+        return list(self._column)
+
+    def members(self, column: int) -> int:
+        """Documents naming the column's group."""
+        return int(self._members[column])
+
+    def documents(self, columns: np.ndarray) -> np.ndarray:
+        """Documents with at least one token, per column, int64."""
+        return self._documents[columns]
+
+    def tokens(self, columns: np.ndarray) -> np.ndarray:
+        """Tokens per column, int64."""
+        return self._tokens[columns]
+
+    def holds_words(self, word_ids: np.ndarray) -> np.ndarray:
+        """Whether any labelled document (of any group) uses each word id, shape (n,) bool."""
+        rows = self.rows_of(word_ids)
+        held = rows >= 0
+        if held.any():
+            held[held] = np.any(self._counts[rows[held]] != 0, axis=1)
+        return held
+
+    def by_group(self) -> dict[int, tuple[int, int, int, dict[int, int]]]:
+        """Every sum keyed by group id: ``(members, documents, tokens, {word id: count})``
+        with zero counts left out; equal for any two sums of the same documents."""
+        out = {}
+        for group, column in self._column.items():
+            values = self.counts[:, column]
+            nonzero = np.flatnonzero(values)
+            words = {
+                int(w): int(c) for w, c in zip(self.word_ids[nonzero], values[nonzero], strict=True)
+            }
+            out[group] = (
+                int(self._members[column]),
+                int(self._documents[column]),
+                int(self._tokens[column]),
+                words,
+            )
+        return out
+
+    # ---- changing --------------------------------------------------------------------------
+    def add(self, group_id: int, indices: np.ndarray, counts: np.ndarray) -> None:
+        """Count one document (distinct word ids, whole counts) into its group."""
+        column = self._column.get(int(group_id), -1)
+        if column < 0:
+            column = self._new_column(int(group_id))
+        tokens = int(counts.sum())
+        if indices.size:
+            rows = self._rows_for(indices)  # before reading self._counts: it may grow
+            self._counts[rows, column] += counts
+        self._members[column] += 1
+        self._documents[column] += tokens > 0
+        self._tokens[column] += tokens
+
+    def subtract(self, group_id: int, indices: np.ndarray, counts: np.ndarray) -> None:
+        """Take out one document counted by :meth:`add` with the same arguments."""
+        column = self._column[int(group_id)]
+        tokens = int(counts.sum())
+        if indices.size:
+            self._counts[self._row_of_word[indices], column] -= counts
+        self._members[column] -= 1
+        self._documents[column] -= tokens > 0
+        self._tokens[column] -= tokens
+        if self._members[column] == 0:
+            self._release(int(group_id), column)
+
+    def subtract_words(
+        self, group_id: int, indices: np.ndarray, counts: np.ndarray, emptied: bool
+    ) -> None:
+        """Take some words out of a document that stays (retired words); ``emptied`` when it
+        has no token left."""
+        column = self._column[int(group_id)]
+        self._counts[self._row_of_word[indices], column] -= counts
+        self._tokens[column] -= int(counts.sum())
+        self._documents[column] -= bool(emptied)
+
+    def move_group(self, old_id: int, new_id: int) -> None:
+        """Add every sum of group ``old_id`` to ``new_id`` (a merge): O(rows)."""
+        old = self._column.get(int(old_id), -1)
+        if old < 0 or int(old_id) == int(new_id):
+            return
+        new = self._column.get(int(new_id), -1)
+        if new < 0:
+            new = self._new_column(int(new_id))
+        self._counts[: self._n_rows, new] += self._counts[: self._n_rows, old]
+        for array in (self._members, self._documents, self._tokens):
+            array[new] += array[old]
+        self._counts[: self._n_rows, old] = 0
+        self._members[old] = 0
+        self._documents[old] = 0
+        self._tokens[old] = 0
+        self._release(int(old_id), old)
+
+    # ---- storage ---------------------------------------------------------------------------
+    def _rows_for(self, indices: np.ndarray) -> np.ndarray:
+        top = int(indices[-1]) + 1 if indices.size else 0  # indices are sorted
+        if top > self._row_of_word.size:
+            self._grow_word_map(top)
+        rows = self._row_of_word[indices]
+        missing = rows < 0
+        if missing.any():
+            n_new = int(np.count_nonzero(missing))
+            self._grow_rows(self._n_rows + n_new)
+            new = np.arange(self._n_rows, self._n_rows + n_new, dtype=np.int64)
+            self._word_ids[new] = indices[missing]
+            self._row_of_word[indices[missing]] = new
+            rows[missing] = new
+            self._n_rows += n_new
+        return rows
+
+    def _new_column(self, group_id: int) -> int:
+        if self._free:
+            column = self._free.pop()
+        else:
+            column = len(self._column)
+            self._grow_columns(column + 1)
+        self._column[group_id] = column
+        return column
+
+    def _release(self, group_id: int, column: int) -> None:
+        del self._column[group_id]
+        self._free.append(column)
+
+    def _grow_word_map(self, size: int) -> None:
+        grown = np.full(max(size, 2 * self._row_of_word.size), -1, dtype=np.int64)
+        grown[: self._row_of_word.size] = self._row_of_word
+        self._row_of_word = grown
+
+    def _grow_rows(self, size: int) -> None:
+        have = self._counts.shape[0]
+        if size <= have:
+            return
+        rows = max(size, 2 * have, 64)
+        counts = np.zeros((rows, self._counts.shape[1]), dtype=np.int64)
+        counts[:have] = self._counts
+        self._counts = counts
+        word_ids = np.zeros(rows, dtype=np.int64)
+        word_ids[:have] = self._word_ids[:have]
+        self._word_ids = word_ids
+
+    def _grow_columns(self, size: int) -> None:
+        have = self._counts.shape[1]
+        if size <= have:
+            return
+        columns = max(size, 2 * have, 4)
+        counts = np.zeros((self._counts.shape[0], columns), dtype=np.int64)
+        counts[:, :have] = self._counts
+        self._counts = counts
+        for name in ("_members", "_documents", "_tokens"):
+            grown = np.zeros(columns, dtype=np.int64)
+            grown[:have] = getattr(self, name)
+            setattr(self, name, grown)
+
+
 class LabelledSet:
     """The labelled documents of one state, in the order they were first given.
 
     Each document has its id, its group's stable id, its source, an excerpt of its text (for
-    listing) and its word counts over the state's vocabulary ids (one CSR row). Replacing a
-    document keeps its place; removing one closes the gap. ``revision`` moves with every
-    change, so per-group sums can be cached by it.
+    listing) and its word counts over the state's vocabulary ids (one CSR row, whole counts).
+    Replacing a document keeps its place; removing one closes the gap. ``revision`` moves with
+    every change, so what is derived from the set can be cached by it. :attr:`sums` are the
+    per-group sums, kept up to date by every change (:class:`LabelledSums`).
     """
 
     def __init__(self) -> None:
@@ -149,10 +405,16 @@ class LabelledSet:
         self._sources: list[str] = []
         self._excerpts: list[str] = []
         self._indices: list[np.ndarray] = []  # int64 word ids, sorted, distinct
-        self._data: list[np.ndarray] = []  # float64 counts
+        self._data: list[np.ndarray] = []  # float64 counts, whole numbers
+        self._sums = LabelledSums()
         self.revision = 0
 
     # ---- reading ---------------------------------------------------------------------------
+    @property
+    def sums(self) -> LabelledSums:
+        """Per-group sums of the documents held (updated in place by every change)."""
+        return self._sums
+
     def __len__(self) -> int:
         return len(self._ids)
 
@@ -204,10 +466,8 @@ class LabelledSet:
 
     def group_counts(self) -> dict[int, int]:
         """Labelled documents per group id (groups without any are left out)."""
-        out: dict[int, int] = {}
-        for group in self._groups:
-            out[group] = out.get(group, 0) + 1
-        return out
+        sums = self._sums
+        return {group: sums.members(sums.column_of(group)) for group in sums.group_ids()}
 
     def source_counts(self) -> dict[str, int]:
         """Labelled documents per source."""
@@ -225,7 +485,11 @@ class LabelledSet:
 
     def holds_group(self, group_id: int) -> bool:
         """Whether any labelled document names this group id."""
-        return int(group_id) in set(self._groups)
+        return self._sums.column_of(group_id) >= 0
+
+    def holds_words(self, word_ids: np.ndarray) -> np.ndarray:
+        """Whether any labelled document uses each word id, shape (n,) bool."""
+        return self._sums.holds_words(word_ids)
 
     def counts_matrix(self, capacity: int) -> sp.csr_matrix:
         """Word counts of every document, shape (L, capacity) CSR."""
@@ -251,14 +515,36 @@ class LabelledSet:
         """Add a document or replace the one with this id (keeping its place).
 
         Returns False (and changes nothing) when the id is held with the same group, source
-        and counts: learning the same correction twice is a no-op.
+        and counts: learning the same correction twice is a no-op. InputError when a count is
+        not a whole number (labelled documents are counted from text).
         """
         row = sp.csr_matrix(row, dtype=np.float64)
-        row.sum_duplicates()
-        indices = row.indices.astype(np.int64)
-        data = row.data.astype(np.float64)
+        row.sum_duplicates()  # sorted, distinct word ids
+        return self.put_counts(doc_id, group_id, source, excerpt, row.indices, row.data)
+
+    def put_counts(
+        self,
+        doc_id: str,
+        group_id: int,
+        source: str,
+        excerpt: str,
+        indices: np.ndarray,
+        data: np.ndarray,
+    ) -> bool:
+        """:meth:`put` with the row given as sorted, distinct word ids and their counts (a
+        canonical CSR row's ``indices`` and ``data``, e.g. a slice of ``count_texts``' counts:
+        no sparse matrix is built per document)."""
+        indices = np.asarray(indices, dtype=np.int64)
+        data = np.asarray(data, dtype=np.float64)
+        if indices.shape != data.shape or np.any(np.diff(indices) <= 0):
+            raise InputError(f"word ids of labelled document {doc_id!r} must be sorted, distinct")
         keep = data > 0
-        indices, data = indices[keep], data[keep]
+        if not keep.all():
+            indices, data = indices[keep], data[keep]
+        else:  # own copies: the caller's arrays may be views of a batch
+            indices, data = indices.copy(), data.copy()
+        if not np.all(np.floor(data) == data):
+            raise InputError(f"counts of labelled document {doc_id!r} must be whole numbers")
         index = self._index.get(doc_id)
         if index is not None:
             if (
@@ -268,6 +554,9 @@ class LabelledSet:
                 and np.array_equal(self._data[index], data)
             ):
                 return False
+            self._sums.subtract(
+                self._groups[index], self._indices[index], self._data[index].astype(np.int64)
+            )
             self._groups[index] = int(group_id)
             self._sources[index] = source
             self._excerpts[index] = excerpt
@@ -281,6 +570,7 @@ class LabelledSet:
             self._excerpts.append(excerpt)
             self._indices.append(indices)
             self._data.append(data)
+        self._sums.add(int(group_id), indices, data.astype(np.int64))
         self.revision += 1
         return True
 
@@ -289,14 +579,32 @@ class LabelledSet:
         drop = {self._index[d] for d in doc_ids if d in self._index}
         if not drop:
             return 0
-        keep = [i for i in range(len(self._ids)) if i not in drop]
-        self._ids = [self._ids[i] for i in keep]
-        self._groups = [self._groups[i] for i in keep]
-        self._sources = [self._sources[i] for i in keep]
-        self._excerpts = [self._excerpts[i] for i in keep]
-        self._indices = [self._indices[i] for i in keep]
-        self._data = [self._data[i] for i in keep]
-        self._index = {d: i for i, d in enumerate(self._ids)}
+        for i in drop:
+            self._sums.subtract(self._groups[i], self._indices[i], self._data[i].astype(np.int64))
+        columns = (
+            self._ids,
+            self._groups,
+            self._sources,
+            self._excerpts,
+            self._indices,
+            self._data,
+        )
+        if len(drop) <= _REMOVE_IN_PLACE:
+            # A few: delete in place (a memmove per list) and renumber only the ids after the
+            # first gap, instead of rebuilding every list in Python.
+            for d in [self._ids[i] for i in drop]:
+                del self._index[d]
+            for i in sorted(drop, reverse=True):
+                for column in columns:
+                    del column[i]
+            first = min(drop)
+            for i in range(first, len(self._ids)):
+                self._index[self._ids[i]] = i
+        else:
+            keep = [i for i in range(len(self._ids)) if i not in drop]
+            for column in columns:
+                column[:] = [column[i] for i in keep]
+            self._index = {d: i for i, d in enumerate(self._ids)}
         self.revision += 1
         return len(drop)
 
@@ -308,6 +616,7 @@ class LabelledSet:
                 self._groups[i] = int(new_id)
                 moved += 1
         if moved:
+            self._sums.move_group(old_id, new_id)
             self.revision += 1
         return moved
 
@@ -316,15 +625,23 @@ class LabelledSet:
         retired = np.asarray(word_ids, dtype=np.int64)
         if retired.size == 0 or not self._ids:
             return
-        changed = False
+        # Only words some document uses need the pass over the documents.
+        retired = np.unique(retired[self._sums.holds_words(retired)])
+        if retired.size == 0:
+            return
         for i, indices in enumerate(self._indices):
             keep = ~np.isin(indices, retired, assume_unique=True)
             if not keep.all():
+                data = self._data[i]
                 self._indices[i] = indices[keep]
-                self._data[i] = self._data[i][keep]
-                changed = True
-        if changed:
-            self.revision += 1
+                self._data[i] = data[keep]
+                self._sums.subtract_words(
+                    self._groups[i],
+                    indices[~keep],
+                    data[~keep].astype(np.int64),
+                    emptied=data.sum() > 0 and not np.any(data[keep] > 0),
+                )
+        self.revision += 1
 
     def renumber_words(self, mapping: np.ndarray) -> None:
         """Apply a vocabulary compaction (old id -> new id, -1 for retired) to the counts."""
@@ -336,6 +653,8 @@ class LabelledSet:
             order = np.argsort(new[keep], kind="stable")
             self._indices[i] = new[keep][order].astype(np.int64)
             self._data[i] = self._data[i][keep][order]
+        # Word ids changed everywhere (a rare O(V) step): count the sums again, compactly.
+        self._sums = LabelledSums.recount(self._groups, self._indices, self._data)
         self.revision += 1
 
     def copy(self) -> LabelledSet:
@@ -384,8 +703,15 @@ class LabelledSet:
             raise StateFormatError("labelled documents are inconsistent (lengths or ids)")
         if data.size and (not np.all(np.isfinite(data)) or data.min() < 0):
             raise StateFormatError("labelled counts must be finite and non-negative")
+        if not np.all(np.floor(data) == data):
+            raise StateFormatError("labelled counts must be whole numbers")
         if indices.size and indices.min() < 0:
             raise StateFormatError("labelled counts name negative word ids")
+        # Within each document the word ids increase (steps across two documents aside).
+        steps = np.diff(indices) > 0
+        steps[indptr[1:-1][(indptr[1:-1] > 0) & (indptr[1:-1] < indices.size)] - 1] = True
+        if not steps.all():
+            raise StateFormatError("a labelled document's word ids must be sorted, distinct")
         out = cls()
         for i in range(n):
             if not isinstance(ids[i], str) or sources[i] not in LABELLED_SOURCES:
@@ -397,6 +723,8 @@ class LabelledSet:
             out._excerpts.append(str(excerpts[i]))
             out._indices.append(indices[indptr[i] : indptr[i + 1]].copy())
             out._data.append(data[indptr[i] : indptr[i + 1]].copy())
+        # The sums are not stored: counted again from the documents (equal to the running ones).
+        out._sums = LabelledSums.recount(out._groups, out._indices, out._data)
         return out
 
 
@@ -500,18 +828,20 @@ def add_items(state: MixtureState, items: Sequence[LabelledItem]) -> AddedItems:
     replaced = state.labelled.word_ids_of([item.doc_id for item in items])
     batch = count_texts([item.text for item in items], state.tokenizer, state.vocabulary, True)
     state.ensure_capacity()
-    counts = batch.counts
+    counts = batch.counts  # canonical CSR (count_texts sums duplicates): rows by slice
     changed = 0
     for index, item in enumerate(items):
-        changed += state.labelled.put(
+        start, stop = counts.indptr[index], counts.indptr[index + 1]
+        changed += state.labelled.put_counts(
             item.doc_id,
             int(item.group_id),
             item.source,
             item.text[:EXCERPT_CHARACTERS],
-            counts[index],
+            counts.indices[start:stop],
+            counts.data[start:stop],
         )
     if changed:
         state.touch()
         # A replaced text's words that nothing else holds leave with it.
         state.retire_unused_words(replaced)
-    return AddedItems(changed, int(counts.sum()), batch.new_words)
+    return AddedItems(changed, int(counts.data.sum()), batch.new_words)

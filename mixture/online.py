@@ -331,10 +331,10 @@ class OnlineLearner:
     def withdraw_labelled(self, doc_ids: Sequence[str]) -> int:
         """Remove labelled documents by id; unknown ids are ignored.
 
-        The labelled statistics are summed from the set, and the words only these documents
-        brought (no unlabelled mass, no other labelled or buffered document) are retired, so
-        right after a withdrawal the parameters are those of never having had the documents
-        (to float rounding; word ids aside). Stepwise updates made while a labelled document
+        The set's integer per-group sums give these documents' counts back exactly, and the
+        words only these documents brought (no unlabelled mass, no other labelled or buffered
+        document) are retired, so right after a withdrawal the parameters are those of never
+        having had the documents (word ids aside). Stepwise updates made while a labelled document
         was held saw it in their E-steps; that influence stays, as any past parameter's does.
 
         Returns

@@ -31,8 +31,11 @@ off. The pseudo-counts are always added to that many documents' worth of evidenc
 Labelled documents (mixture.labelled) are not in the running average: the parameters are
 smoothed from ``lambda * (the statistics above, in count units) + (labelled counts)``, with
 ``lambda = config.unlabelled_weight`` (EM-lambda, Nigam et al. 2000). The labelled counts are
-summed from ``state.labelled`` per group (cached by its revision and the group ids), so
-withdrawing one is exact. ``expected_word_counts`` / ``expected_documents`` /
+read from the running per-group integer sums ``state.labelled.sums`` (mixture.labelled), mapped
+to the state's positions by group id, so withdrawing one is exact and a change costs the words
+of the changed document, not a pass over the labelled set. They are added into the dense
+counts by index (the words labelled documents use x their groups), never densified to
+(capacity, K) on their own. ``expected_word_counts`` / ``expected_documents`` /
 ``word_totals`` are those combined counts (what the parameters, the top terms and the
 weights are made of); ``unlabelled_word_counts`` / ``unlabelled_documents`` the stepwise
 statistics alone.
@@ -49,7 +52,7 @@ import scipy.sparse as sp
 from mixture.config import MixtureConfig
 from mixture.errors import InputError
 from mixture.kernels import smoothed_log_weights, smoothed_log_word_prob
-from mixture.labelled import LabelledSet
+from mixture.labelled import LabelledSet, LabelledSums
 from mixture.tokenizer import Tokenizer
 from mixture.vocabulary import Vocabulary
 
@@ -274,8 +277,9 @@ class MixtureState:
         return self.unscaled_docs * self.count_scale
 
     def labelled_statistics(self) -> _LabelledStatistics:
-        """Per-group sums of the labelled documents (cached by the set's revision, the group
-        ids and the capacity). Documents naming a group id that is not current add nothing."""
+        """The labelled sums over the state's group positions, O(K): a view of the set's running
+        sums (cached by the set's revision, the group ids and the capacity; valid until the
+        set changes). Documents naming a group id that is not current add nothing."""
         assert self.group_ids is not None
         key = (
             self.labelled.revision,
@@ -286,7 +290,7 @@ class MixtureState:
         )
         if self._labelled_cached is not None and self._labelled_cached[0] == key:
             return self._labelled_cached[1]
-        stats = _sum_labelled(self.labelled, self.group_ids, self.capacity)
+        stats = _LabelledStatistics.of(self.labelled, self.group_ids, self.capacity)
         self._labelled_cached = (key, stats)
         return stats
 
@@ -297,9 +301,9 @@ class MixtureState:
     def expected_word_counts(self) -> np.ndarray:
         """Counts the word distributions are smoothed from, shape (capacity, K):
         ``lambda * unlabelled + labelled`` (documents' worth)."""
-        counts = self._weighted(self.unlabelled_word_counts())
+        counts = self._weighted(self.unlabelled_word_counts())  # a new array
         if len(self.labelled):
-            counts = counts + self.labelled_statistics().word.toarray()
+            self.labelled_statistics().add_word_counts(counts)
         return counts
 
     def expected_documents(self) -> np.ndarray:
@@ -348,7 +352,7 @@ class MixtureState:
             scale = scale * weight
         counts = self.unscaled_word[rows] * scale
         if len(self.labelled):
-            counts += self.labelled_statistics().word[rows].toarray()
+            self.labelled_statistics().add_word_counts(counts, rows)
         return smoothed_log_word_prob(
             counts,
             self.word_totals(),
@@ -390,7 +394,7 @@ class MixtureState:
             totals = self.unscaled_word[active_ids].sum(axis=1)
             if len(self.labelled):
                 # A word only the labelled documents use is kept by their counts.
-                labelled = np.asarray(self.labelled_statistics().word.sum(axis=1)).ravel()
+                labelled = self.labelled_statistics().per_word()
                 totals = self._weighted(totals * self.count_scale) + labelled[active_ids]
         else:
             totals = np.asarray(word_totals, dtype=np.float64)[active_ids]
@@ -426,7 +430,7 @@ class MixtureState:
         self.ensure_capacity()
         held = np.any(self.unscaled_word[ids] != 0.0, axis=1)
         if len(self.labelled):
-            held |= np.isin(ids, self.labelled.word_ids_of(self.labelled.ids()))
+            held |= self.labelled.holds_words(ids)
         for buffered in (
             self.pending,
             None if self.evidence is None else self.evidence.buffer,
@@ -474,32 +478,84 @@ class MixtureState:
 
 @dataclass(frozen=True)
 class _LabelledStatistics:
-    """Per-group sums of the labelled documents over the state's positions."""
+    """The labelled sums over the state's positions: the columns of the set's running sums
+    (mixture.labelled.LabelledSums) whose groups are current, and where they go.
 
-    word: sp.csr_matrix  # (capacity, K) word counts
+    A view, not a copy: valid while ``labelled.revision`` is ``revision`` (checked at each use).
+    Counts are int64 and turned to float64 where they are added; whole numbers below 2**53, so
+    the result is bit-identical to adding a float sum of the documents.
+    """
+
+    labelled: LabelledSet
+    revision: int
+    columns: np.ndarray  # (C,) the set's columns of current groups
+    positions: np.ndarray  # (C,) their positions in the state
+    capacity: int
     docs: np.ndarray  # (K,) documents with at least one token
     totals: np.ndarray  # (K,) tokens
 
+    @classmethod
+    def of(cls, labelled: LabelledSet, group_ids: np.ndarray, capacity: int) -> _LabelledStatistics:
+        k = int(group_ids.shape[0])
+        sums = labelled.sums
+        columns = sums.columns_of(group_ids)
+        positions = np.flatnonzero(columns >= 0)
+        columns = columns[positions]
+        docs = np.zeros(k)
+        totals = np.zeros(k)
+        docs[positions] = sums.documents(columns)
+        totals[positions] = sums.tokens(columns)
+        return cls(labelled, labelled.revision, columns, positions, capacity, docs, totals)
 
-def _sum_labelled(
-    labelled: LabelledSet, group_ids: np.ndarray, capacity: int
-) -> _LabelledStatistics:
-    k = int(group_ids.shape[0])
-    if not len(labelled):
-        return _LabelledStatistics(sp.csr_matrix((capacity, k)), np.zeros(k), np.zeros(k))
-    counts = labelled.counts_matrix(capacity)
-    position = {int(g): i for i, g in enumerate(group_ids)}
-    positions = np.array([position.get(int(g), -1) for g in labelled.groups()], dtype=np.int64)
-    tokens = np.asarray(counts.sum(axis=1)).ravel()
-    # Without a token a document carries no evidence (as in stepwise and batch EM).
-    rows = np.flatnonzero((positions >= 0) & (tokens > 0))
-    onehot = sp.csr_matrix(
-        (np.ones(rows.size), (rows, positions[rows])), shape=(counts.shape[0], k)
-    )
-    word = sp.csr_matrix(counts.T @ onehot)
-    docs = np.bincount(positions[rows], minlength=k).astype(np.float64)
-    totals = np.bincount(positions[rows], weights=tokens[rows], minlength=k)
-    return _LabelledStatistics(word, docs, totals)
+    def _sums(self) -> LabelledSums:
+        if self.labelled.revision != self.revision:
+            raise RuntimeError("labelled statistics read after the labelled set changed")
+        return self.labelled.sums
+
+    def add_word_counts(self, counts: np.ndarray, rows: np.ndarray | None = None) -> None:
+        """Add the labelled word counts into ``counts`` in place, by index: O(labelled words x
+        groups), or O(len(rows) x groups) for the given word rows.
+
+        Parameters
+        ----------
+        counts : ndarray of shape (capacity, K), or (len(rows), K) with ``rows``
+        rows : ndarray of int, optional
+            Word ids of the rows of ``counts``.
+        """
+        sums = self._sums()
+        if not self.columns.size:
+            return
+        if rows is None:
+            targets, source = sums.word_ids, sums.counts
+        else:
+            found = sums.rows_of(rows)
+            targets = np.flatnonzero(found >= 0)
+            source = sums.counts[found[targets]]
+        if targets.size:
+            # One row per word and one column per group: no index repeats.
+            counts[np.ix_(targets, self.positions)] += source[:, self.columns]
+
+    def per_word(self) -> np.ndarray:
+        """Labelled count of each word over the current groups, shape (capacity,)."""
+        sums = self._sums()
+        out = np.zeros(self.capacity)
+        if self.columns.size:
+            out[sums.word_ids] = sums.counts[:, self.columns].sum(axis=1)
+        return out
+
+    @property
+    def word(self) -> sp.csr_matrix:
+        """The word counts as a (capacity, K) sparse matrix (for a batch fit's subtraction)."""
+        sums = self._sums()
+        block = sums.counts[:, self.columns]
+        rows, cols = np.nonzero(block)
+        return sp.csr_matrix(
+            (
+                block[rows, cols].astype(np.float64),
+                (sums.word_ids[rows], self.positions[cols]),
+            ),
+            shape=(self.capacity, self.docs.shape[0]),
+        )
 
 
 def warm_start_step(config: MixtureConfig, n_documents: float) -> float:
