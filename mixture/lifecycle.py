@@ -341,7 +341,7 @@ def run_due_decisions(state: MixtureState) -> list[GroupEvent]:
     """
     config = state.config.lifecycle
     evidence = state.evidence
-    if evidence is None or evidence.window_documents < config.check_every_documents:
+    if evidence is None or not window_is_full(evidence, config, state.config.warmup_tokens):
         return []
     apply_held_scale(state)
     events: list[GroupEvent] = []
@@ -353,8 +353,29 @@ def run_due_decisions(state: MixtureState) -> list[GroupEvent]:
     evidence.window_mass = np.zeros(state.n_groups)
     evidence.window_shared = np.zeros((state.n_groups, state.n_groups))
     evidence.window_documents = 0.0
+    evidence.window_tokens = 0.0
     evidence.window_start = state.documents_learned
     return events
+
+
+def window_is_full(evidence: GroupEvidence, config: LifecycleConfig, warmup_tokens: int) -> bool:
+    """Whether the evidence window holds enough for a decision.
+
+    The window closes at ``check_every_documents`` documents or at the token cadence
+    (:meth:`LifecycleConfig.window_tokens`, by default the warm-up's token count), whichever
+    comes first: a decision then rests on as much text as the starting groups were fitted on.
+
+    Parameters
+    ----------
+    evidence : GroupEvidence
+    config : LifecycleConfig
+    warmup_tokens : int
+        The model's ``warmup_tokens`` (0: no token cadence unless one is set).
+    """
+    if evidence.window_documents >= config.check_every_documents:
+        return True
+    tokens = config.window_tokens(warmup_tokens)
+    return tokens > 0 and evidence.window_documents > 0 and evidence.window_tokens >= tokens
 
 
 def apply_held_scale(state: MixtureState) -> None:

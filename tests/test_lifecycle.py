@@ -477,3 +477,36 @@ def test_vocabulary_pruning_keeps_the_buffer_on_the_vocabulary():
     buffer = state.evidence.buffer
     assert buffer.shape[1] <= state.capacity
     assert np.all(state.vocabulary.active_mask()[buffer.indices])
+
+
+def test_long_messages_are_judged_every_warm_up_of_tokens():
+    """Invented long messages (about 200 tokens): the window closes at the warm-up's token
+    count (about 200 messages here), not after 1,000 messages, so a topic appearing at
+    message 600 is born within two such windows; with the cadence in documents only
+    (``check_every_tokens = 0``) the first decision after it waits for message 1,000+."""
+    stream = TopicStream(4, seed=2)
+    labels = np.concatenate([stream.labels(600, [0, 1, 2]), stream.labels(1400, [0, 1, 2, 3])])
+    texts = stream.messages(labels, mean_length=200.0)
+    tokens = np.asarray([len(t.split()) for t in texts])
+    first_births = {}
+    for cadence in (None, 0):
+        config = MixtureConfig(
+            n_groups=3,
+            n_restarts=1,
+            batch_size=32,
+            warmup_tokens=40_000,
+            lifecycle=LifecycleConfig(enabled=True, check_every_tokens=cadence),
+        )
+        learner = OnlineLearner(config, seed=0)
+        births = [e for e in _learn(learner, texts, size=32) if e.kind == BIRTH]
+        assert births, f"no birth with check_every_tokens={cadence}"
+        first_births[cadence] = births[0].position
+        assert learner.state.evidence is not None
+        if cadence is None:  # the open window holds less than one warm-up of tokens
+            held = learner.state.evidence.window_tokens
+            assert 0 < held < 40_000
+            assert state_from_bytes(state_to_bytes(learner.state)).evidence.window_tokens == held
+    # The topic's first ~200 messages carry one warm-up of tokens (~40,000 / 200 per message).
+    window_messages = int(np.searchsorted(np.cumsum(tokens[600:]), 40_000)) + 1
+    assert 600 < first_births[None] <= 600 + 2 * window_messages + 32
+    assert first_births[0] >= 1000
