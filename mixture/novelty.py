@@ -6,7 +6,8 @@ Per group, and updated after every stepwise unit in O(words in the unit x K):
   the documents whose MAP group it is (a document's weight halves after
   ``typicality_half_life`` further documents of the group). Documents found novel are left out,
   so a burst of strays does not teach the group to accept them;
-- the current window (``check_every_documents`` long): each group's posterior mass, and for
+- the current window (``check_every_documents`` long, or shorter once its documents hold the
+  token cadence, ``LifecycleConfig.window_tokens``): each group's posterior mass, and for
   each pair the mass the two share (the smaller of the two posteriors, taken over each
   document's two most probable groups), from which the overlap coefficient of the soft
   memberships follows; the count of whole quiet windows in a row;
