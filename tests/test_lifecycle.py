@@ -27,6 +27,8 @@ from mixture.lifecycle import (
     RETIRE,
     birth,
     birth_log_bayes_factor,
+    components_log_bayes_factor,
+    join_components,
     merge,
     position_of,
     retire,
@@ -510,3 +512,47 @@ def test_long_messages_are_judged_every_warm_up_of_tokens():
     window_messages = int(np.searchsorted(np.cumsum(tokens[600:]), 40_000)) + 1
     assert 600 < first_births[None] <= 600 + 2 * window_messages + 32
     assert first_births[0] >= 1000
+
+
+def test_components_bayes_factor_matches_a_hand_computed_marginal():
+    """Worked example: V = 3, beta = 0.5, counts (3, 1, 0) in 2 documents and (0, 1, 3) in 2.
+    Each Dirichlet-multinomial marginal by hand with scipy.special.gammaln:
+    ln Gamma(V beta) - ln Gamma(N + V beta) + sum_w [ln Gamma(n_w + beta) - ln Gamma(beta)];
+    one group against two pays the assignments 2 ln(1/2) + 2 ln(1/2) and gains (1/2) ln 4
+    (the BIC penalty of the second group's weight, Schwarz 1978)."""
+    beta, n_words = 0.5, 3
+
+    def marginal(counts: list[float]) -> float:
+        c = np.asarray(counts, dtype=np.float64)
+        return float(
+            gammaln(n_words * beta)
+            - gammaln(c.sum() + n_words * beta)
+            + np.sum(gammaln(c + beta) - gammaln(beta))
+        )
+
+    first, second = np.array([3.0, 1.0, 0.0]), np.array([0.0, 1.0, 3.0])
+    expected = (
+        marginal([3, 2, 3])
+        - marginal([3, 1, 0])
+        - marginal([0, 1, 3])
+        - 4 * np.log(0.5)
+        + 0.5 * np.log(4)
+    )
+    got = components_log_bayes_factor(first, second, (2, 2), n_words, beta)
+    assert got == pytest.approx(expected, abs=1e-12)
+
+
+def test_a_split_of_one_topic_is_joined_and_two_topics_stay_apart():
+    """Invented documents: components 0 and 1 drawn from one word distribution are joined
+    (one group explains them better), component 2 from other words stays apart."""
+    state = _random_state(n_words=60, k=3)
+    rng = np.random.default_rng(3)
+    dense = np.zeros((90, 60))
+    for d in range(60):
+        dense[d, rng.choice(np.arange(0, 20), size=10)] += 1.0
+    for d in range(60, 90):
+        dense[d, rng.choice(np.arange(30, 50), size=10)] += 1.0
+    labels = np.repeat([0, 1, 2], 30)
+    joined = join_components(sp.csr_matrix(dense), labels, state)
+    assert set(joined[:60]) == {0}
+    assert set(joined[60:]) == {2}
