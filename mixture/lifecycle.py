@@ -34,7 +34,12 @@ Decisions, and the principle behind each (thresholds in mixture.lifecycle_config
   penalty for that one fitted weight (Schwarz 1978). The new hypothesis assigns C's
   documents to the new group outright, a lower bound of its mixture likelihood, so the test
   leans towards no birth. Every component above the threshold is born (they are disjoint
-  sets of documents), the largest ln BF first, up to the ceiling.
+  sets of documents), the largest ln BF first, up to the ceiling. Before that, components of
+  the split are joined while one Dirichlet-multinomial group explains a pair better than two
+  (:func:`components_log_bayes_factor` > 0, the same closed form, with the assignment term and
+  a BIC penalty for the second group's weight): the split asks for four components whatever
+  the buffer holds, and without the join one new topic gave several births at one decision
+  (BBC drift: sport born four times, filling the ceiling before the last topic came).
 
   Both sides are prequential scores (Dawid 1984): DM(C) is the product of the new group's
   predictive probabilities of C's documents, each given only the ones before it, and the
@@ -341,7 +346,7 @@ def run_due_decisions(state: MixtureState) -> list[GroupEvent]:
     """
     config = state.config.lifecycle
     evidence = state.evidence
-    if evidence is None or evidence.window_documents < config.check_every_documents:
+    if evidence is None or not window_is_full(evidence, config, state.config.warmup_tokens):
         return []
     apply_held_scale(state)
     events: list[GroupEvent] = []
@@ -353,8 +358,29 @@ def run_due_decisions(state: MixtureState) -> list[GroupEvent]:
     evidence.window_mass = np.zeros(state.n_groups)
     evidence.window_shared = np.zeros((state.n_groups, state.n_groups))
     evidence.window_documents = 0.0
+    evidence.window_tokens = 0.0
     evidence.window_start = state.documents_learned
     return events
+
+
+def window_is_full(evidence: GroupEvidence, config: LifecycleConfig, warmup_tokens: int) -> bool:
+    """Whether the evidence window holds enough for a decision.
+
+    The window closes at ``check_every_documents`` documents or at the token cadence
+    (:meth:`LifecycleConfig.window_tokens`, by default the warm-up's token count), whichever
+    comes first: a decision then rests on as much text as the starting groups were fitted on.
+
+    Parameters
+    ----------
+    evidence : GroupEvidence
+    config : LifecycleConfig
+    warmup_tokens : int
+        The model's ``warmup_tokens`` (0: no token cadence unless one is set).
+    """
+    if evidence.window_documents >= config.check_every_documents:
+        return True
+    tokens = config.window_tokens(warmup_tokens)
+    return tokens > 0 and evidence.window_documents > 0 and evidence.window_tokens >= tokens
 
 
 def apply_held_scale(state: MixtureState) -> None:
@@ -545,8 +571,9 @@ def _births_from_buffer(
     if room <= 0 or n_buffered < config.birth_min_documents:
         return []
     labels = _split_buffer(state, buffered, config)
+    labels = join_components(buffered, labels, state)
     passed: list[tuple[float, np.ndarray]] = []
-    for label in np.unique(labels[labels >= 0]):
+    for label in np.unique(labels[labels >= 0]):  # after join_components
         members = np.flatnonzero(labels == label)
         if members.size < config.birth_min_documents:
             continue
@@ -580,6 +607,86 @@ def _births_from_buffer(
         assert state.evidence is not None
         state.evidence.keep_buffered(keep)
     return events
+
+
+def components_log_bayes_factor(
+    first: np.ndarray, second: np.ndarray, docs: tuple[int, int], n_words: int, beta: float
+) -> float:
+    """ln BF of "one group" against "two groups" for two sets of documents' pooled counts.
+
+    ln DM(c_a + c_b) - ln DM(c_a) - ln DM(c_b) - [n_a ln(n_a/n) + n_b ln(n_b/n)] + (1/2) ln n,
+    DM the Dirichlet-multinomial marginal (:func:`dirichlet_multinomial_log_marginal`): the
+    two-group side also pays for telling each document's group (the assignment term, at the
+    groups' maximum-likelihood weights) and the BIC penalty of that one extra weight (Schwarz
+    1978), as the birth test does.
+
+    Parameters
+    ----------
+    first, second : ndarray (V_used,)
+        Pooled word counts of the two sets, over the same words.
+    docs : tuple of int
+        Documents in each set (both > 0).
+    n_words : int
+        V, the active vocabulary the Dirichlet prior spreads over.
+    beta : float
+        The word pseudo-count (the Dirichlet parameter).
+
+    Returns
+    -------
+    float
+    """
+    n_a, n_b = docs
+    n = n_a + n_b
+    pooled = dirichlet_multinomial_log_marginal(first + second, n_words, beta)
+    apart = dirichlet_multinomial_log_marginal(
+        first, n_words, beta
+    ) + dirichlet_multinomial_log_marginal(second, n_words, beta)
+    assignments = n_a * np.log(n_a / n) + n_b * np.log(n_b / n)
+    return float(pooled - apart - assignments + 0.5 * np.log(n))
+
+
+def join_components(buffered: sp.csr_matrix, labels: np.ndarray, state: MixtureState) -> np.ndarray:
+    """Join components of the buffer's split while one group explains a pair better than two.
+
+    The local fit always asks for up to four components; how many the buffer holds is chosen
+    by evidence: the pair with the largest :func:`components_log_bayes_factor` above 0 (one
+    group more probable than two) is joined, until none is. O(V) per pair on the bounded
+    buffer, at most six pairs a round.
+
+    Parameters
+    ----------
+    buffered : csr_matrix (B, capacity)
+        The buffered documents' counts.
+    labels : ndarray (B,) int
+        Their component from the local fit (-1: no known words, left alone).
+    state : MixtureState
+        For the active vocabulary's size and the word pseudo-count.
+
+    Returns
+    -------
+    ndarray (B,) int
+        Labels with joined components sharing the lower label.
+    """
+    labels = labels.copy()
+    n_words = state.vocabulary.n_active
+    beta = state.config.word_pseudocount
+    while True:
+        present = [c for c in np.unique(labels) if c >= 0]
+        if len(present) < 2:
+            return labels
+        pooled = {c: np.asarray(buffered[labels == c].sum(axis=0)).ravel() for c in present}
+        sizes = {c: int(np.count_nonzero(labels == c)) for c in present}
+        best = (0.0, -1, -1)
+        for i, a in enumerate(present):
+            for b in present[i + 1 :]:
+                score = components_log_bayes_factor(
+                    pooled[a], pooled[b], (sizes[a], sizes[b]), n_words, beta
+                )
+                if score > best[0]:
+                    best = (score, a, b)
+        if best[1] < 0:
+            return labels
+        labels[labels == best[2]] = best[1]
 
 
 def _split_buffer(

@@ -11,9 +11,18 @@ enabled = False
 max_groups = None
     The ceiling on births; None means twice ``n_groups`` (the range the benchmarks ask a model
     with an unknown number of topics to land in).
-check_every_documents = 1000
-    Decisions run once per this many learned documents (a bounded cadence). It is also the
-    window of the retirement and overlap evidence.
+check_every_documents = 1000, check_every_tokens = None
+    Decisions run when the evidence window (of the retirement, overlap and novelty evidence)
+    holds this many learned documents, or earlier, once its documents hold the token cadence:
+    None means the model's ``warmup_tokens`` (40,000). The principle: a decision rests on as
+    much text as the model itself takes to be enough to fit its starting groups (the warm-up,
+    stated in tokens on the project's sweep), so long documents are judged as often as their
+    evidence allows and short ones no more often than every 1,000 (the document cap, a bounded
+    cadence). On WordNet glosses (about 10 tokens) the cap binds and nothing changes; on BBC
+    articles (about 220 tokens) a window is about 180 articles instead of 1,000, i.e. about 12
+    decisions in the 2,127-article stream instead of 2. Measured on the drift streams of
+    bench_quality, seeds 0-2 (bench/README.md): BBC end NMI 0.443 -> 0.492 (K given) and
+    0.378 -> 0.603 (from 2 groups), WordNet unchanged. 0 keeps the documents-only cadence.
 novelty_z = 3.0
     A document is novel when its per-token log-likelihood under its MAP group lies more than
     this many standard deviations below the group's recent mean. Under a normal approximation
@@ -37,7 +46,13 @@ birth_log_bayes_factor = 5.0
     A birth needs ln BF > 5 for "one new Dirichlet-multinomial group" against "each from the
     mixture as it stood when the document arrived": Kass and Raftery (1995) call 2 ln BF > 10
     very strong evidence. Several components of one buffer may pass at one decision; each is
-    born (up to the ceiling).
+    born (up to the ceiling). How many components the buffer holds is itself chosen by
+    evidence, with no setting: the local fit's components (at most four) are joined while one
+    Dirichlet-multinomial group explains a pair better than two (ln BF > 0, the same closed
+    form with the assignments and a BIC penalty for the second weight;
+    mixture.lifecycle.join_components). Measured on the drift streams (seeds 0-2,
+    bench/README.md): BBC end NMI 0.492 -> 0.562 (K given), 0.603 -> 0.632 (from 2); WordNet
+    -0.004 to +0.002.
 merge_overlap = 0.5
     Two groups merge only when at least half of the smaller group's posterior mass in the last
     window is shared with the other (overlap coefficient of the soft memberships): for most of
@@ -63,7 +78,11 @@ retire_share = 0.001, retire_windows = 2
     A group is retired when its posterior mass stayed below this share of the documents for
     this many whole windows in a row. With a 1000-document window that is under one document's
     worth per window; a live group with a 1% share expects 10 per window, and the Poisson
-    chance of it falling to one or fewer twice running is about 2.5e-7.
+    chance of it falling to one or fewer twice running is about 2.5e-7. A window cut short by
+    the token cadence holds fewer (long) documents, so the same two windows are weaker
+    evidence there: at 180 documents a 1% group expects 1.8 a window and stays at zero twice
+    running with chance about 0.03 (a known weakness; scaling ``retire_windows`` by the
+    window's documents was not tried).
 """
 
 from __future__ import annotations
@@ -86,7 +105,10 @@ class LifecycleConfig:
     max_groups : int or None
         Ceiling on the number of groups (None: twice the starting ``n_groups``).
     check_every_documents : int
-        Cadence of the decisions and length of the evidence window, in documents.
+        Cadence of the decisions and length of the evidence window, in documents (a cap).
+    check_every_tokens : int or None
+        The window also closes once its documents hold this many tokens (None: the model's
+        ``warmup_tokens``; 0: documents only).
     novelty_z : float
         Standard deviations below a group's typicality that make a document novel.
     novel_unknown_share : float
@@ -118,6 +140,7 @@ class LifecycleConfig:
     enabled: bool = False
     max_groups: int | None = None
     check_every_documents: int = 1000
+    check_every_tokens: int | None = None
     novelty_z: float = 3.0
     novel_unknown_share: float = 0.5
     typicality_half_life: float = 1000.0
@@ -138,6 +161,8 @@ class LifecycleConfig:
         if self.max_groups is not None:
             check_int(self, "max_groups", 1, 10_000, prefix="lifecycle.")
         check_int(self, "check_every_documents", 1, 100_000_000, prefix="lifecycle.")
+        if self.check_every_tokens is not None:
+            check_int(self, "check_every_tokens", 0, 1_000_000_000, prefix="lifecycle.")
         check_float(self, "novelty_z", 0.0, 100.0, prefix="lifecycle.")
         check_float(self, "novel_unknown_share", 0.0, 1.0, prefix="lifecycle.")
         check_float(self, "typicality_half_life", 1.0, 1e12, prefix="lifecycle.")
@@ -164,6 +189,10 @@ class LifecycleConfig:
     def ceiling(self, n_groups: int) -> int:
         """The effective ``max_groups`` for a model that starts with ``n_groups``."""
         return 2 * n_groups if self.max_groups is None else self.max_groups
+
+    def window_tokens(self, warmup_tokens: int) -> int:
+        """The token cadence: ``check_every_tokens``, or the warm-up's tokens when None (0: off)."""
+        return warmup_tokens if self.check_every_tokens is None else self.check_every_tokens
 
     def to_dict(self) -> dict[str, Any]:
         """Plain JSON-able dict."""

@@ -6,7 +6,8 @@ Per group, and updated after every stepwise unit in O(words in the unit x K):
   the documents whose MAP group it is (a document's weight halves after
   ``typicality_half_life`` further documents of the group). Documents found novel are left out,
   so a burst of strays does not teach the group to accept them;
-- the current window (``check_every_documents`` long): each group's posterior mass, and for
+- the current window (``check_every_documents`` long, or shorter once its documents hold the
+  token cadence, ``LifecycleConfig.window_tokens``): each group's posterior mass, and for
   each pair the mass the two share (the smaller of the two posteriors, taken over each
   document's two most probable groups), from which the overlap coefficient of the soft
   memberships follows; the count of whole quiet windows in a row;
@@ -117,6 +118,9 @@ class GroupEvidence:
         Documents (with evidence) in the current window.
     window_start : int
         Stream position (documents learned) where the current window began.
+    window_tokens : float
+        Tokens of the documents in the current window (the token cadence,
+        ``lifecycle.check_every_tokens``).
     quiet_windows : ndarray (K,) int64
         Whole windows in a row with a posterior share under ``retire_share``.
     born_at : ndarray (K,) int64
@@ -150,6 +154,7 @@ class GroupEvidence:
     buffer_ordinals: np.ndarray
     buffer_log_lik: np.ndarray = field(default_factory=lambda: np.zeros(0))
     held_log_scale: np.ndarray | None = None
+    window_tokens: float = 0.0
 
     def __post_init__(self) -> None:
         if self.held_log_scale is None:
@@ -336,7 +341,9 @@ class GroupEvidence:
             "typical_square": self.typical_square,
             "window_mass": self.window_mass,
             "window_shared": self.window_shared,
-            "window": np.asarray([self.window_documents, self.window_start], dtype=np.float64),
+            "window": np.asarray(
+                [self.window_documents, self.window_start, self.window_tokens], dtype=np.float64
+            ),
             "quiet_windows": self.quiet_windows.astype(np.int64),
             "born_at": self.born_at.astype(np.int64),
             "buffer.data": buffer.data,
@@ -365,6 +372,8 @@ class GroupEvidence:
             window_shared=np.array(arrays["window_shared"], dtype=np.float64),
             window_documents=float(window[0]),
             window_start=int(window[1]),
+            # States written before the token cadence: no tokens counted in the window yet.
+            window_tokens=float(window[2]) if window.size > 2 else 0.0,
             quiet_windows=np.array(arrays["quiet_windows"], dtype=np.int64),
             born_at=np.array(arrays["born_at"], dtype=np.int64),
             buffer=buffer,
@@ -472,6 +481,7 @@ def observe_unit(
     unit_mass = resp.sum(axis=0)
     evidence.window_mass += unit_mass
     evidence.window_documents += m
+    evidence.window_tokens += float(lengths.sum())
     if config.forget_by_own_traffic and step > 0:
         # The stepwise update shrinks every group's statistics by (1 - eta). A group's word
         # statistics should shrink only for the traffic it received: by (1 - eta) ** u with

@@ -27,6 +27,8 @@ from mixture.lifecycle import (
     RETIRE,
     birth,
     birth_log_bayes_factor,
+    components_log_bayes_factor,
+    join_components,
     merge,
     position_of,
     retire,
@@ -477,3 +479,80 @@ def test_vocabulary_pruning_keeps_the_buffer_on_the_vocabulary():
     buffer = state.evidence.buffer
     assert buffer.shape[1] <= state.capacity
     assert np.all(state.vocabulary.active_mask()[buffer.indices])
+
+
+def test_long_messages_are_judged_every_warm_up_of_tokens():
+    """Invented long messages (about 200 tokens): the window closes at the warm-up's token
+    count (about 200 messages here), not after 1,000 messages, so a topic appearing at
+    message 600 is born within two such windows; with the cadence in documents only
+    (``check_every_tokens = 0``) the first decision after it waits for message 1,000+."""
+    stream = TopicStream(4, seed=2)
+    labels = np.concatenate([stream.labels(600, [0, 1, 2]), stream.labels(1400, [0, 1, 2, 3])])
+    texts = stream.messages(labels, mean_length=200.0)
+    tokens = np.asarray([len(t.split()) for t in texts])
+    first_births = {}
+    for cadence in (None, 0):
+        config = MixtureConfig(
+            n_groups=3,
+            n_restarts=1,
+            batch_size=32,
+            warmup_tokens=40_000,
+            lifecycle=LifecycleConfig(enabled=True, check_every_tokens=cadence),
+        )
+        learner = OnlineLearner(config, seed=0)
+        births = [e for e in _learn(learner, texts, size=32) if e.kind == BIRTH]
+        assert births, f"no birth with check_every_tokens={cadence}"
+        first_births[cadence] = births[0].position
+        assert learner.state.evidence is not None
+        if cadence is None:  # the open window holds less than one warm-up of tokens
+            held = learner.state.evidence.window_tokens
+            assert 0 < held < 40_000
+            assert state_from_bytes(state_to_bytes(learner.state)).evidence.window_tokens == held
+    # The topic's first ~200 messages carry one warm-up of tokens (~40,000 / 200 per message).
+    window_messages = int(np.searchsorted(np.cumsum(tokens[600:]), 40_000)) + 1
+    assert 600 < first_births[None] <= 600 + 2 * window_messages + 32
+    assert first_births[0] >= 1000
+
+
+def test_components_bayes_factor_matches_a_hand_computed_marginal():
+    """Worked example: V = 3, beta = 0.5, counts (3, 1, 0) in 2 documents and (0, 1, 3) in 2.
+    Each Dirichlet-multinomial marginal by hand with scipy.special.gammaln:
+    ln Gamma(V beta) - ln Gamma(N + V beta) + sum_w [ln Gamma(n_w + beta) - ln Gamma(beta)];
+    one group against two pays the assignments 2 ln(1/2) + 2 ln(1/2) and gains (1/2) ln 4
+    (the BIC penalty of the second group's weight, Schwarz 1978)."""
+    beta, n_words = 0.5, 3
+
+    def marginal(counts: list[float]) -> float:
+        c = np.asarray(counts, dtype=np.float64)
+        return float(
+            gammaln(n_words * beta)
+            - gammaln(c.sum() + n_words * beta)
+            + np.sum(gammaln(c + beta) - gammaln(beta))
+        )
+
+    first, second = np.array([3.0, 1.0, 0.0]), np.array([0.0, 1.0, 3.0])
+    expected = (
+        marginal([3, 2, 3])
+        - marginal([3, 1, 0])
+        - marginal([0, 1, 3])
+        - 4 * np.log(0.5)
+        + 0.5 * np.log(4)
+    )
+    got = components_log_bayes_factor(first, second, (2, 2), n_words, beta)
+    assert got == pytest.approx(expected, abs=1e-12)
+
+
+def test_a_split_of_one_topic_is_joined_and_two_topics_stay_apart():
+    """Invented documents: components 0 and 1 drawn from one word distribution are joined
+    (one group explains them better), component 2 from other words stays apart."""
+    state = _random_state(n_words=60, k=3)
+    rng = np.random.default_rng(3)
+    dense = np.zeros((90, 60))
+    for d in range(60):
+        dense[d, rng.choice(np.arange(0, 20), size=10)] += 1.0
+    for d in range(60, 90):
+        dense[d, rng.choice(np.arange(30, 50), size=10)] += 1.0
+    labels = np.repeat([0, 1, 2], 30)
+    joined = join_components(sp.csr_matrix(dense), labels, state)
+    assert set(joined[:60]) == {0}
+    assert set(joined[60:]) == {2}

@@ -1,0 +1,80 @@
+"""One drift stream, one starting mode, several seeds in sequence (the slow table's cells).
+
+``python -m bench.bench_drift_one --stream bbc --start k --seeds 0 1 2`` prints, per seed,
+arrival NMI, end NMI, ARI, live groups and events with the lifecycle on (max_groups twice the
+true count), then the means; ``--batch`` adds batch EM on all documents beside them. Streams:
+``wordnet-26``, ``wordnet-45``, ``bbc`` (bench.bench_quality.drift_streams builds them the
+same way: sorted by topic, 16 parts, each shuffled; Yin et al., KDD 2018).
+"""
+
+from __future__ import annotations
+
+import argparse
+
+import numpy as np
+from sklearn.metrics import adjusted_rand_score, normalized_mutual_info_score
+
+from bench.bench_quality import DRIFT_PER_FILE, DRIFT_START_GROUPS
+from tests import corpora
+
+
+def build_stream(name: str) -> corpora.LabelledCorpus:
+    """The named drift stream, built as in bench.bench_quality.drift_streams."""
+    if name == "bbc":
+        return corpora.drift_stream(corpora.load_bbc())
+    files = list(corpora.NOUN_LEXNAMES.values()) if name == "wordnet-26" else None
+    corpus = corpora.load_wordnet_files(files, DRIFT_PER_FILE, seed=0)
+    corpus.name = name
+    return corpora.drift_stream(corpus)
+
+
+def main(argv: list[str] | None = None) -> None:
+    """Run the chosen cells and print one line per seed and the means."""
+    from mixture.config import MixtureConfig
+    from mixture.em import fit_texts
+    from mixture.lifecycle_config import LifecycleConfig
+    from mixture.routing import route_texts
+
+    parser = argparse.ArgumentParser(prog="python -m bench.bench_drift_one", description=__doc__)
+    parser.add_argument("--stream", choices=("wordnet-26", "wordnet-45", "bbc"), required=True)
+    parser.add_argument("--start", choices=("k", "2"), default="k")
+    parser.add_argument("--seeds", type=int, nargs="+", default=[0])
+    parser.add_argument("--batch", action="store_true", help="also batch EM on all documents")
+    parser.add_argument("--off", action="store_true", help="lifecycle off")
+    args = parser.parse_args(argv)
+
+    stream = build_stream(args.stream)
+    k = len(stream.label_names)
+    start = k if args.start == "k" else DRIFT_START_GROUPS
+    rows = []
+    for seed in args.seeds:
+        if args.batch:
+            state, _ = fit_texts(stream.texts, MixtureConfig(n_groups=k), seed=seed)
+            batch = route_texts(state, stream.texts).group
+            batch_nmi = normalized_mutual_info_score(stream.labels, batch)
+            print(f"seed {seed} batch EM end {batch_nmi:.3f}", flush=True)
+        lifecycle = LifecycleConfig(enabled=not args.off, max_groups=2 * k)
+        run = corpora.drift_pass(
+            stream, MixtureConfig(n_groups=start, lifecycle=lifecycle), seed=seed
+        )
+        arrival = normalized_mutual_info_score(stream.labels, run.arrival)
+        end = normalized_mutual_info_score(stream.labels, run.final)
+        ari = adjusted_rand_score(stream.labels, run.final)
+        events = ", ".join(f"{n} {kind}" for kind, n in run.event_counts().items())
+        rows.append((arrival, end, ari, run.live_groups))
+        print(
+            f"{args.stream} K={k} start={start} seed {seed}: arrival {arrival:.3f} end {end:.3f} "
+            f"ARI {ari:.3f} live {run.live_groups} events {events or '-'} "
+            f"learn {run.learn_seconds:.1f}s",
+            flush=True,
+        )
+    means = np.mean(np.asarray(rows, dtype=np.float64), axis=0)
+    print(
+        f"{args.stream} K={k} start={start} mean over seeds {args.seeds}: arrival {means[0]:.3f} "
+        f"end {means[1]:.3f} ARI {means[2]:.3f} live {means[3]:.1f}",
+        flush=True,
+    )
+
+
+if __name__ == "__main__":
+    main()
