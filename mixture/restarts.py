@@ -311,8 +311,11 @@ def fit_restarts(
     summaries: list[RestartSummary] = []
     root = np.random.default_rng(seed)
     plan = seeding_kinds(config, kinds)
+    # When labelled documents seed every group the seeding draws nothing: every seeding is
+    # the same assignment, so one is run (its revivals aside, the others would repeat it).
+    seeded_all = fixed is not None and np.unique(fixed.groups).size == config.n_groups
     for seeding, child in enumerate(root.spawn(config.n_restarts)):
-        if SEEDS_START not in starts:
+        if SEEDS_START not in starts or (seeded_all and seeding > 0):
             break
         # The seeding draws from the restart's own generator, as before plain runs were added
         # (an annealed run without starved groups is the fit of then); revival draws from
