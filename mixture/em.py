@@ -37,7 +37,9 @@ from mixture.kernels import softmax_rows
 from mixture.labelled import LabelledCounts, LabelledItem, add_items
 from mixture.restarts import (
     ANNEALED,
+    MATCHED_START,
     PLAIN,
+    SEEDS_START,
     FitReport,
     FixedResponsibilities,
     RestartSummary,
@@ -250,6 +252,7 @@ def fit_batch_em(
     kinds: tuple[str, ...] | None = None,
     sweep_factory: SweepFactory | None = None,
     labelled: LabelledCounts | None = None,
+    starts: tuple[str, ...] = (SEEDS_START, MATCHED_START),
 ) -> tuple[np.ndarray, np.ndarray, FitReport]:
     """Fit the mixture by MAP-EM with seeded restarts; the best MAP objective wins.
 
@@ -279,7 +282,13 @@ def fit_batch_em(
         responsibilities are fixed one-hot throughout and the groups they name start from
         them (semi-supervised EM, Nigam et al. 2000; mixture.restarts). With labelled
         documents or ``config.unlabelled_weight`` below 1, each unlabelled document weighs
-        ``unlabelled_weight`` in the M-step.
+        ``unlabelled_weight`` in the M-step. The fit then has two starts (mixture.restarts):
+        ``"seeds"`` (the groups start from their examples) and ``"matched"`` (an unsupervised
+        fit's components matched to the labelled classes); the final semi-supervised MAP
+        objective picks between them.
+    starts : tuple of str, optional
+        The starts to run with labelled documents, by default both; for comparisons, one
+        alone is the fit with that start only. Ignored without labelled documents.
 
     Returns
     -------
@@ -328,7 +337,8 @@ def fit_batch_em(
     unknown = set(kinds) - {ANNEALED, PLAIN}
     if not kinds or unknown:
         raise ConfigError(f"kinds must name 'annealed' and/or 'plain'; got {kinds!r}")
-    total = iteration_bound(config, kinds)
+    matching = bool(lab_groups.size) and MATCHED_START in starts
+    total = iteration_bound(config, kinds, labelled=matching, seeds=SEEDS_START in starts)
     done = 0
 
     def tick() -> None:
@@ -349,6 +359,7 @@ def fit_batch_em(
         tick,
         EMSweep if sweep_factory is None else sweep_factory,
         fixed,
+        starts,
     )
 
 

@@ -419,13 +419,13 @@ def fit_summary_lines(report: FitReport, weights: np.ndarray) -> list[str]:
 
     k = weights.size
     lines = [
-        f"{'restart':>7} {'seeding':>7} {'start':<8} {'MAP objective':>16} {'re-seeds':>8} "
-        f"{'starved':>7}"
+        f"{'restart':>7} {'seeding':>7} {'run':<8} {'start':<7} {'MAP objective':>16} "
+        f"{'re-seeds':>8} {'starved':>7}"
     ]
     for index, run in enumerate(report.restarts):
         mark = "  <- kept" if index == report.best_restart else ""
         lines.append(
-            f"{index:>7} {run.seeding:>7} {run.kind:<8} {run.objective:>16.1f} "
+            f"{index:>7} {run.seeding:>7} {run.kind:<8} {run.start:<7} {run.objective:>16.1f} "
             f"{run.reseeds:>8} {run.starved:>7}{mark}"
         )
     winner = report.winner
@@ -439,7 +439,8 @@ def fit_summary_lines(report: FitReport, weights: np.ndarray) -> list[str]:
             else "fewest starved groups, then highest MAP objective"
         )
         lines.append(
-            f"kept restart {report.best_restart} ({winner.kind}, seeding {winner.seeding}): "
+            f"kept restart {report.best_restart} ({winner.kind}, seeding {winner.seeding}, "
+            f"start {winner.start}): "
             f"{reason}"
         )
     floor = STARVED_SHARE / k
