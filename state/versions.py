@@ -17,6 +17,11 @@ the event records (:mod:`state.events`), an alert per event, and the label recor
 the change (a merge's survivor keeps the absorbed group's label in ``merged_labels``; an
 absorbed or retired group's label stays, marked ``merged_into`` or ``retired``). The labels'
 counter is WATCHed then too, so a label set racing the change conflicts the checkpoint.
+
+Every snapshot keeps the labels hash beside the state (:mod:`state.snapshots`): the pre-change
+one the labels before the events, a due automatic one the labels the version leaves (the
+labels' counter is WATCHed for it, so a label set racing it conflicts the checkpoint, which is
+retried from the watermark like any other conflict).
 """
 
 from __future__ import annotations
