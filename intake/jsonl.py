@@ -2,56 +2,19 @@
 
 Bad lines never crash the command line: each is reported with its line number and a reason,
 then skipped (default) or, with ``--strict``, the whole file is rejected before anything is
-written or queued.
+written or queued. Whole files are read by :func:`intake.sources.read_documents`.
 """
 
 from __future__ import annotations
 
 import json
 from collections.abc import Iterator
-from dataclasses import dataclass, field
-from pathlib import Path
-from typing import Any, BinaryIO
+from typing import BinaryIO
+
+from intake.records import Document
 
 
-@dataclass(frozen=True)
-class JsonlDocument:
-    """One valid line: its id (the given one, or ``line-N``), text and line number."""
-
-    id: str
-    text: str
-    line: int
-    extra: dict[str, Any] = field(default_factory=dict)
-
-
-@dataclass(frozen=True)
-class JsonlProblem:
-    """One invalid line and why it was refused."""
-
-    line: int
-    reason: str
-
-    def __str__(self) -> str:
-        return f"line {self.line}: {self.reason}"
-
-
-@dataclass
-class JsonlBatch:
-    """All valid documents of a file plus the problems found."""
-
-    documents: list[JsonlDocument]
-    problems: list[JsonlProblem]
-
-    @property
-    def texts(self) -> list[str]:
-        return [doc.text for doc in self.documents]
-
-    @property
-    def ids(self) -> list[str]:
-        return [doc.id for doc in self.documents]
-
-
-def parse_line(raw: bytes, line_number: int, max_text_bytes: int | None = None) -> JsonlDocument:
+def parse_line(raw: bytes, line_number: int, max_text_bytes: int | None = None) -> Document:
     """Parse one line of a JSON-lines file.
 
     Parameters
@@ -65,7 +28,8 @@ def parse_line(raw: bytes, line_number: int, max_text_bytes: int | None = None) 
 
     Returns
     -------
-    JsonlDocument
+    Document
+        Positioned ``line N``; the object's other fields are its metadata.
 
     Raises
     ------
@@ -98,7 +62,7 @@ def parse_line(raw: bytes, line_number: int, max_text_bytes: int | None = None) 
     if not doc_id:
         raise ValueError('field "id" is empty')
     extra = {key: value for key, value in record.items() if key not in ("id", "text")}
-    return JsonlDocument(id=doc_id, text=text, line=line_number, extra=extra)
+    return Document(doc_id, text, f"line {line_number}", None, extra)
 
 
 def iter_lines(stream: BinaryIO) -> Iterator[tuple[int, bytes]]:
@@ -107,38 +71,6 @@ def iter_lines(stream: BinaryIO) -> Iterator[tuple[int, bytes]]:
         line = raw.rstrip(b"\r\n")
         if line.strip():
             yield number, line
-
-
-def read_jsonl(path: str | Path, max_text_bytes: int | None = None) -> JsonlBatch:
-    """Read a whole JSON-lines file (``-`` reads standard input).
-
-    Blank lines are ignored; every other invalid line becomes a :class:`JsonlProblem`.
-
-    Raises
-    ------
-    OSError
-        When the file cannot be opened.
-    """
-    documents: list[JsonlDocument] = []
-    problems: list[JsonlProblem] = []
-    if str(path) == "-":
-        import sys
-
-        handle: BinaryIO = sys.stdin.buffer
-        close = False
-    else:
-        handle = open(path, "rb")  # noqa: SIM115 - closed below
-        close = True
-    try:
-        for number, line in iter_lines(handle):
-            try:
-                documents.append(parse_line(line, number, max_text_bytes))
-            except ValueError as exc:
-                problems.append(JsonlProblem(number, str(exc)))
-    finally:
-        if close:
-            handle.close()
-    return JsonlBatch(documents, problems)
 
 
 def _kind(value: object) -> str:

@@ -15,12 +15,12 @@ import re
 import sys
 import tempfile
 from collections.abc import Iterator
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 from intake.jsonl import iter_lines, parse_line
 from intake.message import MAIL_HEADERS, MessageError, parse_message
+from intake.records import Document, DocumentBatch, Problem
 
 FORMATS = ("jsonl", "mbox", "maildir", "eml", "csv")
 # CSV columns tried for the text, the id and the time, in order (case-insensitive).
@@ -32,55 +32,6 @@ _SNIFF_BYTES = 64 * 1024
 
 class SourceError(ValueError):
     """A source that cannot be read at all (unknown format, missing, empty folder)."""
-
-
-@dataclass(frozen=True)
-class Document:
-    """One document read from a source.
-
-    ``position`` says where it came from (``line 12``, ``message 3``, ``file a.eml``);
-    ``received`` is unix seconds when the source says (a message's Date), else None.
-    """
-
-    id: str
-    text: str
-    position: str
-    received: float | None = None
-    metadata: dict[str, Any] = field(default_factory=dict)
-
-
-@dataclass(frozen=True)
-class Problem:
-    """One record or message that was not read, where it is and why."""
-
-    position: str
-    reason: str
-
-    def __str__(self) -> str:
-        return f"{self.position}: {self.reason}"
-
-
-@dataclass
-class DocumentBatch:
-    """Every readable document of a source and every problem, in source order."""
-
-    documents: list[Document]
-    problems: list[Problem]
-    format: str
-    attachments_skipped: int = 0
-
-    @property
-    def texts(self) -> list[str]:
-        return [doc.text for doc in self.documents]
-
-    @property
-    def ids(self) -> list[str]:
-        return [doc.id for doc in self.documents]
-
-    @property
-    def unit(self) -> str:
-        """What one record of this format is called in messages (``line``, ``message``)."""
-        return {"jsonl": "line", "csv": "row"}.get(self.format, "message")
 
 
 def detect_format(path: str | Path) -> str:
@@ -214,11 +165,9 @@ def _read_jsonl(handle: Any, max_text_bytes: int | None) -> DocumentBatch:
     problems: list[Problem] = []
     for number, line in iter_lines(handle):
         try:
-            record = parse_line(line, number, max_text_bytes)
+            documents.append(parse_line(line, number, max_text_bytes))
         except ValueError as exc:
             problems.append(Problem(f"line {number}", str(exc)))
-            continue
-        documents.append(Document(record.id, record.text, f"line {number}", None, record.extra))
     return DocumentBatch(documents, problems, "jsonl")
 
 

@@ -48,7 +48,7 @@ import os
 import sys
 import tempfile
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -1065,36 +1065,52 @@ def _print_label_history(answer: dict[str, Any], as_json: bool) -> int:
 CORRECTIONS_PER_REQUEST = 500
 
 
+def _json_objects(path: str, shape: str) -> Iterator[tuple[int, dict[str, Any]]]:
+    """Each non-blank line of a JSON-lines file as ``(line number, object)``.
+
+    A line that is not UTF-8, not JSON or not an object is a :class:`CommandError` naming the
+    file and line and showing ``shape`` (the object expected), so nothing is sent.
+    """
+    from intake.jsonl import iter_lines
+
+    try:
+        handle = open(path, "rb")  # noqa: SIM115 - closed below
+    except OSError as exc:
+        raise CommandError(f"cannot read {path}: {exc}", EXIT_BAD_INPUT) from None
+    with handle:
+        for number, raw in iter_lines(handle):
+            where = f"{path}:{number}"
+            try:
+                item = json.loads(raw.decode("utf-8"))
+            except UnicodeDecodeError as exc:
+                raise CommandError(
+                    f"{where}: not UTF-8 (byte {exc.start})", EXIT_BAD_INPUT
+                ) from None
+            except ValueError as exc:
+                raise CommandError(f"{where}: not JSON ({exc})", EXIT_BAD_INPUT) from None
+            if not isinstance(item, dict):
+                raise CommandError(f"{where}: expected an object {shape}", EXIT_BAD_INPUT)
+            yield number, item
+
+
 def read_corrections(path: str) -> list[dict[str, Any]]:
     """Corrections from a JSON-lines file: ``{"id", "group", "text"?}`` a line (blank lines
     skipped). A bad line is a :class:`CommandError` naming it: nothing is sent."""
     out: list[dict[str, Any]] = []
-    try:
-        lines = Path(path).read_text(encoding="utf-8").splitlines()
-    except (OSError, UnicodeDecodeError) as exc:
-        raise CommandError(f"cannot read {path}: {exc}", EXIT_BAD_INPUT) from None
-    for number, line in enumerate(lines, 1):
-        if not line.strip():
-            continue
-        try:
-            item = json.loads(line)
-        except ValueError as exc:
-            raise CommandError(f"{path}:{number}: not JSON ({exc})", EXIT_BAD_INPUT) from None
-        if not isinstance(item, dict):
-            raise CommandError(f"{path}:{number}: expected an object", EXIT_BAD_INPUT)
+    for number, item in _json_objects(path, '{"id": ..., "group": ..., "text": ...}'):
+        where = f"{path}:{number}"
         unknown = sorted(set(item) - {"id", "group", "text"})
         if unknown:
             raise CommandError(
-                f"{path}:{number}: unknown fields {unknown} (give id, group, text)",
-                EXIT_BAD_INPUT,
+                f"{where}: unknown fields {unknown} (give id, group, text)", EXIT_BAD_INPUT
             )
         if not isinstance(item.get("id"), str) or not item["id"]:
-            raise CommandError(f"{path}:{number}: 'id' must be a non-empty string", EXIT_BAD_INPUT)
+            raise CommandError(f"{where}: 'id' must be a non-empty string", EXIT_BAD_INPUT)
         group = item.get("group")
         if isinstance(group, bool) or not isinstance(group, int):
-            raise CommandError(f"{path}:{number}: 'group' must be an integer", EXIT_BAD_INPUT)
+            raise CommandError(f"{where}: 'group' must be an integer", EXIT_BAD_INPUT)
         if "text" in item and not isinstance(item["text"], str):
-            raise CommandError(f"{path}:{number}: 'text' must be a string", EXIT_BAD_INPUT)
+            raise CommandError(f"{where}: 'text' must be a string", EXIT_BAD_INPUT)
         out.append({k: item[k] for k in ("id", "group", "text") if k in item})
     return out
 
@@ -1193,19 +1209,11 @@ def cmd_examples(args: argparse.Namespace) -> int:
 def _read_example_lines(path: str) -> list[str]:
     """Example texts from JSON lines (``{"text": ...}`` a line)."""
     out: list[str] = []
-    try:
-        lines = Path(path).read_text(encoding="utf-8").splitlines()
-    except (OSError, UnicodeDecodeError) as exc:
-        raise CommandError(f"cannot read {path}: {exc}", EXIT_BAD_INPUT) from None
-    for number, line in enumerate(lines, 1):
-        if not line.strip():
-            continue
-        try:
-            item = json.loads(line)
-        except ValueError as exc:
-            raise CommandError(f"{path}:{number}: not JSON ({exc})", EXIT_BAD_INPUT) from None
-        if not isinstance(item, dict) or not isinstance(item.get("text"), str):
-            raise CommandError(f'{path}:{number}: expected {{"text": ...}}', EXIT_BAD_INPUT)
+    for number, item in _json_objects(path, '{"text": ...}'):
+        if not isinstance(item.get("text"), str):
+            raise CommandError(
+                f'{path}:{number}: expected {{"text": ...}} with a string text', EXIT_BAD_INPUT
+            )
         out.append(item["text"])
     return out
 

@@ -182,6 +182,7 @@ class RollbackResult:
     skip_ids: list[tuple[str, str]] = field(default_factory=list)
     skip_received: list[tuple[float, float]] = field(default_factory=list)
     until: str = "0-0"  # skip ranges apply to stream ids up to this one
+    labels_restored: bool = False  # False: the snapshot predates kept labels, left as they were
 
     def to_dict(self) -> dict[str, Any]:
         d = asdict(self)

@@ -13,6 +13,16 @@ the watermark is the stream's last id, so only new traffic is learned.
 snapshot's own count (the entries after it will be read again); without replay it is the
 stream's entries-added at the rollback (every entry up to the last one is passed over). It is
 written into the restored state's metadata and into ``state_meta`` alike.
+
+Labels: a snapshot keeps the labels hash as it stood with its state (:mod:`state.snapshots`),
+and the same MULTI (``labels_version`` WATCHed too) replaces the labels hash with it, so merge
+and retirement marks and label edits made after the snapshot go with the rolled-back state,
+and the pre-rollback snapshot keeps the labels it replaces. The label history stays
+append-only: every group whose label the rollback changed gets a row with action
+``rollback`` (``fields`` names the snapshot) and the label it now has; a group whose label was
+removed keeps no recorded words. A snapshot written before snapshots kept labels still rolls
+back; the labels are then left as they are and the result says so (``labels_restored``
+False).
 """
 
 from __future__ import annotations
@@ -20,6 +30,7 @@ from __future__ import annotations
 import json
 import time
 from collections.abc import Sequence
+from typing import Any
 
 import redis
 
@@ -27,9 +38,10 @@ from mixture.serialize import checksum, state_to_bytes
 from mixture.stats import MixtureState
 from state.errors import OptionsError, VersionConflictError
 from state.handle import ModelHandle, loads_or_none
+from state.labels import LABEL_HISTORY_LIMIT
 from state.queueing import DocumentQueue
 from state.records import PRE_ROLLBACK, RollbackResult, SnapshotInfo, dumps
-from state.snapshots import Snapshots, decode_snapshot
+from state.snapshots import Snapshots, decode_snapshot, stored_labels
 from state.stream import SkipRanges, max_stream_id
 from state.versions import VersionWrite, write_version
 
@@ -81,6 +93,7 @@ class Rollbacks:
         SkipRanges.build(skip_ids, skip_received)  # refuse bad ranges before anything else
         info, data = self.snapshots.data(snapshot_id)
         restored = decode_snapshot(snapshot_id, data)
+        labels = self.snapshots.labels(snapshot_id)  # None: an older snapshot without them
         # The rollback point is the stream's end now (read with the entries-added count, at
         # once); entries added later are new traffic and are learned.
         added, last_id = self.queue.counts()
@@ -94,7 +107,15 @@ class Rollbacks:
             with self.handle.redis.pipeline(transaction=True) as pipe:
                 try:
                     return self._commit(
-                        pipe, info, restored, new_data, until, replay, skip_ids, skip_received
+                        pipe,
+                        info,
+                        restored,
+                        new_data,
+                        labels,
+                        until,
+                        replay,
+                        skip_ids,
+                        skip_received,
                     )
                 except redis.WatchError:
                     continue
@@ -108,14 +129,16 @@ class Rollbacks:
         info: SnapshotInfo,
         restored: MixtureState,
         new_data: bytes,
+        labels: dict[int, dict[str, Any]] | None,
         until: str,
         replay: bool,
         skip_ids: Sequence[Sequence[str]],
         skip_received: Sequence[Sequence[float]],
     ) -> RollbackResult:
-        """Under WATCH: the safety snapshot, the version write and the replay record."""
+        """Under WATCH: the safety snapshot, the version write, the labels and the replay
+        record."""
         keys = self.handle.keys
-        pipe.watch(keys.version, keys.config)
+        pipe.watch(keys.version, keys.config, keys.labels_version)
         self.handle.check_alive(pipe.get(keys.config))
         current_version = int(pipe.get(keys.version) or 0)
         new_version = current_version + 1
@@ -124,7 +147,16 @@ class Rollbacks:
         earlier = pipe.get(keys.replay)
         kept = (SkipRanges() if earlier is None else _recorded_rules(earlier)).plus(rule)
         kept = kept.trimmed(self.queue.first_stream_id())
+        current_labels = stored_labels(pipe.hgetall(keys.labels))
         safety = self._safety_snapshot(pipe, info.id, current_version)
+        changed_groups: list[int] = []
+        if labels is not None:
+            changed_groups = sorted(
+                g
+                for g in set(labels) | set(current_labels)
+                if labels.get(g) != current_labels.get(g)
+            )
+        histories = {g: pipe.hget(keys.label_history, str(g)) for g in changed_groups}
         now = time.time()
         result = RollbackResult(
             version=new_version,
@@ -137,6 +169,7 @@ class Rollbacks:
             skip_ids=list(rule.newest.raw_ids),
             skip_received=list(rule.newest.received),
             until=until,
+            labels_restored=labels is not None,
         )
         write = VersionWrite(
             version=new_version,
@@ -152,11 +185,47 @@ class Rollbacks:
         )
         pipe.multi()
         if safety is not None:
-            self.snapshots.write(pipe, *safety)
+            self.snapshots.write(pipe, *safety, current_labels)
         write_version(pipe, self.handle, write)
+        if labels is not None and changed_groups:
+            self._restore_labels(pipe, info.id, new_version, now, labels, histories)
         pipe.set(keys.replay, dumps({"result": result.to_dict(), "skip": kept.to_dict()}))
         pipe.execute()
         return result
+
+    def _restore_labels(
+        self,
+        pipe: redis.client.Pipeline,
+        snapshot_id: str,
+        new_version: int,
+        now: float,
+        labels: dict[int, dict[str, Any]],
+        histories: dict[int, bytes | None],
+    ) -> None:
+        """Inside the MULTI: the labels hash becomes the snapshot's; a history row for each
+        group whose label changed (``histories``: their current rows)."""
+        keys = self.handle.keys
+        pipe.delete(keys.labels)
+        if labels:
+            pipe.hset(keys.labels, mapping={str(g): dumps(record) for g, record in labels.items()})
+        for group, raw_history in histories.items():
+            record = labels.get(group) or {}
+            if group not in labels:  # the words belonged to a label that is gone now
+                pipe.hdel(keys.label_words, str(group))
+            history = json.loads(raw_history) if raw_history else []
+            history.append(
+                {
+                    "time": now,
+                    "action": "rollback",
+                    "fields": {"snapshot": snapshot_id},
+                    "label": record.get("label"),
+                    "destination": record.get("destination"),
+                    "version": new_version,
+                    "words_recorded": False,
+                }
+            )
+            pipe.hset(keys.label_history, str(group), dumps(history[-LABEL_HISTORY_LIMIT:]))
+        pipe.incr(keys.labels_version)
 
     def _safety_snapshot(
         self, pipe: redis.client.Pipeline, snapshot_id: str, current_version: int

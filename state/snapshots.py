@@ -1,11 +1,20 @@
-"""Snapshots: immutable copies of a checkpoint (``meta`` JSON + ``state`` bytes in one hash),
-indexed by a sorted set scored by the version they copy. Retention only ever removes automatic
-snapshots; requested and pre-rollback ones stay until deleted."""
+"""Snapshots: immutable copies of a checkpoint (``meta`` JSON + ``state`` bytes + ``labels``
+JSON in one hash), indexed by a sorted set scored by the version they copy. Retention only ever
+removes automatic snapshots; requested and pre-rollback ones stay until deleted.
+
+``labels`` is the model's labels hash (:mod:`state.labels`) as it stood with the copied state,
+group id -> stored label record, so that a rollback restores the labels with the state.
+Snapshots written before it was kept have no ``labels`` field: they still load and roll back,
+and such a rollback leaves the labels as they are (:attr:`RollbackResult.labels_restored`
+False).
+"""
 
 from __future__ import annotations
 
 import json
 import time
+from collections.abc import Mapping
+from typing import Any
 
 import redis
 
@@ -50,10 +59,24 @@ class Snapshots:
             self.handle.check_alive(None)
         return f"snap-{int(number):06d}"
 
-    def write(self, pipe: redis.client.Pipeline, info: SnapshotInfo, data: bytes) -> None:
-        """Queue the writes of one snapshot on ``pipe`` (inside the caller's MULTI)."""
+    def write(
+        self,
+        pipe: redis.client.Pipeline,
+        info: SnapshotInfo,
+        data: bytes,
+        labels: Mapping[int, Mapping[str, Any]],
+    ) -> None:
+        """Queue the writes of one snapshot on ``pipe`` (inside the caller's MULTI).
+
+        ``labels`` is the labels hash as it stands with ``data`` (group id -> label record),
+        read under the caller's WATCH of ``labels_version``.
+        """
         keys = self.handle.keys
-        pipe.hset(keys.snapshot(info.id), mapping={"meta": dumps(info.to_dict()), "state": data})
+        stored = dumps({str(group): dict(record) for group, record in labels.items()})
+        pipe.hset(
+            keys.snapshot(info.id),
+            mapping={"meta": dumps(info.to_dict()), "state": data, "labels": stored},
+        )
         pipe.zadd(keys.snapshots, {info.id: info.version})
 
     def prune(self, pipe: redis.client.Pipeline, expired: list[str]) -> None:
@@ -121,9 +144,11 @@ class Snapshots:
         """Under WATCH of config and state: read the current state, write the snapshot."""
         handle = self.handle
         keys = handle.keys
-        pipe.watch(keys.config, keys.state)  # a delete landing meanwhile makes this write nothing
+        # a delete landing meanwhile makes this write nothing; a label change, a new copy
+        pipe.watch(keys.config, keys.state, keys.labels_version)
         handle.check_alive(pipe.get(keys.config))
         data, raw_meta = pipe.get(keys.state), pipe.get(keys.state_meta)
+        labels = stored_labels(pipe.hgetall(keys.labels))
         if data is None or raw_meta is None:
             raise StateError(f"model {handle.model!r} has no state to snapshot yet")
         meta = json.loads(raw_meta)
@@ -141,7 +166,7 @@ class Snapshots:
         )
         expired = self.to_prune(pipe, 1) if kind == AUTOMATIC else []
         pipe.multi()
-        self.write(pipe, info, data)
+        self.write(pipe, info, data, labels)
         self.prune(pipe, expired)
         pipe.execute()
         return info
@@ -183,6 +208,14 @@ class Snapshots:
             )
         return info, data
 
+    def labels(self, snapshot_id: str) -> dict[int, dict[str, Any]] | None:
+        """The labels hash a snapshot kept (group id -> label record), or None for a snapshot
+        written before snapshots kept labels."""
+        raw = self.handle.redis.hget(self.handle.keys.snapshot(snapshot_id), "labels")
+        if raw is None:
+            return None
+        return {int(group): record for group, record in json.loads(raw).items()}
+
     def state(self, snapshot_id: str) -> MixtureState:
         """A snapshot's state, checksum verified and decoded."""
         info, data = self.data(snapshot_id)
@@ -207,3 +240,8 @@ def decode_snapshot(snapshot_id: str, data: bytes) -> MixtureState:
         return state_from_bytes(data)
     except StateFormatError as exc:
         raise CorruptSnapshotError(f"snapshot {snapshot_id!r} does not decode: {exc}") from exc
+
+
+def stored_labels(raw: Mapping[bytes, bytes]) -> dict[int, dict[str, Any]]:
+    """The labels hash as read (``HGETALL``), group id -> label record."""
+    return {int(group): json.loads(record) for group, record in raw.items()}

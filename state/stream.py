@@ -213,15 +213,10 @@ def decode_entry(
                 return _bad(stream_id, f"metadata is not JSON ({exc})", fields)
             if not isinstance(metadata, dict):
                 return _bad(stream_id, "metadata is not a JSON object", fields)
-        raw_received = fields.get(b"received")
-        received = 0.0
-        if raw_received is not None:
-            try:
-                received = float(raw_received)
-            except ValueError:
-                return _bad(stream_id, "received is not a number", fields)
-            if not math.isfinite(received):
-                return _bad(stream_id, "received is not finite", fields)
+        try:
+            received = _received(fields)
+        except ValueError as exc:
+            return _bad(stream_id, str(exc), fields)
         raw_id = fields.get(b"id")
         client_id = raw_id.decode("utf-8", errors="replace") if raw_id else stream_id
         return Document(stream_id, client_id, text, metadata, received)
@@ -241,15 +236,10 @@ def _decode_labelled(
         target = raw_target.decode("utf-8")
     except UnicodeDecodeError:
         return _bad(stream_id, "target is not UTF-8", fields)
-    received = 0.0
-    raw_received = fields.get(b"received")
-    if raw_received is not None:
-        try:
-            received = float(raw_received)
-        except ValueError:
-            return _bad(stream_id, "received is not a number", fields)
-        if not math.isfinite(received):
-            return _bad(stream_id, "received is not finite", fields)
+    try:
+        received = _received(fields)
+    except ValueError as exc:
+        return _bad(stream_id, str(exc), fields)
     if kind == KIND_WITHDRAW.encode():
         return Withdrawal(stream_id, target, received)
     if kind != KIND_CORRECTION.encode():
@@ -269,6 +259,26 @@ def _decode_labelled(
     if source not in LABELLED_SOURCES:
         return _bad(stream_id, f"unknown correction source {source!r}", fields)
     return Labelled(stream_id, target, group, text, source, received)
+
+
+def _received(fields: Mapping[bytes, bytes]) -> float:
+    """The entry's ``received`` unix seconds (0.0 when absent).
+
+    Raises
+    ------
+    ValueError
+        With the reason the entry is dead-lettered: not a number, or not finite.
+    """
+    raw_received = fields.get(b"received")
+    if raw_received is None:
+        return 0.0
+    try:
+        received = float(raw_received)
+    except ValueError:
+        raise ValueError("received is not a number") from None
+    if not math.isfinite(received):
+        raise ValueError("received is not finite")
+    return received
 
 
 def _bad(stream_id: str, reason: str, fields: Mapping[bytes, bytes]) -> Undecodable:

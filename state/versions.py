@@ -17,6 +17,11 @@ the event records (:mod:`state.events`), an alert per event, and the label recor
 the change (a merge's survivor keeps the absorbed group's label in ``merged_labels``; an
 absorbed or retired group's label stays, marked ``merged_into`` or ``retired``). The labels'
 counter is WATCHed then too, so a label set racing the change conflicts the checkpoint.
+
+Every snapshot keeps the labels hash beside the state (:mod:`state.snapshots`): the pre-change
+one the labels before the events, a due automatic one the labels the version leaves (the
+labels' counter is WATCHed for it, so a label set racing it conflicts the checkpoint, which is
+retried from the watermark like any other conflict).
 """
 
 from __future__ import annotations
@@ -46,7 +51,7 @@ from state.records import (
     dumps,
 )
 from state.replicas import confirm_replicas, replica_requirement
-from state.snapshots import Snapshots
+from state.snapshots import Snapshots, stored_labels
 from state.stream import ZERO_ID, Undecodable, parse_stream_id
 
 log = logging.getLogger(__name__)
@@ -239,6 +244,7 @@ class Versions:
         data = state_to_bytes(cp.state)
         snapshot_id = self.snapshots.next_id() if cp.snapshot_reason else None
         change_id = self.snapshots.next_id() if cp.events else None
+        keys = self.handle.keys
         with self.handle.redis.pipeline(transaction=True) as pipe:
             try:
                 current_version = self._check(pipe, cp)
@@ -259,11 +265,18 @@ class Versions:
                     no_evidence=cp.no_evidence,
                     batch_documents=cp.batch_documents,
                 )
+                snapshot_labels = None
+                if snapshot_id and change is None:  # the snapshot keeps the labels as they are
+                    pipe.watch(keys.labels_version)
+                    snapshot_labels = stored_labels(pipe.hgetall(keys.labels))
                 pipe.multi()
                 write_version(pipe, self.handle, write)
-                self._write_extras(pipe, cp, write, snapshot_id, expired)
+                self._write_extras(pipe, cp, write, expired)
                 if change is not None:
                     self._write_change(pipe, cp, write, *change)
+                    snapshot_labels = change[2]  # as the events left them
+                if snapshot_id:
+                    self._write_automatic_snapshot(pipe, cp, write, snapshot_id, snapshot_labels)
                 pipe.execute()
             except redis.WatchError as exc:
                 raise VersionConflictError(
@@ -356,8 +369,8 @@ class Versions:
         """The pre-change snapshot, the event records with their alerts, the labels that
         follow a merge or a retirement (see the module docstring)."""
         keys = self.handle.keys
-        if info is not None and previous is not None:
-            self.snapshots.write(pipe, info, previous)
+        if info is not None and previous is not None:  # with the labels before the events
+            self.snapshots.write(pipe, info, previous, labels)
         records = [
             event_record(
                 e, version=write.version, time=write.time, snapshot_id=info.id if info else None
@@ -384,30 +397,14 @@ class Versions:
         pipe: redis.client.Pipeline,
         cp: Checkpoint,
         write: VersionWrite,
-        snapshot_id: str | None,
         expired: list[str],
     ) -> None:
-        """Dead letters, the due automatic snapshot and retention, alerts, the stream trim."""
+        """Dead letters, snapshot retention, alerts, the stream trim."""
         keys, options = self.handle.keys, self.handle.options
         for letter in cp.dead_letters:
             pipe.xadd(
                 keys.dead_letters, letter.dead_letter_fields(), maxlen=100_000, approximate=True
             )
-        if snapshot_id:
-            summary = state_summary(cp.state)
-            info = SnapshotInfo(
-                id=snapshot_id,
-                reason=cp.snapshot_reason or "automatic",
-                kind=AUTOMATIC,
-                created=write.time,
-                version=write.version,
-                documents_learned=summary["documents_learned"],
-                weights=summary["weights"],
-                checksum=checksum(write.data),
-                watermark=cp.watermark,
-                size=len(write.data),
-            )
-            self.snapshots.write(pipe, info, write.data)
         self.snapshots.prune(pipe, expired)
         for alert in cp.alerts:
             pipe.xadd(
@@ -416,6 +413,30 @@ class Versions:
         minid = trim_floor(cp.watermark, options.stream_max_age_seconds, write.time)
         if minid is not None:
             pipe.xtrim(keys.docs, minid=minid, approximate=True)
+
+    def _write_automatic_snapshot(
+        self,
+        pipe: redis.client.Pipeline,
+        cp: Checkpoint,
+        write: VersionWrite,
+        snapshot_id: str,
+        labels: dict[int, dict[str, Any]] | None,
+    ) -> None:
+        """The due automatic snapshot of the version written, with the labels it leaves."""
+        summary = state_summary(cp.state)
+        info = SnapshotInfo(
+            id=snapshot_id,
+            reason=cp.snapshot_reason or "automatic",
+            kind=AUTOMATIC,
+            created=write.time,
+            version=write.version,
+            documents_learned=summary["documents_learned"],
+            weights=summary["weights"],
+            checksum=checksum(write.data),
+            watermark=cp.watermark,
+            size=len(write.data),
+        )
+        self.snapshots.write(pipe, info, write.data, labels or {})
 
 
 def follow_labels(

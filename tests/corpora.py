@@ -14,6 +14,7 @@ them (``make corpora`` installs them).
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import importlib.util
 import time
@@ -375,6 +376,21 @@ def _wordnet_corpus(
 STEPWISE_WARMUP = 500  # a quarter of BBC, a twelfth of the WordNet subset: stepwise does the rest
 STEPWISE_CHUNK = 256  # texts per learn() call, like a worker's stream read
 WORDNET_PER_LABEL = 1000  # balanced subset, so no label dominates NMI; keeps the test quick
+
+
+@functools.cache
+def corpus_or_skip(name: str) -> LabelledCorpus:
+    """``"bbc"`` (all of it) or ``"wordnet"`` (:data:`WORDNET_PER_LABEL` nouns per label,
+    seed 0), read once per test session; the test is skipped, with the command that installs
+    the corpus, when it is not on the machine."""
+    import pytest
+
+    try:
+        if name == "bbc":
+            return load_bbc()
+        return load_wordnet_nouns(max_per_label=WORDNET_PER_LABEL, seed=0)
+    except CorpusMissingError as exc:
+        pytest.skip(str(exc))
 
 
 def cluster_batch_em(corpus: LabelledCorpus, seed: int = 0) -> np.ndarray:

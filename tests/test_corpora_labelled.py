@@ -45,14 +45,8 @@ from tests import corpora
 LABELS_PER_CLASS = (1, 3, 10)
 
 
-@cache
 def _corpus(name: str) -> corpora.LabelledCorpus:
-    try:
-        if name == "bbc":
-            return corpora.load_bbc()
-        return corpora.load_wordnet_nouns(max_per_label=corpora.WORDNET_PER_LABEL, seed=0)
-    except corpora.CorpusMissingError as exc:
-        pytest.skip(str(exc))
+    return corpora.corpus_or_skip(name)
 
 
 @cache

@@ -583,6 +583,25 @@ def test_dashboard_reassigns_and_confirms_flagged_messages_by_keyboard_and_count
             what="the count on the page",
         )
         assert browser.execute_script("return document.documentElement.scrollWidth") <= 390
+        # a reload still says which rows were corrected (from GET .../corrections?ids=...),
+        # and a row nobody corrected says nothing
+        open_as_admin(browser, base, model)
+        wait_until(
+            steady(
+                lambda: (
+                    "Reassigned to" in flagged_row(browser, "junk-2").text
+                    and "Confirmed to" in flagged_row(browser, other["id"]).text
+                )
+            ),
+            20,
+            what="the corrections' status after a reload",
+        )
+        untouched = [d["id"] for d in flagged if d["id"] not in ("junk-2", other["id"])]
+        if untouched:
+            status = flagged_row(browser, untouched[0]).find_element(
+                By.CSS_SELECTOR, ".correct-status"
+            )
+            assert status.text == ""
         # the screenshot shows the flagged panel's head (the count) and its first rows
         browser.execute_script(
             "document.getElementById('flagged-panel').scrollIntoView();"

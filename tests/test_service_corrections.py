@@ -114,6 +114,16 @@ def test_corrections_are_queued_learned_listed_and_withdrawn(
         assert listing["queued"] == 0 and listing["limit"] == 10_000
         only = api.get(f"/models/{model_name}/corrections", params={"group": 2}).json()
         assert [d["id"] for d in only["documents"]] == ["new-1"]
+        # the dashboard asks for the flagged ids only; the counts stay the whole state's
+        chosen = api.get(
+            f"/models/{model_name}/corrections", params={"ids": ["m-10", "never-sent"]}
+        ).json()
+        assert [d["id"] for d in chosen["documents"]] == ["m-10"]
+        assert chosen["sources"] == {"correction": 2}
+        too_many = api.get(
+            f"/models/{model_name}/corrections", params={"ids": [f"x-{i}" for i in range(101)]}
+        )
+        assert too_many.status_code == 422
         # confirming again is idempotent: still two labelled documents
         again = api.post(
             f"/models/{model_name}/corrections", json={"documents": [{"id": "m-10", "group": 1}]}

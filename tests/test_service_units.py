@@ -135,7 +135,12 @@ def test_jsonl_line_errors(raw: bytes, message: str) -> None:
 
 def test_jsonl_line_ok() -> None:
     doc = parse_line('{"id": 12, "text": "Fähre verspätet", "day": 3}'.encode(), 4)
-    assert (doc.id, doc.text, doc.line, doc.extra) == ("12", "Fähre verspätet", 4, {"day": 3})
+    assert (doc.id, doc.text, doc.position, doc.metadata) == (
+        "12",
+        "Fähre verspätet",
+        "line 4",
+        {"day": 3},
+    )
     assert parse_line(b'{"text": "x"}', 9).id == "line-9"
 
 

@@ -274,3 +274,56 @@ def test_group_labels_and_review_threshold(redis_client: redis.Redis, model_name
         store.set_group_label(3, "x", None)
     with pytest.raises(OptionsError, match="label"):
         store.set_group_label(0, "", None)
+
+
+def test_rollback_restores_the_labels_the_snapshot_kept_and_records_it(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    """A label set or PATCHed after a snapshot is undone by rolling back to it (the snapshot's
+    labels hash is the reference, read before the edits); the history only grows."""
+    store = create_model(redis_client, model_name)
+    with WorkerThread(Worker(redis_client, model_name)):
+        store.enqueue(ferry_texts(400, seed=51))
+        wait_for(learned_all(store, 400), what="400 learned")
+    store.set_group_label(0, "timetables", "desk-a")
+    labels_at_snapshot = store.group_labels()
+    snap = store.create_snapshot("before the label edits")
+    store.patch_group_label(0, {"destination": "desk-z"})
+    store.set_group_label(1, "lost property", None)
+    assert store.group_labels()[0].destination == "desk-z"
+    version_before = store.labels_version()
+    result = store.rollback(snap.id)
+    assert result.labels_restored
+    restored = store.group_labels()
+    assert {g: (r.label, r.destination) for g, r in restored.items()} == {
+        g: (r.label, r.destination) for g, r in labels_at_snapshot.items()
+    }
+    assert store.labels_version() == version_before + 1  # API processes re-read the labels
+    for group, label in ((0, "timetables"), (1, None)):
+        history = store.label_history(group)
+        assert [row["action"] for row in history][-1] == "rollback"
+        assert history[-1]["label"] == label and history[-1]["version"] == result.version
+        assert history[-1]["fields"] == {"snapshot": snap.id}
+    assert len(store.label_history(0)) == 3  # set, patch, rollback: append-only
+    # the pre-rollback snapshot kept the edited labels: rolling back to it brings them back
+    store.rollback(result.safety_snapshot_id)
+    assert store.group_labels()[0].destination == "desk-z"
+    assert store.group_labels()[1].label == "lost property"
+
+
+def test_an_old_snapshot_without_labels_rolls_back_and_leaves_the_labels(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    store = create_model(redis_client, model_name)
+    with WorkerThread(Worker(redis_client, model_name)):
+        store.enqueue(ferry_texts(400, seed=52))
+        wait_for(learned_all(store, 400), what="400 learned")
+    snap = store.create_snapshot("written before snapshots kept labels")
+    redis_client.hdel(store.keys.snapshot(snap.id), "labels")  # the older format
+    store.set_group_label(2, "freight", "desk-c")
+    labels_before = store.group_labels()
+    result = store.rollback(snap.id)
+    assert not result.labels_restored
+    assert store.version() == result.version and store.load_state() is not None
+    assert store.group_labels() == labels_before
+    assert [row["action"] for row in store.label_history(2)] == ["set"]

@@ -31,14 +31,8 @@ WELL_ABOVE_CHANCE = 0.45
 SEEDS = range(3)
 
 
-@cache
 def _corpus(name: str) -> corpora.LabelledCorpus:
-    try:
-        if name == "bbc":
-            return corpora.load_bbc()
-        return corpora.load_wordnet_nouns(max_per_label=corpora.WORDNET_PER_LABEL, seed=0)
-    except corpora.CorpusMissingError as exc:
-        pytest.skip(str(exc))
+    return corpora.corpus_or_skip(name)
 
 
 @cache

@@ -9,7 +9,6 @@ Reference for the states: mixture/ fed the same documents directly in units of b
 from __future__ import annotations
 
 import random
-import signal
 import threading
 import time
 import warnings
@@ -31,10 +30,12 @@ from tests.worker_support import (
     create_model,
     fast_options,
     ferry_texts,
+    kill_workers_mid_stream,
     learned_all,
     reference_state,
     small_config,
     start_worker_process,
+    stop_worker,
     wait_for,
 )
 from worker.learner import Worker
@@ -186,23 +187,7 @@ def test_sigkill_during_the_warm_up_gives_the_same_provisional_and_final_state(
 
     producer = threading.Thread(target=produce, daemon=True)
     producer.start()
-    learned_at_kill = []
-    for attempt in range(3):
-        process = start_worker_process(redis_url, model_name, f"warm-{attempt}")
-        before = (store.summary() or {}).get("documents_learned", 0)
-        wait_for(
-            lambda b=before: (
-                (store.summary() or {}).get("documents_learned", 0) > b or sent.is_set()
-            ),
-            timeout=60,
-            what="worker progress",
-        )
-        time.sleep(rng.uniform(0.0, 0.3))
-        process.send_signal(signal.SIGKILL)
-        process.wait()
-        assert process.stderr is not None
-        process.stderr.close()
-        learned_at_kill.append((store.summary() or {}).get("documents_learned", 0))
+    learned_at_kill = kill_workers_mid_stream(redis_url, store, "warm", sent, rng, max_delay=0.3)
     final = start_worker_process(redis_url, model_name, "warm-final")
     try:
         sent.wait(60)
@@ -223,11 +208,7 @@ def test_sigkill_during_the_warm_up_gives_the_same_provisional_and_final_state(
         store.enqueue(texts[during:])
         wait_for(learned_all(store, len(texts)), timeout=120, what="all documents learned")
     finally:
-        final.send_signal(signal.SIGTERM)
-        code = final.wait(30)
-        assert final.stderr is not None
-        err = final.stderr.read().decode()
-        final.stderr.close()
+        code, err = stop_worker(final)
     assert code == 0, err
     assert min(learned_at_kill) < during  # at least one kill fell inside the warm-up
     state = store.load_state()

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import contextlib
 import random
-import signal
 import threading
 import time
 from collections.abc import Sequence
@@ -35,8 +34,10 @@ from tests.worker_support import (
     create_model,
     fast_options,
     ferry_texts,
+    kill_workers_mid_stream,
     small_config,
     start_worker_process,
+    stop_worker,
     wait_for,
 )
 from worker.learner import Worker
@@ -243,21 +244,7 @@ def test_corrections_under_sigkill_are_each_learned_exactly_once(
 
     producer = threading.Thread(target=produce, daemon=True)
     producer.start()
-    rng = random.Random(2)
-    for attempt in range(3):
-        process = start_worker_process(redis_url, model_name, f"kill-{attempt}")
-        before = (store.summary() or {}).get("documents_learned", 0)
-        wait_for(
-            lambda b=before: (
-                (store.summary() or {}).get("documents_learned", 0) > b or sent.is_set()
-            ),
-            timeout=60,
-            what="worker progress",
-        )
-        time.sleep(rng.uniform(0.0, 0.3))
-        process.send_signal(signal.SIGKILL)
-        process.wait()
-        process.stderr.close()
+    kill_workers_mid_stream(redis_url, store, "kill", sent, random.Random(2), max_delay=0.3)
     sent.wait(60)
     producer.join(60)
     assert sum(1 for kind, _ in events if kind == "doc") % config.batch_size == 0
@@ -265,10 +252,7 @@ def test_corrections_under_sigkill_are_each_learned_exactly_once(
     try:
         wait_for(all_read(store), timeout=120, what="every entry handled")
     finally:
-        final.send_signal(signal.SIGTERM)
-        code = final.wait(30)
-        err = final.stderr.read().decode()
-        final.stderr.close()
+        code, err = stop_worker(final)
     assert code == 0, err
     state = store.load_state()
     expected = reference_with_labels(events, config)

@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import logging
 import random
-import signal
 import threading
 import time
 from pathlib import Path
@@ -24,10 +23,12 @@ from tests.worker_support import (
     create_model,
     fast_options,
     ferry_texts,
+    kill_workers_mid_stream,
     learned_all,
     reference_state,
     small_config,
     start_worker_process,
+    stop_worker,
     wait_for,
 )
 from worker.learner import Worker
@@ -71,26 +72,9 @@ def test_sigkill_at_random_points_loses_nothing_and_learns_nothing_twice(
 
     producer = threading.Thread(target=produce, daemon=True)
     producer.start()
-    kills = 0
-    learned_at_kill: list[int] = []
-    for attempt in range(3):
-        process = start_worker_process(redis_url, model_name, f"crash-{attempt}")
-        # kill after it has learned something (so the kill falls mid-stream), at a random delay
-        learned_before = (store.summary() or {}).get("documents_learned", 0)
-        wait_for(
-            lambda b=learned_before: (
-                (store.summary() or {}).get("documents_learned", 0) > b or sent.is_set()
-            ),
-            timeout=60,
-            what="worker progress",
-        )
-        time.sleep(rng.uniform(0.0, 0.4))
-        process.send_signal(signal.SIGKILL)
-        process.wait()
-        learned_at_kill.append((store.summary() or {}).get("documents_learned", 0))
-        process.stderr.close()
-        kills += 1
-    assert kills == 3
+    # each kill after the worker learned something (so it falls mid-stream), at a random delay
+    learned_at_kill = kill_workers_mid_stream(redis_url, store, "crash", sent, rng, max_delay=0.4)
+    assert len(learned_at_kill) == 3
     final = start_worker_process(redis_url, model_name, "final")
     try:
         sent.wait(60)
@@ -99,10 +83,7 @@ def test_sigkill_at_random_points_loses_nothing_and_learns_nothing_twice(
         assert redis_client.xlen(store.keys.docs) == total + len(bad_sent)
         wait_for(learned_all(store, total), timeout=120, what="all documents learned")
     finally:
-        final.send_signal(signal.SIGTERM)
-        code = final.wait(30)
-        err = final.stderr.read().decode()
-        final.stderr.close()
+        code, err = stop_worker(final)
     assert code == 0, err
     state = store.load_state()
     assert state.documents_learned == total

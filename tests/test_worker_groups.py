@@ -108,11 +108,15 @@ def test_a_birth_is_a_version_with_a_pre_change_snapshot_an_event_and_an_alert(
     assert report.groups_born == [4] and report.groups_gone == []
     assert report.group_ids == [0, 1, 2, 3] and len(report.weights_now) == 4
     assert len(report.word_divergence) == 4 and all(v >= 0 for v in report.word_divergence)
-    # a rollback to the pre-change snapshot undoes the birth (its version line)
+    # a rollback to the pre-change snapshot undoes the birth (its version line) and the label
+    # given to the newborn group since
+    store.set_group_label(4, "new sailings", "desk-n")
     result = store.rollback(snapshot.id)
     assert store.load_state().n_groups == 4
     assert result.version == store.version()
     assert [r.undone for r in store.events()] == [True]
+    assert result.labels_restored and 4 not in store.group_labels()
+    assert [row["action"] for row in store.label_history(4)] == ["set", "rollback"]
 
 
 def test_a_merge_keeps_both_labels_and_a_retired_label_stays(
@@ -130,6 +134,7 @@ def test_a_merge_keeps_both_labels_and_a_retired_label_stays(
         wait_for(learned_all(store, first), timeout=120, what="first part learned")
     store.set_group_label(survivor, "timetables", "desk-a")
     store.set_group_label(absorbed, "sailings", "desk-b")
+    before_merge = store.group_labels()
     learn_all(redis_client, store, texts[first:])
     labels = store.group_labels()
     assert labels[survivor].label == "timetables"
@@ -141,6 +146,17 @@ def test_a_merge_keeps_both_labels_and_a_retired_label_stays(
     # the absorbed id is gone: no label can be set on it any more
     with pytest.raises(ValueError, match="current group"):
         store.set_group_label(absorbed, "x", None)
+    # rolled back to the snapshot before the merge, both labels are as they were: no
+    # merged_labels on the survivor, no merged_into on the absorbed group
+    record = store.events()[0]
+    result = store.rollback(record.snapshot_id)
+    assert result.labels_restored
+    after = store.group_labels()
+    assert {g: r.to_dict() for g, r in after.items()} == {
+        g: r.to_dict() for g, r in before_merge.items()
+    }
+    assert after[survivor].merged_labels is None and after[absorbed].merged_into is None
+    store.set_group_label(absorbed, "sailings again", None)  # a current group again
 
 
 def test_sigkill_around_a_birth_records_it_once_and_ends_in_the_uninterrupted_state(

@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import os
 import random
+import signal
 import subprocess
 import sys
 import threading
@@ -304,3 +305,45 @@ def start_worker_process(redis_url: str, model: str, name: str) -> subprocess.Po
         stdout=subprocess.DEVNULL,
         stderr=subprocess.PIPE,
     )
+
+
+def kill_workers_mid_stream(
+    redis_url: str,
+    store: ModelStore,
+    name: str,
+    sent: threading.Event,
+    rng: random.Random,
+    max_delay: float,
+    kills: int = 3,
+) -> list[int]:
+    """Start a worker process ``kills`` times and SIGKILL each one after it has learned
+    something (or once the producer is done), at a random delay up to ``max_delay`` seconds;
+    the documents learned at each kill."""
+    learned_at_kill: list[int] = []
+    for attempt in range(kills):
+        process = start_worker_process(redis_url, store.model, f"{name}-{attempt}")
+        before = (store.summary() or {}).get("documents_learned", 0)
+        wait_for(
+            lambda b=before: (
+                (store.summary() or {}).get("documents_learned", 0) > b or sent.is_set()
+            ),
+            timeout=60,
+            what="worker progress",
+        )
+        time.sleep(rng.uniform(0.0, max_delay))
+        process.send_signal(signal.SIGKILL)
+        process.wait()
+        assert process.stderr is not None
+        process.stderr.close()
+        learned_at_kill.append((store.summary() or {}).get("documents_learned", 0))
+    return learned_at_kill
+
+
+def stop_worker(process: subprocess.Popen[bytes]) -> tuple[int, str]:
+    """SIGTERM a worker process; its exit code and what it wrote to stderr."""
+    process.send_signal(signal.SIGTERM)
+    code = process.wait(30)
+    assert process.stderr is not None
+    err = process.stderr.read().decode()
+    process.stderr.close()
+    return code, err

@@ -199,9 +199,14 @@ def list_corrections(
     runtime: Runtime,
     group: int | None = Query(default=None, description="Only this group's documents."),
     count: int = Query(default=1000, ge=0, le=100_000, description="Most documents listed."),
+    ids: list[str] | None = Query(  # noqa: B008 - FastAPI reads the declaration, never calls it
+        default=None, max_length=100, description="Only these document ids (repeat the key)."
+    ),
 ) -> dict[str, Any]:
     """Labelled documents of the loaded state, counts per group and per source, and how many
-    corrections, examples and withdrawals are queued but not learned yet."""
+    corrections, examples and withdrawals are queued but not learned yet. The counts are of
+    the whole state whatever ``group`` and ``ids`` select (the dashboard asks for the flagged
+    messages' ids, to show after a reload which of them were corrected)."""
     loaded = runtime.model(model)
     state = loaded.state
     documents: list[dict[str, Any]] = []
@@ -214,6 +219,9 @@ def list_corrections(
         sources[doc["source"]] = sources.get(doc["source"], 0) + 1
     if group is not None:
         documents = [doc for doc in documents if doc["group"] == group]
+    if ids is not None:
+        wanted = set(ids)
+        documents = [doc for doc in documents if doc["id"] in wanted]
     queued = runtime.call(loaded.store.labelled_queued)
     return {
         "model": model,

@@ -11,7 +11,10 @@ const SVG_NS = "http://www.w3.org/2000/svg";
 const view = { model: null, role: null, keysRequired: false, snapshots: [], busy: false, again: false,
                editing: null, reasonWords: null, palette: null, groups: [],
                // flagged messages: the group picked per message id, and what was sent for it
-               picked: {}, corrected: {} };
+               picked: {}, corrected: {},
+               // flagged ids the state holds as corrections (id -> group), so a reload still
+               // says which were confirmed or reassigned
+               learned: {} };
 
 function $(id) { return document.getElementById(id); }
 function colour(group) {
@@ -483,6 +486,7 @@ function emptyRow(body, columns, text) {
 function drawFlagged(documents, labels) {
   // redraw only on a change, so a picker or a button never moves under the pointer or focus
   const signature = JSON.stringify([view.model, view.role, documents, labels, view.corrected,
+    view.learned,
     view.groups.map((g) => g.group), view.reasonWords ? 1 : 0]);
   if (signature === view.flaggedSignature) return;
   const active = document.activeElement;
@@ -515,7 +519,7 @@ function drawFlagged(documents, labels) {
 // Confirm (the group it was routed to) or Reassign (the group picked) one flagged message: a
 // correction the model learns as a labelled document (POST .../corrections, admin role).
 function correctionControls(doc, row, labels) {
-  const done = view.corrected[doc.id];
+  const done = view.corrected[doc.id] || learnedStatus(doc, labels);
   const status = el("span", { class: "correct-status", role: "status", id: `correct-status-${row}`,
     text: done ? done.text : "" });
   if (done && done.error) status.classList.add("error");
@@ -570,6 +574,30 @@ function correctionControls(doc, row, labels) {
   reassign.addEventListener("click", () => send(Number(picker.value), "Reassigned"));
   const label = el("label", { for: pickerId, class: "visually-hidden", text: `group for ${doc.id}` });
   return [el("div", { class: "correct-row" }, [label, picker, confirm, reassign]), status];
+}
+
+// A flagged message the state holds as a correction (sent before this page was loaded, or
+// learned since): confirmed when its group is the one it was routed to, else reassigned.
+function learnedStatus(doc, labels) {
+  if (!(doc.id in view.learned)) return null;
+  const group = view.learned[doc.id];
+  const verb = group === doc.group ? "Confirmed" : "Reassigned";
+  return { group, text: `${verb} to ${groupName(group, labels)}: learned` };
+}
+
+// Which flagged ids are corrections the state holds (GET .../corrections?ids=...).
+async function loadLearned(base, documents) {
+  const ids = documents.map((d) => d.id).filter((id) => id);
+  if (!ids.length) { view.learned = {}; return; }
+  const query = ids.map((id) => `ids=${encodeURIComponent(id)}`).join("&");
+  try {
+    const answer = await api("GET", `${base}/corrections?count=${ids.length}&${query}`);
+    const learned = {};
+    for (const d of answer.documents) if (d.source === "correction") learned[d.id] = d.group;
+    view.learned = learned;
+  } catch (error) {
+    // keep what was known: the count line says when the corrections do not answer
+  }
 }
 
 function drawCorrections(answer, error) {
@@ -781,7 +809,10 @@ async function refresh() {
     $("groups-hint").textContent = view.role === "admin"
       ? "size = mixture weight and expected documents; Edit label names a group and its destination"
       : "size = mixture weight and expected documents; labels need the admin role";
-    if (got.flagged) drawFlagged(got.flagged.documents, labels);
+    if (got.flagged) {
+      await loadLearned(base, got.flagged.documents);
+      drawFlagged(got.flagged.documents, labels);
+    }
     drawCorrections(got.corrections, failed.corrections);
     if (got.daily) drawDaily(got.daily.days, labels);
     if (got.snapshots) drawSnapshots(got.snapshots.snapshots);
