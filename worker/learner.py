@@ -1093,23 +1093,21 @@ def _plain_texts(entries: list[Any]) -> list[str] | None:
     """The texts of raw entries in our enqueue's layout with no metadata, else None.
 
     None (take the per-entry path) when any entry has another layout, metadata to check, or
-    text that is not UTF-8.
+    text that is not UTF-8. One pass: the texts of the entries that match, then whether all did.
     """
-    if not all(
-        [
-            type(fields) is list
+    try:
+        texts = [
+            fields[3].decode("utf-8")
+            for _, fields in entries
+            if type(fields) is list
             and len(fields) == 8
             and fields[2] == b"text"
             and fields[4] == b"metadata"
             and fields[5] == b"{}"
-            for _, fields in entries
         ]
-    ):
-        return None
-    try:
-        return [fields[3].decode("utf-8") for _, fields in entries]
     except UnicodeDecodeError:
         return None
+    return texts if len(texts) == len(entries) else None
 
 
 __all__ = ["Worker"]
