@@ -172,34 +172,10 @@ def model_alone(store: ModelStore, texts: list[str]) -> float:
 def throughput(server: EmbeddedRedis, n_docs: int, repeats: int, lifecycle: bool = False) -> None:
     """The worker against the bare loops; with ``lifecycle`` the group lifecycle is on (its
     evidence per unit, decisions every 1,000 documents, each change a checkpoint of its own)."""
-    client = server.client()
-    config = MixtureConfig(
-        n_groups=8,
-        warmup_documents=1000,
-        batch_size=256,
-        n_restarts=2,
-        max_iter=50,
-        vocabulary_limit=100_000,
-        lifecycle=LifecycleConfig(enabled=lifecycle),
-    )
-    options = ModelOptions(
-        checkpoint_documents=5000,
-        checkpoint_seconds=1.0,
-        flush_partial_seconds=0.05,
-        read_count=1000,
-        read_block_ms=50,
-        snapshot_every_documents=None,
-        snapshot_every_seconds=None,
-        stream_max_length=None,
-        stream_max_age_seconds=None,
-    )
     name = "bench-lifecycle" if lifecycle else "bench"
-    Registry(client).create(name, config, options)
-    store = ModelStore(client, name)
-    warm = short_messages(config.warmup_documents, seed=1)
-    store.enqueue(warm)
-    worker_run(store, options, len(warm))  # cold start done outside the measurement
-    learned = len(warm)
+    store, options = _throughput_setup(server, name, lifecycle)
+    config = store.info.config
+    learned = config.warmup_documents
     worker_rates, bare_rates, raw_rates, alone_rates, ratios, raw_ratios = [], [], [], [], [], []
     group_rates, group_ratios = [], []
     for rep in range(repeats):
@@ -243,12 +219,16 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int, lifecycle: bool
 
 
 def _throughput_setup(
-    server: EmbeddedRedis, name: str, lifecycle: bool
+    server: EmbeddedRedis, name: str, lifecycle: bool, n_groups: int = 8
 ) -> tuple[ModelStore, ModelOptions]:
-    """A model of the throughput runs, warmed up (its cold start outside the measurement)."""
+    """A model of the worker runs, warmed up (its cold start outside the measurement).
+
+    Short messages, batch 256, checkpoint every 5,000 documents or second, the last partial
+    unit flushed after 0.05 s, pages of 1,000; with ``lifecycle`` the group lifecycle is on.
+    """
     client = server.client()
     config = MixtureConfig(
-        n_groups=8,
+        n_groups=n_groups,
         warmup_documents=1000,
         batch_size=256,
         n_restarts=2,
@@ -355,33 +335,10 @@ def drain(store: ModelStore, options: ModelOptions) -> float:
 
 def correction_cost(server: EmbeddedRedis, n_docs: int, repeats: int, share: float) -> None:
     """A stream with ``share`` corrections against the same documents alone (see item 3)."""
-    client = server.client()
-    config = MixtureConfig(
-        n_groups=4,
-        warmup_documents=1000,
-        batch_size=256,
-        n_restarts=2,
-        max_iter=50,
-        vocabulary_limit=100_000,
-    )
-    options = ModelOptions(
-        checkpoint_documents=5000,
-        checkpoint_seconds=1.0,
-        flush_partial_seconds=0.05,  # the last partial unit too (drain waits for every entry)
-        read_count=1000,
-        read_block_ms=50,
-        snapshot_every_documents=None,
-        snapshot_every_seconds=None,
-        stream_max_length=None,
-        stream_max_age_seconds=None,
-    )
     stores = {}
     for kind in ("plain", "corrected"):
-        Registry(client).create(f"bench-{kind}", config, options)
-        stores[kind] = ModelStore(client, f"bench-{kind}")
-        warm = short_messages(config.warmup_documents, seed=1)
-        stores[kind].enqueue(warm)
-        drain(stores[kind], options)  # the warm-up fit outside the measurement
+        stores[kind], options = _throughput_setup(server, f"bench-{kind}", False, n_groups=4)
+    config = stores["plain"].info.config
     rng = random.Random(5)
     times: dict[str, list[float]] = {"plain": [], "corrected": []}
     corrections = 0

@@ -14,10 +14,14 @@ the same way from the pool of the node that serves the stream's slot; after a fa
 down, a MOVED reply after a failover) the cluster client's slot map is refreshed and the next
 read connects to whichever node serves the slot then.
 
-A read sent ahead (the next page requested before the current one is learned) paid while the
-worker read through a consumer group, whose XREADGROUP + XACK cost Redis real work; with
-XREAD it measured no gain (bench/bench_worker.py, six runs each way: median 60,000 documents
-a second with and without), so there is none.
+A read sent ahead (:meth:`PageReader.send_ahead`): after a full page the worker sends the
+next page's XREAD (after that page's last id, without BLOCK) before it learns the page, so
+Redis builds and sends the reply while Python learns; :meth:`PageReader.read` takes that reply
+only when it asks for the same cursor, and drops the connection (discarding the reply)
+otherwise. An XREAD changes nothing in Redis, so a page read ahead and never used costs a
+read and nothing else: what is learned and checkpointed is decided by the worker's cursor
+alone, as before. (It measured no gain once, when learning cost far more than reading: see
+bench/README.md for the figures since.)
 
 :func:`stream_counts` reads ``XINFO STREAM``'s counters (``entries-added`` and
 ``max-deleted-entry-id`` exist from Redis 7 on; None before), which tell whether entries
@@ -122,6 +126,7 @@ class PageReader:
         self.count = int(count)
         self._connection: Any = None
         self._connection = self._connect()
+        self._ahead: str | None = None  # the cursor of a read sent ahead, its reply unread
 
     def _connect(self) -> Any:
         """A new connection to the server of the stream (for a cluster: of its slot now)."""
@@ -134,8 +139,43 @@ class PageReader:
         pool = client.connection_pool
         return pool.connection_class(**pool.connection_kwargs)
 
+    def send_ahead(self, after: str) -> None:
+        """Send the read of the page after ``after`` now, its reply read by :meth:`read`.
+
+        Without BLOCK: when nothing follows ``after`` the reply is empty at once and
+        :meth:`read` then reads (and waits) as usual. Nothing is sent while a read sent ahead
+        is outstanding.
+        """
+        if self._ahead is not None:
+            return
+        if self._connection is None:
+            self._connection = self._connect()
+        try:
+            self._connection.send_command("XREAD", "COUNT", self.count, "STREAMS", self.key, after)
+        except BaseException:
+            self._failed()
+            raise
+        self._ahead = after
+
+    @property
+    def ahead(self) -> bool:
+        """True while a read sent ahead waits to be taken (or discarded)."""
+        return self._ahead is not None
+
     def read(self, after: str, block: int) -> list[RawEntry]:
-        """The next page after ``after`` (waiting up to ``block`` ms; [] when none came)."""
+        """The next page after ``after`` (waiting up to ``block`` ms; [] when none came).
+
+        A read sent ahead for the same cursor answers, if it found entries; one sent for
+        another cursor is discarded with the connection.
+        """
+        if self._ahead is not None:
+            if self._ahead != after:
+                self.drop()
+            else:
+                self._ahead = None
+                entries = self._reply(self._response())
+                if entries:
+                    return entries
         args: list[Any] = ["XREAD", "COUNT", self.count]
         if block > 0:
             args += ["BLOCK", block]
@@ -144,20 +184,35 @@ class PageReader:
             self._connection = self._connect()
         try:
             self._connection.send_command(*args)
-            reply = self._connection.read_response()
         except BaseException:
-            self.drop()
-            if self._cluster:  # the slot may have moved (failover): re-learn the map
-                self._stale_map = True
-                self._connection = None
+            self._failed()
             raise
+        return self._reply(self._response())
+
+    def _response(self) -> Any:
+        """The reply of the command sent last (a failure drops the connection)."""
+        try:
+            return self._connection.read_response()
+        except BaseException:
+            self._failed()
+            raise
+
+    def _failed(self) -> None:
+        self.drop()
+        if self._cluster:  # the slot may have moved (failover): re-learn the map
+            self._stale_map = True
+            self._connection = None
+
+    @staticmethod
+    def _reply(reply: Any) -> list[RawEntry]:
         if not reply:
             return []
         # RESP3: {stream: entries}; RESP2: [[stream, entries]]
         return next(iter(reply.values())) if isinstance(reply, dict) else reply[0][1]
 
     def close(self) -> None:
-        """Disconnect (the next read reconnects)."""
+        """Disconnect (the next read reconnects); a read sent ahead is discarded with it."""
+        self._ahead = None
         if self._connection is not None:
             self._connection.disconnect()
 

@@ -146,3 +146,37 @@ def test_rollbacks_move_the_counter_with_the_watermark_and_raise_no_false_gap(
             assert_same_state(state, reference_state(first + second + third, config))
         assert [a for a in store.alerts() if a.kind == "stream-gap"] == []
         client.close()
+
+
+def test_a_page_read_ahead_before_a_gap_probe_is_not_counted_against_it(
+    tmp_path: Path,
+) -> None:
+    # A short page read ahead holds every entry that existed when it ran. If it were compared
+    # with a probe of the stream's counters taken after it, the entries added in between
+    # would count as lost. Nothing is removed here, so Redis's own entries-added
+    # (XINFO STREAM) must equal the worker's count and no gap may be reported.
+    with private_redis7(tmp_path) as url:
+        client = redis_from_url(url)
+        store = create_model(
+            client, "ahead", small_config(), fast_options(read_count=100, checkpoint_seconds=60)
+        )
+        worker = Worker(client, "ahead")
+        worker.run_once()  # loads on an empty stream: the load's probe settles at once
+        assert worker._gap_probe is None
+        store.enqueue(ferry_texts(150, seed=41))
+        worker.run_once()  # a full page of 100: the read of the short rest is sent ahead
+        assert worker.reader.ahead
+        client.ping()  # Redis has answered the read ahead before these 50 arrive
+        last = store.enqueue(ferry_texts(50, seed=42)).stream_ids[-1]  # 4 whole units in all
+        worker._check_for_gap()  # a probe after the 50, as every checkpoint_seconds
+        for _ in range(20):
+            if worker.handled == last:
+                break
+            worker.run_once()
+        assert worker.handled == last
+        assert worker._entries_lost == 0 and not worker._gap_alerts
+        assert worker._entries_seen == client.xinfo_stream(store.keys.docs)["entries-added"]
+        worker.stop()
+        worker.run()
+        assert not [a for a in store.alerts() if a.kind == "stream-gap"]
+        client.close()

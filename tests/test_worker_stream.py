@@ -355,3 +355,37 @@ def test_work_dropped_in_the_middle_of_a_backlog_loses_nothing_and_learns_nothin
     assert state.documents_learned == 900
     assert state.metadata["entries_read"] == 900
     assert_same_state(state, reference_state(texts, config))
+
+
+def test_a_page_read_ahead_is_taken_only_for_its_own_cursor(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    # Reference: Redis's XRANGE with an exclusive start, "(id" (redis.io XRANGE: exclusive
+    # ranges, Redis >= 6.2), is the page after an id. A read sent ahead must give exactly that
+    # page for its own cursor; for any other cursor it is discarded and the page after that
+    # cursor comes; with nothing after the cursor the blocking read still sees new entries.
+    from state.reader import PageReader
+
+    store = create_model(redis_client, model_name)
+    store.enqueue(ferry_texts(30, seed=3))
+    key = store.keys.docs
+
+    def page_after(cursor: str) -> list[bytes]:
+        return [entry[0] for entry in redis_client.xrange(key, min=f"({cursor}", count=10)]
+
+    reader = PageReader(redis_client, key, 10)
+    first = reader.read("0-0", 0)
+    cursor = first[-1][0].decode()
+    reader.send_ahead(cursor)
+    assert reader.ahead
+    taken = reader.read(cursor, 0)
+    assert [entry[0] for entry in taken] == page_after(cursor) and not reader.ahead
+    other = first[3][0].decode()  # a cursor moved back (a reload from an older watermark)
+    reader.send_ahead(taken[-1][0].decode())
+    assert [entry[0] for entry in reader.read(other, 0)] == page_after(other)
+    assert not reader.ahead
+    last = store.last_stream_id()
+    reader.send_ahead(last)
+    (new_id,) = store.enqueue(["ticket refund please"]).stream_ids
+    assert [entry[0].decode() for entry in reader.read(last, 500)] == [new_id]
+    reader.close()

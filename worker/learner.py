@@ -5,7 +5,9 @@ How it reads (exactly-once effect, one read path)
 The worker holds the model's lease (the ``heartbeat`` key, a TTL naming it) or waits on
 standby. Holding it, it loads the current checkpoint; its *cursor* starts at the checkpoint's
 watermark. Every step reads ONE page, ``XREAD COUNT read_count BLOCK read_block_ms STREAMS
-docs <cursor>`` (:class:`state.reader.PageReader`), and learns it strictly in stream order:
+docs <cursor>`` (:class:`state.reader.PageReader`), and learns it strictly in stream order
+(after a full page the next page's read is sent before the page is learned, and used only if
+the cursor is still that page's last id: the cursor alone says what comes next):
 
 1. Live traffic, the catch-up after a restart and the replay after a rollback (which moves the
    watermark back to the snapshot's) are the same read: pages after the cursor.
@@ -569,6 +571,10 @@ class Worker:
             block = min(block, max(int(opts.flush_partial_seconds * 1000), 1))
         entries = self.reader.read(self.cursor, block)
         learned = 0
+        if len(entries) == opts.read_count:
+            # a full page: more is likely waiting; Redis answers the next read while this
+            # page is learned (taken only if the cursor is then its last id, see PageReader)
+            self.reader.send_ahead(last_id_of(entries))
         if entries:
             learned += self._take(entries, complete=len(entries) < opts.read_count)
         elif self._gap_probe is not None:
@@ -594,6 +600,10 @@ class Worker:
         self._last_gap_check = time.monotonic()
         if not self._counts_known or self._gap_probe is not None:
             return
+        # a page read ahead ran before this probe: a short one would wrongly count as holding
+        # every entry up to the probe's id, so it is discarded (read again after the probe)
+        if self.reader.ahead:
+            self.reader.drop()
         counts = stream_counts(self.redis, self.store.keys.docs)
         if counts.entries_added is None:
             self._counts_known = False
@@ -1083,23 +1093,21 @@ def _plain_texts(entries: list[Any]) -> list[str] | None:
     """The texts of raw entries in our enqueue's layout with no metadata, else None.
 
     None (take the per-entry path) when any entry has another layout, metadata to check, or
-    text that is not UTF-8.
+    text that is not UTF-8. One pass: the texts of the entries that match, then whether all did.
     """
-    if not all(
-        [
-            type(fields) is list
+    try:
+        texts = [
+            fields[3].decode("utf-8")
+            for _, fields in entries
+            if type(fields) is list
             and len(fields) == 8
             and fields[2] == b"text"
             and fields[4] == b"metadata"
             and fields[5] == b"{}"
-            for _, fields in entries
         ]
-    ):
-        return None
-    try:
-        return [fields[3].decode("utf-8") for _, fields in entries]
     except UnicodeDecodeError:
         return None
+    return texts if len(texts) == len(entries) else None
 
 
 __all__ = ["Worker"]
