@@ -43,7 +43,7 @@ cluster-tools:
 	test -x /usr/bin/redis-server -a -x /usr/bin/redis-cli || (apt-get update -qq && DEBIAN_FRONTEND=noninteractive apt-get install -y -qq redis-server redis-tools >/dev/null)
 
 test: $(STAMP) corpora browser imap-server cluster-tools
-	$(PY) -m pytest -q
+	$(PY) -m pytest -q --durations=20
 
 test-fast: $(STAMP) cluster-tools
 	$(PY) -m pytest -q -m "not corpus and not browser"

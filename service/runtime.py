@@ -689,11 +689,16 @@ class ServiceRuntime:
     ) -> dict[str, Any]:
         """Replace an operator's label and destination for one group (both None: clear),
         recording the group's words now as what the label is given to."""
-        loaded = self.model(name)
-        loaded.check_group(group)
-        sketch = self._sketch(loaded, group)
-        record = self.call(lambda: loaded.store.set_group_label(group, label, destination, sketch))
-        return self._after_label_write(loaded, group, record, sketch, replace=True)
+        # under the lock a reload cannot slip in between the write and its copy in memory
+        # (it would read the labels before the write and replace the model this updates)
+        with self._lock:
+            loaded = self.model(name)
+            loaded.check_group(group)
+            sketch = self._sketch(loaded, group)
+            record = self.call(
+                lambda: loaded.store.set_group_label(group, label, destination, sketch)
+            )
+            return self._after_label_write(loaded, group, record, sketch, replace=True)
 
     def patch_label(
         self, name: str, group: int, changes: dict[str, str | None], refresh: bool = False
@@ -701,12 +706,13 @@ class ServiceRuntime:
         """Change only the given fields of one group's label. The group's words are recorded
         anew when ``changes`` gives the label a text or ``refresh`` is true; otherwise the
         words recorded before stay (a new destination says nothing about the content)."""
-        loaded = self.model(name)
-        loaded.check_group(group)
-        renew = refresh or changes.get("label") is not None
-        sketch = self._sketch(loaded, group) if renew else None
-        record = self.call(lambda: loaded.store.patch_group_label(group, changes, sketch))
-        return self._after_label_write(loaded, group, record, sketch, replace=False)
+        with self._lock:  # as in set_label
+            loaded = self.model(name)
+            loaded.check_group(group)
+            renew = refresh or changes.get("label") is not None
+            sketch = self._sketch(loaded, group) if renew else None
+            record = self.call(lambda: loaded.store.patch_group_label(group, changes, sketch))
+            return self._after_label_write(loaded, group, record, sketch, replace=False)
 
     def _sketch(self, loaded: LoadedModel, group: int) -> WordSketch | None:
         state = loaded.routing_state
