@@ -1,22 +1,30 @@
 """Routing one message for filing: its group, whether a person should look, where it goes.
 
-The review rules are the API's (``service/runtime.py`` documents them) minus the typicality
-rule, whose running statistics live in each API process: ``low_posterior`` (MAP posterior
-under the model's ``review_threshold``), ``no_known_words`` and ``mostly_unknown_words``.
+The review rules are the API's (:func:`mixture.routing.review_reasons`, the one table) minus
+the typicality rule, whose running statistics live in each API process: ``low_posterior``,
+``no_known_words``, ``mostly_unknown_words``, ``provisional_model`` (the warm-up's provisional
+fit answered), ``new_group`` (a group born while learning that nobody has named) and
+``label_stale`` (the group's words moved away from those its label was given to).
+
+Groups are named by their stable id (``state.group_ids``), never by array position: after a
+birth, merge or retirement the two differ, and labels, destinations and folders are kept by id.
 """
 
 from __future__ import annotations
 
+from collections.abc import Collection
 from dataclasses import dataclass
 from typing import Any
 
-from mixture.routing import route_texts
+import numpy as np
+
+from mixture.routing import review_reasons, route_texts
 from mixture.stats import MixtureState
 
 
 @dataclass(frozen=True)
 class Decision:
-    """The routing of one message as filing needs it."""
+    """The routing of one message as filing needs it (``group`` is the stable group id)."""
 
     group: int
     posterior: float
@@ -26,26 +34,6 @@ class Decision:
     destination: str | None
 
 
-def review_reasons(
-    posterior: float,
-    no_evidence: bool,
-    known_tokens: int,
-    unknown_tokens: int,
-    *,
-    threshold: float,
-    unknown_share: float,
-) -> list[str]:
-    """The review rules that fire for one routed document (empty: no review)."""
-    reasons = []
-    if posterior < threshold:
-        reasons.append("low_posterior")
-    if no_evidence:
-        reasons.append("no_known_words")
-    elif unknown_tokens > unknown_share * (known_tokens + unknown_tokens):
-        reasons.append("mostly_unknown_words")
-    return reasons
-
-
 def decide(
     state: MixtureState,
     text: str,
@@ -53,31 +41,53 @@ def decide(
     *,
     threshold: float,
     unknown_share: float,
+    provisional: bool = False,
+    starting_groups: int | None = None,
+    stale_groups: Collection[int] = (),
 ) -> Decision:
     """Route one text and attach its group's label and destination.
 
-    ``labels`` maps a group to an object with ``label`` and ``destination`` attributes
-    (:class:`state.records.GroupLabel`).
+    Parameters
+    ----------
+    state : MixtureState
+        The state to route with (the provisional fit while the model warms up).
+    text : str
+    labels : dict
+        Group id to an object with ``label`` and ``destination`` attributes
+        (:class:`state.records.GroupLabel`).
+    threshold, unknown_share : float
+        The ``low_posterior`` and ``mostly_unknown_words`` rules' settings.
+    provisional : bool
+        ``state`` is the warm-up's provisional fit: the answer is flagged for review.
+    starting_groups : int, optional
+        Ids below this were given at creation; a group at or above it without a label or
+        destination is a newborn nobody has named (None: no ``new_group`` rule).
+    stale_groups : collection of int
+        Ids of the groups whose label is stale.
     """
     routing = route_texts(state, [text])
-    group = int(routing.group[0])
-    posterior = float(routing.posterior[0, group])
-    reasons = review_reasons(
-        posterior,
-        bool(routing.no_evidence[0]),
-        int(routing.known_tokens[0]),
-        int(routing.unknown_tokens[0]),
-        threshold=threshold,
-        unknown_share=unknown_share,
-    )
+    position = int(routing.group[0])
+    group = int(state.group_ids[position])
     entry = labels.get(group)
+    label = getattr(entry, "label", None)
+    destination = getattr(entry, "destination", None)
+    born = starting_groups is not None and group >= starting_groups
+    newborn = born and not (label or destination)
+    reasons = review_reasons(
+        routing,
+        threshold,
+        unknown_share,
+        provisional=provisional,
+        new_group=np.array([newborn]),
+        label_stale=np.array([group in stale_groups]),
+    )[0]
     return Decision(
         group,
-        posterior,
+        float(routing.posterior[0, position]),
         bool(reasons),
         tuple(reasons),
-        getattr(entry, "label", None),
-        getattr(entry, "destination", None),
+        label,
+        destination,
     )
 
 

@@ -369,8 +369,8 @@ class ImapIntake:
     def _queue_while_waiting(self, uids: list[int]) -> None:
         if not self.waiting_for_model:
             log.info(
-                "intake: model %s has no checkpoint yet: new mail is queued for learning and "
-                "left in place until it has one",
+                "intake: model %s cannot route yet (warming up): new mail is queued for "
+                "learning and left in place until it can",
                 self.store.keys.model,
             )
             self.waiting_for_model = True

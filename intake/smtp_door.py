@@ -107,7 +107,7 @@ class RoutingDoor:
         try:
             state = self.view.refresh()
             if state is None:
-                return "451 4.3.0 the model has no checkpoint yet; try again later"
+                return "451 4.3.0 the model cannot route yet (warming up); try again later"
             decision = self.view.decide(mail.text, state)
             metadata = {"source": "smtp", **mail.metadata}
             self.store.enqueue(

@@ -501,16 +501,17 @@ def route_records(
         unknown_share = float(Settings.model_fields["review_unknown_share"].default)
     records: list[dict[str, Any]] = []
     docs = batch.documents
+    ids = [int(g) for g in state.group_ids]  # stable ids, as the API answers
     for start in range(0, len(docs), chunk):
         part = docs[start : start + chunk]
         routing = route_texts(state, [doc.text for doc in part])
-        posteriors = posterior_entries(routing.posterior, top)
+        posteriors = posterior_entries(routing.posterior, top, ids)
         reasons = review_reasons(routing, threshold, unknown_share)
         for i, doc in enumerate(part):
             records.append(
                 {
                     "id": doc.id,
-                    "group": int(routing.group[i]),
+                    "group": ids[int(routing.group[i])],
                     "posterior": posteriors[i],
                     "margin": float(routing.margin[i]),
                     "log_likelihood_per_token": _finite(routing.log_likelihood_per_token[i]),
@@ -580,17 +581,18 @@ def describe_lines(state: Any, top_n: int = 10, keep_courtesy_terms: bool = Fals
         f"vocabulary {state.vocabulary.n_active} active words"
     ]
     for summary in describe_groups(state, top_n=top_n, keep_courtesy_terms=keep_courtesy_terms):
-        data = _summary_dict(summary)
+        data = _summary_dict(summary, state)
         lines.append(f"group {data['group']}  weight {data['weight']:.3f}")
         lines.append("  top:         " + ", ".join(term for term, _ in data["top_terms"]))
         lines.append("  distinctive: " + ", ".join(term for term, _ in data["distinctive_terms"]))
     return lines
 
 
-def _summary_dict(summary: Any) -> dict[str, Any]:
-    """GroupSummary as a plain dict with ``(term, score)`` pairs."""
+def _summary_dict(summary: Any, state: Any) -> dict[str, Any]:
+    """GroupSummary as a plain dict with ``(term, score)`` pairs, the group by its stable id
+    (``describe_groups`` numbers by position)."""
     return {
-        "group": int(summary.group),
+        "group": int(state.group_ids[summary.group]),
         "weight": float(summary.weight),
         "top_terms": [(str(t), float(s)) for t, s in summary.top_terms],
         "distinctive_terms": [(str(t), float(s)) for t, s in summary.distinctive_terms],
@@ -613,7 +615,7 @@ def cmd_describe(args: argparse.Namespace) -> int:
         summaries = describe_groups(
             state, top_n=args.top, keep_courtesy_terms=args.keep_courtesy_terms
         )
-        print(json.dumps([_summary_dict(s) for s in summaries], indent=2))
+        print(json.dumps([_summary_dict(s, state) for s in summaries], indent=2))
     else:
         print("\n".join(describe_lines(state, args.top, args.keep_courtesy_terms)))
     return EXIT_OK

@@ -196,3 +196,29 @@ def test_drift_table_columns_follow_group_ids() -> None:
         format_drift_table([{"version": 1, "documents_learned": 5, "weights": [1.0]}]).split()[-1]
         == "1.000"
     )
+
+
+def test_route_and_describe_name_groups_by_id_after_a_retirement(
+    model_file, corpus, tmp_path, capsys
+) -> None:
+    # a state whose positions and ids differ (group 0 retired): answers name ids, as the API
+    from mixture.lifecycle import retire
+    from mixture.serialize import state_to_bytes
+
+    state = state_from_bytes(model_file.read_bytes())
+    retire(state, 0, reason="test")
+    ids = state.group_ids.tolist()
+    assert ids == list(range(1, 8))
+    changed = tmp_path / "retired.model"
+    changed.write_bytes(state_to_bytes(state))
+    path, records, _ = corpus
+    out = tmp_path / "routed.jsonl"
+    assert main(["route", str(path), "--model-file", str(changed), "--out", str(out)]) == 0
+    routed = [json.loads(line) for line in out.read_text().splitlines()]
+    expected = route_texts(state, [r["text"] for r in records[:50]]).group
+    assert [r["group"] for r in routed[:50]] == [ids[p] for p in expected.tolist()]
+    assert all(entry["group"] in ids for r in routed[:50] for entry in r["posterior"])
+    capsys.readouterr()
+    assert main(["describe", "--model-file", str(changed), "--json"]) == 0
+    described = json.loads(capsys.readouterr().out)
+    assert [g["group"] for g in described] == ids
