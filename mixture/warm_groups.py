@@ -80,7 +80,11 @@ def shape_warm_up_groups(state: MixtureState, documents: sp.spmatrix) -> list[Gr
     """
     config = state.config.lifecycle
     matrix = sp.csr_matrix(documents, dtype=np.float64)
-    active = state.vocabulary.active_mask()[: matrix.shape[1]]
+    if matrix.shape[1] < state.capacity:  # the split's fit takes columns over every id
+        matrix = sp.csr_matrix(
+            (matrix.data, matrix.indices, matrix.indptr), shape=(matrix.shape[0], state.capacity)
+        )
+    active = state.vocabulary.active_mask()
     used = np.unique(matrix.indices)
     used = used[active[used]]
     local = sp.csr_matrix(matrix[:, used])
