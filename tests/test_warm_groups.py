@@ -137,3 +137,18 @@ def test_the_joined_warm_up_is_a_function_of_the_stream():
     again = pieces.learn(texts[512:]).events
     assert [e.to_dict() for e in again] == [e.to_dict() for e in events]
     assert state_to_bytes(pieces.state) == state_to_bytes(whole.state)
+
+
+def test_a_group_holding_labelled_documents_survives_the_joins_with_its_id():
+    """One topic, four groups, one example of it given to one group (each of the four in
+    turn): the joins leave that group, with its id, whether or not it has the most
+    documents."""
+    stream = TopicStream(3, seed=4)
+    texts = stream.messages(stream.labels(601, [0]))
+    config = MixtureConfig(**WARM_UP, n_groups=4, lifecycle=LifecycleConfig(enabled=True))
+    for group in range(4):
+        learner = OnlineLearner(config, seed=0)
+        learner.learn_labelled([LabelledItem("e", texts[600], group, "example")])
+        report = learner.learn(texts[:600])
+        assert [e.kind for e in report.events] == [MERGE] * 3
+        assert [int(g) for g in learner.state.group_ids] == [group]
