@@ -4,7 +4,9 @@
 arrival NMI, end NMI, ARI, live groups and events with the lifecycle on (max_groups twice the
 true count), then the means; ``--batch`` adds batch EM on all documents beside them. Streams:
 ``wordnet-26``, ``wordnet-45``, ``bbc`` (bench.bench_quality.drift_streams builds them the
-same way: sorted by topic, 16 parts, each shuffled; Yin et al., KDD 2018).
+same way: sorted by topic, 16 parts, each shuffled; Yin et al., KDD 2018), and
+``wordnet-26-shuffled``, the 26-file glosses in one random order (no drift: the null case a
+change for drift streams must not hurt).
 """
 
 from __future__ import annotations
@@ -22,9 +24,11 @@ def build_stream(name: str) -> corpora.LabelledCorpus:
     """The named drift stream, built as in bench.bench_quality.drift_streams."""
     if name == "bbc":
         return corpora.drift_stream(corpora.load_bbc())
-    files = list(corpora.NOUN_LEXNAMES.values()) if name == "wordnet-26" else None
+    files = None if name == "wordnet-45" else list(corpora.NOUN_LEXNAMES.values())
     corpus = corpora.load_wordnet_files(files, DRIFT_PER_FILE, seed=0)
     corpus.name = name
+    if name == "wordnet-26-shuffled":
+        return corpus.subset(np.random.default_rng(0).permutation(len(corpus)))
     return corpora.drift_stream(corpus)
 
 
@@ -36,7 +40,11 @@ def main(argv: list[str] | None = None) -> None:
     from mixture.routing import route_texts
 
     parser = argparse.ArgumentParser(prog="python -m bench.bench_drift_one", description=__doc__)
-    parser.add_argument("--stream", choices=("wordnet-26", "wordnet-45", "bbc"), required=True)
+    parser.add_argument(
+        "--stream",
+        choices=("wordnet-26", "wordnet-45", "bbc", "wordnet-26-shuffled"),
+        required=True,
+    )
     parser.add_argument("--start", choices=("k", "2"), default="k")
     parser.add_argument("--seeds", type=int, nargs="+", default=[0])
     parser.add_argument("--batch", action="store_true", help="also batch EM on all documents")

@@ -40,6 +40,7 @@ from mixture.labelled import LabelledItem, add_items, check_items
 from mixture.lifecycle import GroupEvent, run_due_decisions, seed_typicality, unit_observer
 from mixture.novelty import UnitEStep
 from mixture.stats import MixtureState
+from mixture.warm_groups import shape_warm_up_groups
 
 
 @dataclass
@@ -385,7 +386,10 @@ class OnlineLearner:
                 warmup, generation = state.pending, state.vocabulary.generation
                 fit_pending(state)
                 if self.config.lifecycle.enabled and state.vocabulary.generation == generation:
-                    seed_typicality(state, warmup)  # (a compaction renumbered the ids: start empty)
+                    # Start from the groups the warm-up supports (mixture.warm_groups), then
+                    # seed their typicality (a compaction renumbered the ids: start empty).
+                    report.events.extend(shape_warm_up_groups(state, warmup))
+                    seed_typicality(state, warmup)
                 state.provisional = None
                 report.warmed_up = True
                 return start

@@ -421,8 +421,9 @@ def test_a_topic_that_stops_is_retired():
 
 
 def test_two_groups_started_on_one_topic_merge():
-    """Four groups warmed up on three topics: the two that share a topic merge (within the
-    first 6,000 messages) and every topic ends in one group."""
+    """Four groups warmed up on three topics: the two that share a topic merge, now at the
+    warm-up's end (one Dirichlet-multinomial group explains their documents better than two;
+    mixture.warm_groups), and every topic ends in one group."""
     stream = TopicStream(3, seed=2)
     labels = stream.labels(8000, [0, 1, 2])
     texts = stream.messages(labels)
@@ -431,9 +432,30 @@ def test_two_groups_started_on_one_topic_merge():
     )
     events = _learn(learner, texts)
     assert [e.kind for e in events] == [MERGE]
+    assert events[0].position == 1000
+    assert events[0].evidence["log_bayes_factor"] > 0.0
+    state = learner.state
+    assert state.n_groups == 3
+    routed = route_texts(state, texts[-1000:]).group
+    for t in range(3):
+        assert np.bincount(routed[labels[-1000:] == t]).max() / (labels[-1000:] == t).sum() >= 0.9
+
+
+def test_two_groups_on_one_topic_merge_while_learning():
+    """The merge decision itself (posterior overlap and JS divergence): four groups fitted on
+    three topics without the lifecycle (so no join at the warm-up), the lifecycle switched on
+    afterwards; the two that share a topic merge within 5,000 messages."""
+    stream = TopicStream(3, seed=2)
+    labels = stream.labels(8000, [0, 1, 2])
+    texts = stream.messages(labels)
+    learner = OnlineLearner(MixtureConfig(**OLD_WARM_UP, n_groups=4), seed=0)
+    learner.learn(texts[:1000])
+    state = learner.state
+    state.config = state.config.replace(lifecycle=LIFECYCLE_ON)
+    events = _learn(OnlineLearner.from_state(state), texts[1000:])
+    assert [e.kind for e in events] == [MERGE]
     assert events[0].position <= 6000
     assert events[0].evidence["js_divergence"] < 0.1
-    state = learner.state
     assert state.n_groups == 3
     routed = route_texts(state, texts[-1000:]).group
     for t in range(3):
