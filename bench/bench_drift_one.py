@@ -6,7 +6,8 @@ true count), then the means; ``--batch`` adds batch EM on all documents beside t
 ``wordnet-26``, ``wordnet-45``, ``bbc`` (bench.bench_quality.drift_streams builds them the
 same way: sorted by topic, 16 parts, each shuffled; Yin et al., KDD 2018), and
 ``wordnet-26-shuffled``, the 26-file glosses in one random order (no drift: the null case a
-change for drift streams must not hurt).
+change for drift streams must not hurt). ``--trace`` prints each group event with its
+founders' topics and the final group x topic counts.
 """
 
 from __future__ import annotations
@@ -32,6 +33,28 @@ def build_stream(name: str) -> corpora.LabelledCorpus:
     return corpora.drift_stream(corpus)
 
 
+def print_trace(stream: corpora.LabelledCorpus, run: corpora.DriftPass) -> None:
+    """Each event (position, kind, groups, founders by topic) and the final group x topic counts.
+
+    The topic of message i is ``stream.label_names[stream.labels[i]]``; a founder's stream
+    position is its index in the stream (the pass learns every message in order).
+    """
+    names = stream.label_names
+    labels = np.asarray(stream.labels)
+    for event in run.events:
+        line = f"  {event.position:6d} {event.kind:7s} {list(event.groups)}"
+        if event.documents:
+            topics = np.bincount(labels[list(event.documents)], minlength=len(names))
+            line += " founders " + ", ".join(
+                f"{names[t]} {n}" for t, n in sorted(enumerate(topics), key=lambda x: -x[1]) if n
+            )
+        print(line, flush=True)
+    for group in np.unique(run.final):
+        topics = np.bincount(labels[run.final == group], minlength=len(names))
+        counts = ", ".join(f"{names[t]} {n}" for t, n in enumerate(topics) if n)
+        print(f"  final group {group}: {counts}", flush=True)
+
+
 def main(argv: list[str] | None = None) -> None:
     """Run the chosen cells and print one line per seed and the means."""
     from mixture.config import MixtureConfig
@@ -49,6 +72,9 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--seeds", type=int, nargs="+", default=[0])
     parser.add_argument("--batch", action="store_true", help="also batch EM on all documents")
     parser.add_argument("--off", action="store_true", help="lifecycle off")
+    parser.add_argument(
+        "--trace", action="store_true", help="print each event with its founders' topics"
+    )
     args = parser.parse_args(argv)
 
     stream = build_stream(args.stream)
@@ -70,6 +96,8 @@ def main(argv: list[str] | None = None) -> None:
         ari = adjusted_rand_score(stream.labels, run.final)
         events = ", ".join(f"{n} {kind}" for kind, n in run.event_counts().items())
         rows.append((arrival, end, ari, run.live_groups))
+        if args.trace:
+            print_trace(stream, run)
         print(
             f"{args.stream} K={k} start={start} seed {seed}: arrival {arrival:.3f} end {end:.3f} "
             f"ARI {ari:.3f} live {run.live_groups} events {events or '-'} "

@@ -2,10 +2,13 @@
 
 The operations (:func:`birth`, :func:`merge`, :func:`retire`) change a state's structure in
 place and return a :class:`GroupEvent`; :func:`run_due_decisions` decides, from the evidence in
-the state (mixture.novelty), which of them to apply, at most once per ``check_every_documents``
-learned documents. Groups are named by stable ids (``state.group_ids``: position -> id); an id
-is never given to another group, so an id that is gone (retired, or absorbed by a merge) stays
-gone. Positions are an internal detail and shift when a group leaves.
+the state (mixture.novelty), which of them to apply when the evidence window closes (at most
+every ``check_every_documents`` learned documents, or its token cadence); the birth test also
+runs between windows once the novelty buffer has gained ``birth_check_novel_documents`` new
+documents (a birth rests on the buffer's evidence, not the window's). Groups are named by
+stable ids (``state.group_ids``: position -> id); an id is never given to another group, so an
+id that is gone (retired, or absorbed by a merge) stays gone. Positions are an internal detail
+and shift when a group leaves.
 
 What each operation does to the statistics (stored as running averages times a scale; see
 mixture.stats), in count units:
@@ -39,7 +42,10 @@ Decisions, and the principle behind each (thresholds in mixture.lifecycle_config
   (:func:`components_log_bayes_factor` > 0, the same closed form, with the assignment term and
   a BIC penalty for the second group's weight): the split asks for four components whatever
   the buffer holds, and without the join one new topic gave several births at one decision
-  (BBC drift: sport born four times, filling the ceiling before the last topic came).
+  (BBC drift: sport born four times, filling the ceiling before the last topic came). When
+  the ceiling leaves less room than components passed, groups quiet (share under the
+  retirement floor) for at least one whole window are retired to make it: a documented new
+  topic outweighs one more window of waiting for a topic that stopped.
 
   Both sides are prequential scores (Dawid 1984): DM(C) is the product of the new group's
   predictive probabilities of C's documents, each given only the ones before it, and the
@@ -334,20 +340,32 @@ def seed_typicality(state: MixtureState, documents: sp.spmatrix) -> None:
 
 
 def run_due_decisions(state: MixtureState) -> list[GroupEvent]:
-    """Close the evidence window when it is full and apply the changes it calls for.
+    """Close the evidence window when it is full and apply the changes it calls for; between
+    windows, run the birth test alone when the buffer has gained enough new documents
+    (:func:`birth_check_is_due`).
 
-    Retirements first, then merges, then at most one birth. Cost: O(K^2) for the overlap,
+    Retirements first, then merges, then the births. Cost: O(K^2) for the overlap,
     O(V) per merge candidate, and a small batch-EM fit on the bounded novelty buffer.
 
     Returns
     -------
     list of GroupEvent
-        In the order applied (empty when the window is not full yet).
+        In the order applied (empty when the window is not full and no birth test is due).
     """
     config = state.config.lifecycle
     evidence = state.evidence
-    if evidence is None or not window_is_full(evidence, config, state.config.warmup_tokens):
+    if evidence is None:
         return []
+    if not window_is_full(evidence, config, state.config.warmup_tokens):
+        if not birth_check_is_due(evidence, config):
+            return []
+        # A birth rests on the buffer's evidence, not the window's: test it as soon as the
+        # buffer has gained enough new documents. Merges and retirements wait for the window.
+        apply_held_scale(state)  # a birth takes counts out of the columns: make them exact
+        events = _births_from_buffer(state, evidence, config)
+        assert state.evidence is not None
+        state.evidence.births_checked_at = state.documents_learned
+        return events
     apply_held_scale(state)
     events: list[GroupEvent] = []
     events += _retirements(state, evidence, config)
@@ -360,7 +378,16 @@ def run_due_decisions(state: MixtureState) -> list[GroupEvent]:
     evidence.window_documents = 0.0
     evidence.window_tokens = 0.0
     evidence.window_start = state.documents_learned
+    evidence.births_checked_at = state.documents_learned
     return events
+
+
+def birth_check_is_due(evidence: GroupEvidence, config: LifecycleConfig) -> bool:
+    """Whether the novelty buffer gained enough documents since the last birth test for
+    another one before the window closes (``lifecycle.birth_check_novel_documents``; none
+    before the first window after the warm-up has closed)."""
+    every = config.birth_check_every()
+    return every > 0 and evidence.novel_since_birth_check() >= every
 
 
 def window_is_full(evidence: GroupEvidence, config: LifecycleConfig, warmup_tokens: int) -> bool:
@@ -563,12 +590,15 @@ def _births_from_buffer(
 ) -> list[GroupEvent]:
     """Every component of the buffer's local fit whose ln BF passes becomes a group (the
     largest first, up to the ceiling). The components are disjoint sets of documents, so
-    each test stands on its own evidence."""
+    each test stands on its own evidence. When the ceiling leaves less room than components
+    passed, groups quiet for at least one whole window (:func:`_yielding_groups`) are retired
+    first to make it."""
     evidence.forget_older_than(state.documents_learned - config.buffer_horizon_documents)
     buffered = evidence.buffer_counts(state.capacity)
     room = config.ceiling(state.config.n_groups) - state.n_groups
     n_buffered = buffered.shape[0]
-    if room <= 0 or n_buffered < config.birth_min_documents:
+    yielding = _yielding_groups(state, evidence)
+    if room + len(yielding) <= 0 or n_buffered < config.birth_min_documents:
         return []
     labels = _split_buffer(state, buffered, config)
     labels = join_components(buffered, labels, state)
@@ -587,8 +617,28 @@ def _births_from_buffer(
             passed.append((score, members))
     passed.sort(key=lambda item: -item[0])
     events = []
+    # Under a full ceiling, quiet groups give their places to the strongest components.
+    for group_id in yielding[: max(len(passed) - room, 0)]:
+        windows = int(evidence.quiet_windows[position_of(state, group_id)])
+        events.append(
+            retire(
+                state,
+                group_id,
+                reason=(
+                    f"posterior share under the floor {config.retire_share:g} for {windows} "
+                    "whole window(s), and a new group needs its place under the ceiling of "
+                    f"{config.ceiling(state.config.n_groups)}"
+                ),
+                evidence={
+                    "quiet_windows": float(windows),
+                    "floor": config.retire_share,
+                    "yielded_to_birth": 1.0,
+                },
+            )
+        )
+    room = config.ceiling(state.config.n_groups) - state.n_groups
     keep = np.ones(n_buffered, dtype=bool)
-    for score, members in passed[:room]:
+    for score, members in passed[: max(room, 0)]:
         ordinals = tuple(int(x) for x in evidence.buffer_ordinals[members])
         events.append(
             birth(
@@ -603,10 +653,31 @@ def _births_from_buffer(
             )
         )
         keep[members] = False
-    if events:
+    if not keep.all():
         assert state.evidence is not None
         state.evidence.keep_buffered(keep)
     return events
+
+
+def _yielding_groups(state: MixtureState, evidence: GroupEvidence) -> list[int]:
+    """Ids of the groups that may give their place under the ceiling to a birth.
+
+    Quiet (posterior share under ``retire_share``) for at least one whole window, holding no
+    labelled documents; the least mass in the current window first; never all groups. The
+    retirement rule waits ``retire_windows`` quiet windows because retiring a live group for
+    nothing loses it; here the alternative is a component that passed the birth test, so one
+    quiet window is enough for the quiet group to give way (a ceiling of live groups spent
+    on a topic that has stopped, while a documented new one waits, is the worse use).
+    """
+    assert state.group_ids is not None
+    quiet = np.flatnonzero(evidence.quiet_windows >= 1)
+    quiet = quiet[np.argsort(evidence.window_mass[quiet], kind="stable")]
+    ids = [
+        int(state.group_ids[g])
+        for g in quiet
+        if not state.labelled.holds_group(int(state.group_ids[g]))
+    ]
+    return ids[: state.n_groups - 1]
 
 
 def components_log_bayes_factor(

@@ -13,7 +13,8 @@ Per group, and updated after every stepwise unit in O(words in the unit x K):
   memberships follows; the count of whole quiet windows in a row;
 - the novelty buffer: the counts of recent documents their MAP group explains poorly (far below
   its typicality, or mostly words never seen before), with their stream positions (ordinals),
-  bounded in size and age.
+  bounded in size and age, and the stream position of the last birth test (the buffered
+  documents after it are the evidence a birth test between windows waits for).
 
 Everything here is part of the checkpointed state (mixture.serialize), so the lifecycle is a
 function of the stream alone. :func:`dirichlet_multinomial_log_marginal` is the closed form the
@@ -121,6 +122,10 @@ class GroupEvidence:
     window_tokens : float
         Tokens of the documents in the current window (the token cadence,
         ``lifecycle.check_every_tokens``).
+    births_checked_at : int
+        Stream position of the last birth test: the buffered documents at or after it are
+        the evidence the test has not seen (``lifecycle.birth_check_novel_documents``). -1
+        until the first window closes (no birth test between windows before that).
     quiet_windows : ndarray (K,) int64
         Whole windows in a row with a posterior share under ``retire_share``.
     born_at : ndarray (K,) int64
@@ -155,6 +160,7 @@ class GroupEvidence:
     buffer_log_lik: np.ndarray = field(default_factory=lambda: np.zeros(0))
     held_log_scale: np.ndarray | None = None
     window_tokens: float = 0.0
+    births_checked_at: int = -1
 
     def __post_init__(self) -> None:
         if self.held_log_scale is None:
@@ -172,6 +178,7 @@ class GroupEvidence:
             window_shared=np.zeros((k, k)),
             window_documents=0.0,
             window_start=int(start),
+            births_checked_at=-1,
             quiet_windows=np.zeros(k, dtype=np.int64),
             born_at=np.zeros(k, dtype=np.int64),
             buffer=sp.csr_matrix((0, capacity)),
@@ -251,6 +258,13 @@ class GroupEvidence:
         """Drop buffered documents whose stream position is below ``position``."""
         if self.buffer_ordinals.size and self.buffer_ordinals[0] < position:
             self.keep_buffered(self.buffer_ordinals >= position)
+
+    def novel_since_birth_check(self) -> int:
+        """Buffered documents that arrived since the last birth test (0 before the first
+        window closed)."""
+        if self.births_checked_at < 0:
+            return 0
+        return int(np.count_nonzero(self.buffer_ordinals >= self.births_checked_at))
 
     def buffer_counts(self, capacity: int) -> sp.csr_matrix:
         """The buffer widened to the vocabulary's capacity."""
@@ -342,7 +356,13 @@ class GroupEvidence:
             "window_mass": self.window_mass,
             "window_shared": self.window_shared,
             "window": np.asarray(
-                [self.window_documents, self.window_start, self.window_tokens], dtype=np.float64
+                [
+                    self.window_documents,
+                    self.window_start,
+                    self.window_tokens,
+                    self.births_checked_at,
+                ],
+                dtype=np.float64,
             ),
             "quiet_windows": self.quiet_windows.astype(np.int64),
             "born_at": self.born_at.astype(np.int64),
@@ -374,6 +394,9 @@ class GroupEvidence:
             window_start=int(window[1]),
             # States written before the token cadence: no tokens counted in the window yet.
             window_tokens=float(window[2]) if window.size > 2 else 0.0,
+            # States written before births were tested between windows: last tested at the
+            # window's start.
+            births_checked_at=int(window[3]) if window.size > 3 else int(window[1]),
             quiet_windows=np.array(arrays["quiet_windows"], dtype=np.int64),
             born_at=np.array(arrays["born_at"], dtype=np.int64),
             buffer=buffer,

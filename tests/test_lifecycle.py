@@ -203,7 +203,9 @@ def test_the_buffer_keeps_each_documents_score_at_arrival():
     (scipy's logsumexp over the parameters of a copy taken before the unit), not under the
     mixture that has since absorbed it."""
     stream = TopicStream(4, seed=7)
-    config = MixtureConfig(**OLD_WARM_UP, n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
+    # Births only at the window's end (3,072), so the new topic's documents stay buffered.
+    lifecycle = LifecycleConfig(enabled=True, birth_check_novel_documents=0)
+    config = MixtureConfig(**OLD_WARM_UP, n_groups=3, n_restarts=1, lifecycle=lifecycle)
     learner = OnlineLearner(config, seed=0)
     _learn(learner, stream.messages(stream.labels(2560, [0, 1, 2])))
     before = learner.state.copy()
@@ -282,6 +284,10 @@ def test_lifecycle_settings_are_validated_and_nested():
     assert MixtureConfig.from_dict(json.loads(json.dumps(config.to_dict()))) == config
     assert MixtureConfig.from_dict({"n_groups": 3}).lifecycle == LifecycleConfig()
     assert LifecycleConfig().ceiling(4) == 8
+    with pytest.raises(ConfigError, match=r"lifecycle\.birth_check_novel_documents"):
+        LifecycleConfig(birth_check_novel_documents=-1)
+    assert LifecycleConfig().birth_check_every() == LifecycleConfig().birth_min_documents
+    assert LifecycleConfig(birth_check_novel_documents=0).birth_check_every() == 0
 
 
 # ---- serialisation ---------------------------------------------------------------------------
@@ -354,6 +360,27 @@ def test_a_buffer_saved_without_arrival_scores_reads_them_as_unknown():
     assert np.isnan(read.evidence.buffer_log_lik).all()
 
 
+def test_a_window_saved_before_births_between_windows_reads_its_start_as_the_last_test():
+    """Bytes whose evidence window holds three numbers (written before the birth test ran
+    between windows): the last birth test is taken to be the window's start."""
+    stream = TopicStream(4, seed=5)
+    labels = np.concatenate([stream.labels(2600, [0, 1, 2]), stream.labels(300, [3])])
+    config = MixtureConfig(**OLD_WARM_UP, n_groups=3, n_restarts=1, lifecycle=LIFECYCLE_ON)
+    learner = OnlineLearner(config, seed=0)
+    _learn(learner, stream.messages(labels))
+    data = state_to_bytes(learner.state)
+    with np.load(io.BytesIO(data[42:]), allow_pickle=False) as archive:
+        arrays = {name: archive[name] for name in archive.files}
+    assert arrays["life.window"].size == 4
+    arrays["life.window"] = arrays["life.window"][:3]
+    buffer = io.BytesIO()
+    np.savez(buffer, allow_pickle=False, **arrays)
+    payload = buffer.getvalue()
+    older = struct.pack("<8sH32s", MAGIC, 2, hashlib.sha256(payload).digest()) + payload
+    read = state_from_bytes(older)
+    assert read.evidence.births_checked_at == learner.state.evidence.window_start
+
+
 def test_the_lifecycle_is_a_function_of_the_stream():
     """Saved and loaded between units (as the worker checkpoints), the stream gives the same
     state bytes and the same events as one uninterrupted run: the checkpoint holds everything
@@ -399,6 +426,48 @@ def test_a_new_topic_gets_a_group_and_its_messages_route_there():
     in_new_group = routed == born.groups[0]
     assert (new_topic & in_new_group).sum() / in_new_group.sum() >= 0.9  # purity
     assert (new_topic & in_new_group).sum() / new_topic.sum() >= 0.9  # recall
+
+
+@pytest.mark.parametrize("seed", [0, 1])
+def test_a_new_topic_is_born_before_the_window_closes(seed):
+    """A topic appearing at message 4,200, early in the window 4,096-5,120: the birth test
+    runs once the buffer has gained ``birth_min_documents`` novel messages, so the birth comes
+    within 408 messages (the next two units of 256), not at the window's end (5,120, where
+    births wait with ``birth_check_novel_documents=0``)."""
+    stream = TopicStream(6, seed=seed)
+    old = [0, 1, 2, 3]
+    labels = np.concatenate([stream.labels(4200, old), stream.labels(2800, [*old, 4])])
+    texts = stream.messages(labels)
+    positions = {}
+    for every in (None, 0):
+        lifecycle = LifecycleConfig(enabled=True, birth_check_novel_documents=every)
+        learner = OnlineLearner(
+            MixtureConfig(**OLD_WARM_UP, n_groups=4, lifecycle=lifecycle), seed=seed
+        )
+        events = _learn(learner, texts)
+        assert [e.kind for e in events] == [BIRTH]
+        positions[every] = events[0].position
+        assert np.mean(labels[list(events[0].documents)] == 4) >= 0.9
+    assert 4200 < positions[None] <= 4608
+    assert positions[0] == 5120
+
+
+def test_no_birth_test_between_windows_before_the_first_window_closes():
+    """Right after the warm-up the typicality is seeded from the warm-up fit's own documents
+    (in-sample), so the buffer is not yet evidence for a birth between windows: the counter
+    of new buffered documents stays at 0 until the first window closes. The price, shown
+    here: a topic that starts at the warm-up's end (message 1,000) is born when the first
+    window closes (2,048), where without the rule it was born at 1,024."""
+    stream = TopicStream(6, seed=0)
+    labels = np.concatenate([stream.labels(1000, [0, 1, 2, 3]), stream.labels(1500, [4])])
+    learner = OnlineLearner(MixtureConfig(**OLD_WARM_UP, n_groups=4, lifecycle=LIFECYCLE_ON))
+    assert _learn(learner, stream.messages(labels[:1792])) == []
+    evidence = learner.state.evidence
+    assert evidence.buffer_ordinals.size >= 2 * LIFECYCLE_ON.birth_min_documents
+    assert evidence.births_checked_at == -1 and evidence.novel_since_birth_check() == 0
+    events = _learn(learner, stream.messages(labels[1792:]))
+    assert [e.kind for e in events][:1] == [BIRTH]
+    assert events[0].position == learner.state.evidence.window_start == 2048
 
 
 def test_a_topic_that_stops_is_retired():
@@ -484,6 +553,38 @@ def test_the_ceiling_stops_births():
     learner = OnlineLearner(MixtureConfig(**OLD_WARM_UP, n_groups=3, lifecycle=capped), seed=0)
     assert _learn(learner, stream.messages(labels)) == []
     assert learner.state.n_groups == 3
+
+
+def test_a_quiet_group_gives_its_place_under_the_ceiling_to_a_new_topic():
+    """Ceiling 4, four topics; at message 3,000 topic 3 stops and topic 4 starts. The group of
+    topic 3 is quiet for one whole window by the decision at 4,096 and gives its place there:
+    the retirement and the birth come one window before the two-window retirement rule
+    alone would make room (5,120 without the yield), and topic 4's later messages route to
+    the new group."""
+    stream = TopicStream(6, seed=0)
+    labels = np.concatenate([stream.labels(3000, [0, 1, 2, 3]), stream.labels(4000, [0, 1, 2, 4])])
+    texts = stream.messages(labels)
+    capped = LifecycleConfig(enabled=True, max_groups=4)
+    learner = OnlineLearner(MixtureConfig(**OLD_WARM_UP, n_groups=4, lifecycle=capped), seed=0)
+    assert _learn(learner, texts[:3072]) == []  # units of 256, as in one pass
+    topic_3_group = np.bincount(
+        learner.state.group_ids[route_texts(learner.state, texts[2000:3000]).group][
+            labels[2000:3000] == 3
+        ]
+    ).argmax()
+    events = _learn(learner, texts[3072:])
+    assert [e.kind for e in events] == [RETIRE, BIRTH]
+    retired, born = events
+    assert retired.position == born.position <= 4096
+    assert retired.groups == (topic_3_group,)
+    assert retired.evidence["yielded_to_birth"] == 1.0
+    assert learner.state.n_groups == 4
+    later = np.arange(5000, 7000)
+    routed = learner.state.group_ids[route_texts(learner.state, [texts[i] for i in later]).group]
+    new_topic = labels[later] == 4
+    in_new_group = routed == born.groups[0]
+    assert (new_topic & in_new_group).sum() / in_new_group.sum() >= 0.9  # purity
+    assert (new_topic & in_new_group).sum() / new_topic.sum() >= 0.9  # recall
 
 
 def test_vocabulary_pruning_keeps_the_buffer_on_the_vocabulary():
