@@ -39,6 +39,8 @@ from state.connection import is_cluster
 from state.stream import ZERO_ID, parse_stream_id
 
 RawEntry = tuple[bytes, list[bytes]]  # really [id, [field, value, ...]] as sent by Redis
+# PageReader.pump reads at most this many pieces a call, so one call stays short.
+_PUMP_PIECES = 16
 
 
 @dataclass(frozen=True)
@@ -156,6 +158,39 @@ class PageReader:
             self._failed()
             raise
         self._ahead = after
+
+    def pump(self) -> int:
+        """Take what the server has sent so far of the read sent ahead, without waiting.
+
+        The bytes go into the connection's reply parser, where :meth:`read` finds them; the
+        reply is still taken (or discarded) as a whole by :meth:`read` and :meth:`drop`. Why:
+        the server writes a reply of a few hundred kilobytes in pieces of 64 KiB and, over a
+        unix socket, writes the next piece only once the client has read most of the last
+        (the socket counts a small send buffer), so a reply read ahead but left unread stalls
+        after its first piece while Python learns. Calling this between units keeps it
+        flowing. A connection whose parser cannot read without waiting (not hiredis) is left
+        alone; a failure drops the connection (the read sent ahead with it), so the next
+        :meth:`read` starts afresh from its cursor.
+
+        Returns
+        -------
+        int
+            The pieces taken from the socket (0 when nothing was waiting).
+        """
+        if self._ahead is None or self._connection is None:
+            return 0
+        parser = getattr(self._connection, "_parser", None)
+        read_some = getattr(parser, "read_from_socket", None)  # hiredis' parser only
+        if read_some is None or getattr(parser, "_sock", None) is None:
+            return 0
+        pieces = 0
+        try:
+            # at most a reply's worth of pieces (each up to the parser's read size)
+            while pieces < _PUMP_PIECES and read_some(timeout=0, raise_on_timeout=False):
+                pieces += 1
+        except (redis.RedisError, OSError):  # a broken connection: read() reconnects
+            self._failed()
+        return pieces
 
     @property
     def ahead(self) -> bool:

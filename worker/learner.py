@@ -780,6 +780,7 @@ class Worker:
             before = warm_up_progress(state).documents if warming else 0
             forgetting_before = float(state.log_forgetting)
             report = self.learner.learn(texts)  # type: ignore[arg-type]
+            self.reader.pump()  # keep the page read ahead coming in (PageReader.pump)
             self._record_units(texts, cut, report, warming, before, forgetting_before)  # type: ignore[arg-type]
             if report.provisional_fits or (warming and report.warmed_up):
                 self._fit_to_serve = True  # a provisional or the warm-up fit: serve it soon
