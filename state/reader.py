@@ -197,11 +197,18 @@ class PageReader:
         """True while a read sent ahead waits to be taken (or discarded)."""
         return self._ahead is not None
 
-    def read(self, after: str, block: int) -> list[RawEntry]:
+    def read(self, after: str, block: int, give_up: float | None = None) -> list[RawEntry]:
         """The next page after ``after`` (waiting up to ``block`` ms; [] when none came).
 
         A read sent ahead for the same cursor answers, if it found entries; one sent for
         another cursor is discarded with the connection.
+
+        ``give_up`` (seconds, by this process's clock) bounds the wait more tightly: Redis
+        ends a BLOCK that saw nothing only at its next timer tick (every 1000/hz ms, 100 ms
+        at the default hz of 10), so a 50 ms BLOCK can last 150 ms. When the reply has not
+        come by then, the connection is dropped with the read unanswered (an XREAD changes
+        nothing, so nothing is lost: the next read asks again from its cursor) and [] is
+        returned.
         """
         if self._ahead is not None:
             if self._ahead != after:
@@ -222,7 +229,21 @@ class PageReader:
         except BaseException:
             self._failed()
             raise
-        return self._reply(self._response())
+        if give_up is None or block <= 0:
+            return self._reply(self._response())
+        connection = self._connection
+        sock = connection._sock  # connected by send_command
+        sock.settimeout(max(give_up, 0.001))
+        try:
+            reply = connection.read_response()
+        except redis.TimeoutError:  # our own bound, not a failure of the server
+            self.drop()
+            return []
+        except BaseException:
+            self._failed()
+            raise
+        sock.settimeout(connection.socket_timeout)
+        return self._reply(reply)
 
     def _response(self) -> Any:
         """The reply of the command sent last (a failure drops the connection)."""

@@ -460,3 +460,25 @@ def test_a_pump_on_a_broken_connection_drops_the_read_ahead(
     expected = [e[0] for e in redis_client.xrange(key, min=f"({cursor}", count=10)]
     assert [entry[0] for entry in reader.read(cursor, 0)] == expected
     reader.close()
+
+
+def test_a_read_gives_up_by_the_clients_clock_and_loses_nothing(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    # A BLOCK of 10 s with give_up=0.05: the read comes back empty long before Redis would
+    # answer, with the connection dropped (the blocked XREAD is left unanswered); an entry
+    # queued after that is the next read's page (XRANGE with an exclusive start, as above).
+    from state.reader import PageReader
+
+    store = create_model(redis_client, model_name)
+    store.enqueue(ferry_texts(3, seed=8))
+    key = store.keys.docs
+    reader = PageReader(redis_client, key, 10)
+    last = store.last_stream_id()
+    assert reader.read(last, 10_000, give_up=0.05) == []
+    assert reader._connection._sock is None  # given up by us, not answered by Redis
+    (new_id,) = store.enqueue(["ticket refund please"]).stream_ids
+    assert [entry[0].decode() for entry in reader.read(last, 10_000, give_up=5.0)] == [new_id]
+    expected = [e[0] for e in redis_client.xrange(key, min=f"({last}", count=10)]
+    assert [entry[0] for entry in reader.read(last, 0)] == expected
+    reader.close()

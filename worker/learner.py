@@ -567,9 +567,14 @@ class Worker:
         """Read one page after the cursor, learn its full units."""
         opts = self.options
         block = opts.read_block_ms
+        give_up = None
         if self._pending.documents and opts.flush_partial_seconds is not None:
             block = min(block, max(int(opts.flush_partial_seconds * 1000), 1))
-        entries = self.reader.read(self.cursor, block)
+            # wait no longer than until the partial unit is due (Redis' own BLOCK timeout
+            # comes up to 1000/hz ms late: PageReader.read)
+            since = time.monotonic() - self._last_arrival
+            give_up = max(opts.flush_partial_seconds - since, 0.001)
+        entries = self.reader.read(self.cursor, block, give_up)
         learned = 0
         if len(entries) == opts.read_count:
             # a full page: more is likely waiting; Redis answers the next read while this
