@@ -482,3 +482,44 @@ def test_a_read_gives_up_by_the_clients_clock_and_loses_nothing(
     expected = [e[0] for e in redis_client.xrange(key, min=f"({last}", count=10)]
     assert [entry[0] for entry in reader.read(last, 0)] == expected
     reader.close()
+
+
+def test_the_version_is_read_once_per_block_time_through_a_backlog(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    # Through full pages the version and config are read once per read_block_ms, not per
+    # page; once caught up (a short page) every step reads them, so a rollback made while
+    # idle is noticed at the next step (the worker reloads: its version moves to the
+    # rollback's). With read_block_ms=0 every step reads them, backlog or not.
+    config = small_config()
+    store = create_model(redis_client, model_name, config, fast_options(read_count=20))
+    store.enqueue(ferry_texts(config.warmup_documents + 400, seed=9))
+    # a long block time (a full page never waits for it), the default's order of magnitude
+    worker = Worker(
+        redis_client, model_name, options=fast_options(read_count=20, read_block_ms=3000)
+    )
+    checks = []
+    same_version = worker._same_version
+    worker._same_version = lambda: checks.append(1) or same_version()  # type: ignore[method-assign]
+    for _ in range(10):  # loads, then full pages of 20
+        worker.run_once()
+    assert worker._backlog and len(checks) <= 1
+    worker.options = fast_options(read_count=20)  # idle steps below wait 50 ms, not 3 s
+    while worker._backlog:
+        worker.run_once()
+    worker.checkpoint()
+    snapshot = store.create_snapshot("idle")
+    worker.run_once()  # caught up: a short page (or none) after a check
+    before = len(checks)
+    rolled = store.rollback(snapshot.id, replay=False)
+    worker.run_once()
+    assert len(checks) == before + 1 and worker.version == rolled.version
+
+    worker.options = fast_options(read_count=20, read_block_ms=0)
+    store.enqueue(ferry_texts(200, seed=10))
+    before = len(checks)
+    for _ in range(5):
+        worker.run_once()
+    assert len(checks) == before + 5
+    worker.stop()
+    worker.run()
