@@ -129,6 +129,7 @@ class PageReader:
         self._connection: Any = None
         self._connection = self._connect()
         self._ahead: str | None = None  # the cursor of a read sent ahead, its reply unread
+        self._pumping = True  # False once the parser refused pump's call (see pump)
 
     def _connect(self) -> Any:
         """A new connection to the server of the stream (for a cluster: of its slot now)."""
@@ -181,13 +182,15 @@ class PageReader:
             return 0
         parser = getattr(self._connection, "_parser", None)
         read_some = getattr(parser, "read_from_socket", None)  # hiredis' parser only
-        if read_some is None or getattr(parser, "_sock", None) is None:
+        if not self._pumping or read_some is None or getattr(parser, "_sock", None) is None:
             return 0
         pieces = 0
         try:
             # at most a reply's worth of pieces (each up to the parser's read size)
             while pieces < _PUMP_PIECES and read_some(timeout=0, raise_on_timeout=False):
                 pieces += 1
+        except TypeError:  # a redis-py whose parser reads otherwise: no pumping, as before
+            self._pumping = False
         except (redis.RedisError, OSError):  # a broken connection: read() reconnects
             self._failed()
         return pieces

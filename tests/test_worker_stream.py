@@ -523,3 +523,26 @@ def test_the_version_is_read_once_per_block_time_through_a_backlog(
     assert len(checks) == before + 5
     worker.stop()
     worker.run()
+
+
+def test_a_parser_that_cannot_be_pumped_leaves_the_read_ahead_as_it_was(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    # A parser whose read_from_socket takes other arguments (another redis-py): the pump
+    # stops trying and the read sent ahead is taken by read() as before pumping existed
+    # (the page after the cursor: XRANGE with an exclusive start, as above).
+    from state.reader import PageReader, last_id_of
+
+    store = create_model(redis_client, model_name)
+    store.enqueue(ferry_texts(40, seed=11))
+    key = store.keys.docs
+    reader = PageReader(redis_client, key, 10)
+    cursor = last_id_of(reader.read("0-0", 0))
+    reader.send_ahead(cursor)
+    parser = reader._connection._parser
+    parser.read_from_socket = lambda: True  # no keyword arguments
+    assert reader.pump() == 0 and reader.pump() == 0 and reader.ahead
+    del parser.read_from_socket
+    expected = [e[0] for e in redis_client.xrange(key, min=f"({cursor}", count=10)]
+    assert [entry[0] for entry in reader.read(cursor, 0)] == expected
+    reader.close()
