@@ -21,7 +21,9 @@ only when it asks for the same cursor, and drops the connection (discarding the 
 otherwise. An XREAD changes nothing in Redis, so a page read ahead and never used costs a
 read and nothing else: what is learned and checkpointed is decided by the worker's cursor
 alone, as before. (It measured no gain once, when learning cost far more than reading: see
-bench/README.md for the figures since.)
+bench/README.md for the figures since.) :meth:`PageReader.pump`, called between units, keeps
+that reply coming in while Python learns; ``give_up`` bounds a blocking read by this process's
+clock.
 
 :func:`stream_counts` reads ``XINFO STREAM``'s counters (``entries-added`` and
 ``max-deleted-entry-id`` exist from Redis 7 on; None before), which tell whether entries
