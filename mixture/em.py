@@ -59,12 +59,19 @@ Progress = Callable[[int, int], None]
 def validate_counts(counts: sp.spmatrix | np.ndarray) -> sp.csr_matrix:
     """Check a document-term count matrix and return it as CSR float64.
 
+    A ``csr_matrix`` of float64 is returned itself (its duplicates summed in place); any
+    other input as a new CSR matrix.
+
     Raises
     ------
     InputError
         For a matrix that is not 2-D, is empty, or holds negative or non-finite counts.
     """
-    if sp.issparse(counts):
+    if type(counts) is sp.csr_matrix and counts.dtype == np.float64:
+        # already CSR float64 (count_texts' output, the learning path): taken as it is, as
+        # wrapping it again shared its arrays anyway and only cost a construction a unit
+        matrix = counts
+    elif sp.issparse(counts):
         matrix = sp.csr_matrix(counts, dtype=np.float64)
     else:
         array = np.asarray(counts, dtype=np.float64)

@@ -21,7 +21,9 @@ only when it asks for the same cursor, and drops the connection (discarding the 
 otherwise. An XREAD changes nothing in Redis, so a page read ahead and never used costs a
 read and nothing else: what is learned and checkpointed is decided by the worker's cursor
 alone, as before. (It measured no gain once, when learning cost far more than reading: see
-bench/README.md for the figures since.)
+bench/README.md for the figures since.) :meth:`PageReader.pump`, called between units, keeps
+that reply coming in while Python learns; ``give_up`` bounds a blocking read by this process's
+clock.
 
 :func:`stream_counts` reads ``XINFO STREAM``'s counters (``entries-added`` and
 ``max-deleted-entry-id`` exist from Redis 7 on; None before), which tell whether entries
@@ -39,6 +41,8 @@ from state.connection import is_cluster
 from state.stream import ZERO_ID, parse_stream_id
 
 RawEntry = tuple[bytes, list[bytes]]  # really [id, [field, value, ...]] as sent by Redis
+# PageReader.pump reads at most this many pieces a call, so one call stays short.
+_PUMP_PIECES = 16
 
 
 @dataclass(frozen=True)
@@ -127,6 +131,7 @@ class PageReader:
         self._connection: Any = None
         self._connection = self._connect()
         self._ahead: str | None = None  # the cursor of a read sent ahead, its reply unread
+        self._pumping = True  # False once the parser refused pump's call (see pump)
 
     def _connect(self) -> Any:
         """A new connection to the server of the stream (for a cluster: of its slot now)."""
@@ -157,16 +162,58 @@ class PageReader:
             raise
         self._ahead = after
 
+    def pump(self) -> int:
+        """Take what the server has sent so far of the read sent ahead, without waiting.
+
+        The bytes go into the connection's reply parser, where :meth:`read` finds them; the
+        reply is still taken (or discarded) as a whole by :meth:`read` and :meth:`drop`. Why:
+        the server writes a reply of a few hundred kilobytes in pieces of 64 KiB and, over a
+        unix socket, writes the next piece only once the client has read most of the last
+        (the socket counts a small send buffer), so a reply read ahead but left unread stalls
+        after its first piece while Python learns. Calling this between units keeps it
+        flowing. A connection whose parser cannot read without waiting (not hiredis) is left
+        alone; a failure drops the connection (the read sent ahead with it), so the next
+        :meth:`read` starts afresh from its cursor.
+
+        Returns
+        -------
+        int
+            The pieces taken from the socket (0 when nothing was waiting).
+        """
+        if self._ahead is None or self._connection is None:
+            return 0
+        parser = getattr(self._connection, "_parser", None)
+        read_some = getattr(parser, "read_from_socket", None)  # hiredis' parser only
+        if not self._pumping or read_some is None or getattr(parser, "_sock", None) is None:
+            return 0
+        pieces = 0
+        try:
+            # at most a reply's worth of pieces (each up to the parser's read size)
+            while pieces < _PUMP_PIECES and read_some(timeout=0, raise_on_timeout=False):
+                pieces += 1
+        except TypeError:  # a redis-py whose parser reads otherwise: no pumping, as before
+            self._pumping = False
+        except (redis.RedisError, OSError):  # a broken connection: read() reconnects
+            self._failed()
+        return pieces
+
     @property
     def ahead(self) -> bool:
         """True while a read sent ahead waits to be taken (or discarded)."""
         return self._ahead is not None
 
-    def read(self, after: str, block: int) -> list[RawEntry]:
+    def read(self, after: str, block: int, give_up: float | None = None) -> list[RawEntry]:
         """The next page after ``after`` (waiting up to ``block`` ms; [] when none came).
 
         A read sent ahead for the same cursor answers, if it found entries; one sent for
         another cursor is discarded with the connection.
+
+        ``give_up`` (seconds, by this process's clock) bounds the wait more tightly: Redis
+        ends a BLOCK that saw nothing only at its next timer tick (every 1000/hz ms, 100 ms
+        at the default hz of 10), so a 50 ms BLOCK can last 150 ms. When the reply has not
+        come by then, the connection is dropped with the read unanswered (an XREAD changes
+        nothing, so nothing is lost: the next read asks again from its cursor) and [] is
+        returned.
         """
         if self._ahead is not None:
             if self._ahead != after:
@@ -187,7 +234,21 @@ class PageReader:
         except BaseException:
             self._failed()
             raise
-        return self._reply(self._response())
+        if give_up is None or block <= 0:
+            return self._reply(self._response())
+        connection = self._connection
+        sock = connection._sock  # connected by send_command
+        sock.settimeout(max(give_up, 0.001))
+        try:
+            reply = connection.read_response()
+        except redis.TimeoutError:  # our own bound, not a failure of the server
+            self.drop()
+            return []
+        except BaseException:
+            self._failed()
+            raise
+        sock.settimeout(connection.socket_timeout)
+        return self._reply(reply)
 
     def _response(self) -> Any:
         """The reply of the command sent last (a failure drops the connection)."""

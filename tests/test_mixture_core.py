@@ -517,3 +517,22 @@ def test_js_divergence_is_zero_where_scipy_rounds_below_zero():
     else:
         pytest.fail("no rounding case found")
     assert js_divergence(p, q) == pytest.approx(0.0, abs=1e-15)
+
+
+def test_validate_counts_takes_a_float64_csr_as_it_is() -> None:
+    # The learning path's count matrices are CSR float64 already: no new matrix a unit. Its
+    # duplicates are still summed and its indices sorted (compared with the dense matrix,
+    # numpy's own sum of the same entries); other inputs give a new CSR float64 matrix.
+    from mixture.em import validate_counts
+
+    data, indices, indptr = np.array([1.0, 2.0, 1.0]), np.array([2, 0, 2]), np.array([0, 3])
+    messy = sp.csr_matrix((data, indices, indptr), shape=(1, 4))
+    dense = messy.toarray()
+    checked = validate_counts(messy)
+    assert checked is messy
+    assert checked.has_canonical_format and np.array_equal(checked.toarray(), dense)
+    assert checked.indices.tolist() == [0, 2] and checked.data.tolist() == [2.0, 2.0]
+    as_int = sp.csr_matrix(dense.astype(np.int64))
+    converted = validate_counts(as_int)
+    assert converted is not as_int and converted.dtype == np.float64
+    assert np.array_equal(converted.toarray(), dense)

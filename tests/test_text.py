@@ -22,6 +22,7 @@ from mixture.tokenizer import (
     URL_TOKEN,
     Tokenizer,
     TokenizerConfig,
+    _ascii_word_runs,
 )
 from mixture.vocabulary import Vocabulary
 
@@ -609,6 +610,69 @@ def test_joined_batch_pass_at_text_edges(texts: list[str]) -> None:
     # URLs and addresses at the end or start of a text must not run into the next one; a
     # text holding the separator itself takes the per-text path.
     _assert_same_as_text_by_text(texts)
+
+
+# ASCII text heavy in the characters where the token pattern joins or splits: letters of both
+# cases, digits, apostrophes, the digit separators, underscores, hyphens, whitespace and
+# control characters (\x1c-\x1f are whitespace to str.split, not to the pattern's word class).
+_ASCII_EDGES = st.text(alphabet="aZ09 '.,:-_@/\t\n\x1c\x1f\x7f!", max_size=40)
+
+
+@settings(max_examples=500, deadline=None)
+@given(_ASCII_EDGES)
+def test_ascii_fast_path_gives_the_patterns_matches(text: str) -> None:
+    # Property check (no outside source): the byte-level split must be a pure speed-up of
+    # the regex scan, the same raw tokens in the same order whenever it answers.
+    tokenizer = Tokenizer()
+    reference = tokenizer._find_all(text)
+    runs = _ascii_word_runs(text)
+    assert runs is None or runs == reference
+    assert tokenizer.find_raw_tokens(text) == reference
+
+
+@pytest.mark.parametrize(
+    ("text", "takes_fast_path"),
+    [
+        ("lost bag on deck 4, call me?", True),
+        ("seat-12 (window) _url_ x\x1fy", True),
+        ("the 18.30 sailing", False),  # a number with a separator: joined by the pattern
+        ("10:45", False),
+        ("the dog's crate", False),  # an apostrophe inside a word
+        ("'quoted' 12. .5 a' 'b", True),  # apostrophes and separators that join nothing
+        ("café", False),  # not ASCII: the pattern itself
+    ],
+)
+def test_ascii_fast_path_is_taken_when_no_join_applies(text: str, takes_fast_path: bool) -> None:
+    tokenizer = Tokenizer()
+    assert (text.isascii() and _ascii_word_runs(text) is not None) is takes_fast_path
+    assert tokenizer.find_raw_tokens(text) == tokenizer._find_all(text)
+
+
+def test_ascii_fast_path_counts_equal_the_regex_path_on_the_bench_corpora() -> None:
+    # Bit-identical counts with and without the fast path on the texts of bench_worker and
+    # bench_text (their generators, a few hundred documents each), batch and text by text.
+    from bench.bench_text import make_texts
+    from bench.bench_worker import short_messages
+
+    corpora = [
+        short_messages(600, seed=3),
+        make_texts(300, 30, seed=1),
+        make_texts(40, 400, seed=2),
+        make_texts(300, 30, seed=4, script="cyrillic"),
+        INBOX,
+    ]
+    for texts in corpora:
+        fast_tokenizer, regex_tokenizer = Tokenizer(), Tokenizer()
+        regex_tokenizer.find_raw_tokens = regex_tokenizer._find_all  # type: ignore[method-assign]
+        for unit in (texts, texts[:1], texts[:256]):
+            fast_vocab, regex_vocab = Vocabulary(), Vocabulary()
+            fast = count_texts(unit, fast_tokenizer, fast_vocab, grow=True)
+            regex = count_texts(unit, regex_tokenizer, regex_vocab, grow=True)
+            assert fast_vocab.words() == regex_vocab.words()
+            assert np.array_equal(fast.counts.indptr, regex.counts.indptr)
+            assert np.array_equal(fast.counts.indices, regex.counts.indices)
+            assert np.array_equal(fast.counts.data, regex.counts.data)
+            assert np.array_equal(fast.known_tokens, regex.known_tokens)
 
 
 def test_attached_caches_hear_of_every_change_to_the_ids() -> None:

@@ -389,3 +389,160 @@ def test_a_page_read_ahead_is_taken_only_for_its_own_cursor(
     (new_id,) = store.enqueue(["ticket refund please"]).stream_ids
     assert [entry[0].decode() for entry in reader.read(last, 500)] == [new_id]
     reader.close()
+
+
+def test_a_page_read_ahead_and_pumped_is_the_same_page(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    # Reference: XRANGE with an exclusive start (as above). A reply of several socket pieces
+    # (1,000 entries, about 190 kB) read ahead and pumped between steps is taken whole from
+    # what the pumps moved: read() then reads nothing more from the socket, and gives exactly
+    # the page after its cursor. A pump half-way through a reply for a cursor that is then
+    # not asked for changes nothing: the reply is discarded with the connection.
+    from state.reader import PageReader, last_id_of
+
+    store = create_model(redis_client, model_name)
+    store.enqueue(ferry_texts(3000, seed=5))
+    key = store.keys.docs
+
+    def page_after(cursor: str) -> list[bytes]:
+        return [entry[0] for entry in redis_client.xrange(key, min=f"({cursor}", count=1000)]
+
+    reader = PageReader(redis_client, key, 1000)
+    first = reader.read("0-0", 0)
+    cursor = last_id_of(first)
+    reader.send_ahead(cursor)
+    pieces, quiet = 0, 0
+    while quiet < 20:  # until the server has had 100 ms with nothing more to send
+        taken = reader.pump()
+        pieces += taken
+        quiet = 0 if taken else quiet + 1
+        time.sleep(0.005)
+    assert pieces >= 2  # more than one piece: the case the pump is for
+    parser = reader._connection._parser
+    socket_reads = []
+    read_from_socket = parser.read_from_socket
+    parser.read_from_socket = lambda **kw: socket_reads.append(kw) or read_from_socket(**kw)
+    page = reader.read(cursor, 0)
+    assert socket_reads == []  # all of it had come in through the pumps
+    assert [entry[0] for entry in page] == page_after(cursor)
+    reader.send_ahead(last_id_of(page))
+    time.sleep(0.01)
+    reader.pump()
+    assert [entry[0] for entry in reader.read(cursor, 0)] == page_after(cursor)
+    assert reader.pump() == 0  # nothing read ahead any more
+    reader.close()
+
+
+def test_a_pump_on_a_broken_connection_drops_the_read_ahead(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    # The server closes the reader's connection (CLIENT KILL) while a read sent ahead waits:
+    # the pump raises nothing, the read ahead is gone, and the next read reconnects and gives
+    # the page after its cursor (XRANGE with an exclusive start, as above).
+    from state.reader import PageReader, last_id_of
+
+    store = create_model(redis_client, model_name)
+    store.enqueue(ferry_texts(40, seed=6))
+    key = store.keys.docs
+    reader = PageReader(redis_client, key, 10)
+    cursor = last_id_of(reader.read("0-0", 0))
+    reader._connection.send_command("CLIENT", "ID")
+    client_id = reader._connection.read_response()
+    reader.send_ahead(cursor)
+    redis_client.client_kill_filter(_id=client_id)
+    for _ in range(50):  # the kill reaches the socket at once; the reply may have come first
+        reader.pump()
+        if not reader.ahead:
+            break
+        time.sleep(0.01)
+    assert not reader.ahead
+    expected = [e[0] for e in redis_client.xrange(key, min=f"({cursor}", count=10)]
+    assert [entry[0] for entry in reader.read(cursor, 0)] == expected
+    reader.close()
+
+
+def test_a_read_gives_up_by_the_clients_clock_and_loses_nothing(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    # A BLOCK of 10 s with give_up=0.05: the read comes back empty long before Redis would
+    # answer, with the connection dropped (the blocked XREAD is left unanswered); an entry
+    # queued after that is the next read's page (XRANGE with an exclusive start, as above).
+    from state.reader import PageReader
+
+    store = create_model(redis_client, model_name)
+    store.enqueue(ferry_texts(3, seed=8))
+    key = store.keys.docs
+    reader = PageReader(redis_client, key, 10)
+    last = store.last_stream_id()
+    assert reader.read(last, 10_000, give_up=0.05) == []
+    assert reader._connection._sock is None  # given up by us, not answered by Redis
+    (new_id,) = store.enqueue(["ticket refund please"]).stream_ids
+    assert [entry[0].decode() for entry in reader.read(last, 10_000, give_up=5.0)] == [new_id]
+    expected = [e[0] for e in redis_client.xrange(key, min=f"({last}", count=10)]
+    assert [entry[0] for entry in reader.read(last, 0)] == expected
+    reader.close()
+
+
+def test_the_version_is_read_once_per_block_time_through_a_backlog(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    # Through full pages the version and config are read once per read_block_ms, not per
+    # page; once caught up (a short page) every step reads them, so a rollback made while
+    # idle is noticed at the next step (the worker reloads: its version moves to the
+    # rollback's). With read_block_ms=0 every step reads them, backlog or not.
+    config = small_config()
+    store = create_model(redis_client, model_name, config, fast_options(read_count=20))
+    store.enqueue(ferry_texts(config.warmup_documents + 400, seed=9))
+    # a long block time (a full page never waits for it), the default's order of magnitude
+    worker = Worker(
+        redis_client, model_name, options=fast_options(read_count=20, read_block_ms=3000)
+    )
+    checks = []
+    same_version = worker._same_version
+    worker._same_version = lambda: checks.append(1) or same_version()  # type: ignore[method-assign]
+    for _ in range(10):  # loads, then full pages of 20
+        worker.run_once()
+    assert worker._backlog and len(checks) <= 1
+    worker.options = fast_options(read_count=20)  # idle steps below wait 50 ms, not 3 s
+    while worker._backlog:
+        worker.run_once()
+    worker.checkpoint()
+    snapshot = store.create_snapshot("idle")
+    worker.run_once()  # caught up: a short page (or none) after a check
+    before = len(checks)
+    rolled = store.rollback(snapshot.id, replay=False)
+    worker.run_once()
+    assert len(checks) == before + 1 and worker.version == rolled.version
+
+    worker.options = fast_options(read_count=20, read_block_ms=0)
+    store.enqueue(ferry_texts(200, seed=10))
+    before = len(checks)
+    for _ in range(5):
+        worker.run_once()
+    assert len(checks) == before + 5
+    worker.stop()
+    worker.run()
+
+
+def test_a_parser_that_cannot_be_pumped_leaves_the_read_ahead_as_it_was(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    # A parser whose read_from_socket takes other arguments (another redis-py): the pump
+    # stops trying and the read sent ahead is taken by read() as before pumping existed
+    # (the page after the cursor: XRANGE with an exclusive start, as above).
+    from state.reader import PageReader, last_id_of
+
+    store = create_model(redis_client, model_name)
+    store.enqueue(ferry_texts(40, seed=11))
+    key = store.keys.docs
+    reader = PageReader(redis_client, key, 10)
+    cursor = last_id_of(reader.read("0-0", 0))
+    reader.send_ahead(cursor)
+    parser = reader._connection._parser
+    parser.read_from_socket = lambda: True  # no keyword arguments
+    assert reader.pump() == 0 and reader.pump() == 0 and reader.ahead
+    del parser.read_from_socket
+    expected = [e[0] for e in redis_client.xrange(key, min=f"({cursor}", count=10)]
+    assert [entry[0] for entry in reader.read(cursor, 0)] == expected
+    reader.close()

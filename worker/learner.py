@@ -224,6 +224,8 @@ class Worker:
         self._last_checkpoint = time.monotonic()
         self._last_arrival = time.monotonic()
         self._last_lease = 0.0
+        self._last_version_check = 0.0
+        self._backlog = False  # the last page was full: more entries were waiting
         # (group ids, weights) of the last checkpoints on this line of versions
         self._recent_weights: deque[tuple[list[int], list[float]]] = deque(
             maxlen=self.options.drift_window
@@ -300,7 +302,7 @@ class Worker:
             return 0
         if not self._loaded:
             self._load()
-        elif not self._same_version():
+        elif self._version_check_due() and not self._same_version():
             self._drop_work()
             self._load()
         if self.deleted:
@@ -398,8 +400,19 @@ class Worker:
         self.deleted = True
         self._stop.set()
 
+    def _version_check_due(self) -> bool:
+        """Whether this step reads the version: always once caught up (a short page), and
+        through a backlog of full pages once per ``read_block_ms``, so that a rollback or a
+        delete is noticed within that time, busy or idle (an idle step waits that long for
+        its page), without a round trip per page. Missing one meanwhile loses nothing: the
+        checkpoint's WATCH of the version refuses work done on a replaced line."""
+        if not self._backlog:
+            return True
+        return time.monotonic() - self._last_version_check >= self.options.read_block_ms / 1000
+
     def _same_version(self) -> bool:
         """True while the model's version is the one loaded (a rollback moves it)."""
+        self._last_version_check = time.monotonic()
         pipe = self.redis.pipeline(transaction=False)
         pipe.get(self.store.keys.version)
         pipe.exists(self.store.keys.config)
@@ -567,9 +580,15 @@ class Worker:
         """Read one page after the cursor, learn its full units."""
         opts = self.options
         block = opts.read_block_ms
+        give_up = None
         if self._pending.documents and opts.flush_partial_seconds is not None:
             block = min(block, max(int(opts.flush_partial_seconds * 1000), 1))
-        entries = self.reader.read(self.cursor, block)
+            # wait no longer than until the partial unit is due (Redis' own BLOCK timeout
+            # comes up to 1000/hz ms late: PageReader.read)
+            since = time.monotonic() - self._last_arrival
+            give_up = max(opts.flush_partial_seconds - since, 0.001)
+        entries = self.reader.read(self.cursor, block, give_up)
+        self._backlog = len(entries) == opts.read_count
         learned = 0
         if len(entries) == opts.read_count:
             # a full page: more is likely waiting; Redis answers the next read while this
@@ -780,6 +799,7 @@ class Worker:
             before = warm_up_progress(state).documents if warming else 0
             forgetting_before = float(state.log_forgetting)
             report = self.learner.learn(texts)  # type: ignore[arg-type]
+            self.reader.pump()  # keep the page read ahead coming in (PageReader.pump)
             self._record_units(texts, cut, report, warming, before, forgetting_before)  # type: ignore[arg-type]
             if report.provisional_fits or (warming and report.warmed_up):
                 self._fit_to_serve = True  # a provisional or the warm-up fit: serve it soon
