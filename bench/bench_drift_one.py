@@ -7,7 +7,9 @@ true count), then the means; ``--batch`` adds batch EM on all documents beside t
 same way: sorted by topic, 16 parts, each shuffled; Yin et al., KDD 2018), and
 ``wordnet-26-shuffled``, the 26-file glosses in one random order (no drift: the null case a
 change for drift streams must not hurt). ``--trace`` prints each group event with its
-founders' topics and the final group x topic counts.
+founders' topics and the final group x topic counts. ``--unit-tokens N`` learns in steps of
+at most N tokens (bench.bench_units, an experiment; ``--count-per-step`` counts each step's
+texts when it comes).
 """
 
 from __future__ import annotations
