@@ -7,7 +7,9 @@ true count), then the means; ``--batch`` adds batch EM on all documents beside t
 same way: sorted by topic, 16 parts, each shuffled; Yin et al., KDD 2018), and
 ``wordnet-26-shuffled``, the 26-file glosses in one random order (no drift: the null case a
 change for drift streams must not hurt). ``--trace`` prints each group event with its
-founders' topics and the final group x topic counts.
+founders' topics and the final group x topic counts. ``--unit-tokens N`` learns in steps of
+at most N tokens (bench.bench_units, an experiment; ``--count-per-step`` counts each step's
+texts when it comes).
 """
 
 from __future__ import annotations
@@ -57,6 +59,7 @@ def print_trace(stream: corpora.LabelledCorpus, run: corpora.DriftPass) -> None:
 
 def main(argv: list[str] | None = None) -> None:
     """Run the chosen cells and print one line per seed and the means."""
+    from bench.bench_units import token_step_learner
     from mixture.config import MixtureConfig
     from mixture.em import fit_texts
     from mixture.lifecycle_config import LifecycleConfig
@@ -72,6 +75,17 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--seeds", type=int, nargs="+", default=[0])
     parser.add_argument("--batch", action="store_true", help="also batch EM on all documents")
     parser.add_argument("--off", action="store_true", help="lifecycle off")
+    parser.add_argument(
+        "--unit-tokens",
+        type=int,
+        default=0,
+        help="steps of at most this many tokens (bench.bench_units; 0: a step is a unit)",
+    )
+    parser.add_argument(
+        "--count-per-step",
+        action="store_true",
+        help="with --unit-tokens: count each step's texts when it comes (bench.bench_units)",
+    )
     parser.add_argument(
         "--trace", action="store_true", help="print each event with its founders' topics"
     )
@@ -89,7 +103,10 @@ def main(argv: list[str] | None = None) -> None:
             print(f"seed {seed} batch EM end {batch_nmi:.3f}", flush=True)
         lifecycle = LifecycleConfig(enabled=not args.off, max_groups=2 * k)
         run = corpora.drift_pass(
-            stream, MixtureConfig(n_groups=start, lifecycle=lifecycle), seed=seed
+            stream,
+            MixtureConfig(n_groups=start, lifecycle=lifecycle),
+            seed=seed,
+            learner_class=token_step_learner(args.unit_tokens, args.count_per_step),
         )
         arrival = normalized_mutual_info_score(stream.labels, run.arrival)
         end = normalized_mutual_info_score(stream.labels, run.final)

@@ -647,7 +647,9 @@ class DriftPass:
         return counts
 
 
-def drift_pass(stream: LabelledCorpus, config: Any, seed: int = 0) -> DriftPass:
+def drift_pass(
+    stream: LabelledCorpus, config: Any, seed: int = 0, learner_class: Any = None
+) -> DriftPass:
     """Route each unit of ``config.batch_size`` messages at arrival, then learn it.
 
     Parameters
@@ -657,13 +659,15 @@ def drift_pass(stream: LabelledCorpus, config: Any, seed: int = 0) -> DriftPass:
     config : mixture.config.MixtureConfig
     seed : int
         Seed of the learner.
+    learner_class : type, optional
+        An OnlineLearner subclass to learn with (a bench's variant); None: OnlineLearner.
     """
     import time
 
     from mixture.online import OnlineLearner
     from mixture.routing import route_texts
 
-    learner = OnlineLearner(config, seed=seed)
+    learner = (learner_class or OnlineLearner)(config, seed=seed)
     size = config.batch_size
     arrival = np.full(len(stream), -1, dtype=np.int64)
     unanswered: list[int] = []
