@@ -595,3 +595,45 @@ def test_a_page_never_reaches_the_oldest_gc_generation(
     assert gc.isenabled()
     worker.stop()
     worker.run()
+
+
+def test_only_a_page_read_ahead_is_taken_with_the_cycle_collector_paused(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    # A page read ahead was asked for without BLOCK, so taking it never waits; a read that
+    # may block is where an idle worker spends its time, and its process's other threads (a
+    # pool's learners, an embedded service) need the collector then.
+    config = small_config()
+    options = fast_options(read_count=100)
+    store = create_model(redis_client, model_name, config, options)
+    store.enqueue(ferry_texts(config.warmup_documents + 450, seed=12))
+    worker = Worker(redis_client, model_name, options=options)
+    reader = worker.reader
+    blocking: list[bool] = []
+    ahead: list[bool] = []
+    read, take_ahead = reader.read, reader.take_ahead
+
+    def watched_read(*args: object) -> object:
+        blocking.append(gc.isenabled())
+        return read(*args)  # type: ignore[arg-type]
+
+    def watched_take_ahead(after: str) -> object:
+        if reader.ahead:
+            ahead.append(gc.isenabled())
+        return take_ahead(after)
+
+    reader.read = watched_read  # type: ignore[method-assign]
+    reader.take_ahead = watched_take_ahead  # type: ignore[method-assign]
+    done = learned_all(store, config.warmup_documents + 450)
+    for _ in range(100):
+        if done():
+            break
+        worker.run_once()
+    assert done()
+    for _ in range(2):  # idle: blocking reads
+        worker.run_once()
+    assert ahead and not any(ahead)  # full pages of 100: the next was read ahead
+    assert blocking and all(blocking)
+    assert gc.isenabled()
+    worker.stop()
+    worker.run()

@@ -590,20 +590,14 @@ class Worker:
             since = time.monotonic() - self._last_arrival
             give_up = max(opts.flush_partial_seconds - since, 0.001)
         learned = 0
-        # The page is read and taken with the cycle collector paused, and dropped before
-        # learning (see _no_cycle_collection): its ~2,000 lists then never reach the old
-        # generations, whose growth sets off the process's full collections.
+        # A page read ahead (through a backlog) is taken and queued with the cycle collector
+        # paused, and every page is dropped before its units are learned: see
+        # _no_cycle_collection. Not paused for a read that may wait (BLOCK): an idle worker
+        # spends its time there, and the process's other threads need the collector.
         with _no_cycle_collection():
-            entries = self.reader.read(self.cursor, block, give_up)
-            self._backlog = full = len(entries) == opts.read_count
-            if full:
-                # a full page: more is likely waiting; Redis answers the next read while this
-                # page is learned (taken only if the cursor is then its last id, see PageReader)
-                self.reader.send_ahead(last_id_of(entries))
-            taken = bool(entries)
-            if taken:
-                self._take(entries, complete=not full)
-            del entries
+            taken = self._queue_page(self.reader.take_ahead(self.cursor))
+        if not taken:
+            taken = self._queue_page(self.reader.read(self.cursor, block, give_up))
         if taken:
             learned += self._learn_units(flush=False)
         elif self._gap_probe is not None:
@@ -615,6 +609,19 @@ class Worker:
         ):
             learned += self._learn_units(flush=True)
         return learned
+
+    def _queue_page(self, entries: list[Any]) -> bool:
+        """Queue a page read (see :meth:`_take`); False when it was empty."""
+        full = len(entries) == self.options.read_count
+        self._backlog = full
+        if full:
+            # a full page: more is likely waiting; Redis answers the next read while this
+            # page is learned (taken only if the cursor is then its last id, see PageReader)
+            self.reader.send_ahead(last_id_of(entries))
+        if not entries:
+            return False
+        self._take(entries, complete=not full)
+        return True
 
     # -- gaps --------------------------------------------------------------------------------
     def _check_for_gap(self) -> None:
@@ -1120,7 +1127,7 @@ class Worker:
 
 @contextlib.contextmanager
 def _no_cycle_collection() -> Iterator[None]:
-    """Pause the cyclic garbage collector while a page is read and queued.
+    """Pause the cyclic garbage collector while a page read ahead is taken and queued.
 
     A page of 1,000 entries is some 2,000 new lists (an entry and its fields) made in one go.
     A young collection runs when the tracked objects made exceed those freed by its threshold
@@ -1131,7 +1138,10 @@ def _no_cycle_collection() -> Iterator[None]:
     came every one or two 60,000-message runs of bench_worker. With the collector paused until
     the page is queued (its texts and ids are not objects the collector tracks) and the page
     dropped before learning, it is freed by reference counting before any collection sees
-    it. The reply holds no cycles, so none is missed. Left alone when the collector is off.
+    it. The reply holds no cycles, so none is missed. Only for a page read ahead (asked
+    without BLOCK, so taking it never waits for new entries): a read that may block is where
+    an idle worker spends its time, and the other threads of its process (a pool's learners,
+    an embedded service) need the collector meanwhile. Left alone when the collector is off.
     """
     if not gc.isenabled():
         yield
