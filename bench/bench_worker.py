@@ -32,6 +32,7 @@ Run ``python -m bench.bench_worker [--quick]``.
 from __future__ import annotations
 
 import argparse
+import gc
 import random
 import statistics
 import tempfile
@@ -145,6 +146,36 @@ def group_loop(store: ModelStore, start_id: str, total: int, count: int) -> floa
     elapsed = time.perf_counter() - began
     client.xgroup_destroy(store.keys.docs, group)
     return elapsed
+
+
+class FullCollections:
+    """Full (oldest-generation) garbage collections of this process and their wall time.
+
+    A full collection traverses every object of the process (~70,000 in the bench, about
+    45 ms each on a quiet 2-core machine), so a few of them in a 0.3 s worker run move its
+    ratio by a tenth; counted, they show that cost apart from the machine's other load.
+    """
+
+    def __init__(self) -> None:
+        self.count = 0
+        self.seconds = 0.0
+        self._began = 0.0
+
+    def __enter__(self) -> FullCollections:
+        gc.callbacks.append(self._note)
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        gc.callbacks.remove(self._note)
+
+    def _note(self, phase: str, info: dict[str, int]) -> None:
+        if info["generation"] != 2:
+            return
+        if phase == "start":
+            self._began = time.perf_counter()
+        else:
+            self.count += 1
+            self.seconds += time.perf_counter() - self._began
 
 
 def worker_run(store: ModelStore, options: ModelOptions, expect: int) -> float:
@@ -285,6 +316,7 @@ def lifecycle_pair(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
     ratios: dict[bool, list[float]] = {False: [], True: []}
     rates: dict[bool, list[float]] = {False: [], True: []}
     bare_rates, kept, cpu_kept = [], [], []
+    collections = {False: FullCollections(), True: FullCollections()}
     for rep in range(repeats):
         texts = short_messages(n_docs, seed=100 + rep)
         starts = {}
@@ -299,7 +331,8 @@ def lifecycle_pair(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
         for enabled in (False, True) if rep % 2 == 0 else (True, False):
             store, options = models[enabled]
             began_cpu = time.process_time()  # this process is the worker (Redis runs apart)
-            seconds[enabled] = worker_run(store, options, learned)
+            with collections[enabled]:
+                seconds[enabled] = worker_run(store, options, learned)
             cpu[enabled] = time.process_time() - began_cpu
         store_on = models[True][0]
         bare = (bare + bare_loop(store_on, starts[True], n_docs, models[True][1].read_count)) / 2
@@ -330,6 +363,12 @@ def lifecycle_pair(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
         f"  same in worker CPU seconds: {statistics.median(cpu_kept):12.3f}   (less exposed to"
         " the machine's other load than wall time)"
     )
+    for enabled in (False, True):
+        full = collections[enabled]
+        print(
+            f"  full GC collections, {'on ' if enabled else 'off'} : {full.count:12d}   in "
+            f"{repeats} worker runs, {full.seconds / repeats * 1000:.1f} ms a run"
+        )
 
 
 def drain(store: ModelStore, options: ModelOptions) -> float:

@@ -202,6 +202,21 @@ class PageReader:
         """True while a read sent ahead waits to be taken (or discarded)."""
         return self._ahead is not None
 
+    def take_ahead(self, after: str) -> list[RawEntry]:
+        """The page of the read sent ahead for ``after`` ([] when none was, or it found none).
+
+        Never waits for new entries: that XREAD had no BLOCK, so Redis answered it at once (the
+        wait is at most for the rest of its reply to arrive). A read sent ahead for another
+        cursor is discarded with the connection.
+        """
+        if self._ahead is None:
+            return []
+        if self._ahead != after:
+            self.drop()
+            return []
+        self._ahead = None
+        return self._reply(self._response())
+
     def read(self, after: str, block: int, give_up: float | None = None) -> list[RawEntry]:
         """The next page after ``after`` (waiting up to ``block`` ms; [] when none came).
 
@@ -215,14 +230,9 @@ class PageReader:
         nothing, so nothing is lost: the next read asks again from its cursor) and [] is
         returned.
         """
-        if self._ahead is not None:
-            if self._ahead != after:
-                self.drop()
-            else:
-                self._ahead = None
-                entries = self._reply(self._response())
-                if entries:
-                    return entries
+        entries = self.take_ahead(after)
+        if entries:
+            return entries
         args: list[Any] = ["XREAD", "COUNT", self.count]
         if block > 0:
             args += ["BLOCK", block]

