@@ -777,13 +777,38 @@ def _split_buffer(
     components = min(_BUFFER_COMPONENTS, n_docs // config.birth_min_documents)
     if components <= 1:
         return np.zeros(buffered.shape[0], dtype=np.int64)
+    labels = local_fit_labels(state, buffered, components, state.seed + state.documents_learned)
+    labels[lengths == 0] = -1
+    return labels
+
+
+def local_fit_labels(
+    state: MixtureState, counts: sp.csr_matrix, components: int, seed: int
+) -> np.ndarray:
+    """Each document's MAP component under a local batch-EM fit of ``counts`` alone.
+
+    One seeding, the lifecycle off, the state's vocabulary (active words) and pseudo-counts:
+    the local fit of the novelty buffer's split and of the warm-up's split (mixture.warm_groups).
+
+    Parameters
+    ----------
+    state : MixtureState
+        Gives the configuration, the active words and the pseudo-counts.
+    counts : sparse matrix (n, <= capacity)
+        The documents' word counts over the state's vocabulary ids.
+    components : int
+        Components of the local fit.
+    seed : int
+
+    Returns
+    -------
+    ndarray of int64 (n,)
+    """
     local_config = state.config.replace(
         n_groups=components, n_restarts=1, lifecycle=LifecycleConfig()
     )
     active = state.vocabulary.active_mask()
-    word_counts, doc_counts, _ = fit_batch_em(
-        buffered, local_config, seed=state.seed + state.documents_learned, active=active
-    )
+    word_counts, doc_counts, _ = fit_batch_em(counts, local_config, seed=seed, active=active)
     params = derive_parameters(
         word_counts,
         doc_counts,
@@ -791,10 +816,8 @@ def _split_buffer(
         state.config.word_pseudocount,
         state.config.weight_pseudocount,
     )
-    resp, _ = e_step(buffered, params)
-    labels = resp.argmax(axis=1)
-    labels[lengths == 0] = -1
-    return labels
+    resp, _ = e_step(counts, params)
+    return resp.argmax(axis=1)
 
 
 def unit_observer(

@@ -49,15 +49,15 @@ from __future__ import annotations
 import numpy as np
 import scipy.sparse as sp
 
-from mixture.em import e_step, fit_batch_em
 from mixture.lifecycle import (
     GroupEvent,
     birth,
     components_log_bayes_factor,
+    local_fit_labels,
     merge,
 )
 from mixture.lifecycle_config import LifecycleConfig
-from mixture.stats import MixtureState, derive_parameters
+from mixture.stats import MixtureState
 
 __all__ = ["shape_warm_up_groups"]
 
@@ -125,21 +125,7 @@ def _score_split(
     minimum = config.birth_min_documents
     if members.size < 2 * minimum:
         return -np.inf, members[:0]
-    local_config = state.config.replace(n_groups=2, n_restarts=1, lifecycle=LifecycleConfig())
-    counts = matrix[members]
-    active = state.vocabulary.active_mask()
-    word_counts, doc_counts, _ = fit_batch_em(
-        counts, local_config, seed=state.seed + int(members[0]), active=active
-    )
-    params = derive_parameters(
-        word_counts,
-        doc_counts,
-        active,
-        state.config.word_pseudocount,
-        state.config.weight_pseudocount,
-    )
-    resp, _ = e_step(counts, params)
-    halves = resp.argmax(axis=1)
+    halves = local_fit_labels(state, matrix[members], 2, state.seed + int(members[0]))
     first, second = members[halves == 0], members[halves == 1]
     if first.size < minimum or second.size < minimum:
         return -np.inf, members[:0]

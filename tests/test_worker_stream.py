@@ -358,6 +358,12 @@ def test_work_dropped_in_the_middle_of_a_backlog_loses_nothing_and_learns_nothin
     assert_same_state(state, reference_state(texts, config))
 
 
+def _page_after(client: redis.Redis, key: str, cursor: str, count: int) -> list[bytes]:
+    """Ids of the page after ``cursor`` by Redis's XRANGE with an exclusive start, "(id"
+    (redis.io XRANGE: exclusive ranges, Redis >= 6.2): the reference a page read must equal."""
+    return [entry[0] for entry in client.xrange(key, min=f"({cursor}", count=count)]
+
+
 def test_a_page_read_ahead_is_taken_only_for_its_own_cursor(
     redis_client: redis.Redis, model_name: str
 ) -> None:
@@ -372,7 +378,7 @@ def test_a_page_read_ahead_is_taken_only_for_its_own_cursor(
     key = store.keys.docs
 
     def page_after(cursor: str) -> list[bytes]:
-        return [entry[0] for entry in redis_client.xrange(key, min=f"({cursor}", count=10)]
+        return _page_after(redis_client, key, cursor, 10)
 
     reader = PageReader(redis_client, key, 10)
     first = reader.read("0-0", 0)
@@ -407,7 +413,7 @@ def test_a_page_read_ahead_and_pumped_is_the_same_page(
     key = store.keys.docs
 
     def page_after(cursor: str) -> list[bytes]:
-        return [entry[0] for entry in redis_client.xrange(key, min=f"({cursor}", count=1000)]
+        return _page_after(redis_client, key, cursor, 1000)
 
     reader = PageReader(redis_client, key, 1000)
     first = reader.read("0-0", 0)
