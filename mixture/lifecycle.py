@@ -43,9 +43,13 @@ Decisions, and the principle behind each (thresholds in mixture.lifecycle_config
   a BIC penalty for the second group's weight): the split asks for four components whatever
   the buffer holds, and without the join one new topic gave several births at one decision
   (BBC drift: sport born four times, filling the ceiling before the last topic came). When
-  the ceiling leaves less room than components passed, groups quiet (share under the
-  retirement floor) for at least one whole window are retired to make it: a documented new
-  topic outweighs one more window of waiting for a topic that stopped.
+  the ceiling leaves less room than components passed, each further component is born if,
+  with the merge of the pair of groups that loses least evidence (:func:`cheapest_merge`:
+  :func:`components_log_bayes_factor` on the pair's statistics), the sum of the two log
+  Bayes factors still passes the birth threshold: at a fixed number of groups the two are
+  one move of the model. Failing that, groups quiet (share under the retirement floor) for
+  at least one whole window are retired to make it: a documented new topic outweighs one
+  more window of waiting for a topic that stopped.
 
   Both sides are prequential scores (Dawid 1984): DM(C) is the product of the new group's
   predictive probabilities of C's documents, each given only the ones before it, and the
@@ -591,15 +595,14 @@ def _births_from_buffer(
     """Every component of the buffer's local fit whose ln BF passes becomes a group (the
     largest first, up to the ceiling). The components are disjoint sets of documents, so
     each test stands on its own evidence. When the ceiling leaves less room than components
-    passed, groups quiet for at least one whole window (:func:`_yielding_groups`) are retired
-    first to make it."""
+    passed, each further one is born only if, with the merge that loses least evidence, it
+    still passes (:func:`_merges_for_room`)."""
     evidence.forget_older_than(state.documents_learned - config.buffer_horizon_documents)
     buffered = evidence.buffer_counts(state.capacity)
     room = config.ceiling(state.config.n_groups) - state.n_groups
     n_buffered = buffered.shape[0]
-    yielding = _yielding_groups(state, evidence)
-    if room + len(yielding) <= 0 or n_buffered < config.birth_min_documents:
-        return []
+    if n_buffered < config.birth_min_documents or (room <= 0 and state.n_groups < 2):
+        return []  # no room can be made: the last group neither merges nor yields
     labels = _split_buffer(state, buffered, config)
     labels = join_components(buffered, labels, state)
     passed: list[tuple[float, np.ndarray]] = []
@@ -616,9 +619,12 @@ def _births_from_buffer(
         if score > config.birth_log_bayes_factor:
             passed.append((score, members))
     passed.sort(key=lambda item: -item[0])
-    events = []
-    # Under a full ceiling, quiet groups give their places to the strongest components.
-    for group_id in yielding[: max(len(passed) - room, 0)]:
+    # Under a full ceiling, a further component's place comes from the merge that loses
+    # least evidence when the two changes together pass the birth test; failing that, from a
+    # group quiet for a whole window.
+    events = _merges_for_room(state, [score for score, _ in passed], room, config)
+    room = config.ceiling(state.config.n_groups) - state.n_groups
+    for group_id in _yielding_groups(state, evidence)[: max(len(passed) - room, 0)]:
         windows = int(evidence.quiet_windows[position_of(state, group_id)])
         events.append(
             retire(
@@ -657,6 +663,93 @@ def _births_from_buffer(
         assert state.evidence is not None
         state.evidence.keep_buffered(keep)
     return events
+
+
+def _merges_for_room(
+    state: MixtureState, scores: list[float], room: int, config: LifecycleConfig
+) -> list[GroupEvent]:
+    """Merges that make room under the ceiling for the components beyond it.
+
+    ``scores`` are the passing components' ln BF, strongest first; the first ``room`` need no
+    place. Each further component is born only if its ln BF plus that of the merge losing the
+    least evidence (:func:`cheapest_merge`, a negative number when two groups explain their
+    documents better than one) still passes ``birth_log_bayes_factor``: the two changes
+    together are one move of the model at a fixed number of groups, held to the birth's own
+    standard. Scores fall and merge costs rise, so the first that fails ends the round.
+    """
+    events: list[GroupEvent] = []
+    ceiling = config.ceiling(state.config.n_groups)
+    for score in scores[max(room, 0) :]:
+        found = cheapest_merge(state)
+        if found is None:
+            break
+        merge_score, survivor, absorbed = found
+        if score + merge_score <= config.birth_log_bayes_factor:
+            break
+        events.append(
+            merge(
+                state,
+                survivor,
+                absorbed,
+                reason=(
+                    f"room under the ceiling of {ceiling} for a new group (ln Bayes factor "
+                    f"{score:.1f}): of all pairs, these two lose least as one group (ln Bayes "
+                    f"factor {merge_score:.1f}), and the two changes together pass "
+                    f"{config.birth_log_bayes_factor:g}"
+                ),
+                evidence={
+                    "log_bayes_factor": merge_score,
+                    "birth_log_bayes_factor": score,
+                    "made_room": 1.0,
+                },
+            )
+        )
+    return events
+
+
+def cheapest_merge(state: MixtureState) -> tuple[float, int, int] | None:
+    """The pair of groups whose merge loses the least evidence, by their statistics.
+
+    For every pair (a, b), :func:`components_log_bayes_factor` of their expected word counts
+    and documents' worth (the statistics the word distributions are smoothed from): ln BF of
+    one Dirichlet-multinomial group against two. O(K^2 x V_used) with V_used the words either
+    group has counts for; run only when the ceiling is full and a component passed the birth
+    test. Never a pair that both hold labelled documents (operators said they differ).
+
+    Returns
+    -------
+    (ln BF, survivor id, absorbed id) or None
+        None when fewer than two groups may merge. The survivor holds more expected documents
+        (the lower id on a tie), or the labelled documents.
+    """
+    assert state.group_ids is not None
+    ids = [int(g) for g in state.group_ids]
+    if len(ids) < 2:
+        return None
+    active = np.flatnonzero(state.vocabulary.active_mask())
+    counts = state.expected_word_counts()[active]
+    docs = np.maximum(state.expected_documents(), np.finfo(np.float64).tiny)
+    n_words = state.vocabulary.n_active
+    beta = state.config.word_pseudocount
+    labelled = [state.labelled.holds_group(g) for g in ids]
+    best: tuple[float, int, int] | None = None
+    for a in range(len(ids)):
+        for b in range(a + 1, len(ids)):
+            if labelled[a] and labelled[b]:
+                continue
+            used = (counts[:, a] > 0) | (counts[:, b] > 0)
+            score = components_log_bayes_factor(
+                counts[used, a], counts[used, b], (docs[a], docs[b]), n_words, beta
+            )
+            if best is not None and score <= best[0]:
+                continue
+            keep, gone = (a, b) if docs[a] >= docs[b] else (b, a)
+            if docs[a] == docs[b]:
+                keep, gone = (a, b) if ids[a] < ids[b] else (b, a)
+            if labelled[gone]:
+                keep, gone = gone, keep
+            best = (score, ids[keep], ids[gone])
+    return best
 
 
 def _yielding_groups(state: MixtureState, evidence: GroupEvidence) -> list[int]:

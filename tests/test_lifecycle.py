@@ -27,6 +27,7 @@ from mixture.lifecycle import (
     RETIRE,
     birth,
     birth_log_bayes_factor,
+    cheapest_merge,
     components_log_bayes_factor,
     join_components,
     merge,
@@ -585,6 +586,85 @@ def test_a_quiet_group_gives_its_place_under_the_ceiling_to_a_new_topic():
     in_new_group = routed == born.groups[0]
     assert (new_topic & in_new_group).sum() / in_new_group.sum() >= 0.9  # purity
     assert (new_topic & in_new_group).sum() / new_topic.sum() >= 0.9  # recall
+
+
+def test_cheapest_merge_picks_the_pair_drawn_from_one_distribution():
+    """Invented statistics: groups 0 and 2 hold counts of one word distribution, group 1 of
+    another; the pair that loses least as one group is (0, 2), with the ln BF of
+    components_log_bayes_factor (checked above against scipy's gammaln) on their counts, and
+    the group with more documents survives."""
+    state = _random_state(n_words=60, k=3)
+    rng = np.random.default_rng(5)
+    shared = rng.dirichlet(np.full(60, 0.5))
+    other = rng.dirichlet(np.full(60, 0.5))
+    counts = np.column_stack(
+        [rng.multinomial(3000, shared), rng.multinomial(3000, other), rng.multinomial(2000, shared)]
+    ).astype(float)
+    state.unscaled_word = counts / state.count_scale
+    state.unscaled_total = state.unscaled_word.sum(axis=0)
+    state.unscaled_docs = np.array([300.0, 300.0, 200.0]) / state.count_scale
+    state.touch()
+    score, survivor, absorbed = cheapest_merge(state)
+    assert (survivor, absorbed) == (0, 2)
+    docs = state.expected_documents()
+    expected = components_log_bayes_factor(
+        counts[:, 0], counts[:, 2], (docs[0], docs[2]), 60, state.config.word_pseudocount
+    )
+    assert score == pytest.approx(expected, rel=1e-9)
+    assert score > components_log_bayes_factor(
+        counts[:, 0], counts[:, 1], (docs[0], docs[1]), 60, state.config.word_pseudocount
+    )
+
+
+def _sub_topic_stream(share_of_theme: float) -> tuple[np.ndarray, list[str]]:
+    """Invented stream: topics 0 and 1 are sub-topics (each keeps ``share_of_theme`` of one
+    theme's word distribution, the rest its own words), 2 and 3 other topics; topic 4 starts
+    at message 3,000 while the others go on."""
+    stream = TopicStream(6, seed=0)
+    theme, a, b, c, d, new = stream.topics
+    mixed = share_of_theme * theme
+    rest = 1 - share_of_theme
+    stream.topics = np.vstack([mixed + rest * a, mixed + rest * b, c, d, new])
+    labels = np.concatenate(
+        [stream.labels(3000, [0, 1, 2, 3]), stream.labels(4000, [0, 1, 2, 3, 4])]
+    )
+    return labels, stream.messages(labels)
+
+
+def test_a_full_ceiling_makes_room_by_merging_two_sub_topics():
+    """Ceiling 4, groups on two sub-topics and two topics, all live; a fifth topic starts.
+    The two sub-topics' groups merge (the pair that loses least evidence, and the merge and
+    the birth together pass the birth test) and the new topic gets the freed place; with
+    retirement alone nothing is quiet and the new topic would have no group."""
+    labels, texts = _sub_topic_stream(0.6)
+    capped = LifecycleConfig(enabled=True, max_groups=4)
+    learner = OnlineLearner(MixtureConfig(**OLD_WARM_UP, n_groups=4, lifecycle=capped), seed=0)
+    events = _learn(learner, texts)
+    assert [e.kind for e in events] == [MERGE, BIRTH]
+    merged, born = events
+    assert merged.position == born.position
+    assert merged.evidence["made_room"] == 1.0
+    assert born.evidence["log_bayes_factor"] + merged.evidence["log_bayes_factor"] > 5.0
+    state = learner.state
+    later = np.arange(5000, 7000)
+    routed = state.group_ids[route_texts(state, [texts[i] for i in later]).group]
+    truth = labels[later]
+    in_new = routed == born.groups[0]
+    assert (in_new & (truth == 4)).sum() / in_new.sum() >= 0.9  # purity
+    assert (in_new & (truth == 4)).sum() / (truth == 4).sum() >= 0.9  # recall
+    sub_topics = np.isin(truth, [0, 1])
+    assert np.all(routed[sub_topics] == merged.groups[0])  # both sub-topics in the survivor
+
+
+def test_a_merge_that_costs_more_than_the_birth_gains_does_not_make_room():
+    """The same stream with sub-topics further apart (40 % of the theme): every merge loses
+    more evidence than the new topic's birth gains, so under the full ceiling nothing changes
+    (and no group is quiet to give way)."""
+    _, texts = _sub_topic_stream(0.4)
+    capped = LifecycleConfig(enabled=True, max_groups=4)
+    learner = OnlineLearner(MixtureConfig(**OLD_WARM_UP, n_groups=4, lifecycle=capped), seed=0)
+    assert _learn(learner, texts) == []
+    assert learner.state.n_groups == 4
 
 
 def test_vocabulary_pruning_keeps_the_buffer_on_the_vocabulary():
