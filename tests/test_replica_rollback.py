@@ -177,7 +177,14 @@ def test_without_a_replica_the_api_answers_503_for_a_snapshot_and_a_rollback_bot
     store = create_model(client, model_name, small_config())
     checkpoint(store, seed=5)
     kept = store.create_snapshot("before")
-    settings = Settings(redis_url=redis_url, redis_wait_replicas=1, redis_wait_timeout=0.05)
+    settings = Settings(
+        redis_url=redis_url,
+        redis_wait_replicas=1,
+        redis_wait_timeout=0.05,
+        # no pub/sub notice and no poll: only the route's own reload can serve the rollback
+        reload_notifications=False,
+        reload_poll_interval=60,
+    )
     with TestClient(create_app(settings)) as http:
         version = http.get(f"/models/{model_name}").json()["version"]
         answer = http.post(f"/models/{model_name}/snapshots", json={"reason": "unconfirmed"})

@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import contextlib
 from typing import Any
 
 from fastapi import APIRouter, Response, status
 
 from service.routers import COMMON_RESPONSES, Runtime, StrictJsonRoute
+from service.runtime import RedisUnavailableError
 from service.schemas import Problem, RestoreIn, RestoreOut, SnapshotIn, SnapshotList, SnapshotOut
 from state.errors import ReplicasUnconfirmedError
 
@@ -118,7 +120,10 @@ def restore_snapshot(
             )
         )
     except ReplicasUnconfirmedError:
-        runtime.reload(model)  # done on the primary though not confirmed: serve it (a 503)
+        # done on the primary though not confirmed: serve it, and answer the 503 that says so
+        # (not a "nothing was changed" one, should the primary have gone meanwhile)
+        with contextlib.suppress(RedisUnavailableError):
+            runtime.reload(model)
         raise
     runtime.reload(model)
     return result.to_dict()
