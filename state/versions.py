@@ -293,11 +293,16 @@ class Versions:
                     "(rollback, lease or delete)"
                 ) from exc
         if replica_requirement().active:
-            self._confirm(write.version)
+            written = [snapshot_id] if snapshot_id else []
+            if change is not None and change[0] is not None:
+                written.insert(0, change[0].id)
+            self._confirm(write.version, written)
         return write.version
 
-    def _confirm(self, version: int) -> None:
-        """Wait for the replicas to hold ``version`` (:mod:`state.replicas`).
+    def _confirm(self, version: int, snapshots: list[str]) -> None:
+        """Wait for the replicas to hold ``version`` (:mod:`state.replicas`) and with it the
+        ``snapshots`` its MULTI wrote (named in the warning: one lost in a failover is not
+        necessarily taken again by the replay).
 
         Not confirmed, the version stands on the primary and is logged: learning goes on. Were
         it lost in a failover, the promoted replica's older version is what the worker's next
@@ -306,6 +311,7 @@ class Versions:
         over it.
         """
         keys = self.handle.keys
+        with_snapshots = f" (with snapshot {', '.join(snapshots)})" if snapshots else ""
         try:
             confirm_replicas(
                 self.handle.redis,
@@ -313,7 +319,7 @@ class Versions:
                 keys.version,
                 "equals",
                 [str(version)],
-                what=f"checkpoint version {version} of model {self.handle.model!r}",
+                what=f"checkpoint version {version}{with_snapshots} of model {self.handle.model!r}",
                 retry_hint="learning goes on; a failover would make the worker reload and learn "
                 "those documents again",
             )

@@ -12,6 +12,7 @@ acknowledged by at least the number of replicas specified"; of INFO: ``cmdstat_<
 
 from __future__ import annotations
 
+import logging
 import os
 import socket
 import time
@@ -59,7 +60,7 @@ def unset() -> Iterator[None]:
     require_replicas(0)
 
 
-def checkpoint(store: ModelStore, seed: int) -> int:
+def checkpoint(store: ModelStore, seed: int, snapshot_reason: str | None = None) -> int:
     """Commit a learned state as the next version (as the worker would), its number."""
     learner = OnlineLearner(store.info.config, seed=seed)
     learner.learn(ferry_texts(250, seed=seed))  # past the 200-document warm-up
@@ -71,6 +72,7 @@ def checkpoint(store: ModelStore, seed: int) -> int:
             expected_version=store.version(),
             state=learner.state,
             watermark=store.last_stream_id(),
+            snapshot_reason=snapshot_reason,
         )
     )
 
@@ -138,6 +140,30 @@ def test_with_the_replica_stopped_a_snapshot_and_a_rollback_raise_and_stay_done(
         assert "INFO replication" in message and clip_echoes(message) == message, len(message)
         assert store.version() == version + 1  # the rollback stands
         assert store.lineage(1)[0].kind == "rollback"
+    finally:
+        require_replicas(0)
+        pair.resume_replica()
+        pair.wait_in_sync()
+    primary.close()
+
+
+@needs_server
+def test_an_unconfirmed_checkpoint_names_the_automatic_snapshot_it_wrote(
+    pair: LocalReplicated, unset: None, caplog: pytest.LogCaptureFixture
+) -> None:
+    """The worker cannot answer a 503: its checkpoint is logged as unconfirmed, and the log
+    names the snapshot written with it (a failover could lose it with the version)."""
+    primary = redis_from_url(pair.url)
+    store = create_model(primary, "automatic", small_config())
+    checkpoint(store, seed=6)
+    pair.pause_replica()
+    try:
+        require_replicas(1, 0.05)
+        caplog.set_level(logging.WARNING, logger="state.versions")
+        checkpoint(store, seed=7, snapshot_reason="due")
+        (automatic,) = [s.id for s in store.list_snapshots() if s.kind == "automatic"]
+        warned = [r.getMessage() for r in caplog.records if "not confirmed" in r.getMessage()]
+        assert len(warned) == 1 and f"(with snapshot {automatic})" in warned[0], warned
     finally:
         require_replicas(0)
         pair.resume_replica()
