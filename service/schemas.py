@@ -592,6 +592,15 @@ class RestoreOut(BaseModel):
     skip_ids: list[list[str]]
     skip_received: list[list[float]]
     until: str
+    labels_restored: bool = Field(
+        description="The labels became the snapshot's (false: a snapshot written before "
+        "snapshots kept labels; the labels were left as they were)."
+    )
+    label_words_restored: bool = Field(
+        description="The words each restored label was given to (the stale-label check's "
+        "reference) became the snapshot's (false: a snapshot written before snapshots kept "
+        "them; only recorded words older than the snapshot were kept)."
+    )
 
 
 # -- drift ----------------------------------------------------------------------------------

@@ -40,7 +40,8 @@ watermark          string      last stream id applied to the current state
 history            list        JSON drift-history rows, one per checkpoint (capped)
 lineage            list        JSON version records (version, parent, kind, ...) (capped)
 snapshots          zset        snapshot ids scored by the version they copy
-snapshot:<id>      hash        ``meta`` (JSON), ``state`` (bytes), ``labels`` (JSON, newer ones)
+snapshot:<id>      hash        ``meta`` (JSON), ``state`` (bytes), ``labels`` (JSON, newer ones),
+                               ``label_words`` (JSON, newer still: ``state.snapshots``)
 snapshot_seq       string      counter for snapshot ids
 alerts             stream      drift alerts: kind, reason, value, threshold, version
 heartbeat          string      name of the worker holding the model (TTL = lease)

@@ -183,6 +183,8 @@ class RollbackResult:
     skip_received: list[tuple[float, float]] = field(default_factory=list)
     until: str = "0-0"  # skip ranges apply to stream ids up to this one
     labels_restored: bool = False  # False: the snapshot predates kept labels, left as they were
+    # False: the snapshot predates kept label words (state.rollback says which stay)
+    label_words_restored: bool = False
 
     def to_dict(self) -> dict[str, Any]:
         d = asdict(self)

@@ -8,7 +8,8 @@ until that many replicas have acknowledged every write the connection made befor
 
 With a requirement of N replicas (the settings ``MIXROUTE_REDIS_WAIT_REPLICAS`` and
 ``MIXROUTE_REDIS_WAIT_TIMEOUT``, given to this process by :func:`require_replicas`), the
-enqueue, the checkpoint and the model creation end with :func:`confirm_replicas`. It sends, on
+enqueue, the checkpoint, the model creation, the snapshot (:mod:`state.snapshots`) and the
+rollback (:mod:`state.rollback`) end with :func:`confirm_replicas`. It sends, on
 ONE connection to the primary that owns the write's slot (in a cluster: redis-py's
 ``get_node_from_key`` and that node's own client, since a cluster client's WAIT would go to
 every primary on other connections and confirm nothing), two commands in one round trip:
@@ -52,6 +53,10 @@ FENCE_TTL_MS = 60_000  # the fence key is only ever written to be replicated: le
 
 ProbeKind = Literal["stream", "exists", "equals", "member"]
 
+# What an operator checks when a write that is not simply repeated (a snapshot, a rollback) is
+# not confirmed. Short, and without quotes: the API clips long or quoted pieces of a message
+CHECK_REPLICAS = "check INFO replication on the primary and MIXROUTE_REDIS_WAIT_REPLICAS"
+
 
 @dataclass(frozen=True)
 class ReplicaRequirement:
@@ -91,7 +96,8 @@ _requirement = ReplicaRequirement()
 
 
 def require_replicas(replicas: int, timeout_seconds: float = 0.5) -> None:
-    """Make this process's enqueues, checkpoints and model creations wait for ``replicas``.
+    """Make this process's enqueues, checkpoints, model creations, snapshots and rollbacks
+    wait for ``replicas``.
 
     Parameters
     ----------

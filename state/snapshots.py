@@ -1,12 +1,27 @@
 """Snapshots: immutable copies of a checkpoint (``meta`` JSON + ``state`` bytes + ``labels``
-JSON in one hash), indexed by a sorted set scored by the version they copy. Retention only ever
-removes automatic snapshots; requested and pre-rollback ones stay until deleted.
+JSON + ``label_words`` JSON in one hash), indexed by a sorted set scored by the version they
+copy. Retention only ever removes automatic snapshots; requested and pre-rollback ones stay
+until deleted.
 
 ``labels`` is the model's labels hash (:mod:`state.labels`) as it stood with the copied state,
 group id -> stored label record, so that a rollback restores the labels with the state.
-Snapshots written before it was kept have no ``labels`` field: they still load and roll back,
-and such a rollback leaves the labels as they are (:attr:`RollbackResult.labels_restored`
-False).
+``label_words`` is the ``label_words`` hash read with it (group id -> the word sketch each
+label was given to, :class:`state.label_words.WordSketch`), so that a rollback restores the
+words the restored labels were given to and the stale-label check keeps comparing with those.
+Both are read under the writer's WATCH of ``labels_version`` (every label change, and every
+change of ``label_words``, bumps it).
+
+With replicas required (:mod:`state.replicas`), :meth:`Snapshots.create` (a requested snapshot,
+or an automatic one asked for through it) ends by waiting for them to hold the snapshot's
+hash: not confirmed, :class:`ReplicasUnconfirmedError` (HTTP 503) says that the snapshot is
+written on the primary and what to check. The snapshots a checkpoint or a rollback writes in
+its own MULTI are confirmed with it (the replicas hold a MULTI whole or not at all).
+
+Snapshots written before ``labels`` was kept have neither field: they still load and roll
+back, and such a rollback leaves the labels as they are (:attr:`RollbackResult.labels_restored`
+False). Snapshots written before ``label_words`` was kept have ``labels`` only: their labels
+are restored, not the words (:attr:`RollbackResult.label_words_restored` False; what the
+rollback then does with the recorded words: :mod:`state.rollback`).
 """
 
 from __future__ import annotations
@@ -29,7 +44,9 @@ from state.errors import (
     VersionConflictError,
 )
 from state.handle import ModelHandle
+from state.label_words import WordSketch, parse_sketches
 from state.records import AUTOMATIC, REQUESTED, SnapshotInfo, dumps
+from state.replicas import CHECK_REPLICAS, confirm_replicas, replica_requirement
 
 Client = redis.Redis | redis.client.Pipeline
 
@@ -65,17 +82,25 @@ class Snapshots:
         info: SnapshotInfo,
         data: bytes,
         labels: Mapping[int, Mapping[str, Any]],
+        sketches: Mapping[int, WordSketch],
     ) -> None:
         """Queue the writes of one snapshot on ``pipe`` (inside the caller's MULTI).
 
-        ``labels`` is the labels hash as it stands with ``data`` (group id -> label record),
-        read under the caller's WATCH of ``labels_version``.
+        ``labels`` is the labels hash as it stands with ``data`` (group id -> label record)
+        and ``sketches`` the ``label_words`` hash (group id -> word sketch), both read under
+        the caller's WATCH of ``labels_version``.
         """
         keys = self.handle.keys
         stored = dumps({str(group): dict(record) for group, record in labels.items()})
+        words = dumps({str(group): sketch.to_dict() for group, sketch in sketches.items()})
         pipe.hset(
             keys.snapshot(info.id),
-            mapping={"meta": dumps(info.to_dict()), "state": data, "labels": stored},
+            mapping={
+                "meta": dumps(info.to_dict()),
+                "state": data,
+                "labels": stored,
+                "label_words": words,
+            },
         )
         pipe.zadd(keys.snapshots, {info.id: info.version})
 
@@ -122,6 +147,9 @@ class Snapshots:
             When the model has no state yet.
         ModelNotFoundError
             When the model was deleted (nothing is written).
+        ReplicasUnconfirmedError
+            When replicas are required (:mod:`state.replicas`) and did not confirm the
+            snapshot in time: it is written on the primary (a repeat takes a second one).
         """
         if not isinstance(reason, str) or not reason.strip() or len(reason) > 500:
             raise OptionsError("snapshot reason must be 1-500 characters")
@@ -131,11 +159,27 @@ class Snapshots:
         for _ in range(attempts):
             with self.handle.redis.pipeline(transaction=True) as pipe:
                 try:
-                    return self._write_copy(pipe, snapshot_id, reason, kind)
+                    info = self._write_copy(pipe, snapshot_id, reason, kind)
                 except redis.WatchError:
                     continue  # a checkpoint or a delete moved the state under us
+            if replica_requirement().active:
+                self._confirm(info)
+            return info
         raise VersionConflictError(
             f"snapshot of model {self.handle.model!r} kept racing checkpoints ({attempts} tries)"
+        )
+
+    def _confirm(self, info: SnapshotInfo) -> None:
+        """Wait for the replicas to hold the snapshot's hash (its id is never reused)."""
+        keys, model = self.handle.keys, self.handle.model
+        confirm_replicas(
+            self.handle.redis,
+            keys.replica_fence,
+            keys.snapshot(info.id),
+            "exists",
+            what=f"snapshot {info.id!r} of model {model!r}, version {info.version}",
+            retry_hint=f"it is written and listed, a repeat takes another; {CHECK_REPLICAS}; "
+            "after a failover, see that it is listed",
         )
 
     def _write_copy(
@@ -149,6 +193,7 @@ class Snapshots:
         handle.check_alive(pipe.get(keys.config))
         data, raw_meta = pipe.get(keys.state), pipe.get(keys.state_meta)
         labels = stored_labels(pipe.hgetall(keys.labels))
+        sketches = parse_sketches(pipe.hgetall(keys.label_words))
         if data is None or raw_meta is None:
             raise StateError(f"model {handle.model!r} has no state to snapshot yet")
         meta = json.loads(raw_meta)
@@ -166,7 +211,7 @@ class Snapshots:
         )
         expired = self.to_prune(pipe, 1) if kind == AUTOMATIC else []
         pipe.multi()
-        self.write(pipe, info, data, labels)
+        self.write(pipe, info, data, labels, sketches)
         self.prune(pipe, expired)
         pipe.execute()
         return info
@@ -215,6 +260,16 @@ class Snapshots:
         if raw is None:
             return None
         return {int(group): record for group, record in json.loads(raw).items()}
+
+    def label_words(self, snapshot_id: str) -> dict[int, WordSketch] | None:
+        """The word sketches a snapshot kept with its labels (group id -> sketch), or None for
+        a snapshot written before snapshots kept them."""
+        raw = self.handle.redis.hget(self.handle.keys.snapshot(snapshot_id), "label_words")
+        if raw is None:
+            return None
+        return {
+            int(group): WordSketch.from_dict(sketch) for group, sketch in json.loads(raw).items()
+        }
 
     def state(self, snapshot_id: str) -> MixtureState:
         """A snapshot's state, checksum verified and decoded."""

@@ -21,7 +21,8 @@ counter is WATCHed then too, so a label set racing the change conflicts the chec
 Every snapshot keeps the labels hash beside the state (:mod:`state.snapshots`): the pre-change
 one the labels before the events, a due automatic one the labels the version leaves (the
 labels' counter is WATCHed for it, so a label set racing it conflicts the checkpoint, which is
-retried from the watermark like any other conflict).
+retried from the watermark like any other conflict). Both keep the ``label_words`` hash too
+(the events do not change it).
 """
 
 from __future__ import annotations
@@ -42,6 +43,7 @@ from state.errors import ReplicasUnconfirmedError, VersionConflictError
 from state.events import EventRecord, GroupEvents, event_alert, event_record
 from state.group_drift import group_ids_of
 from state.handle import ModelHandle, loads_or_none
+from state.label_words import WordSketch, parse_sketches
 from state.records import (
     AUTOMATIC,
     CurrentState,
@@ -269,14 +271,21 @@ class Versions:
                 if snapshot_id and change is None:  # the snapshot keeps the labels as they are
                     pipe.watch(keys.labels_version)
                     snapshot_labels = stored_labels(pipe.hgetall(keys.labels))
+                # the words the labels were given to (events never change them; labels_version
+                # is WATCHed whenever a snapshot is written)
+                sketches: dict[int, WordSketch] = {}
+                if snapshot_id or change is not None:
+                    sketches = parse_sketches(pipe.hgetall(keys.label_words))
                 pipe.multi()
                 write_version(pipe, self.handle, write)
                 self._write_extras(pipe, cp, write, expired)
                 if change is not None:
-                    self._write_change(pipe, cp, write, *change)
+                    self._write_change(pipe, cp, write, *change, sketches)
                     snapshot_labels = change[2]  # as the events left them
                 if snapshot_id:
-                    self._write_automatic_snapshot(pipe, cp, write, snapshot_id, snapshot_labels)
+                    self._write_automatic_snapshot(
+                        pipe, cp, write, snapshot_id, snapshot_labels, sketches
+                    )
                 pipe.execute()
             except redis.WatchError as exc:
                 raise VersionConflictError(
@@ -284,11 +293,16 @@ class Versions:
                     "(rollback, lease or delete)"
                 ) from exc
         if replica_requirement().active:
-            self._confirm(write.version)
+            written = [snapshot_id] if snapshot_id else []
+            if change is not None and change[0] is not None:
+                written.insert(0, change[0].id)
+            self._confirm(write.version, written)
         return write.version
 
-    def _confirm(self, version: int) -> None:
-        """Wait for the replicas to hold ``version`` (:mod:`state.replicas`).
+    def _confirm(self, version: int, snapshots: list[str]) -> None:
+        """Wait for the replicas to hold ``version`` (:mod:`state.replicas`) and with it the
+        ``snapshots`` its MULTI wrote (named in the warning: one lost in a failover is not
+        necessarily taken again by the replay).
 
         Not confirmed, the version stands on the primary and is logged: learning goes on. Were
         it lost in a failover, the promoted replica's older version is what the worker's next
@@ -297,6 +311,7 @@ class Versions:
         over it.
         """
         keys = self.handle.keys
+        with_snapshots = f" (with snapshot {', '.join(snapshots)})" if snapshots else ""
         try:
             confirm_replicas(
                 self.handle.redis,
@@ -304,7 +319,7 @@ class Versions:
                 keys.version,
                 "equals",
                 [str(version)],
-                what=f"checkpoint version {version} of model {self.handle.model!r}",
+                what=f"checkpoint version {version}{with_snapshots} of model {self.handle.model!r}",
                 retry_hint="learning goes on; a failover would make the worker reload and learn "
                 "those documents again",
             )
@@ -365,12 +380,13 @@ class Versions:
         info: SnapshotInfo | None,
         previous: bytes | None,
         labels: dict[int, dict[str, Any]],
+        sketches: dict[int, WordSketch],
     ) -> None:
         """The pre-change snapshot, the event records with their alerts, the labels that
         follow a merge or a retirement (see the module docstring)."""
         keys = self.handle.keys
         if info is not None and previous is not None:  # with the labels before the events
-            self.snapshots.write(pipe, info, previous, labels)
+            self.snapshots.write(pipe, info, previous, labels, sketches)
         records = [
             event_record(
                 e, version=write.version, time=write.time, snapshot_id=info.id if info else None
@@ -421,6 +437,7 @@ class Versions:
         write: VersionWrite,
         snapshot_id: str,
         labels: dict[int, dict[str, Any]] | None,
+        sketches: dict[int, WordSketch],
     ) -> None:
         """The due automatic snapshot of the version written, with the labels it leaves."""
         summary = state_summary(cp.state)
@@ -436,7 +453,7 @@ class Versions:
             watermark=cp.watermark,
             size=len(write.data),
         )
-        self.snapshots.write(pipe, info, write.data, labels or {})
+        self.snapshots.write(pipe, info, write.data, labels or {}, sketches)
 
 
 def follow_labels(

@@ -7,6 +7,9 @@ Each node also listens on its port + 10000 (the cluster bus), so a port is taken
 it and its bus port are free. Nodes are kept small (``maxmemory`` 64 MB, refusing writes past
 it rather than evicting) and allow ``DEBUG`` from loopback (``DEBUG SLEEP`` makes a primary
 unresponsive for the failover tests).
+
+:class:`LocalReplicated` is the small case: one primary with one replica, no cluster (the
+replica waits of snapshots and rollbacks, tests/test_replica_rollback.py).
 """
 
 from __future__ import annotations
@@ -265,6 +268,101 @@ class LocalCluster:
         """SIGTERM every node still running and wait for it."""
         for process in self.processes.values():
             with contextlib.suppress(ProcessLookupError):
+                process.terminate()
+        for process in self.processes.values():
+            try:
+                process.wait(10)
+            except subprocess.TimeoutExpired:
+                process.kill()
+                process.wait()
+        self.processes.clear()
+
+
+def _free_port() -> int:
+    with socket.socket() as sock:
+        sock.bind(("127.0.0.1", 0))
+        return int(sock.getsockname()[1])
+
+
+@dataclass
+class LocalReplicated:
+    """One primary and one replica (``--replicaof``) of the machine's ``redis-server`` on free
+    loopback ports, no cluster: WAIT is the same command on a cluster's primary, and a pair
+    starts in a fraction of a second. No persistence (the tests never restart them)."""
+
+    folder: Path
+    primary_port: int = 0
+    replica_port: int = 0
+    processes: dict[str, subprocess.Popen[bytes]] = field(default_factory=dict)
+
+    @property
+    def url(self) -> str:
+        """URL of the primary."""
+        return f"redis://127.0.0.1:{self.primary_port}/0"
+
+    def start(self, timeout: float = 30.0) -> LocalReplicated:
+        binaries = cluster_binaries()
+        if binaries is None:
+            raise RuntimeError(
+                "redis-server and redis-cli are needed (apt-get install redis-tools)"
+            )
+        server, cli = binaries
+        self.primary_port = _free_port()
+        self.replica_port = _free_port()
+        for name, port, extra in (
+            # no 5 s wait for more replicas before the first (diskless) sync
+            ("primary", self.primary_port, ["--repl-diskless-sync-delay", "0"]),
+            ("replica", self.replica_port, ["--replicaof", "127.0.0.1", str(self.primary_port)]),
+        ):
+            folder = self.folder / name
+            folder.mkdir(parents=True, exist_ok=True)
+            self.processes[name] = subprocess.Popen(
+                [
+                    server,
+                    *("--port", str(port), "--bind", "127.0.0.1", "--dir", str(folder)),
+                    *("--save", "", "--appendonly", "no", "--logfile", str(folder / "redis.log")),
+                    *extra,
+                ],
+                stdin=subprocess.DEVNULL,
+                stdout=subprocess.DEVNULL,
+                stderr=subprocess.DEVNULL,
+            )
+        for port in (self.primary_port, self.replica_port):
+            LocalCluster._wait_ping(cli, port, timeout)
+        self.wait_in_sync(timeout)
+        return self
+
+    def wait_in_sync(self, timeout: float = 30.0) -> None:
+        """Wait until the replica's link to the primary is up (its sync done)."""
+        deadline = time.monotonic() + timeout
+        while True:
+            try:
+                info = self.node(self.replica_port, socket_timeout=2).info("replication")
+                if info.get("master_link_status") == "up":
+                    return
+            except redis.RedisError:
+                pass
+            if time.monotonic() > deadline:
+                raise RuntimeError("the replica did not finish its sync")
+            time.sleep(0.05)
+
+    def pause_replica(self) -> None:
+        """SIGSTOP the replica: connected still, it acknowledges nothing."""
+        self.processes["replica"].send_signal(signal.SIGSTOP)
+
+    def resume_replica(self) -> None:
+        """SIGCONT the paused replica."""
+        self.processes["replica"].send_signal(signal.SIGCONT)
+
+    def node(self, port: int, **kwargs: object) -> redis.Redis:
+        """A plain client of the server on ``port``."""
+        return redis.Redis(host="127.0.0.1", port=port, **kwargs)  # type: ignore[arg-type]
+
+    def stop(self) -> None:
+        """SIGCONT (a paused replica ignores SIGTERM otherwise), SIGTERM, wait."""
+        for process in self.processes.values():
+            with contextlib.suppress(ProcessLookupError):
+                process.send_signal(signal.SIGCONT)
                 process.terminate()
         for process in self.processes.values():
             try:
