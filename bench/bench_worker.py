@@ -64,15 +64,30 @@ WORDS = [
         "dog pet ramp wheelchair access lift assistance mobility carer blanket",
     )
 ]
+# Four more invented topics for the lifecycle pair: eight topics for its eight groups, so the
+# warm-up's joins keep all eight and both models' updates are the same size.
+EIGHT_TOPICS = [
+    *WORDS,
+    *(
+        tuple(line.split())
+        for line in (
+            "cafe menu coffee sandwich vegetarian bar snack allergy kitchen lunch",
+            "car vehicle van trailer lane height motorbike parking loading queue",
+            "school group discount student pensioner season pass family child concession",
+            "noise dirty toilet smell cleaning broken seatbelt heating window complaint",
+        )
+    ),
+]
 
 
-def short_messages(n: int, seed: int) -> list[str]:
-    """Invented ferry-inbox messages of 5-8 tokens (plus a few shared words)."""
+def short_messages(n: int, seed: int, topics: list[tuple[str, ...]] = WORDS) -> list[str]:
+    """Invented ferry-inbox messages of 5-8 tokens (plus a few shared words), each from one of
+    ``topics`` (word lists) drawn uniformly."""
     rng = random.Random(seed)
     shared = ["please", "hello", "thanks", "today", "tomorrow", "island", "port", "crew"]
     out = []
     for _ in range(n):
-        group = WORDS[rng.randrange(len(WORDS))]
+        group = topics[rng.randrange(len(topics))]
         words = [rng.choice(group) for _ in range(rng.randint(4, 7))]
         words.append(rng.choice(shared))
         out.append(" ".join(words))
@@ -262,12 +277,17 @@ def throughput(server: EmbeddedRedis, n_docs: int, repeats: int, lifecycle: bool
 
 
 def _throughput_setup(
-    server: EmbeddedRedis, name: str, lifecycle: bool, n_groups: int = 8
+    server: EmbeddedRedis,
+    name: str,
+    lifecycle: bool,
+    n_groups: int = 8,
+    topics: list[tuple[str, ...]] = WORDS,
 ) -> tuple[ModelStore, ModelOptions]:
     """A model of the worker runs, warmed up (its cold start outside the measurement).
 
-    Short messages, batch 256, checkpoint every 5,000 documents or second, the last partial
-    unit flushed after 0.05 s, pages of 1,000; with ``lifecycle`` the group lifecycle is on.
+    Short messages (of ``topics``), batch 256, checkpoint every 5,000 documents or second, the
+    last partial unit flushed after 0.05 s, pages of 1,000; with ``lifecycle`` the group
+    lifecycle is on.
     """
     client = server.client()
     config = MixtureConfig(
@@ -292,7 +312,7 @@ def _throughput_setup(
     )
     Registry(client).create(name, config, options)
     store = ModelStore(client, name)
-    warm = short_messages(config.warmup_documents, seed=1)
+    warm = short_messages(config.warmup_documents, seed=1, topics=topics)
     store.enqueue(warm)
     worker_run(store, options, len(warm))
     return store, options
@@ -308,7 +328,9 @@ def lifecycle_pair(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
     process's), which the other jobs of a shared machine disturb less than wall time.
     """
     models = {
-        enabled: _throughput_setup(server, f"bench-pair-{'on' if enabled else 'off'}", enabled)
+        enabled: _throughput_setup(
+            server, f"bench-pair-{'on' if enabled else 'off'}", enabled, topics=EIGHT_TOPICS
+        )
         for enabled in (False, True)
     }
     n_docs = whole_units(n_docs, models[False][0].info.config.batch_size)
@@ -318,7 +340,7 @@ def lifecycle_pair(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
     bare_rates, kept, cpu_kept = [], [], []
     collections = {False: FullCollections(), True: FullCollections()}
     for rep in range(repeats):
-        texts = short_messages(n_docs, seed=100 + rep)
+        texts = short_messages(n_docs, seed=100 + rep, topics=EIGHT_TOPICS)
         starts = {}
         for enabled, (store, _) in models.items():
             starts[enabled] = store.last_stream_id()
@@ -343,9 +365,12 @@ def lifecycle_pair(server: EmbeddedRedis, n_docs: int, repeats: int) -> None:
         kept.append(seconds[False] / seconds[True])
         cpu_kept.append(cpu[False] / cpu[True])
     events = len(models[True][0].events(10_000))
+    groups = {enabled: store.info.config.n_groups for enabled, (store, _) in models.items()}
+    live = {enabled: store.load_state().n_groups for enabled, (store, _) in models.items()}
     print(
-        f"lifecycle off and on, paired: same texts, {n_docs} documents x {repeats} runs, "
-        f"K=8 at the start ({events} group events with the lifecycle on)"
+        f"lifecycle off and on, paired: same texts (eight invented topics), {n_docs} documents x "
+        f"{repeats} runs, K={groups[False]} at the start; live groups at the end: off "
+        f"{live[False]}, on {live[True]} ({events} group events with the lifecycle on)"
     )
     print(f"  bare XREAD loop           : {statistics.median(bare_rates):12,.0f} entries/s")
     for enabled in (False, True):

@@ -814,7 +814,12 @@ def _stream_position(stream_id: str) -> tuple[int, int]:
 
 
 def _wait_learned(client: ApiClient, name: str, last_id: str, timeout: float) -> None:
-    """Poll the model until its watermark reaches ``last_id`` (learned and checkpointed)."""
+    """Poll the model until the API serves a state that has learned through ``last_id``
+    (learned, checkpointed and loaded by the API, so the next command's answers include it).
+
+    The stream's watermark moves with the checkpoint; the served watermark once the API has
+    loaded it (an API without that field is judged by the stream's watermark alone).
+    """
     import time
 
     deadline = time.monotonic() + timeout
@@ -822,14 +827,15 @@ def _wait_learned(client: ApiClient, name: str, last_id: str, timeout: float) ->
     while True:
         model = client.get(f"/models/{name}")
         watermark = (model.get("stream") or {}).get("watermark") or "0-0"
-        if _stream_position(watermark) >= target:
+        served = model.get("served_watermark", watermark) or "0-0"
+        if min(_stream_position(watermark), _stream_position(served)) >= target:
             print(f"learned through {last_id}: model {name} at version {model['version']}")
             return
         if time.monotonic() >= deadline:
             state = _learned_or_warming(model)
             raise CommandError(
-                f"not learned within {timeout:g} s: watermark {watermark}, {state} "
-                f"(waiting for {last_id})"
+                f"not learned within {timeout:g} s: watermark {watermark} (served {served}), "
+                f"{state} (waiting for {last_id})"
             )
         time.sleep(0.5)
 

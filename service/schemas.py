@@ -318,6 +318,12 @@ class ModelOut(BaseModel):
     config: dict[str, Any]
     options: dict[str, Any]
     stream: dict[str, Any] | None = Field(default=None, description="Stream length, lag, ...")
+    served_watermark: str = Field(
+        default="",
+        description="Stream id of the last entry the state this process serves has learned "
+        "(its checkpoint's watermark; empty before the first). The stream's watermark can be "
+        "ahead of it until this process has loaded the newest checkpoint.",
+    )
 
 
 class ModelList(BaseModel):

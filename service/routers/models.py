@@ -47,6 +47,7 @@ def model_out(runtime: ServiceRuntime, loaded: LoadedModel, with_stream: bool) -
         "config": loaded.info.config.to_dict(),
         "options": loaded.info.options.to_dict(),
         "stream": _jsonable(stream),
+        "served_watermark": state.watermark if state is not None else "",
     }
 
 
