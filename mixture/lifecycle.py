@@ -40,9 +40,13 @@ Decisions, and the principle behind each (thresholds in mixture.lifecycle_config
   sets of documents), the largest ln BF first, up to the ceiling. Before that, components of
   the split are joined while one Dirichlet-multinomial group explains a pair better than two
   (:func:`components_log_bayes_factor` > 0, the same closed form, with the assignment term and
-  a BIC penalty for the second group's weight): the split asks for four components whatever
-  the buffer holds, and without the join one new topic gave several births at one decision
-  (BBC drift: sport born four times, filling the ceiling before the last topic came). When
+  a BIC penalty for the second group's weight) and the union's ln BF is above each part's
+  alone (one new group beats "only one part is new, the other's documents stay with the
+  mixture"): the split asks for four components whatever the buffer holds, and without the
+  join one new topic gave several births at one decision (BBC drift: sport born four times,
+  filling the ceiling before the last topic came); without the second condition a new
+  topic's component was joined to strays the mixture explains and the union was rejected
+  (WordNet glosses, :func:`join_components`). When
   the ceiling leaves less room than components passed, groups quiet (share under the
   retirement floor) for at least one whole window are retired to make it: a documented new
   topic outweighs one more window of waiting for a topic that stopped.
