@@ -66,7 +66,17 @@ birth_log_bayes_factor = 5.0
     form with the assignments and a BIC penalty for the second weight;
     mixture.lifecycle.join_components). Measured on the drift streams (seeds 0-2,
     bench/README.md): BBC end NMI 0.492 -> 0.562 (K given), 0.603 -> 0.632 (from 2); WordNet
-    -0.004 to +0.002.
+    -0.004 to +0.002. A pair is joined only when one new group is the most probable of the
+    four hypotheses for it (two new groups, one, only the first part new, only the second):
+    the join's closed form compares new groups with each other only, and on short glosses
+    one new group explains a new topic's component and a component of strays the mixture
+    explains better than two, so the union was born or rejected as one, mostly rejected
+    (branch ``splits``, bench/README.md; means over seeds, arrival / end / live):
+    WordNet 45 from 2 groups 0.235 / 0.253 / 16.0 -> 0.238 / 0.262 / 18.7, K given 0.237 /
+    0.250 / 30.7 -> 0.239 / 0.254 / 31.0; WordNet 26 from 2 0.268 / 0.315 / 15.7 -> 0.274 /
+    0.322 / 19.0, K given 0.290 / 0.330 / 32.0 -> 0.291 / 0.334 / 32.7; BBC (seeds 0-9)
+    unchanged at K given, end 0.582 -> 0.585 from 2; the shuffled null stream unchanged (no
+    birth).
 warm_up_splits = False
     The warm-up fit always keeps only the groups its documents support: its groups are joined
     while one Dirichlet-multinomial group explains a pair better than two (ln BF > 0, the

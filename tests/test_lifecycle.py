@@ -759,3 +759,55 @@ def test_a_split_of_one_topic_is_joined_and_two_topics_stay_apart():
     joined = join_components(sp.csr_matrix(dense), labels, state)
     assert set(joined[:60]) == {0}
     assert set(joined[60:]) == {2}
+
+
+def test_a_new_topic_is_not_joined_to_documents_the_mixture_explains():
+    """Invented short documents: component a mixes a new topic's words with a group's
+    common words, component b is drawn from that group alone. Among new groups one explains
+    the pair better than two (the old rule joined them), but "only a is new" is the most
+    probable hypothesis, so the pair stays apart and a passes the birth test alone. The
+    hypotheses' scores are computed here independently: scipy's Dirichlet-multinomial pmf
+    (minus its multinomial coefficient) for a new group, scipy's logsumexp over the
+    mixture's parameters for the documents that stay with it."""
+    state = _random_state(n_words=200, k=3)
+    rng = np.random.default_rng(5)
+    common = np.exp(state.parameters().log_word_prob[:200, 0])
+    common /= common.sum()
+    first = np.zeros((30, 200))
+    for d in range(30):
+        for _ in range(4):
+            topical = rng.random() < 0.5
+            first[d, rng.choice(np.arange(195, 200)) if topical else rng.choice(200, p=common)] += 1
+    second = np.zeros((30, 200))
+    for d in range(30):
+        second[d, rng.choice(200, size=4, p=common)] += 1.0
+    dense = np.vstack([first, second])
+    span = 400
+    ordinals = np.arange(state.documents_learned - span, state.documents_learned - span + 60)
+    params = state.parameters()
+    mixture = logsumexp(dense @ params.log_word_prob[:200] + params.log_weights, axis=1)
+    beta = state.config.word_pseudocount
+
+    def new_group(rows: np.ndarray) -> float:
+        pooled = rows.sum(axis=0)
+        total = int(pooled.sum())
+        coefficient = gammaln(total + 1) - gammaln(pooled + 1).sum()
+        marginal = dirichlet_multinomial.logpmf(pooled, np.full(200, beta), total) - coefficient
+        n = rows.shape[0]
+        weight = n / span
+        return float(
+            marginal + n * np.log(weight) + (span - n) * np.log1p(-weight) - 0.5 * np.log(span)
+        )
+
+    only_a = new_group(first) - mixture[:30].sum()  # against "neither is new"
+    union = new_group(dense) - mixture.sum()
+    assert only_a > 5.0 > union  # a alone passes the birth test, the union does not
+    n_words = state.vocabulary.n_active
+    old_rule = components_log_bayes_factor(first.sum(0), second.sum(0), (30, 30), n_words, beta)
+    assert old_rule > 0.0  # among new groups, one explains the pair better than two
+    labels = np.repeat([0, 1], 30)
+    joined = join_components(sp.csr_matrix(dense), labels, state, ordinals, np.full(60, np.nan))
+    np.testing.assert_array_equal(joined, labels)
+    assert birth_log_bayes_factor(state, sp.csr_matrix(first), ordinals[:30]) == pytest.approx(
+        only_a, rel=1e-9
+    )
