@@ -135,12 +135,16 @@ def _json_problem(
     detail: str,
     field: str | None = None,
     headers: Mapping[str, str] | None = None,
+    written: bool | None = None,
 ) -> JSONResponse:
-    """Every error answer: ``{"detail", "field"}``, neither repeating much of the request."""
-    content = {
+    """Every error answer: ``{"detail", "field"}``, neither repeating much of the request;
+    ``"written": true`` added when the write was done all the same (replicas unconfirmed)."""
+    content: dict[str, object] = {
         "detail": clip_echoes(detail),
         "field": None if field is None else clip(field, FIELD_LIMIT),
     }
+    if written is not None:
+        content["written"] = written
     return JSONResponse(status_code=status, content=content, headers=headers)
 
 
@@ -214,7 +218,8 @@ def install_error_handlers(app: FastAPI) -> None:
 
     async def unconfirmed(_: Request, exc: ReplicasUnconfirmedError) -> JSONResponse:
         # on the primary but not on enough replicas (MIXROUTE_REDIS_WAIT_REPLICAS): retry
-        response = _json_problem(503, str(exc))
+        # the write is done on the primary: clients must not take the 503 for a failure
+        response = _json_problem(503, str(exc), written=True)
         response.headers["Retry-After"] = str(exc.retry_after_seconds)
         return response
 

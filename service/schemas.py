@@ -130,6 +130,12 @@ class Problem(BaseModel):
 
     detail: str = Field(description="What was wrong and what to do about it.")
     field: str | None = Field(default=None, description="The offending field, when one is.")
+    written: bool | None = Field(
+        default=None,
+        description="true on a 503 whose write was done on the primary but not confirmed by "
+        "the replicas (MIXROUTE_REDIS_WAIT_REPLICAS): not a failure, and not to be repeated "
+        "unless the detail says a repeat is harmless.",
+    )
 
 
 # -- documents ------------------------------------------------------------------------------

@@ -685,6 +685,12 @@ async function onConfirmClose() {
           `(the replaced version ${result.replaced_version} is kept as ${result.safety_snapshot_id}).`);
     await refresh();
   } catch (error) {
+    if (error.status === 503 && error.data && error.data.written) {
+      // done on the primary, not confirmed by the replicas: say so, and show the new version
+      toast(`Restored, but the replicas have not confirmed it: ${error.message}`, true);
+      await refresh();
+      return;
+    }
     toast(`Restore failed: ${error.message}`, true);
   }
 }
