@@ -510,13 +510,7 @@ def _merges(
         divergence = float(jensenshannon(p, q, base=2) ** 2)
         if divergence >= config.merge_divergence:
             continue
-        docs = state.expected_documents()
-        survivor, absorbed = (first, second) if docs[a] >= docs[b] else (second, first)
-        if docs[a] == docs[b]:
-            survivor, absorbed = min(first, second), max(first, second)
-        # A group holding labelled documents survives and keeps its id.
-        if state.labelled.holds_group(absorbed):
-            survivor, absorbed = absorbed, survivor
+        survivor, absorbed = survivor_and_absorbed(state, first, second)
         touched.update((first, second))
         events.append(
             merge(
@@ -767,15 +761,25 @@ def cheapest_merge(state: MixtureState) -> tuple[float, int, int] | None:
             score = components_log_bayes_factor(
                 counts[used, a], counts[used, b], (docs[a], docs[b]), n_words, beta
             )
-            if best is not None and score <= best[0]:
-                continue
-            keep, gone = (a, b) if docs[a] >= docs[b] else (b, a)
-            if docs[a] == docs[b]:
-                keep, gone = (a, b) if ids[a] < ids[b] else (b, a)
-            if labelled[gone]:
-                keep, gone = gone, keep
-            best = (score, ids[keep], ids[gone])
-    return best
+            if best is None or score > best[0]:
+                best = (score, ids[a], ids[b])
+    if best is None:
+        return None
+    return (best[0], *survivor_and_absorbed(state, best[1], best[2]))
+
+
+def survivor_and_absorbed(state: MixtureState, first: int, second: int) -> tuple[int, int]:
+    """Which of two groups (ids) a merge keeps: the one holding labelled documents (it keeps
+    its id), else the one with more expected documents, the lower id on a tie."""
+    docs = state.expected_documents()
+    a, b = position_of(state, first), position_of(state, second)
+    if docs[a] != docs[b]:
+        survivor, absorbed = (first, second) if docs[a] > docs[b] else (second, first)
+    else:
+        survivor, absorbed = min(first, second), max(first, second)
+    if state.labelled.holds_group(absorbed):
+        survivor, absorbed = absorbed, survivor
+    return survivor, absorbed
 
 
 def _yielding_groups(state: MixtureState, evidence: GroupEvidence) -> list[int]:

@@ -55,6 +55,7 @@ from mixture.lifecycle import (
     components_log_bayes_factor,
     local_fit_labels,
     merge,
+    survivor_and_absorbed,
 )
 from mixture.lifecycle_config import LifecycleConfig
 from mixture.stats import MixtureState
@@ -205,11 +206,7 @@ def _joins(state: MixtureState, local: sp.csr_matrix, labels: np.ndarray) -> lis
         (a, b), best = max(pair_scores.items(), key=lambda item: item[1])
         if not best > 0.0:
             break
-        docs = state.expected_documents()
-        pa, pb = ids.index(a), ids.index(b)
-        survivor, absorbed = (a, b) if docs[pa] >= docs[pb] else (b, a)
-        if absorbed in labelled:
-            survivor, absorbed = absorbed, survivor
+        survivor, absorbed = survivor_and_absorbed(state, a, b)
         events.append(
             merge(
                 state,
