@@ -56,6 +56,14 @@ def cluster_binaries() -> tuple[str, str] | None:
     return (server, cli) if server and cli else None
 
 
+def required_binaries() -> tuple[str, str]:
+    """(redis-server, redis-cli), or RuntimeError saying what to install."""
+    binaries = cluster_binaries()
+    if binaries is None:
+        raise RuntimeError("redis-server and redis-cli are needed (apt-get install redis-tools)")
+    return binaries
+
+
 @dataclass
 class LocalCluster:
     """Nodes of a loopback Redis Cluster started from ``folder``."""
@@ -72,12 +80,7 @@ class LocalCluster:
         return f"redis://127.0.0.1:{self.ports[0]}/0"
 
     def start(self, timeout: float = 30.0) -> LocalCluster:
-        binaries = cluster_binaries()
-        if binaries is None:
-            raise RuntimeError(
-                "redis-server and redis-cli are needed (apt-get install redis-tools)"
-            )
-        server, cli = binaries
+        server, cli = required_binaries()
         self.ports = free_cluster_ports(self.masters * (1 + self.replicas))
         for port in self.ports:
             self._launch(server, port)
@@ -301,12 +304,7 @@ class LocalReplicated:
         return f"redis://127.0.0.1:{self.primary_port}/0"
 
     def start(self, timeout: float = 30.0) -> LocalReplicated:
-        binaries = cluster_binaries()
-        if binaries is None:
-            raise RuntimeError(
-                "redis-server and redis-cli are needed (apt-get install redis-tools)"
-            )
-        server, cli = binaries
+        server, cli = required_binaries()
         self.primary_port = _free_port()
         self.replica_port = _free_port()
         for name, port, extra in (

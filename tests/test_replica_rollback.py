@@ -18,6 +18,7 @@ import socket
 import time
 import warnings
 from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 import pytest
@@ -58,6 +59,21 @@ def unset() -> Iterator[None]:
     require_replicas(0)
     yield
     require_replicas(0)
+
+
+@contextmanager
+def replica_paused(pair: LocalReplicated, wait_seconds: float | None = 0.05) -> Iterator[None]:
+    """The replica SIGSTOPped (and, with ``wait_seconds``, writes waiting that long for it);
+    afterwards no requirement, the replica resumed and in sync again."""
+    pair.pause_replica()
+    try:
+        if wait_seconds is not None:
+            require_replicas(1, wait_seconds)
+        yield
+    finally:
+        require_replicas(0)
+        pair.resume_replica()
+        pair.wait_in_sync()
 
 
 def checkpoint(store: ModelStore, seed: int, snapshot_reason: str | None = None) -> int:
@@ -120,9 +136,7 @@ def test_with_the_replica_stopped_a_snapshot_and_a_rollback_raise_and_stay_done(
     store = create_model(primary, "paused-" + "x" * 57, small_config())
     checkpoint(store, seed=3)
     kept = store.create_snapshot("taken while the replica was up")
-    pair.pause_replica()
-    try:
-        require_replicas(1, 0.05)
+    with replica_paused(pair):
         with pytest.raises(ReplicasUnconfirmedError, match="0 of 1 replicas confirmed") as caught:
             store.create_snapshot("taken while the replica was stopped")
         message = str(caught.value)
@@ -140,10 +154,6 @@ def test_with_the_replica_stopped_a_snapshot_and_a_rollback_raise_and_stay_done(
         assert "INFO replication" in message and clip_echoes(message) == message, len(message)
         assert store.version() == version + 1  # the rollback stands
         assert store.lineage(1)[0].kind == "rollback"
-    finally:
-        require_replicas(0)
-        pair.resume_replica()
-        pair.wait_in_sync()
     primary.close()
 
 
@@ -156,18 +166,12 @@ def test_an_unconfirmed_checkpoint_names_the_automatic_snapshot_it_wrote(
     primary = redis_from_url(pair.url)
     store = create_model(primary, "automatic", small_config())
     checkpoint(store, seed=6)
-    pair.pause_replica()
-    try:
-        require_replicas(1, 0.05)
+    with replica_paused(pair):
         caplog.set_level(logging.WARNING, logger="state.versions")
         checkpoint(store, seed=7, snapshot_reason="due")
         (automatic,) = [s.id for s in store.list_snapshots() if s.kind == "automatic"]
         warned = [r.getMessage() for r in caplog.records if "not confirmed" in r.getMessage()]
         assert len(warned) == 1 and f"(with snapshot {automatic})" in warned[0], warned
-    finally:
-        require_replicas(0)
-        pair.resume_replica()
-        pair.wait_in_sync()
     primary.close()
 
 
@@ -180,16 +184,12 @@ def test_unset_a_snapshot_and_a_rollback_send_no_wait_even_with_the_replica_stop
     primary = redis_from_url(pair.url)
     store = create_model(primary, "unset", small_config())
     checkpoint(store, seed=4)
-    pair.pause_replica()
-    try:
+    with replica_paused(pair, wait_seconds=None):
         waits = wait_calls(primary)
         snap = store.create_snapshot("no requirement")
         result = store.rollback(snap.id)
         assert wait_calls(primary) == waits
         assert store.version() == result.version
-    finally:
-        pair.resume_replica()
-        pair.wait_in_sync()
     primary.close()
 
 
