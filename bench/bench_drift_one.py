@@ -9,12 +9,17 @@ each shuffled; Yin et al., KDD 2018), and ``wordnet-26-shuffled``, the 26-file g
 one random order (no drift: the null case a change for drift streams must not hurt).
 ``--trace`` prints each group event with its founders' topics and the final group x topic
 counts. ``--unit-tokens N`` learns in steps of at most N tokens (bench.bench_units, an
-experiment; ``--count-per-step`` counts each step's texts when it comes).
+experiment; ``--count-per-step`` counts each step's texts when it comes). ``--set
+FIELD=VALUE`` overrides a field of the model's configuration and ``--set
+lifecycle.FIELD=VALUE`` one of its lifecycle (values are read as JSON, else as text), for
+measuring a variant beside the defaults.
 """
 
 from __future__ import annotations
 
 import argparse
+import json
+from typing import Any
 
 import numpy as np
 from sklearn.metrics import adjusted_rand_score, normalized_mutual_info_score
@@ -57,6 +62,25 @@ def print_trace(stream: corpora.LabelledCorpus, run: corpora.DriftPass) -> None:
         print(f"  final group {group}: {counts}", flush=True)
 
 
+def parse_overrides(pairs: list[str]) -> tuple[dict[str, Any], dict[str, Any]]:
+    """``FIELD=VALUE`` pairs as (model fields, lifecycle fields); VALUE as JSON, else text."""
+    model: dict[str, Any] = {}
+    lifecycle: dict[str, Any] = {}
+    for pair in pairs:
+        key, sep, text = pair.partition("=")
+        if not sep or not key:
+            raise SystemExit(f"--set wants FIELD=VALUE, got {pair!r}")
+        try:
+            value = json.loads(text)
+        except json.JSONDecodeError:
+            value = text
+        if key.startswith("lifecycle."):
+            lifecycle[key.removeprefix("lifecycle.")] = value
+        else:
+            model[key] = value
+    return model, lifecycle
+
+
 def main(argv: list[str] | None = None) -> None:
     """Run the chosen cells and print one line per seed and the means."""
     from bench.bench_units import token_step_learner
@@ -95,7 +119,15 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument(
         "--trace", action="store_true", help="print each event with its founders' topics"
     )
+    parser.add_argument(
+        "--set",
+        action="append",
+        default=[],
+        metavar="FIELD=VALUE",
+        help="override a MixtureConfig field, or lifecycle.FIELD of its LifecycleConfig",
+    )
     args = parser.parse_args(argv)
+    model_fields, lifecycle_fields = parse_overrides(args.set)
 
     stream = build_stream(args.stream)
     k = len(stream.label_names)
@@ -108,10 +140,12 @@ def main(argv: list[str] | None = None) -> None:
             batch = route_texts(state, stream.texts).group
             batch_nmi = normalized_mutual_info_score(stream.labels, batch)
             print(f"seed {seed} batch EM at K={groups} end {batch_nmi:.3f}", flush=True)
-        lifecycle = LifecycleConfig(enabled=not args.off, max_groups=2 * k)
+        lifecycle = LifecycleConfig(
+            **{"enabled": not args.off, "max_groups": 2 * k, **lifecycle_fields}
+        )
         run = corpora.drift_pass(
             stream,
-            MixtureConfig(n_groups=start, lifecycle=lifecycle),
+            MixtureConfig(**{"n_groups": start, **model_fields, "lifecycle": lifecycle}),
             seed=seed,
             learner_class=token_step_learner(args.unit_tokens, args.count_per_step),
         )
