@@ -154,7 +154,11 @@ def test_failover_loses_nothing_acknowledged_and_learns_nothing_twice(
         options = {**QUICK_OPTIONS, "flush_partial_seconds": 0.2, "checkpoint_documents": 50}
         config = {"n_groups": 3, "warmup_documents": 60, "n_restarts": 1}
         made = http.post("/models", json={"name": model, "config": config, "options": options})
-        assert made.status_code == 201, made.text
+        # Under load the replica may confirm after the 0.3 s wait: the 503 then says the model
+        # was written ("written": true), which is all this test needs from the create.
+        assert made.status_code == 201 or (
+            made.status_code == 503 and made.json().get("written") is True
+        ), made.text
         worker = Worker(redis_from_url(cluster.url), model)
         learner = threading.Thread(target=worker.run, name="failover-worker", daemon=True)
         traffic = Traffic(http, model, texts)
