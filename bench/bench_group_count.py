@@ -14,7 +14,8 @@ number of mixture components: Smyth (2000), "Model selection for probabilistic c
 cross-validated likelihood", Statistics and Computing 10 (from memory).
 
 Corpora as in bench.bench_drift_one (``make corpora``): ``bbc`` (2,127 articles, 5 topics),
-``wordnet-26`` (the 26 noun files, 1,000 glosses each), ``wordnet-45`` (all 45 files).
+``wordnet-26`` (the 26 noun files) and ``wordnet-45`` (all 45 files), at most 1,000 glosses a
+file (34,896 in all for the 45 files).
 
 Run ``python -m bench.bench_group_count --corpus bbc --groups 2 5 10 20 [--folds 5]``.
 """
