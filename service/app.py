@@ -218,9 +218,11 @@ def install_error_handlers(app: FastAPI) -> None:
 
     async def unconfirmed(_: Request, exc: ReplicasUnconfirmedError) -> JSONResponse:
         # on the primary but not on enough replicas (MIXROUTE_REDIS_WAIT_REPLICAS): retry
-        # the write is done on the primary: clients must not take the 503 for a failure
+        # the write is done on the primary: clients must not take the 503 for a failure, and
+        # get no Retry-After when a repeat would be a second write (snapshot, rollback)
         response = _json_problem(503, str(exc), written=True)
-        response.headers["Retry-After"] = str(exc.retry_after_seconds)
+        if exc.retry_after_seconds is not None:
+            response.headers["Retry-After"] = str(exc.retry_after_seconds)
         return response
 
     app.add_exception_handler(RequestValidationError, validation)  # type: ignore[arg-type]

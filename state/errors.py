@@ -55,11 +55,15 @@ class ReplicasUnconfirmedError(StateError):
     """A write reached the primary but fewer replicas than required confirmed it in time
     (``MIXROUTE_REDIS_WAIT_REPLICAS``): a failover could still lose it (:mod:`state.replicas`).
 
-    ``retry_after_seconds`` is how long a client should wait before repeating the request;
-    ``acknowledged`` how many replicas did confirm.
+    ``retry_after_seconds`` is how long a client should wait before repeating the request,
+    or None when the request must not be repeated (a repeated snapshot takes another, a
+    repeated rollback rolls back again): the API then sends no Retry-After.
+    ``acknowledged`` is how many replicas did confirm.
     """
 
-    def __init__(self, message: str, retry_after_seconds: int, acknowledged: int = 0) -> None:
+    def __init__(
+        self, message: str, retry_after_seconds: int | None, acknowledged: int = 0
+    ) -> None:
         super().__init__(message)
-        self.retry_after_seconds = int(retry_after_seconds)
+        self.retry_after_seconds = None if retry_after_seconds is None else int(retry_after_seconds)
         self.acknowledged = int(acknowledged)

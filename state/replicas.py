@@ -26,7 +26,8 @@ was demoted answers MOVED or READONLY; both are "not confirmed". When fewer than
 confirm, :class:`ReplicasUnconfirmedError` is raised (the API answers 503 with Retry-After):
 the write stays on the primary, which may still replicate it, so a client repeats the request
 with the same client ids and the enqueue script's id check keeps the document from being
-queued twice.
+queued twice. A snapshot or a rollback is not repeatable that way (a repeat writes again), so
+its 503 carries no Retry-After and its message says what to check.
 
 Redis Cluster promotes the replica with the largest replication offset, so with one replica
 per primary (or N = all of them) the promoted replica holds every confirmed write. WAIT does
@@ -193,6 +194,7 @@ def confirm_replicas(
     what: str,
     retry_hint: str = "retry with the same client ids (a document already queued is not "
     "queued twice)",
+    repeatable: bool = True,
     requirement: ReplicaRequirement | None = None,
 ) -> int:
     """Wait until the requirement's replicas hold a write that the primary has acknowledged.
@@ -211,6 +213,11 @@ def confirm_replicas(
         The write, for the error message ("3 documents of model 'inbox'").
     retry_hint : str
         What the caller should do, for the error message.
+    repeatable : bool
+        Whether repeating the request is safe (an enqueue with client ids, a create): the
+        error then carries a retry delay (the API's Retry-After). False for a write whose
+        repeat is a second write (a snapshot, a rollback): no delay, the hint says what to
+        check instead.
     requirement : ReplicaRequirement, optional
         Default: this process's (:func:`replica_requirement`).
 
@@ -236,24 +243,28 @@ def confirm_replicas(
         present, acknowledged = pipe.execute(raise_on_error=False)
     except (redis.ConnectionError, redis.TimeoutError, OSError) as exc:
         raise _unconfirmed(
-            what, retry_hint, need, f"the primary could not be reached ({exc})"
+            what, retry_hint, repeatable, need, f"the primary could not be reached ({exc})"
         ) from exc
     if isinstance(present, Exception):
         # MOVED or READONLY: the node no longer owns the slot (a failover moved it)
-        raise _unconfirmed(what, retry_hint, need, f"the primary refused the check ({present})")
+        raise _unconfirmed(
+            what, retry_hint, repeatable, need, f"the primary refused the check ({present})"
+        )
     if int(present) != 1:
         raise _unconfirmed(
             what,
             retry_hint,
+            repeatable,
             need,
             "the write is not on the slot's primary any more (a failover lost it)",
         )
     if isinstance(acknowledged, Exception):
-        raise _unconfirmed(what, retry_hint, need, f"WAIT failed ({acknowledged})")
+        raise _unconfirmed(what, retry_hint, repeatable, need, f"WAIT failed ({acknowledged})")
     if int(acknowledged) < need.replicas:
         raise _unconfirmed(
             what,
             retry_hint,
+            repeatable,
             need,
             f"{int(acknowledged)} of {need.replicas} replicas confirmed",
             int(acknowledged),
@@ -262,11 +273,16 @@ def confirm_replicas(
 
 
 def _unconfirmed(
-    what: str, hint: str, need: ReplicaRequirement, why: str, acknowledged: int = 0
+    what: str,
+    hint: str,
+    repeatable: bool,
+    need: ReplicaRequirement,
+    why: str,
+    acknowledged: int = 0,
 ) -> ReplicasUnconfirmedError:
     return ReplicasUnconfirmedError(
         f"{what}: not confirmed by {need.replicas} replica(s) within {need.timeout_seconds:g} s "
         f"({why}), so a failover could lose it: {hint}",
-        retry_after_seconds=1,
+        retry_after_seconds=1 if repeatable else None,
         acknowledged=acknowledged,
     )

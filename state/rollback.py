@@ -169,6 +169,7 @@ class Rollbacks:
             what=f"rollback of model {model!r} to {result.snapshot_id!r}, version {result.version}",
             retry_hint=f"it is done and served, do not repeat it; {CHECK_REPLICAS}; after a "
             f"failover, see that the version is {result.version} or later",
+            repeatable=False,
         )
 
     def _commit(

@@ -180,6 +180,7 @@ class Snapshots:
             what=f"snapshot {info.id!r} of model {model!r}, version {info.version}",
             retry_hint=f"it is written and listed, a repeat takes another; {CHECK_REPLICAS}; "
             "after a failover, see that it is listed",
+            repeatable=False,
         )
 
     def _write_copy(

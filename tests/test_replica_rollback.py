@@ -143,6 +143,7 @@ def test_with_the_replica_stopped_a_snapshot_and_a_rollback_raise_and_stay_done(
         assert "it is written and listed" in message and "INFO replication" in message
         assert clip_echoes(message) == message, len(message)
         assert caught.value.acknowledged == 0
+        assert caught.value.retry_after_seconds is None  # not to be repeated
         reasons = [s.reason for s in store.list_snapshots()]
         assert reasons.count("taken while the replica was stopped") == 1  # the write stands
         version = store.version()
@@ -151,6 +152,7 @@ def test_with_the_replica_stopped_a_snapshot_and_a_rollback_raise_and_stay_done(
         message = str(caught.value)
         assert f"to {kept.id!r}, version {version + 1}:" in message
         assert "it is done and served, do not repeat it" in message
+        assert caught.value.retry_after_seconds is None
         assert "INFO replication" in message and clip_echoes(message) == message, len(message)
         assert store.version() == version + 1  # the rollback stands
         assert store.lineage(1)[0].kind == "rollback"
@@ -215,7 +217,8 @@ def test_without_a_replica_the_api_answers_503_for_a_snapshot_and_a_rollback_bot
         version = http.get(f"/models/{model_name}").json()["version"]
         answer = http.post(f"/models/{model_name}/snapshots", json={"reason": "unconfirmed"})
         assert answer.status_code == 503, answer.text
-        assert answer.headers["retry-after"] == "1"
+        assert answer.json()["written"] is True
+        assert "retry-after" not in answer.headers  # a repeat would take a second snapshot
         detail = answer.json()["detail"]
         assert "not confirmed by 1 replica(s)" in detail
         assert "it is written and listed" in detail and "INFO replication" in detail
@@ -226,9 +229,18 @@ def test_without_a_replica_the_api_answers_503_for_a_snapshot_and_a_rollback_bot
             f"/models/{model_name}/snapshots/{kept.id}/restore", json={"replay": False}
         )
         assert answer.status_code == 503, answer.text
+        assert "retry-after" not in answer.headers  # a repeat would roll back a second time
         detail = answer.json()["detail"]
         assert "not confirmed by 1 replica(s)" in detail and "do not repeat it" in detail
         assert f"version {version + 1}:" in detail and "INFO replication" in detail
         assert detail.endswith(f"see that the version is {version + 1} or later")
         assert http.get(f"/models/{model_name}").json()["version"] == version + 1
+        # Queueing is repeatable (the client ids keep a repeat from queueing twice): its 503
+        # says when to repeat it.
+        answer = http.post(
+            f"/models/{model_name}/documents", json={"documents": [{"id": "q-1", "text": "x y"}]}
+        )
+        assert answer.status_code == 503, answer.text
+        assert answer.headers["retry-after"] == "1"
+        assert answer.json()["written"] is True
     client.close()

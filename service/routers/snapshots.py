@@ -40,7 +40,8 @@ def create_snapshot(model: str, runtime: Runtime, body: SnapshotIn | None = None
     """An immutable copy of the current checkpoint, kept until deleted.
 
     With ``MIXROUTE_REDIS_WAIT_REPLICAS`` set, a snapshot the replicas do not confirm in time
-    answers 503: it is written all the same; the message says what to check.
+    answers 503 (no Retry-After: a repeat takes a second snapshot): it is written all the same;
+    the message says what to check.
     """
     loaded = runtime.model(model)
     reason = body.reason if body is not None else "requested"
@@ -107,7 +108,8 @@ def restore_snapshot(
     to, for the stale-label check) become the snapshot's; ``labels_restored`` and
     ``label_words_restored`` are false for a snapshot written before snapshots kept them.
     With ``MIXROUTE_REDIS_WAIT_REPLICAS`` set, a rollback the replicas do not confirm in time
-    answers 503: it is done (and served) all the same; the message says what to check.
+    answers 503 (no Retry-After: a repeat rolls back again): it is done (and served) all the
+    same; the message says what to check.
     """
     loaded = runtime.model(model)
     try:
