@@ -68,6 +68,7 @@ from mixture.routing import Routing, route_texts
 from mixture.serialize import state_from_bytes
 from mixture.stats import MixtureState
 from service.settings import Settings
+from state.connection import REDIS_TRANSIENT_ERRORS
 from state.errors import ModelNotFoundError
 from state.group_drift import group_ids_of
 from state.keys import NOTIFY_PATTERN, ModelKeys, model_of_notify_channel
@@ -79,11 +80,8 @@ log = logging.getLogger(__name__)
 
 T = TypeVar("T")
 
-REDIS_DOWN_ERRORS: tuple[type[BaseException], ...] = (
-    redis.exceptions.ConnectionError,
-    redis.exceptions.TimeoutError,
-    ConnectionError,
-)
+# Redis down or its cluster changing hands (the request was refused whole), and the OS's own
+REDIS_DOWN_ERRORS: tuple[type[BaseException], ...] = (*REDIS_TRANSIENT_ERRORS, ConnectionError)
 
 
 class RedisUnavailableError(Exception):

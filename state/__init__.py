@@ -1,7 +1,7 @@
 """Everything mixroute keeps in Redis: keys, connection, registry, stream, checkpoints,
 snapshots, rollback and drift history. See DEVELOPERS.md ("state/ API", "Redis protocol")."""
 
-from state.connection import EmbeddedRedis, connect, redis_from_url
+from state.connection import REDIS_TRANSIENT_ERRORS, EmbeddedRedis, connect, redis_from_url
 from state.errors import (
     CorruptSnapshotError,
     ModelExistsError,
@@ -34,6 +34,7 @@ from state.versions import Checkpoint
 
 __all__ = [
     "GENERATION_KEY",
+    "REDIS_TRANSIENT_ERRORS",
     "REGISTRY_KEY",
     "Alert",
     "Checkpoint",

@@ -46,6 +46,22 @@ from state.errors import StateError
 
 log = logging.getLogger(__name__)
 
+#: What a client meets while Redis is down or a cluster is changing hands (a failover, a
+#: resharding): the command was refused, not half done, and the cure is to repeat it later.
+#: MovedError (an AskError) and TryAgainError reach the caller once redis-py's own retries and
+#: slot-map refresh have run out; ReadOnlyError is a write sent to a primary since demoted.
+#: Cluster errors that are bugs (CrossSlotTransactionError and the like) are not here.
+REDIS_TRANSIENT_ERRORS: tuple[type[BaseException], ...] = (
+    redis.exceptions.ConnectionError,  # BusyLoadingError too
+    redis.exceptions.TimeoutError,
+    redis.exceptions.ClusterDownError,  # MasterDownError too
+    redis.exceptions.TryAgainError,
+    redis.exceptions.AskError,  # MovedError too
+    redis.exceptions.ReadOnlyError,
+    redis.exceptions.RedisClusterUnreachableError,
+    redis.exceptions.SlotNotCoveredError,
+)
+
 _SOCKET_PATH_LIMIT = 100  # sun_path is 108 bytes on Linux; keep a margin
 PID_FILE = "redis.pid"  # written by redis-server itself, removed by its clean shutdown
 LOCK_FILE = "owner.lock"  # flock held by the owning process while its server runs

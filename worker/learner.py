@@ -110,7 +110,7 @@ from mixture.errors import InputError
 from mixture.labelled import LabelledItem
 from mixture.online import BatchReport, OnlineLearner, warm_up_progress
 from mixture.serialize import state_from_bytes
-from state.connection import redis_from_url
+from state.connection import REDIS_TRANSIENT_ERRORS, redis_from_url
 from state.corrections import record_unit, record_warm_up
 from state.errors import ModelNotFoundError, VersionConflictError
 from state.group_drift import (
@@ -143,7 +143,7 @@ from state.stream import (
 
 log = logging.getLogger(__name__)
 
-_RETRYABLE = (redis.ConnectionError, redis.TimeoutError, redis.BusyLoadingError, OSError)
+_RETRYABLE = (*REDIS_TRANSIENT_ERRORS, OSError)
 
 
 @dataclass
