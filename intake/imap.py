@@ -62,6 +62,7 @@ from intake.message import MailDocument, MessageError, parse_message
 from intake.model_view import ModelView
 from mixture.errors import MixrouteError
 from mixture.stats import MixtureState
+from state.connection import REDIS_TRANSIENT_ERRORS
 from state.errors import ModelNotFoundError, StateError
 from state.group_drift import group_ids_of
 from state.intake_marks import IntakeMarks
@@ -90,8 +91,7 @@ RECOVERABLE: tuple[type[BaseException], ...] = (
     ImapCommandError,
     OSError,
     EOFError,
-    redis.ConnectionError,
-    redis.TimeoutError,
+    *REDIS_TRANSIENT_ERRORS,
     StateError,
 )
 

@@ -6,8 +6,10 @@ for learning under its Message-ID, and forward it unchanged but for one added he
 relay to the group's destination address (the review address for review true, the fallback
 address when the group has none). Only then is ``250`` answered.
 
-Whenever that cannot be done now, the answer is a temporary failure (``451``): Redis down, no
-checkpoint yet, the relay refusing or away, no address for the group. The MTA keeps the
+Whenever that cannot be done now, the answer is a temporary failure (``451``): Redis down or
+its cluster changing hands (MOVED, READONLY, ...), no checkpoint yet, the relay refusing or
+away, no address for the group, or an unexpected error of the door's own (aiosmtpd would
+answer 500, and the sender would bounce the mail). The MTA keeps the
 message and retries (RFC 5321 section 4.2.5: a 4yz reply means "try again later"), so
 nothing is lost. Learning stays exactly once across retries (the Message-ID is idempotent);
 forwarding is at least once (a retry after a 250 the MTA never heard can forward twice, as with
@@ -34,6 +36,7 @@ from intake.decide import Decision, address_of
 from intake.message import MessageError, parse_message
 from intake.model_view import ModelView
 from mixture.errors import ConfigError
+from state.connection import REDIS_TRANSIENT_ERRORS
 from state.errors import ModelNotFoundError, StateError
 from state.routed_log import RoutedLog, RoutedRecord
 from state.store import ModelStore
@@ -90,7 +93,13 @@ class RoutingDoor:
         if isinstance(raw, str):
             raw = raw.encode("utf-8", errors="surrogateescape")
         async with self._lock:  # one message at a time: the model view is shared
-            reply = await asyncio.to_thread(self.deliver, raw, envelope.mail_from or "")
+            try:
+                reply = await asyncio.to_thread(self.deliver, raw, envelope.mail_from or "")
+            except Exception:
+                # aiosmtpd would answer 500 and the sender would bounce the mail: an error of
+                # ours must leave the mail with the sender, to be retried (RFC 5321 4.2.5)
+                log.exception("smtp door: unexpected error; answering 451")
+                reply = "451 4.3.0 temporary failure of the routing door; try again later"
         if reply.startswith("4"):
             self.deferred += 1
         return reply
@@ -113,7 +122,7 @@ class RoutingDoor:
             self.store.enqueue(
                 [mail.text], ids=[mail.id], metadata=[metadata], received=mail.received
             )
-        except (redis.ConnectionError, redis.TimeoutError) as exc:
+        except REDIS_TRANSIENT_ERRORS as exc:  # a 4xx: the sender keeps the mail and retries
             log.warning("smtp door: Redis unreachable (%s); answering 451", type(exc).__name__)
             return "451 4.3.0 routing store unavailable; try again later"
         except ModelNotFoundError:
@@ -139,7 +148,7 @@ class RoutingDoor:
             )
             try:
                 self.routed.record(record)
-            except (redis.ConnectionError, redis.TimeoutError):
+            except REDIS_TRANSIENT_ERRORS:
                 log.warning("smtp door: routed record of %s not kept (Redis away)", mail.id)
         return reply
 

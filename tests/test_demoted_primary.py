@@ -13,6 +13,7 @@ talks to gives that reply (a cluster node answers MOVED first, the same transien
 from __future__ import annotations
 
 import logging
+import smtplib
 import threading
 import time
 import warnings
@@ -99,5 +100,38 @@ def test_the_api_answers_503_and_the_worker_retries_on_a_read_only_redis(
         assert any("ReadOnlyError" in message for message in lost), lost
     finally:
         Registry(primary).delete(MODEL)
+        primary.close()
+        replica.close()
+
+
+def test_the_smtp_door_answers_451_on_a_read_only_redis(pair: LocalReplicated) -> None:
+    """RFC 5321 4.2.5: a 4yz reply is a transient failure (the sending MTA keeps the mail and
+    retries); a 5yz would bounce it. A READONLY refusal is transient."""
+    pytest.importorskip("aiosmtpd")
+    from intake.compose import MailDraft, compose
+    from intake.smtp_door import SmtpDoorConfig, start_door
+    from mixture.config import MixtureConfig
+    from mixture.em import fit_texts
+    from service.testing import free_port
+    from tests.test_intake_smtp import _messages, _send, _setup
+
+    messages = _messages(300, seed=5)
+    state, _ = fit_texts([m.text for m in messages], MixtureConfig(n_groups=4), seed=1)
+    primary = redis_from_url(pair.url)
+    name = "demoted-door"
+    _setup(primary, name, state)
+    assert primary.execute_command("WAIT", 1, 10_000) == 1
+    replica = redis_from_url(replica_url(pair))
+    config = SmtpDoorConfig(listen_port=free_port(), relay_port=free_port(), relay_security="plain")
+    controller = start_door(replica, name, config)
+    try:
+        raw = compose(MailDraft("ro-1@x.invalid", messages[0].text, 1.7e9)).as_bytes()
+        with pytest.raises(smtplib.SMTPDataError) as refused:
+            _send(config.listen_port, raw)
+        assert refused.value.smtp_code == 451, refused.value
+        assert primary.xlen(ModelKeys(name).docs) == 0
+    finally:
+        controller.stop()
+        Registry(primary).delete(name)
         primary.close()
         replica.close()

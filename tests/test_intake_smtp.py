@@ -154,3 +154,27 @@ def test_relay_down_answers_451(redis_client, model_name, state_and_addresses) -
         assert refused.value.smtp_code == 451
     finally:
         controller.stop()
+
+
+def test_an_unexpected_error_answers_451_not_a_bounce(
+    redis_client, model_name, state_and_addresses, caplog: pytest.LogCaptureFixture
+) -> None:
+    """aiosmtpd answers an exception in the handler with 500, and a 5yz makes the sender bounce
+    the mail (RFC 5321 4.2.5); the door answers 451 instead, so the mail stays with the sender."""
+    _setup(redis_client, model_name, state_and_addresses)
+    config = SmtpDoorConfig(listen_port=free_port(), relay_port=free_port(), relay_security="plain")
+    controller = start_door(redis_client, model_name, config)
+
+    def broken(raw: bytes, mail_from: str) -> str:
+        raise RuntimeError("a bug in the door")
+
+    controller.handler.deliver = broken
+    try:
+        raw = compose(MailDraft("bug-1@x.invalid", _messages(1)[0].text, 1.7e9)).as_bytes()
+        with pytest.raises(smtplib.SMTPDataError) as refused:
+            _send(config.listen_port, raw)
+        assert refused.value.smtp_code == 451
+        assert controller.handler.deferred == 1
+    finally:
+        controller.stop()
+    assert any("unexpected error" in r.getMessage() and r.exc_info for r in caplog.records)
