@@ -1022,8 +1022,12 @@ def unit_observer(
     def observe(step: UnitEStep) -> np.ndarray | None:
         counts = step.counts
         seen = state.unscaled_word[step.words].sum(axis=1) > 0  # before the update
-        new_words = (~seen).astype(np.float64)
-        unknown = np.zeros(counts.shape[0]) if seen.all() else counts @ new_words
+        unknown = None if seen.all() else counts @ (~seen).astype(np.float64)
+        present = step.present
+        m = counts.shape[0]
+        ordinals = (
+            np.arange(start, start + m) if m == present.size else start + np.flatnonzero(present)
+        )
         observe_unit(
             evidence,
             config,
@@ -1033,10 +1037,12 @@ def unit_observer(
             step.log_weights,
             step.lengths,
             unknown,
-            start + np.flatnonzero(step.present),
+            ordinals,
             words=step.words,
             columns=capacity,
             step=step.step,
+            mass=step.mass,
+            tokens=step.tokens,
         )
         if not config.forget_by_own_traffic:
             return None
