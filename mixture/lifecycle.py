@@ -433,13 +433,14 @@ def apply_held_scale(state: MixtureState) -> None:
     evidence = state.evidence
     if evidence is None or evidence.held_log_scale is None:
         return
-    owed = np.flatnonzero(evidence.held_log_scale != 0.0)
-    if owed.size == 0:
+    owed = evidence.held_log_scale != 0.0
+    if not owed.any():
         return
-    factor = np.exp(evidence.held_log_scale[owed])
-    state.unscaled_word[:, owed] *= factor
-    state.unscaled_total = state.unscaled_total.copy()
-    state.unscaled_total[owed] *= factor
+    # Factor 1 (exact) for the groups owed nothing: every column in place, no gather of them.
+    factor = np.ones(state.n_groups)
+    factor[owed] = np.exp(evidence.held_log_scale[owed])
+    state.unscaled_word *= factor
+    state.unscaled_total = state.unscaled_total * factor
     evidence.held_log_scale = np.zeros(state.n_groups)
     state.touch()
 
@@ -451,7 +452,10 @@ def _retirements(
     whole = evidence.born_at <= evidence.window_start  # present for the whole window
     quiet = whole & (share < config.retire_share)
     evidence.quiet_windows = np.where(quiet, evidence.quiet_windows + 1, 0)
-    due = np.flatnonzero(evidence.quiet_windows >= config.retire_windows)
+    due = evidence.quiet_windows >= config.retire_windows
+    if not due.any():
+        return []
+    due = np.flatnonzero(due)
     due = due[np.argsort(share[due], kind="stable")]  # the quietest first
     assert state.group_ids is not None
     # Operators' labelled documents keep a group alive (mixture.labelled).
@@ -491,9 +495,10 @@ def _merges(
     overlap = overlap_coefficients(evidence)
     mass = evidence.window_mass
     enough = mass >= config.birth_min_documents
-    candidates = np.argwhere((overlap >= config.merge_overlap) & enough[:, None] & enough[None, :])
-    if candidates.size == 0:
+    hits = (overlap >= config.merge_overlap) & enough[:, None] & enough[None, :]
+    if not hits.any():
         return []
+    candidates = np.argwhere(hits)
     order = np.argsort(-overlap[candidates[:, 0], candidates[:, 1]], kind="stable")
     assert state.group_ids is not None
     ids = state.group_ids.copy()
@@ -616,11 +621,11 @@ def _births_from_buffer(
     passed, each further one is born only if, with the merge that loses least evidence, it
     still passes (:func:`_merges_for_room`)."""
     evidence.forget_older_than(state.documents_learned - config.buffer_horizon_documents)
-    buffered = evidence.buffer_counts(state.capacity)
     room = config.ceiling(state.config.n_groups) - state.n_groups
-    n_buffered = buffered.shape[0]
+    n_buffered = evidence.buffer.shape[0]
     if n_buffered < config.birth_min_documents or (room <= 0 and state.n_groups < 2):
         return []  # no room can be made: the last group neither merges nor yields
+    buffered = evidence.buffer_counts(state.capacity)
     labels = _split_buffer(state, buffered, config)
     labels = join_components(
         buffered, labels, state, evidence.buffer_ordinals, evidence.buffer_log_lik

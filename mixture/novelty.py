@@ -23,6 +23,7 @@ birth test uses.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -557,7 +558,16 @@ def overlap_coefficients(evidence: GroupEvidence) -> np.ndarray:
     smaller = np.minimum(mass[:, None], mass[None, :])
     with np.errstate(invalid="ignore", divide="ignore"):
         out = np.where(smaller > 0, evidence.window_shared / smaller, 0.0)
-    return np.triu(out, 1)
+    return np.where(_lower_triangle(mass.shape[0]), 0.0, out)  # np.triu(out, 1)
+
+
+@functools.cache
+def _lower_triangle(k: int) -> np.ndarray:
+    """The mask np.triu(x, 1) zeroes (diagonal and below), (k, k) bool, read only: built
+    once per K (np.tri costs more than the rest of the overlap)."""
+    mask = np.tri(k, k, 0, dtype=bool)
+    mask.flags.writeable = False
+    return mask
 
 
 def _widen(matrix: sp.csr_matrix, columns: int) -> sp.csr_matrix:
