@@ -216,7 +216,7 @@ class GroupEvidence:
         A group that receives n documents decays its old statistics by 0.5 ** (n / half_life)
         first (the documents of one unit enter together).
         """
-        k = self.n_groups
+        k = self.typical_weight.shape[0]
         n = np.bincount(groups, minlength=k).astype(np.float64)
         decay = 0.5 ** (n / half_life)
         self.typical_weight = self.typical_weight * decay + n
@@ -509,10 +509,10 @@ def observe_unit(
         novel = per_token < bound.take(groups)
     if unknown_tokens is not None:  # None: every word of the unit was known
         novel |= unknown_tokens > config.novel_unknown_share * lengths
-    chosen = np.flatnonzero(novel)
+    any_novel = bool(novel.any())  # np.flatnonzero costs more than a unit without novelty
 
     finite = np.isfinite(per_token)
-    if chosen.size == 0 and finite.all():  # the usual unit: every document is typical
+    if not any_novel and finite.all():  # the usual unit: every document is typical
         evidence.add_typicality(groups, per_token, config.typicality_half_life)
     else:
         keep = ~novel & finite
@@ -537,14 +537,16 @@ def observe_unit(
         high = np.maximum(top_two[:, 0], top_two[:, 1])
         np.add.at(evidence.window_shared, (low, high), shared)
 
-    if chosen.size:
-        rows = counts[chosen]
-        if words is not None:  # back to vocabulary ids (same entries, same order)
-            rows = sp.csr_matrix(
-                (rows.data, words[rows.indices], rows.indptr),
-                shape=(chosen.size, max(columns, int(words[-1]) + 1)),
-            )
-        evidence.push(rows, ordinals[chosen], config, log_norm[chosen])
+    if not any_novel:
+        return 0
+    chosen = np.flatnonzero(novel)
+    rows = counts[chosen]
+    if words is not None:  # back to vocabulary ids (same entries, same order)
+        rows = sp.csr_matrix(
+            (rows.data, words[rows.indices], rows.indptr),
+            shape=(chosen.size, max(columns, int(words[-1]) + 1)),
+        )
+    evidence.push(rows, ordinals[chosen], config, log_norm[chosen])
     return int(chosen.size)
 
 
