@@ -269,7 +269,7 @@ class GroupEvidence:
     def novel_since_birth_check(self) -> int:
         """Buffered documents that arrived since the last birth test (0 before the first
         window closed)."""
-        if self.births_checked_at < 0:
+        if self.births_checked_at < 0 or not self.buffer_ordinals.size:
             return 0
         return int(np.count_nonzero(self.buffer_ordinals >= self.births_checked_at))
 
@@ -535,7 +535,10 @@ def observe_unit(
         shared = resp[rows, top_two[:, 0]]  # the runner-up's posterior is the smaller one
         low = np.minimum(top_two[:, 0], top_two[:, 1])
         high = np.maximum(top_two[:, 0], top_two[:, 1])
-        np.add.at(evidence.window_shared, (low, high), shared)
+        if not evidence.window_shared.flags.c_contiguous:
+            evidence.window_shared = np.ascontiguousarray(evidence.window_shared)
+        # the same additions in the same order, on the flat view (ufunc.at's fast 1-D path)
+        np.add.at(evidence.window_shared.reshape(-1), low * k + high, shared)
 
     if not any_novel:
         return 0
