@@ -433,14 +433,22 @@ def apply_held_scale(state: MixtureState) -> None:
     evidence = state.evidence
     if evidence is None or evidence.held_log_scale is None:
         return
-    owed = evidence.held_log_scale != 0.0
-    if not owed.any():
+    owed = np.flatnonzero(evidence.held_log_scale != 0.0)
+    if owed.size == 0:
         return
-    # Factor 1 (exact) for the groups owed nothing: every column in place, no gather of them.
-    factor = np.ones(state.n_groups)
-    factor[owed] = np.exp(evidence.held_log_scale[owed])
-    state.unscaled_word *= factor
-    state.unscaled_total = state.unscaled_total * factor
+    factor = np.exp(evidence.held_log_scale[owed])
+    if 8 * owed.size >= state.n_groups:
+        # Every column in place, factor 1 (exact) where nothing is owed: a gather and scatter
+        # of the owed columns moves several times the memory once more than an eighth of them
+        # are owed (V = 150,000, K = 50: 56 ms for all columns against 6 ms in place).
+        every = np.ones(state.n_groups)
+        every[owed] = factor
+        state.unscaled_word *= every
+        state.unscaled_total = state.unscaled_total * every
+    else:
+        state.unscaled_word[:, owed] *= factor
+        state.unscaled_total = state.unscaled_total.copy()
+        state.unscaled_total[owed] *= factor
     evidence.held_log_scale = np.zeros(state.n_groups)
     state.touch()
 

@@ -563,13 +563,19 @@ def overlap_coefficients(evidence: GroupEvidence) -> np.ndarray:
     smaller = np.minimum(mass[:, None], mass[None, :])
     with np.errstate(invalid="ignore", divide="ignore"):
         out = np.where(smaller > 0, evidence.window_shared / smaller, 0.0)
-    return np.where(_lower_triangle(mass.shape[0]), 0.0, out)  # np.triu(out, 1)
+    k = mass.shape[0]
+    if k > _CACHED_TRIANGLES:
+        return np.triu(out, 1)
+    return np.where(_lower_triangle(k), 0.0, out)  # np.triu(out, 1), its mask kept
 
 
-@functools.cache
+_CACHED_TRIANGLES = 512  # K up to which the triangle masks are kept (at most 256 kB each)
+
+
+@functools.lru_cache(maxsize=8)
 def _lower_triangle(k: int) -> np.ndarray:
     """The mask np.triu(x, 1) zeroes (diagonal and below), (k, k) bool, read only: built
-    once per K (np.tri costs more than the rest of the overlap)."""
+    once per K (np.tri costs more than the rest of the overlap at small K)."""
     mask = np.tri(k, k, 0, dtype=bool)
     mask.flags.writeable = False
     return mask
