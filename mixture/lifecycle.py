@@ -437,9 +437,18 @@ def apply_held_scale(state: MixtureState) -> None:
     if owed.size == 0:
         return
     factor = np.exp(evidence.held_log_scale[owed])
-    state.unscaled_word[:, owed] *= factor
-    state.unscaled_total = state.unscaled_total.copy()
-    state.unscaled_total[owed] *= factor
+    if 8 * owed.size >= state.n_groups:
+        # Every column in place, factor 1 (exact) where nothing is owed: a gather and scatter
+        # of the owed columns moves several times the memory once more than an eighth of them
+        # are owed (V = 150,000, K = 50: 56 ms for all columns against 6 ms in place).
+        every = np.ones(state.n_groups)
+        every[owed] = factor
+        state.unscaled_word *= every
+        state.unscaled_total = state.unscaled_total * every
+    else:
+        state.unscaled_word[:, owed] *= factor
+        state.unscaled_total = state.unscaled_total.copy()
+        state.unscaled_total[owed] *= factor
     evidence.held_log_scale = np.zeros(state.n_groups)
     state.touch()
 
@@ -451,7 +460,10 @@ def _retirements(
     whole = evidence.born_at <= evidence.window_start  # present for the whole window
     quiet = whole & (share < config.retire_share)
     evidence.quiet_windows = np.where(quiet, evidence.quiet_windows + 1, 0)
-    due = np.flatnonzero(evidence.quiet_windows >= config.retire_windows)
+    due = evidence.quiet_windows >= config.retire_windows
+    if not due.any():
+        return []
+    due = np.flatnonzero(due)
     due = due[np.argsort(share[due], kind="stable")]  # the quietest first
     assert state.group_ids is not None
     # Operators' labelled documents keep a group alive (mixture.labelled).
@@ -491,9 +503,10 @@ def _merges(
     overlap = overlap_coefficients(evidence)
     mass = evidence.window_mass
     enough = mass >= config.birth_min_documents
-    candidates = np.argwhere((overlap >= config.merge_overlap) & enough[:, None] & enough[None, :])
-    if candidates.size == 0:
+    hits = (overlap >= config.merge_overlap) & enough[:, None] & enough[None, :]
+    if not hits.any():
         return []
+    candidates = np.argwhere(hits)
     order = np.argsort(-overlap[candidates[:, 0], candidates[:, 1]], kind="stable")
     assert state.group_ids is not None
     ids = state.group_ids.copy()
@@ -616,11 +629,11 @@ def _births_from_buffer(
     passed, each further one is born only if, with the merge that loses least evidence, it
     still passes (:func:`_merges_for_room`)."""
     evidence.forget_older_than(state.documents_learned - config.buffer_horizon_documents)
-    buffered = evidence.buffer_counts(state.capacity)
     room = config.ceiling(state.config.n_groups) - state.n_groups
-    n_buffered = buffered.shape[0]
+    n_buffered = evidence.buffer.shape[0]
     if n_buffered < config.birth_min_documents or (room <= 0 and state.n_groups < 2):
         return []  # no room can be made: the last group neither merges nor yields
+    buffered = evidence.buffer_counts(state.capacity)
     labels = _split_buffer(state, buffered, config)
     labels = join_components(
         buffered, labels, state, evidence.buffer_ordinals, evidence.buffer_log_lik
@@ -1021,9 +1034,14 @@ def unit_observer(
 
     def observe(step: UnitEStep) -> np.ndarray | None:
         counts = step.counts
-        seen = state.unscaled_word[step.words].sum(axis=1) > 0  # before the update
-        new_words = (~seen).astype(np.float64)
-        unknown = np.zeros(counts.shape[0]) if seen.all() else counts @ new_words
+        # before the update; np.take gathers the rows faster than indexing (same values)
+        seen = np.take(state.unscaled_word, step.words, axis=0).sum(axis=1) > 0
+        unknown = None if seen.all() else counts @ (~seen).astype(np.float64)
+        present = step.present
+        m = counts.shape[0]
+        ordinals = (
+            np.arange(start, start + m) if m == present.size else start + np.flatnonzero(present)
+        )
         observe_unit(
             evidence,
             config,
@@ -1033,10 +1051,12 @@ def unit_observer(
             step.log_weights,
             step.lengths,
             unknown,
-            start + np.flatnonzero(step.present),
+            ordinals,
             words=step.words,
             columns=capacity,
             step=step.step,
+            mass=step.mass,
+            tokens=step.tokens,
         )
         if not config.forget_by_own_traffic:
             return None

@@ -23,6 +23,7 @@ birth test uses.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -91,6 +92,10 @@ class UnitEStep:
         Log mixture weights used for ``resp``.
     step : float
         The unit's step size eta (the update shrinks the statistics by 1 - eta).
+    mass : ndarray (K,), optional
+        ``resp.sum(axis=0)``, the posterior mass of each group in the unit (None: not given).
+    tokens : float, optional
+        ``lengths.sum()`` (None: not given).
     """
 
     present: np.ndarray
@@ -101,6 +106,8 @@ class UnitEStep:
     log_norm: np.ndarray
     log_weights: np.ndarray
     step: float
+    mass: np.ndarray | None = None
+    tokens: float | None = None
 
 
 @dataclass
@@ -209,7 +216,7 @@ class GroupEvidence:
         A group that receives n documents decays its old statistics by 0.5 ** (n / half_life)
         first (the documents of one unit enter together).
         """
-        k = self.n_groups
+        k = self.typical_weight.shape[0]
         n = np.bincount(groups, minlength=k).astype(np.float64)
         decay = 0.5 ** (n / half_life)
         self.typical_weight = self.typical_weight * decay + n
@@ -262,7 +269,7 @@ class GroupEvidence:
     def novel_since_birth_check(self) -> int:
         """Buffered documents that arrived since the last birth test (0 before the first
         window closed)."""
-        if self.births_checked_at < 0:
+        if self.births_checked_at < 0 or not self.buffer_ordinals.size:
             return 0
         return int(np.count_nonzero(self.buffer_ordinals >= self.births_checked_at))
 
@@ -439,11 +446,13 @@ def observe_unit(
     log_norm: np.ndarray,
     log_weights: np.ndarray,
     lengths: np.ndarray,
-    unknown_tokens: np.ndarray,
+    unknown_tokens: np.ndarray | None,
     ordinals: np.ndarray,
     words: np.ndarray | None = None,
     columns: int = 0,
     step: float = 0.0,
+    mass: np.ndarray | None = None,
+    tokens: float | None = None,
 ) -> int:
     """Update the evidence with one unit's E-step and buffer its novel documents.
 
@@ -462,8 +471,8 @@ def observe_unit(
         Log mixture weights used for ``resp``.
     lengths : ndarray (m,)
         Tokens per document.
-    unknown_tokens : ndarray (m,)
-        Tokens of words the model had not seen before this unit.
+    unknown_tokens : ndarray (m,) or None
+        Tokens of words the model had not seen before this unit (None: no such word).
     ordinals : ndarray (m,) int64
         Stream positions of the documents.
     words : ndarray (n_words,), optional
@@ -472,6 +481,10 @@ def observe_unit(
         With ``words``: the width of the buffered rows (the vocabulary's capacity).
     step : float
         The unit's stepwise step size eta (used by ``forget_by_own_traffic``).
+    mass : ndarray (K,), optional
+        ``resp.sum(axis=0)`` when the caller has it already (the E-step's).
+    tokens : float, optional
+        ``lengths.sum()`` when the caller has it already.
 
     Returns
     -------
@@ -481,30 +494,34 @@ def observe_unit(
     m, k = resp.shape
     rows = np.arange(m)
     groups = resp.argmax(axis=1)
-    with np.errstate(divide="ignore"):
-        map_log_lik = np.log(resp[rows, groups]) + log_norm - log_weights[groups]
-    per_token = map_log_lik / lengths
-
-    with np.errstate(invalid="ignore", divide="ignore"):  # typical_mean and typical_std, once
-        group_mean = np.where(
-            evidence.typical_weight > 0, evidence.typical_sum / evidence.typical_weight, np.nan
-        )
-        group_var = evidence.typical_square / evidence.typical_weight - group_mean**2
-    mean = group_mean[groups]
-    std = np.sqrt(np.maximum(group_var, 0.0))[groups]
-    judged = evidence.typical_weight[groups] >= config.typicality_min_documents
+    weight = evidence.typical_weight
+    # One errstate for the unit (a context costs as much as a small array operation): a group
+    # without documents has 0/0 moments (nan), and its documents are not judged.
     with np.errstate(invalid="ignore", divide="ignore"):
-        far_below = judged & (per_token < mean - config.novelty_z * std)
-    mostly_unknown = unknown_tokens > config.novel_unknown_share * lengths
-    novel = far_below | mostly_unknown
+        map_log_lik = np.log(resp[rows, groups]) + log_norm - log_weights[groups]
+        per_token = map_log_lik / lengths
+        # typical_mean and typical_std, and each group's novelty bound, once per group (the
+        # same arithmetic as per document): -inf where a group is not judged yet
+        group_mean = np.where(weight > 0, evidence.typical_sum / weight, np.nan)
+        group_var = evidence.typical_square / weight - group_mean**2
+        bound = group_mean - config.novelty_z * np.sqrt(np.maximum(group_var, 0.0))
+        bound = np.where(weight >= config.typicality_min_documents, bound, -np.inf)
+        novel = per_token < bound.take(groups)
+    if unknown_tokens is not None:  # None: every word of the unit was known
+        novel |= unknown_tokens > config.novel_unknown_share * lengths
+    any_novel = bool(novel.any())  # np.flatnonzero costs more than a unit without novelty
 
-    keep = ~novel & np.isfinite(per_token)
-    evidence.add_typicality(groups[keep], per_token[keep], config.typicality_half_life)
+    finite = np.isfinite(per_token)
+    if not any_novel and finite.all():  # the usual unit: every document is typical
+        evidence.add_typicality(groups, per_token, config.typicality_half_life)
+    else:
+        keep = ~novel & finite
+        evidence.add_typicality(groups[keep], per_token[keep], config.typicality_half_life)
 
-    unit_mass = resp.sum(axis=0)
+    unit_mass = resp.sum(axis=0) if mass is None else mass
     evidence.window_mass += unit_mass
     evidence.window_documents += m
-    evidence.window_tokens += float(lengths.sum())
+    evidence.window_tokens += float(lengths.sum() if tokens is None else tokens)
     if config.forget_by_own_traffic and step > 0:
         # The stepwise update shrinks every group's statistics by (1 - eta). A group's word
         # statistics should shrink only for the traffic it received: by (1 - eta) ** u with
@@ -518,17 +535,21 @@ def observe_unit(
         shared = resp[rows, top_two[:, 0]]  # the runner-up's posterior is the smaller one
         low = np.minimum(top_two[:, 0], top_two[:, 1])
         high = np.maximum(top_two[:, 0], top_two[:, 1])
-        np.add.at(evidence.window_shared, (low, high), shared)
+        if not evidence.window_shared.flags.c_contiguous:
+            evidence.window_shared = np.ascontiguousarray(evidence.window_shared)
+        # the same additions in the same order, on the flat view (ufunc.at's fast 1-D path)
+        np.add.at(evidence.window_shared.reshape(-1), low * k + high, shared)
 
+    if not any_novel:
+        return 0
     chosen = np.flatnonzero(novel)
-    if chosen.size:
-        rows = counts[chosen]
-        if words is not None:  # back to vocabulary ids (same entries, same order)
-            rows = sp.csr_matrix(
-                (rows.data, words[rows.indices], rows.indptr),
-                shape=(chosen.size, max(columns, int(words[-1]) + 1)),
-            )
-        evidence.push(rows, ordinals[chosen], config, log_norm[chosen])
+    rows = counts[chosen]
+    if words is not None:  # back to vocabulary ids (same entries, same order)
+        rows = sp.csr_matrix(
+            (rows.data, words[rows.indices], rows.indptr),
+            shape=(chosen.size, max(columns, int(words[-1]) + 1)),
+        )
+    evidence.push(rows, ordinals[chosen], config, log_norm[chosen])
     return int(chosen.size)
 
 
@@ -542,7 +563,22 @@ def overlap_coefficients(evidence: GroupEvidence) -> np.ndarray:
     smaller = np.minimum(mass[:, None], mass[None, :])
     with np.errstate(invalid="ignore", divide="ignore"):
         out = np.where(smaller > 0, evidence.window_shared / smaller, 0.0)
-    return np.triu(out, 1)
+    k = mass.shape[0]
+    if k > _CACHED_TRIANGLES:
+        return np.triu(out, 1)
+    return np.where(_lower_triangle(k), 0.0, out)  # np.triu(out, 1), its mask kept
+
+
+_CACHED_TRIANGLES = 512  # K up to which the triangle masks are kept (at most 256 kB each)
+
+
+@functools.lru_cache(maxsize=8)
+def _lower_triangle(k: int) -> np.ndarray:
+    """The mask np.triu(x, 1) zeroes (diagonal and below), (k, k) bool, read only: built
+    once per K (np.tri costs more than the rest of the overlap at small K)."""
+    mask = np.tri(k, k, 0, dtype=bool)
+    mask.flags.writeable = False
+    return mask
 
 
 def _widen(matrix: sp.csr_matrix, columns: int) -> sp.csr_matrix:

@@ -180,12 +180,14 @@ def _update_unit(
     resp += log_weights
     log_norm = softmax_rows(resp, fallback_log=log_weights)
     possible = np.isfinite(log_norm)
+    tokens = lengths.sum()
     if possible.all():
-        report.log_likelihood_per_token = float(log_norm.sum() / lengths.sum())
+        report.log_likelihood_per_token = float(log_norm.sum() / tokens)
     elif possible.any():
         report.log_likelihood_per_token = float(log_norm[possible].sum() / lengths[possible].sum())
     batch_word = np.asarray(local_counts.T @ resp) / m  # average per document
-    batch_docs = resp.sum(axis=0) / m
+    mass = resp.sum(axis=0)
+    batch_docs = mass / m
 
     # The schedule counts units of batch_size documents. A smaller batch (a partial unit
     # flushed for latency, a trickle of single messages) is that fraction of a step: eta is
@@ -200,7 +202,18 @@ def _update_unit(
         # What the E-step already has (the batch's words, row lengths, log weights): the
         # observer then costs O(words in the unit x K) with no sparse re-indexing of its own.
         factors = observe(
-            UnitEStep(evidence, local_counts, rows, lengths, resp, log_norm, log_weights, eta)
+            UnitEStep(
+                evidence,
+                local_counts,
+                rows,
+                lengths,
+                resp,
+                log_norm,
+                log_weights,
+                eta,
+                mass=mass,
+                tokens=float(tokens),
+            )
         )
         if factors is not None:  # per-group weights of this unit's word statistics
             batch_word = batch_word * factors
