@@ -306,6 +306,55 @@ def test_arrays_round_trip_through_npz_without_pickle() -> None:
     assert restored.add("new") == vocabulary.capacity
 
 
+_VOCABULARY_STEPS = st.lists(
+    st.one_of(
+        st.tuples(st.just("add"), st.text(min_size=1, max_size=6)),
+        st.tuples(st.just("retire"), st.integers(0, 40)),
+        st.tuples(st.just("compact"), st.none()),
+        st.tuples(st.just("copy"), st.none()),
+        st.tuples(st.just("reload"), st.none()),
+        st.tuples(st.just("arrays"), st.none()),
+    ),
+    max_size=60,
+)
+
+
+@settings(max_examples=150, deadline=None)
+@given(_VOCABULARY_STEPS)
+def test_arrays_encode_every_word_after_any_history(steps: list[tuple[str, object]]) -> None:
+    """to_arrays encodes only the words new since its last call; whatever happened between
+    (adds, retirements, renumbering, copies, a reload), its bytes and offsets are those of
+    encoding every word afresh with Python's UTF-8 codec, and an array it returned earlier is
+    never changed by what comes after."""
+
+    def expected(vocabulary: Vocabulary) -> tuple[bytes, list[int]]:
+        encoded = [w.encode("utf-8") for w in vocabulary.words()]
+        return b"".join(encoded), np.cumsum([0] + [len(b) for b in encoded]).tolist()
+
+    vocabulary = Vocabulary(["ferry", "straße"])
+    handed_out: list[tuple[dict[str, np.ndarray], bytes, list[int]]] = []
+    for kind, value in steps:
+        if kind == "add":
+            assert isinstance(value, str)
+            vocabulary.add(value)
+        elif kind == "retire" and vocabulary.capacity:
+            vocabulary.retire([int(value) % vocabulary.capacity])  # type: ignore[call-overload]
+        elif kind == "compact":
+            vocabulary.compact()
+        elif kind == "copy":
+            vocabulary = vocabulary.copy()
+        elif kind == "reload":
+            vocabulary = Vocabulary.from_arrays(vocabulary.to_arrays())
+        arrays = vocabulary.to_arrays()
+        data, offsets = expected(vocabulary)
+        assert arrays["word_bytes"].tobytes() == data
+        assert arrays["word_offsets"].tolist() == offsets
+        handed_out.append((arrays, data, offsets))
+    for arrays, data, offsets in handed_out:  # none changed by the later steps
+        assert arrays["word_bytes"].tobytes() == data
+        assert arrays["word_offsets"].tolist() == offsets
+
+
 def _arrays(words: list[str]) -> dict[str, np.ndarray]:
     return Vocabulary(words).to_arrays()
 
