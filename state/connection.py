@@ -51,6 +51,8 @@ log = logging.getLogger(__name__)
 #: MovedError (an AskError) and TryAgainError reach the caller once redis-py's own retries and
 #: slot-map refresh have run out; ReadOnlyError is a write sent to a primary since demoted.
 #: Cluster errors that are bugs (CrossSlotTransactionError and the like) are not here.
+#: RedisClusterUnreachableError (no node reachable after a slot-map refresh) exists only in
+#: redis-py releases newer than the floor (6.1), so it is in the tuple when present.
 REDIS_TRANSIENT_ERRORS: tuple[type[BaseException], ...] = (
     redis.exceptions.ConnectionError,  # BusyLoadingError too
     redis.exceptions.TimeoutError,
@@ -58,8 +60,12 @@ REDIS_TRANSIENT_ERRORS: tuple[type[BaseException], ...] = (
     redis.exceptions.TryAgainError,
     redis.exceptions.AskError,  # MovedError too
     redis.exceptions.ReadOnlyError,
-    redis.exceptions.RedisClusterUnreachableError,
     redis.exceptions.SlotNotCoveredError,
+    *(
+        [redis.exceptions.RedisClusterUnreachableError]
+        if hasattr(redis.exceptions, "RedisClusterUnreachableError")
+        else []
+    ),
 )
 
 _SOCKET_PATH_LIMIT = 100  # sun_path is 108 bytes on Linux; keep a margin
