@@ -58,9 +58,9 @@ class Vocabulary:
         self._generation = 0
         self._caches: dict[Hashable, VocabularyCache] = {}
         self._mask: np.ndarray | None = None  # read-only snapshot handed out by active_mask()
-        # UTF-8 of the first ``len(self._encoded_ends)`` words, for to_arrays: words are only
-        # appended between renumberings, so a checkpoint encodes only the words new since the
-        # last one (encoding all of them was O(V) Python work, 27 ms at V = 100,000).
+        # UTF-8 of the first ``_n_encoded`` words and where each ends, for to_arrays: words are
+        # only appended between renumberings, so a checkpoint encodes only the words new since
+        # the last one (encoding all of them was O(V) Python work, 27 ms at V = 100,000).
         self._encoded = bytearray()
         self._encoded_ends = np.zeros(0, dtype=np.int64)
         self._n_encoded = 0
