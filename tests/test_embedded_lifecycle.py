@@ -116,6 +116,24 @@ def serve_process(tmp_path: Path) -> Iterator[tuple[subprocess.Popen[bytes], Pat
         log_file.close()
 
 
+def remove_while_it_dies(folder: Path) -> None:
+    """Remove the data folder while its redis-server may still be exiting: a file it removes
+    itself meanwhile (its redis.pid) is not an error, and a file it writes meanwhile is removed
+    on the next round."""
+
+    def vanished(function: object, name: str, excinfo: tuple) -> None:
+        if not issubclass(excinfo[0], FileNotFoundError):
+            raise excinfo[1]
+
+    for _ in range(100):
+        try:
+            shutil.rmtree(folder, onerror=vanished)
+            return
+        except OSError:  # a file written after the listing: the folder is not empty yet
+            time.sleep(0.02)
+    shutil.rmtree(folder, onerror=vanished)
+
+
 @pytest.mark.parametrize(
     "stop_signal", [signal.SIGTERM, signal.SIGINT, signal.SIGKILL], ids=["TERM", "INT", "KILL"]
 )
@@ -146,7 +164,7 @@ def test_stopping_serve_never_leaves_its_redis(
     process.wait(timeout=120)
     # a stop that can run its code waits for its server; SIGKILL leaves it to the death signal
     still_running = [pid for pid in servers if _alive(pid)]
-    shutil.rmtree(data)  # at once: a server still saving now never manages to exit
+    remove_while_it_dies(data)  # at once: a server still saving now never manages to exit
     left = wait_gone(servers)
     kill_left(left)
     assert not left, f"redis-server {left} outlived `mixroute serve` stopped by {stop_signal}"
