@@ -290,7 +290,8 @@ class Versions:
             except redis.WatchError as exc:
                 raise VersionConflictError(
                     f"model {self.handle.model!r} changed during the checkpoint "
-                    "(rollback, lease or delete)"
+                    "(rollback, lease, delete, or a label edit while a snapshot or group "
+                    "event was written with it)"
                 ) from exc
         if replica_requirement().active:
             written = [snapshot_id] if snapshot_id else []
