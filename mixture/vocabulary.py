@@ -257,7 +257,7 @@ class Vocabulary:
         offsets = np.zeros(self._n_encoded + 1, dtype=np.int64)
         offsets[1:] = self._encoded_ends[: self._n_encoded]
         return {
-            "word_bytes": np.frombuffer(bytes(self._encoded), dtype=np.uint8).copy(),
+            "word_bytes": np.frombuffer(self._encoded, dtype=np.uint8).copy(),  # one copy
             "word_offsets": offsets,
             "active": self.active_mask().copy(),
             "generation": np.array(self._generation, dtype=np.int64),
